@@ -1,0 +1,3 @@
+module heedmap
+
+go 1.26
