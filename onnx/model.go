@@ -23,7 +23,7 @@ type Graph struct {
 	Nodes        []*Node
 	Inputs       []ValueInfo // graph inputs, including any that are also initializers
 	Outputs      []ValueInfo
-	ValueInfo    []ValueInfo                // optional intermediate shapes from the file
+	ValueInfo    []ValueInfo               // optional intermediate shapes from the file
 	Initializers map[string]*tensor.Tensor // by name; Constant nodes stay nodes
 	InitOrder    []string                  // initializer names in file order
 }
