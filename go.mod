@@ -1,3 +1,10 @@
 module heedmap
 
-go 1.26
+go 1.26.0
+
+require (
+	github.com/disintegration/imaging v1.6.2 // indirect
+	github.com/fogleman/gg v1.3.0 // indirect
+	github.com/golang/freetype v0.0.0-20170609003504-e2365dfdc4a0 // indirect
+	golang.org/x/image v0.48.0 // indirect
+)
