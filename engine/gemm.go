@@ -1,0 +1,92 @@
+package engine
+
+import (
+	"runtime"
+	"sync"
+
+	"heedmap/kernel"
+)
+
+// defaultGEMM is the GEMM operators use unless WithGEMM says otherwise.
+func defaultGEMM() kernel.GEMM { return rowGEMM{} }
+
+// rowGEMM is a simple multi-threaded GEMM used until a tuned kernel is
+// available: it packs op(A) and op(B) into row-major copies when transposed,
+// then computes each row of C as a sum of scaled rows of B (an axpy inner
+// loop that the compiler keeps in registers and streams through memory),
+// splitting rows of C over GOMAXPROCS goroutines. It accumulates in float32.
+type rowGEMM struct{}
+
+func (rowGEMM) Sgemm(transA, transB bool, m, n, k int, alpha float32, a []float32, lda int, b []float32, ldb int, beta float32, c []float32, ldc int) {
+	if m == 0 || n == 0 {
+		return
+	}
+	if transA {
+		t := make([]float32, m*k)
+		for p := 0; p < k; p++ {
+			row := a[p*lda : p*lda+m]
+			for i, v := range row {
+				t[i*k+p] = v
+			}
+		}
+		a, lda = t, k
+	}
+	if transB {
+		t := make([]float32, k*n)
+		for j := 0; j < n; j++ {
+			row := b[j*ldb : j*ldb+k]
+			for p, v := range row {
+				t[p*n+j] = v
+			}
+		}
+		b, ldb = t, n
+	}
+	rows := func(i0, i1 int) {
+		for i := i0; i < i1; i++ {
+			ci := c[i*ldc : i*ldc+n]
+			if beta == 0 {
+				clear(ci)
+			} else if beta != 1 {
+				for j := range ci {
+					ci[j] *= beta
+				}
+			}
+			ai := a[i*lda : i*lda+k]
+			for p, av := range ai {
+				if av == 0 {
+					continue
+				}
+				s := alpha * av
+				bp := b[p*ldb : p*ldb+n]
+				for j, bv := range bp {
+					ci[j] += s * bv
+				}
+			}
+		}
+	}
+	parallelFor(m, m*n*k, rows)
+}
+
+// parallelFor splits [0, n) into contiguous chunks over GOMAXPROCS
+// goroutines when work (a rough flop count) is large enough to pay for them.
+func parallelFor(n, work int, f func(i0, i1 int)) {
+	workers := runtime.GOMAXPROCS(0)
+	if workers > n {
+		workers = n
+	}
+	if workers <= 1 || work < 1<<16 {
+		f(0, n)
+		return
+	}
+	var wg sync.WaitGroup
+	chunk := (n + workers - 1) / workers
+	for i0 := 0; i0 < n; i0 += chunk {
+		i1 := min(i0+chunk, n)
+		wg.Add(1)
+		go func() {
+			defer wg.Done()
+			f(i0, i1)
+		}()
+	}
+	wg.Wait()
+}

@@ -1,0 +1,250 @@
+package engine
+
+import (
+	"context"
+	"fmt"
+
+	"heedmap/onnx"
+	"heedmap/tensor"
+)
+
+// RunOptions selects what a forward pass retains beyond the graph outputs.
+type RunOptions struct {
+	// Keep names intermediate values to retain so Pass.Value returns them.
+	Keep []string
+	// Backward retains the forward values that Pass.Backward needs: for each
+	// differentiable node that depends on a graph input, exactly the inputs
+	// and outputs its Backward declared it reads.
+	Backward bool
+}
+
+// Pass is the result of one forward run: the graph outputs, the kept values
+// and, when run with Backward, what reverse mode needs. A Pass is not safe
+// for concurrent use, but several Passes of one Graph may run concurrently.
+type Pass struct {
+	g        *Graph
+	vals     []*tensor.Tensor // retained values (nil once freed)
+	shapes   [][]int          // shape of every computed value, kept after freeing
+	dtypes   []tensor.DType
+	backward bool
+
+	peakLive int // largest number of simultaneously held activations
+}
+
+// Run executes the graph on inputs (keyed by graph input name). It checks
+// every declared input shape (a symbolic dimension such as "batch" accepts
+// any size, but the same symbol must have one size across inputs) and
+// checks ctx between nodes. Values are dropped after their last use unless
+// they are graph outputs, listed in opt.Keep or needed by Backward.
+func (g *Graph) Run(ctx context.Context, inputs map[string]*tensor.Tensor, opt RunOptions) (*Pass, error) {
+	if err := g.checkInputs(inputs); err != nil {
+		return nil, err
+	}
+	keep := make([]bool, len(g.names))
+	for _, name := range opt.Keep {
+		v, ok := g.index[name]
+		if !ok {
+			return nil, fmt.Errorf("engine: Keep: graph has no value %q", name)
+		}
+		keep[v] = true
+	}
+	if opt.Backward {
+		for _, nd := range g.nodes {
+			if !g.nodeVarying(nd) {
+				continue
+			}
+			for i, v := range nd.in {
+				if v >= 0 && nd.needIn[i] {
+					keep[v] = true
+				}
+			}
+			for i, v := range nd.out {
+				if v >= 0 && nd.needOut[i] {
+					keep[v] = true
+				}
+			}
+		}
+	}
+	p := &Pass{
+		g:        g,
+		vals:     make([]*tensor.Tensor, len(g.names)),
+		shapes:   make([][]int, len(g.names)),
+		dtypes:   make([]tensor.DType, len(g.names)),
+		backward: opt.Backward,
+	}
+	set := func(v int, t *tensor.Tensor) {
+		p.vals[v] = t
+		p.shapes[v] = t.Shape
+		p.dtypes[v] = t.DType
+	}
+	for v, c := range g.consts {
+		if c != nil {
+			set(v, c)
+		}
+	}
+	for i, v := range g.inputIdx {
+		set(v, inputs[g.inputs[i].Name])
+	}
+	// Initializers that are also declared graph inputs may be overridden.
+	for name, t := range inputs {
+		if v, ok := g.index[name]; ok && g.consts[v] != nil && t != nil {
+			set(v, t)
+		}
+	}
+	live := 0
+	in := make([]*tensor.Tensor, 0, 8)
+	for k, nd := range g.nodes {
+		if err := ctx.Err(); err != nil {
+			return nil, err
+		}
+		in = in[:0]
+		for _, v := range nd.in {
+			if v < 0 {
+				in = append(in, nil)
+				continue
+			}
+			in = append(in, p.vals[v])
+		}
+		out, err := nd.op.Forward(in)
+		if err != nil {
+			return nil, fmt.Errorf("engine: %s: %w", nd.label(), err)
+		}
+		for i, v := range nd.out {
+			if v < 0 {
+				continue
+			}
+			if i >= len(out) || out[i] == nil {
+				return nil, fmt.Errorf("engine: %s: output %d (%q) not produced", nd.label(), i, g.names[v])
+			}
+			set(v, out[i])
+			live++
+		}
+		// Free what this node was the last reader of, and outputs nobody reads.
+		for _, v := range nd.in {
+			if v >= 0 && g.lastUse[v] == k && g.producer[v] >= 0 && !keep[v] && !g.isOutput[v] && p.vals[v] != nil {
+				p.vals[v] = nil
+				live--
+			}
+		}
+		if live > p.peakLive {
+			p.peakLive = live
+		}
+		for _, v := range nd.out {
+			if v >= 0 && g.lastUse[v] < 0 && !keep[v] && !g.isOutput[v] {
+				p.vals[v] = nil
+				live--
+			}
+		}
+	}
+	return p, nil
+}
+
+// nodeVarying reports whether a node depends on a graph input (only such
+// nodes are executed; folded ones are constants).
+func (g *Graph) nodeVarying(nd *node) bool {
+	for _, v := range nd.out {
+		if v >= 0 && g.varying[v] {
+			return true
+		}
+	}
+	return false
+}
+
+// Value returns a graph output, a kept value, an input or a constant.
+func (p *Pass) Value(name string) (*tensor.Tensor, bool) {
+	v, ok := p.g.index[name]
+	if !ok || p.vals[v] == nil {
+		return nil, false
+	}
+	return p.vals[v], true
+}
+
+// Shape returns the shape a value had in this pass, even if it was freed.
+func (p *Pass) Shape(name string) ([]int, bool) {
+	v, ok := p.g.index[name]
+	if !ok || p.shapes[v] == nil {
+		return nil, false
+	}
+	return p.shapes[v], true
+}
+
+func (g *Graph) checkInputs(inputs map[string]*tensor.Tensor) error {
+	sym := map[string]int{}
+	symFrom := map[string]string{}
+	for _, vi := range g.inputs {
+		t, ok := inputs[vi.Name]
+		if !ok || t == nil {
+			return fmt.Errorf("engine: input %q not given", vi.Name)
+		}
+		if vi.DType != 0 && t.DType != vi.DType {
+			return fmt.Errorf("engine: input %q is %s, model declares %s", vi.Name, t.DType, vi.DType)
+		}
+		if err := checkData(t); err != nil {
+			return fmt.Errorf("engine: input %q: %v", vi.Name, err)
+		}
+		if vi.Shape == nil {
+			continue
+		}
+		if len(t.Shape) != len(vi.Shape) {
+			return fmt.Errorf("engine: input %q has shape %v, model declares %s", vi.Name, t.Shape, fmtDims(vi.Shape))
+		}
+		for i, d := range vi.Shape {
+			got := t.Shape[i]
+			switch {
+			case d.Param != "":
+				if want, seen := sym[d.Param]; seen && want != got {
+					return fmt.Errorf("engine: input %q dimension %d (%s) is %d, but %s gave %s=%d", vi.Name, i, d.Param, got, symFrom[d.Param], d.Param, want)
+				}
+				sym[d.Param], symFrom[d.Param] = got, fmt.Sprintf("input %q", vi.Name)
+			case d.Value >= 0 && int64(got) != d.Value:
+				return fmt.Errorf("engine: input %q has shape %v, model declares %s (dimension %d is %d, want %d)", vi.Name, t.Shape, fmtDims(vi.Shape), i, got, d.Value)
+			}
+		}
+	}
+	for name := range inputs {
+		if _, ok := g.index[name]; !ok {
+			return fmt.Errorf("engine: graph has no input %q", name)
+		}
+	}
+	return nil
+}
+
+func checkData(t *tensor.Tensor) error {
+	n := tensor.Numel(t.Shape)
+	for _, d := range t.Shape {
+		if d < 0 {
+			return fmt.Errorf("negative dimension in shape %v", t.Shape)
+		}
+	}
+	switch t.DType {
+	case tensor.Float32:
+		if len(t.F32) != n {
+			return fmt.Errorf("%d float32 values for shape %v", len(t.F32), t.Shape)
+		}
+	case tensor.Int64, tensor.Bool:
+		if len(t.I64) != n {
+			return fmt.Errorf("%d integer values for shape %v", len(t.I64), t.Shape)
+		}
+	default:
+		return fmt.Errorf("unknown dtype %v", t.DType)
+	}
+	return nil
+}
+
+func fmtDims(ds []onnx.Dim) string {
+	s := "["
+	for i, d := range ds {
+		if i > 0 {
+			s += " "
+		}
+		switch {
+		case d.Param != "":
+			s += d.Param
+		case d.Value < 0:
+			s += "?"
+		default:
+			s += fmt.Sprint(d.Value)
+		}
+	}
+	return s + "]"
+}
