@@ -65,6 +65,8 @@ const (
 	AttrFloats  AttrType = 6
 	AttrInts    AttrType = 7
 	AttrStrings AttrType = 8
+	AttrTensors AttrType = 9
+	AttrGraphs  AttrType = 10
 )
 
 // Attr is a decoded node attribute.
@@ -79,6 +81,8 @@ type Attr struct {
 	Floats  []float32
 	Ints    []int64
 	Strings []string
+	Tensors []*tensor.Tensor
+	Graphs  []*Graph
 }
 
 // Int returns the integer attribute name, or def when absent.
