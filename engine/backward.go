@@ -70,7 +70,7 @@ func (p *Pass) Backward(ctx context.Context, seeds map[string]*tensor.Tensor, wr
 		if p.shapes[v] == nil {
 			return nil, fmt.Errorf("engine: Backward: seed for %q, which was not computed in this pass", name)
 		}
-		if s == nil || s.DType != tensor.Float32 || !sameShape(s.Shape, p.shapes[v]) || len(s.F32) != tensor.Numel(s.Shape) {
+		if s == nil || s.DType != tensor.Float32 || !shapeEq(s.Shape, p.shapes[v]) || len(s.F32) != tensor.Numel(s.Shape) {
 			return nil, fmt.Errorf("engine: Backward: seed for %q must be float32 %v, got %v", name, p.shapes[v], s)
 		}
 		grads[v] = s
@@ -144,7 +144,7 @@ func (p *Pass) Backward(ctx context.Context, seeds map[string]*tensor.Tensor, wr
 				continue
 			}
 			gi := gin[i]
-			if !sameShape(gi.Shape, p.shapes[v]) || len(gi.F32) != tensor.Numel(p.shapes[v]) {
+			if !shapeEq(gi.Shape, p.shapes[v]) || len(gi.F32) != tensor.Numel(p.shapes[v]) {
 				return nil, fmt.Errorf("engine: Backward: %s returned gradient %v for input %q of shape %v", nd.label(), gi, g.names[v], p.shapes[v])
 			}
 			if grads[v] == nil {
@@ -184,7 +184,7 @@ func (p *Pass) Backward(ctx context.Context, seeds map[string]*tensor.Tensor, wr
 	return res, nil
 }
 
-func sameShape(a, b []int) bool {
+func shapeEq(a, b []int) bool {
 	if len(a) != len(b) {
 		return false
 	}

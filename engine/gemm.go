@@ -64,12 +64,12 @@ func (rowGEMM) Sgemm(transA, transB bool, m, n, k int, alpha float32, a []float3
 			}
 		}
 	}
-	parallelFor(m, m*n*k, rows)
+	splitWork(m, m*n*k, rows)
 }
 
-// parallelFor splits [0, n) into contiguous chunks over GOMAXPROCS
+// splitWork splits [0, n) into contiguous chunks over GOMAXPROCS
 // goroutines when work (a rough flop count) is large enough to pay for them.
-func parallelFor(n, work int, f func(i0, i1 int)) {
+func splitWork(n, work int, f func(i0, i1 int)) {
 	workers := runtime.GOMAXPROCS(0)
 	if workers > n {
 		workers = n

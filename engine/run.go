@@ -179,7 +179,7 @@ func (g *Graph) checkInputs(inputs map[string]*tensor.Tensor) error {
 		if vi.DType != 0 && t.DType != vi.DType {
 			return fmt.Errorf("engine: input %q is %s, model declares %s", vi.Name, t.DType, vi.DType)
 		}
-		if err := checkData(t); err != nil {
+		if err := checkTensorData(t); err != nil {
 			return fmt.Errorf("engine: input %q: %v", vi.Name, err)
 		}
 		if vi.Shape == nil {
@@ -209,7 +209,7 @@ func (g *Graph) checkInputs(inputs map[string]*tensor.Tensor) error {
 	return nil
 }
 
-func checkData(t *tensor.Tensor) error {
+func checkTensorData(t *tensor.Tensor) error {
 	n := tensor.Numel(t.Shape)
 	for _, d := range t.Shape {
 		if d < 0 {

@@ -1,0 +1,356 @@
+package engine
+
+import (
+	"fmt"
+
+	"heedmap/kernel"
+	"heedmap/onnx"
+	"heedmap/tensor"
+)
+
+func init() { register("Conv", buildConv) }
+
+// convOp is a 1-D or 2-D ONNX Conv. Grouped convolutions lower each group
+// to a matrix product over an im2col buffer (Chellapilla et al., "High
+// Performance Convolutional Neural Networks for Document Processing",
+// 2006): memory for the column buffer is traded for one large GEMM. A 1×1
+// convolution with unit stride and no padding skips im2col. Depthwise
+// convolutions (one input channel per group) have too little reuse for a
+// GEMM to pay off and use a direct loop instead.
+type convOp struct {
+	win   windowAttrs
+	group int
+	gemm  kernel.GEMM
+}
+
+func buildConv(n *onnx.Node, env *Env) (Op, error) {
+	w, err := parseWindow(n)
+	if err != nil {
+		return nil, err
+	}
+	if w.ceil {
+		return nil, fmt.Errorf("Conv has no ceil_mode")
+	}
+	g := n.Int("group", 1)
+	if g < 1 {
+		return nil, fmt.Errorf("group %d < 1", g)
+	}
+	if len(n.Inputs) < 2 {
+		return nil, fmt.Errorf("Conv needs X and W, got %d inputs", len(n.Inputs))
+	}
+	return &convOp{win: w, group: int(g), gemm: env.GEMM}, nil
+}
+
+// convShape is the resolved problem for given X and W.
+type convShape struct {
+	n, c, m, cg, mg int
+	spatial         int
+	g               geom2
+}
+
+func (op *convOp) shape(x, w *tensor.Tensor) (convShape, error) {
+	var s convShape
+	if len(x.Shape) != len(w.Shape) {
+		return s, fmt.Errorf("X %v and W %v differ in rank", x.Shape, w.Shape)
+	}
+	s.spatial = len(x.Shape) - 2
+	s.n, s.c, s.m = x.Shape[0], x.Shape[1], w.Shape[0]
+	if s.c%op.group != 0 || s.m%op.group != 0 {
+		return s, fmt.Errorf("group %d does not divide %d input and %d output channels", op.group, s.c, s.m)
+	}
+	s.cg, s.mg = s.c/op.group, s.m/op.group
+	if w.Shape[1] != s.cg {
+		return s, fmt.Errorf("W %v has %d input channels per group, want %d (X %v, group %d)", w.Shape, w.Shape[1], s.cg, x.Shape, op.group)
+	}
+	k := w.Shape[2:]
+	if op.win.kernel != nil && !shapeEq(int64sToInts(op.win.kernel), k) {
+		return s, fmt.Errorf("kernel_shape %v does not match W %v", op.win.kernel, w.Shape)
+	}
+	g, err := op.win.resolve(x.Shape[2:], k)
+	if err != nil {
+		return s, err
+	}
+	s.g = g
+	return s, nil
+}
+
+func (s convShape) depthwise() bool { return s.cg == 1 }
+
+func (s convShape) pointwise() bool {
+	g := s.g
+	return g.kh == 1 && g.kw == 1 && g.sh == 1 && g.sw == 1 && g.pt == 0 && g.pl == 0 && g.pb == 0 && g.pr == 0
+}
+
+func (op *convOp) Forward(in []*tensor.Tensor) ([]*tensor.Tensor, error) {
+	x, w := in[0], in[1]
+	if err := wantFloat(x, "X", 3); err != nil {
+		return nil, err
+	}
+	if err := wantFloat(w, "W", 3); err != nil {
+		return nil, err
+	}
+	s, err := op.shape(x, w)
+	if err != nil {
+		return nil, err
+	}
+	var b []float32
+	if len(in) > 2 && in[2] != nil {
+		if err := wantFloat(in[2], "B", 1); err != nil {
+			return nil, err
+		}
+		if in[2].Len() != s.m {
+			return nil, fmt.Errorf("bias B %v, want %d values", in[2].Shape, s.m)
+		}
+		b = in[2].F32
+	}
+	g := s.g
+	y := tensor.New(g.outShape(s.n, s.m, s.spatial)...)
+	ihw, ohw := g.ih*g.iw, g.oh*g.ow
+	if s.depthwise() {
+		depthwiseForward(x.F32, w.F32, y.F32, s)
+	} else {
+		kk := s.cg * g.kh * g.kw
+		var col []float32
+		if !s.pointwise() {
+			col = make([]float32, kk*ohw)
+		}
+		for n := 0; n < s.n; n++ {
+			for gi := 0; gi < op.group; gi++ {
+				xg := x.F32[(n*s.c+gi*s.cg)*ihw : (n*s.c+(gi+1)*s.cg)*ihw]
+				src := xg
+				if col != nil {
+					im2col(xg, s.cg, g, col)
+					src = col
+				}
+				yg := y.F32[(n*s.m+gi*s.mg)*ohw : (n*s.m+(gi+1)*s.mg)*ohw]
+				wg := w.F32[gi*s.mg*kk : (gi+1)*s.mg*kk]
+				op.gemm.Sgemm(false, false, s.mg, ohw, kk, 1, wg, kk, src, ohw, 0, yg, ohw)
+			}
+		}
+	}
+	if b != nil {
+		for n := 0; n < s.n; n++ {
+			for m := 0; m < s.m; m++ {
+				row := y.F32[(n*s.m+m)*ohw : (n*s.m+m+1)*ohw]
+				bv := b[m]
+				for i := range row {
+					row[i] += bv
+				}
+			}
+		}
+	}
+	return []*tensor.Tensor{y}, nil
+}
+
+// BackwardNeeds implements BackwardNeeder: the output is not needed.
+func (op *convOp) BackwardNeeds() (in, out []int) { return []int{0, 1}, nil }
+
+func (op *convOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor, error) {
+	x, w, dy := in[0], in[1], gradOut[0]
+	s, err := op.shape(x, w)
+	if err != nil {
+		return nil, err
+	}
+	g := s.g
+	ihw, ohw := g.ih*g.iw, g.oh*g.ow
+	dx := tensor.New(x.Shape...)
+	dw := tensor.New(w.Shape...)
+	if s.depthwise() {
+		depthwiseBackward(x.F32, w.F32, dy.F32, dx.F32, dw.F32, s)
+	} else {
+		kk := s.cg * g.kh * g.kw
+		pw := s.pointwise()
+		var col, dcol []float32
+		if !pw {
+			col = make([]float32, kk*ohw)
+			dcol = make([]float32, kk*ohw)
+		}
+		for n := 0; n < s.n; n++ {
+			for gi := 0; gi < op.group; gi++ {
+				off := (n*s.c + gi*s.cg) * ihw
+				xg := x.F32[off : off+s.cg*ihw]
+				dxg := dx.F32[off : off+s.cg*ihw]
+				dyg := dy.F32[(n*s.m+gi*s.mg)*ohw : (n*s.m+(gi+1)*s.mg)*ohw]
+				wg := w.F32[gi*s.mg*kk : (gi+1)*s.mg*kk]
+				dwg := dw.F32[gi*s.mg*kk : (gi+1)*s.mg*kk]
+				src := xg
+				if !pw {
+					im2col(xg, s.cg, g, col)
+					src = col
+				}
+				// dW_g += dY_g · colᵀ
+				op.gemm.Sgemm(false, true, s.mg, kk, ohw, 1, dyg, ohw, src, ohw, 1, dwg, kk)
+				// dcol = W_gᵀ · dY_g, scattered back onto dX.
+				if pw {
+					op.gemm.Sgemm(true, false, kk, ohw, s.mg, 1, wg, kk, dyg, ohw, 0, dxg, ohw)
+				} else {
+					op.gemm.Sgemm(true, false, kk, ohw, s.mg, 1, wg, kk, dyg, ohw, 0, dcol, ohw)
+					col2im(dcol, s.cg, g, dxg)
+				}
+			}
+		}
+	}
+	res := []*tensor.Tensor{dx, dw, nil}
+	if len(in) > 2 && in[2] != nil {
+		db := tensor.New(in[2].Shape...)
+		for n := 0; n < s.n; n++ {
+			for m := 0; m < s.m; m++ {
+				var acc float32
+				for _, v := range dy.F32[(n*s.m+m)*ohw : (n*s.m+m+1)*ohw] {
+					acc += v
+				}
+				db.F32[m] += acc
+			}
+		}
+		res[2] = db
+	}
+	return res[:len(in)], nil
+}
+
+// im2col writes the c×kh×kw rows of receptive-field values (zero where the
+// window covers padding) for every output position into col.
+func im2col(x []float32, c int, g geom2, col []float32) {
+	ohw := g.oh * g.ow
+	rows := c * g.kh * g.kw
+	splitWork(rows, rows*ohw, func(r0, r1 int) {
+		for r := r0; r < r1; r++ {
+			ch, kidx := r/(g.kh*g.kw), r%(g.kh*g.kw)
+			ki, kj := kidx/g.kw, kidx%g.kw
+			plane := x[ch*g.ih*g.iw : (ch+1)*g.ih*g.iw]
+			dst := col[r*ohw : (r+1)*ohw]
+			for oy := 0; oy < g.oh; oy++ {
+				iy := oy*g.sh - g.pt + ki*g.dh
+				d := dst[oy*g.ow : (oy+1)*g.ow]
+				if iy < 0 || iy >= g.ih {
+					clear(d)
+					continue
+				}
+				src := plane[iy*g.iw : (iy+1)*g.iw]
+				ix := kj*g.dw - g.pl
+				if g.sw == 1 && ix >= 0 && ix+g.ow <= g.iw {
+					copy(d, src[ix:ix+g.ow])
+					continue
+				}
+				for ox := range d {
+					if ix >= 0 && ix < g.iw {
+						d[ox] = src[ix]
+					} else {
+						d[ox] = 0
+					}
+					ix += g.sw
+				}
+			}
+		}
+	})
+}
+
+// col2im adds the column gradients back onto the image they were gathered
+// from (the adjoint of im2col). Channels are independent, so they are split
+// over goroutines.
+func col2im(col []float32, c int, g geom2, dx []float32) {
+	ohw := g.oh * g.ow
+	splitWork(c, c*g.kh*g.kw*ohw, func(c0, c1 int) {
+		for ch := c0; ch < c1; ch++ {
+			plane := dx[ch*g.ih*g.iw : (ch+1)*g.ih*g.iw]
+			for ki := 0; ki < g.kh; ki++ {
+				for kj := 0; kj < g.kw; kj++ {
+					r := (ch*g.kh+ki)*g.kw + kj
+					src := col[r*ohw : (r+1)*ohw]
+					for oy := 0; oy < g.oh; oy++ {
+						iy := oy*g.sh - g.pt + ki*g.dh
+						if iy < 0 || iy >= g.ih {
+							continue
+						}
+						row := plane[iy*g.iw : (iy+1)*g.iw]
+						ix := kj*g.dw - g.pl
+						for _, v := range src[oy*g.ow : (oy+1)*g.ow] {
+							if ix >= 0 && ix < g.iw {
+								row[ix] += v
+							}
+							ix += g.sw
+						}
+					}
+				}
+			}
+		}
+	})
+}
+
+// depthwiseForward computes a convolution with one input channel per group
+// (and mg = m/c output channels per group, the channel multiplier) directly.
+func depthwiseForward(x, w, y []float32, s convShape) {
+	g := s.g
+	ihw, ohw, khw := g.ih*g.iw, g.oh*g.ow, g.kh*g.kw
+	planes := s.n * s.m
+	splitWork(planes, planes*ohw*khw, func(p0, p1 int) {
+		for p := p0; p < p1; p++ {
+			n, m := p/s.m, p%s.m
+			ch := m / s.mg
+			src := x[(n*s.c+ch)*ihw : (n*s.c+ch+1)*ihw]
+			ker := w[m*khw : (m+1)*khw]
+			dst := y[p*ohw : (p+1)*ohw]
+			for oy := 0; oy < g.oh; oy++ {
+				for ox := 0; ox < g.ow; ox++ {
+					var acc float32
+					for ki := 0; ki < g.kh; ki++ {
+						iy := oy*g.sh - g.pt + ki*g.dh
+						if iy < 0 || iy >= g.ih {
+							continue
+						}
+						row := src[iy*g.iw : (iy+1)*g.iw]
+						for kj := 0; kj < g.kw; kj++ {
+							ix := ox*g.sw - g.pl + kj*g.dw
+							if ix >= 0 && ix < g.iw {
+								acc += row[ix] * ker[ki*g.kw+kj]
+							}
+						}
+					}
+					dst[oy*g.ow+ox] = acc
+				}
+			}
+		}
+	})
+}
+
+// depthwiseBackward accumulates dX and dW for the direct depthwise path.
+// Work is split by input channel so each goroutine owns the dX planes and
+// dW rows it writes.
+func depthwiseBackward(x, w, dy, dx, dw []float32, s convShape) {
+	g := s.g
+	ihw, ohw, khw := g.ih*g.iw, g.oh*g.ow, g.kh*g.kw
+	splitWork(s.c, s.n*s.m*ohw*khw, func(c0, c1 int) {
+		for ch := c0; ch < c1; ch++ {
+			for m := ch * s.mg; m < (ch+1)*s.mg; m++ {
+				ker := w[m*khw : (m+1)*khw]
+				dker := dw[m*khw : (m+1)*khw]
+				for n := 0; n < s.n; n++ {
+					src := x[(n*s.c+ch)*ihw : (n*s.c+ch+1)*ihw]
+					dsrc := dx[(n*s.c+ch)*ihw : (n*s.c+ch+1)*ihw]
+					gy := dy[(n*s.m+m)*ohw : (n*s.m+m+1)*ohw]
+					for oy := 0; oy < g.oh; oy++ {
+						for ox := 0; ox < g.ow; ox++ {
+							gv := gy[oy*g.ow+ox]
+							if gv == 0 {
+								continue
+							}
+							for ki := 0; ki < g.kh; ki++ {
+								iy := oy*g.sh - g.pt + ki*g.dh
+								if iy < 0 || iy >= g.ih {
+									continue
+								}
+								for kj := 0; kj < g.kw; kj++ {
+									ix := ox*g.sw - g.pl + kj*g.dw
+									if ix >= 0 && ix < g.iw {
+										j := iy*g.iw + ix
+										dker[ki*g.kw+kj] += gv * src[j]
+										dsrc[j] += gv * ker[ki*g.kw+kj]
+									}
+								}
+							}
+						}
+					}
+				}
+			}
+		}
+	})
+}
