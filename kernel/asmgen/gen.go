@@ -1,0 +1,178 @@
+// Command asmgen writes the amd64 SGEMM micro-kernels of package kernel
+// (../kernel_amd64.s and its Go declarations ../kernel_amd64_stubs.go) with
+// the avo assembler generator. It is its own module so that the heedmap
+// build never depends on avo; regenerate with
+//
+//	cd kernel/asmgen && go run . -out ../kernel_amd64.s -stubs ../stubs_amd64.go -pkg kernel
+//
+// Each micro-kernel computes one mr×nr register tile of C from a packed A
+// micro-panel (k steps of mr values, row index fastest) and a packed B
+// micro-panel (k steps of nr values, column index fastest):
+//
+//	acc[i][j] = Σ_p a[p·mr+i]·b[p·nr+j]
+//	C[i·ldc+j] = alpha·acc[i][j] (+ beta·C[i·ldc+j] when load != 0)
+//
+// The B row of a step is held in vector registers and each A value is
+// broadcast and multiplied into a row of accumulators (the outer-product
+// formulation of Goto & van de Geijn, "Anatomy of high-performance matrix
+// multiplication", ACM TOMS 34(3), 2008; register-tile shapes as in the BLIS
+// micro-kernel design of Van Zee & van de Geijn, ACM TOMS 41(3), 2015).
+package main
+
+import (
+	"fmt"
+
+	. "github.com/mmcloughlin/avo/build"
+	. "github.com/mmcloughlin/avo/operand"
+	"github.com/mmcloughlin/avo/reg"
+)
+
+// unroll is how many k steps one loop iteration does: enough to amortise the
+// loop counter and pointer bumps, small enough to keep the loop body in the
+// op cache.
+const unroll = 4
+
+// tile describes one micro-kernel.
+type tile struct {
+	name  string
+	mr    int               // rows of C (broadcast A values)
+	nv    int               // vectors per C row
+	width int               // float32 lanes per vector
+	vec   []reg.VecPhysical // register file, in index order
+	doc   string
+}
+
+func main() {
+	zmm := []reg.VecPhysical{
+		reg.Z0, reg.Z1, reg.Z2, reg.Z3, reg.Z4, reg.Z5, reg.Z6, reg.Z7,
+		reg.Z8, reg.Z9, reg.Z10, reg.Z11, reg.Z12, reg.Z13, reg.Z14, reg.Z15,
+		reg.Z16, reg.Z17, reg.Z18, reg.Z19, reg.Z20, reg.Z21, reg.Z22, reg.Z23,
+		reg.Z24, reg.Z25, reg.Z26, reg.Z27, reg.Z28, reg.Z29, reg.Z30, reg.Z31,
+	}
+	ymm := []reg.VecPhysical{
+		reg.Y0, reg.Y1, reg.Y2, reg.Y3, reg.Y4, reg.Y5, reg.Y6, reg.Y7,
+		reg.Y8, reg.Y9, reg.Y10, reg.Y11, reg.Y12, reg.Y13, reg.Y14, reg.Y15,
+	}
+	gen(tile{
+		name: "sgemm12x32AVX512", mr: 12, nv: 2, width: 16, vec: zmm,
+		doc: "12×32 tile: 24 zmm accumulators, 2 for the B row, 2 for broadcasts.",
+	})
+	gen(tile{
+		name: "sgemm6x16AVX2", mr: 6, nv: 2, width: 8, vec: ymm,
+		doc: "6×16 tile: 12 ymm accumulators, 2 for the B row, 2 for broadcasts.",
+	})
+	Generate()
+}
+
+func gen(t tile) {
+	nr := t.nv * t.width
+	TEXT(t.name, NOSPLIT, "func(k int, a, b, c *float32, ldc int, alpha, beta float32, load int)")
+	Doc(fmt.Sprintf("%s computes a %d×%d tile of C; %s", t.name, t.mr, nr, t.doc))
+	Pragma("noescape")
+
+	bv := t.vec[:t.nv]         // B row
+	bc := t.vec[t.nv : t.nv+2] // broadcast A values, alternated
+	acc := t.vec[t.nv+2 : t.nv+2+t.mr*t.nv]
+	if len(t.vec) < t.nv+2+t.mr*t.nv {
+		panic("not enough vector registers for " + t.name)
+	}
+
+	k := Load(Param("k"), GP64())
+	a := Load(Param("a"), GP64())
+	b := Load(Param("b"), GP64())
+
+	Comment("Zero the accumulators.")
+	for _, r := range acc {
+		if t.width == 16 {
+			VPXORD(r, r, r) // AVX512F; the zmm form of VXORPS needs AVX512DQ
+		} else {
+			VXORPS(r, r, r)
+		}
+	}
+
+	step := func(p int) {
+		for v := 0; v < t.nv; v++ {
+			VMOVUPS(Mem{Base: b, Disp: 4 * (p*nr + v*t.width)}, bv[v])
+		}
+		for i := 0; i < t.mr; i++ {
+			x := bc[i%2]
+			VBROADCASTSS(Mem{Base: a, Disp: 4 * (p*t.mr + i)}, x)
+			for v := 0; v < t.nv; v++ {
+				VFMADD231PS(bv[v], x, acc[i*t.nv+v])
+			}
+		}
+	}
+
+	Comment(fmt.Sprintf("Main loop, %d k steps per iteration.", unroll))
+	Label(t.name + "_unrolled")
+	CMPQ(k, Imm(unroll))
+	JL(LabelRef(t.name + "_tail"))
+	for p := 0; p < unroll; p++ {
+		step(p)
+	}
+	ADDQ(U32(4*unroll*t.mr), a)
+	ADDQ(U32(4*unroll*nr), b)
+	SUBQ(Imm(unroll), k)
+	JMP(LabelRef(t.name + "_unrolled"))
+
+	Label(t.name + "_tail")
+	TESTQ(k, k)
+	JZ(LabelRef(t.name + "_store"))
+	step(0)
+	ADDQ(U32(4*t.mr), a)
+	ADDQ(U32(4*nr), b)
+	DECQ(k)
+	JMP(LabelRef(t.name + "_tail"))
+
+	Label(t.name + "_store")
+	alpha, beta := t.vec[0], t.vec[1] // B row registers are free now
+	am, err := Param("alpha").Resolve()
+	check(err)
+	bm, err := Param("beta").Resolve()
+	check(err)
+	VBROADCASTSS(am.Addr, alpha)
+	VBROADCASTSS(bm.Addr, beta)
+	c := Load(Param("c"), GP64())
+	ldc := Load(Param("ldc"), GP64())
+	SHLQ(Imm(2), ldc)
+	load := Load(Param("load"), GP64())
+
+	for _, r := range acc {
+		VMULPS(alpha, r, r)
+	}
+	TESTQ(load, load)
+	JZ(LabelRef(t.name + "_overwrite"))
+
+	Comment("C = alpha·AB + beta·C")
+	for i := 0; i < t.mr; i++ {
+		for v := 0; v < t.nv; v++ {
+			m := Mem{Base: c, Disp: 4 * v * t.width}
+			VFMADD231PS(m, beta, acc[i*t.nv+v])
+			VMOVUPS(acc[i*t.nv+v], m)
+		}
+		if i < t.mr-1 {
+			ADDQ(ldc, c)
+		}
+	}
+	VZEROUPPER()
+	RET()
+
+	Label(t.name + "_overwrite")
+	Comment("C = alpha·AB; C is not read")
+	for i := 0; i < t.mr; i++ {
+		for v := 0; v < t.nv; v++ {
+			VMOVUPS(acc[i*t.nv+v], Mem{Base: c, Disp: 4 * v * t.width})
+		}
+		if i < t.mr-1 {
+			ADDQ(ldc, c)
+		}
+	}
+	VZEROUPPER()
+	RET()
+}
+
+func check(err error) {
+	if err != nil {
+		panic(err)
+	}
+}

@@ -1,0 +1,426 @@
+package kernel
+
+import (
+	"fmt"
+	"runtime"
+	"sync"
+)
+
+// ISA names an instruction-set path of the packed GEMM.
+type ISA int
+
+const (
+	// ISAAuto picks the fastest path the CPU supports.
+	ISAAuto ISA = iota
+	// ISAPortable is the pure-Go path, available on every GOARCH.
+	ISAPortable
+	// ISAAVX2 is the amd64 AVX2+FMA micro-kernel (6×16 tile).
+	ISAAVX2
+	// ISAAVX512 is the amd64 AVX-512F micro-kernel (12×32 tile).
+	ISAAVX512
+)
+
+func (i ISA) String() string {
+	switch i {
+	case ISAAuto:
+		return "auto"
+	case ISAPortable:
+		return "portable"
+	case ISAAVX2:
+		return "avx2"
+	case ISAAVX512:
+		return "avx512"
+	}
+	return fmt.Sprintf("ISA(%d)", int(i))
+}
+
+// Supported reports whether this CPU and build can run the given path.
+func Supported(isa ISA) bool {
+	if isa == ISAAuto || isa == ISAPortable {
+		return true
+	}
+	_, ok := archKernels()[isa]
+	return ok
+}
+
+// Options configures New.
+type Options struct {
+	// Threads is the most goroutines one Sgemm call uses; 0 means
+	// runtime.GOMAXPROCS(0) read at each call.
+	Threads int
+	// ISA forces a path; ISAAuto (the zero value) picks the fastest.
+	ISA ISA
+}
+
+// microKernel computes one mr×nr tile of C from packed panels: see
+// asmgen/gen.go for the exact contract. c must hold (mr-1)·ldc+nr values.
+type microKernel func(k int, a, b, c []float32, ldc int, alpha, beta float32, load bool)
+
+// config is one path's register tile and cache blocking.
+//
+// The loop nest is the one of Goto & van de Geijn (ACM TOMS 34(3), 2008) as
+// restructured in BLIS (Van Zee & van de Geijn, ACM TOMS 41(3), 2015):
+// for each nc-wide column block of B, for each kc-deep slice, B is packed
+// once into kc×nr micro-panels; for each mc-tall row block of A, A is packed
+// into mr×kc micro-panels; the micro-kernel then sweeps the mr×nr tiles. The
+// kc×nr B micro-panel is reused by every A micro-panel of the block, so it
+// should stay in L1; the mc×kc packed A block is reused by every B
+// micro-panel, so it should stay in L2; the kc×nc packed B lives in L3.
+type config struct {
+	isa            ISA
+	mr, nr         int
+	kc, mc, nc     int
+	kernel         microKernel
+	minParallelOps int // m·n·k below which one goroutine is used
+}
+
+// portableConfig: a 4×4 tile is what the Go compiler keeps in registers
+// without spilling (16 scalar accumulators in the 16 XMM registers minus
+// a few loads spill a little; wider tiles spill much more). Blocking sizes
+// are those of the SIMD paths scaled to the smaller tile.
+var portableConfig = config{
+	isa: ISAPortable, mr: 4, nr: 4, kc: 256, mc: 64, nc: 1024,
+	kernel: portableKernel, minParallelOps: 1 << 18,
+}
+
+// Packed is a cache-blocked, packed SGEMM with a SIMD micro-kernel where the
+// CPU has one. It is safe for concurrent use; packing buffers are reused
+// through a pool owned by the value, so steady-state calls do not allocate
+// (apart from goroutine start-up when a call is split across threads).
+type Packed struct {
+	cfg     config
+	threads int
+	pool    sync.Pool // *workspace
+}
+
+type workspace struct {
+	a, b []float32 // packed A block, packed B panel
+	tile []float32 // mr×nr scratch for edge tiles
+}
+
+// New returns a packed GEMM configured by opts. It fails when the requested
+// ISA is not supported by this CPU or build, or Threads is negative.
+func New(opts Options) (*Packed, error) {
+	if opts.Threads < 0 {
+		return nil, fmt.Errorf("kernel: Threads must be >= 0, got %d", opts.Threads)
+	}
+	var cfg config
+	switch opts.ISA {
+	case ISAAuto:
+		cfg = portableConfig
+		ks := archKernels()
+		for _, isa := range []ISA{ISAAVX512, ISAAVX2} {
+			if c, ok := ks[isa]; ok {
+				cfg = c
+				break
+			}
+		}
+	case ISAPortable:
+		cfg = portableConfig
+	default:
+		c, ok := archKernels()[opts.ISA]
+		if !ok {
+			return nil, fmt.Errorf("kernel: ISA %v not supported on this CPU/GOARCH", opts.ISA)
+		}
+		cfg = c
+	}
+	return &Packed{cfg: cfg, threads: opts.Threads}, nil
+}
+
+// Best returns the fastest GEMM for this CPU: the AVX-512 path, else the
+// AVX2+FMA path, else the pure-Go path, using up to GOMAXPROCS goroutines.
+func Best() *Packed {
+	g, err := New(Options{})
+	if err != nil {
+		panic(err) // unreachable: ISAAuto always resolves
+	}
+	return g
+}
+
+// Portable returns the pure-Go packed GEMM (compiled and tested on every
+// build) using up to GOMAXPROCS goroutines.
+func Portable() *Packed {
+	g, err := New(Options{ISA: ISAPortable})
+	if err != nil {
+		panic(err) // unreachable
+	}
+	return g
+}
+
+// ISA reports the path this GEMM runs.
+func (g *Packed) ISA() ISA { return g.cfg.isa }
+
+// Tile reports the micro-kernel's register tile (rows × columns of C).
+func (g *Packed) Tile() (mr, nr int) { return g.cfg.mr, g.cfg.nr }
+
+// Sgemm implements GEMM. Dimensions, strides and slice lengths are checked
+// before any work, because the SIMD micro-kernels address memory directly;
+// a violation panics with a message naming the argument, like the reference
+// BLAS's XERBLA (the GEMM interface has no error result).
+func (g *Packed) Sgemm(transA, transB bool, m, n, k int, alpha float32, a []float32, lda int, b []float32, ldb int, beta float32, c []float32, ldc int) {
+	checkArgs(transA, transB, m, n, k, a, lda, b, ldb, c, ldc)
+	if m == 0 || n == 0 {
+		return
+	}
+	if k == 0 || alpha == 0 {
+		scaleC(m, n, beta, c, ldc)
+		return
+	}
+	threads := g.threads
+	if threads == 0 {
+		threads = runtime.GOMAXPROCS(0)
+	}
+	cfg := &g.cfg
+	if threads < 2 || m*n*k < cfg.minParallelOps {
+		ws := g.get()
+		g.run(ws, transA, transB, m, n, k, alpha, a, lda, b, ldb, beta, c, ldc)
+		g.pool.Put(ws)
+		return
+	}
+	g.parallel(threads, transA, transB, m, n, k, alpha, a, lda, b, ldb, beta, c, ldc)
+}
+
+// parallel splits C into threads slabs of whole register tiles along the
+// dimension with more tiles, and runs the sequential algorithm on each slab.
+// Each goroutine packs its own panels: along n, A is packed once per
+// goroutine (a small cost next to the m·n·k/threads multiply); along m, B
+// is. No slab shares any part of C, so no synchronisation beyond the final
+// wait is needed.
+func (g *Packed) parallel(threads int, transA, transB bool, m, n, k int, alpha float32, a []float32, lda int, b []float32, ldb int, beta float32, c []float32, ldc int) {
+	cfg := &g.cfg
+	mTiles := (m + cfg.mr - 1) / cfg.mr
+	nTiles := (n + cfg.nr - 1) / cfg.nr
+	splitN := nTiles >= mTiles
+	tiles, unit := mTiles, cfg.mr
+	if splitN {
+		tiles, unit = nTiles, cfg.nr
+	}
+	threads = min(threads, tiles)
+	if threads < 2 {
+		ws := g.get()
+		g.run(ws, transA, transB, m, n, k, alpha, a, lda, b, ldb, beta, c, ldc)
+		g.pool.Put(ws)
+		return
+	}
+	var wg sync.WaitGroup
+	for t := 0; t < threads; t++ {
+		lo := tiles * t / threads * unit
+		hi := tiles * (t + 1) / threads * unit
+		var (
+			sa, sb, sc []float32
+			sm, sn     = m, n
+		)
+		if splitN {
+			hi = min(hi, n)
+			sn = hi - lo
+			sa = a
+			if transB {
+				sb = b[lo*ldb:]
+			} else {
+				sb = b[lo:]
+			}
+			sc = c[lo:]
+		} else {
+			hi = min(hi, m)
+			sm = hi - lo
+			sb = b
+			if transA {
+				sa = a[lo:]
+			} else {
+				sa = a[lo*lda:]
+			}
+			sc = c[lo*ldc:]
+		}
+		if t == threads-1 {
+			ws := g.get()
+			g.run(ws, transA, transB, sm, sn, k, alpha, sa, lda, sb, ldb, beta, sc, ldc)
+			g.pool.Put(ws)
+			break
+		}
+		wg.Add(1)
+		go func() {
+			defer wg.Done()
+			ws := g.get()
+			g.run(ws, transA, transB, sm, sn, k, alpha, sa, lda, sb, ldb, beta, sc, ldc)
+			g.pool.Put(ws)
+		}()
+	}
+	wg.Wait()
+}
+
+func (g *Packed) get() *workspace {
+	if ws, ok := g.pool.Get().(*workspace); ok {
+		return ws
+	}
+	return &workspace{tile: make([]float32, g.cfg.mr*g.cfg.nr)}
+}
+
+// grow returns buf with length n, reallocating only when it is too small.
+func grow(buf []float32, n int) []float32 {
+	if cap(buf) < n {
+		return make([]float32, n)
+	}
+	return buf[:n]
+}
+
+// run is the sequential blocked algorithm on one slab of C.
+func (g *Packed) run(ws *workspace, transA, transB bool, m, n, k int, alpha float32, a []float32, lda int, b []float32, ldb int, beta float32, c []float32, ldc int) {
+	cfg := &g.cfg
+	mr, nr := cfg.mr, cfg.nr
+	kcMax := min(cfg.kc, k)
+	ncMax := min(cfg.nc, roundUp(n, nr))
+	mcMax := min(cfg.mc, roundUp(m, mr))
+	ws.a = grow(ws.a, mcMax*kcMax)
+	ws.b = grow(ws.b, ncMax*kcMax)
+	kern := cfg.kernel
+	for jc := 0; jc < n; jc += cfg.nc {
+		nb := min(cfg.nc, n-jc)
+		for pc := 0; pc < k; pc += cfg.kc {
+			kb := min(cfg.kc, k-pc)
+			packB(ws.b, transB, b, ldb, pc, jc, kb, nb, nr)
+			bet := beta
+			if pc > 0 {
+				bet = 1 // later k slices accumulate onto the first
+			}
+			for ic := 0; ic < m; ic += cfg.mc {
+				mb := min(cfg.mc, m-ic)
+				packA(ws.a, transA, a, lda, ic, pc, mb, kb, mr)
+				for jr := 0; jr < nb; jr += nr {
+					nrr := min(nr, nb-jr)
+					bp := ws.b[jr*kb : (jr+nr)*kb]
+					for ir := 0; ir < mb; ir += mr {
+						mrr := min(mr, mb-ir)
+						ap := ws.a[ir*kb : (ir+mr)*kb]
+						ci := (ic+ir)*ldc + jc + jr
+						if mrr == mr && nrr == nr {
+							kern(kb, ap, bp, c[ci:], ldc, alpha, bet, bet != 0)
+							continue
+						}
+						// Edge tile: compute the full tile into scratch
+						// (the packed panels are zero-padded) and copy the
+						// valid part, so the kernels need no masking.
+						kern(kb, ap, bp, ws.tile, nr, alpha, 0, false)
+						for i := 0; i < mrr; i++ {
+							row := c[ci+i*ldc : ci+i*ldc+nrr]
+							t := ws.tile[i*nr : i*nr+nrr]
+							if bet == 0 {
+								copy(row, t)
+							} else {
+								for j, v := range t {
+									row[j] = v + bet*row[j]
+								}
+							}
+						}
+					}
+				}
+			}
+		}
+	}
+}
+
+func roundUp(x, m int) int { return (x + m - 1) / m * m }
+
+// packB copies op(B)[pc:pc+kb, jc:jc+nb] into kb×nr micro-panels, column
+// index fastest, zero-padding the last panel to nr columns.
+func packB(dst []float32, transB bool, b []float32, ldb, pc, jc, kb, nb, nr int) {
+	for jr := 0; jr < nb; jr += nr {
+		nrr := min(nr, nb-jr)
+		panel := dst[jr*kb : jr*kb+kb*nr]
+		if !transB {
+			for p := 0; p < kb; p++ {
+				src := b[(pc+p)*ldb+jc+jr:]
+				d := panel[p*nr : p*nr+nr]
+				copy(d, src[:nrr])
+				clear(d[nrr:])
+			}
+			continue
+		}
+		// op(B)(p, j) = B[j, p]: read each stored row contiguously.
+		if nrr < nr {
+			clear(panel)
+		}
+		for j := 0; j < nrr; j++ {
+			src := b[(jc+jr+j)*ldb+pc : (jc+jr+j)*ldb+pc+kb]
+			for p, v := range src {
+				panel[p*nr+j] = v
+			}
+		}
+	}
+}
+
+// packA copies op(A)[ic:ic+mb, pc:pc+kb] into mr×kb micro-panels, row index
+// fastest, zero-padding the last panel to mr rows.
+func packA(dst []float32, transA bool, a []float32, lda, ic, pc, mb, kb, mr int) {
+	for ir := 0; ir < mb; ir += mr {
+		mrr := min(mr, mb-ir)
+		panel := dst[ir*kb : ir*kb+kb*mr]
+		if transA {
+			// op(A)(i, p) = A[p, i]: stored rows are contiguous in i.
+			for p := 0; p < kb; p++ {
+				src := a[(pc+p)*lda+ic+ir:]
+				d := panel[p*mr : p*mr+mr]
+				copy(d, src[:mrr])
+				clear(d[mrr:])
+			}
+			continue
+		}
+		if mrr < mr {
+			clear(panel)
+		}
+		for i := 0; i < mrr; i++ {
+			src := a[(ic+ir+i)*lda+pc : (ic+ir+i)*lda+pc+kb]
+			for p, v := range src {
+				panel[p*mr+i] = v
+			}
+		}
+	}
+}
+
+// scaleC sets C = beta·C, writing zeros without reading C when beta is 0.
+func scaleC(m, n int, beta float32, c []float32, ldc int) {
+	if beta == 1 {
+		return
+	}
+	for i := 0; i < m; i++ {
+		row := c[i*ldc : i*ldc+n]
+		if beta == 0 {
+			clear(row)
+			continue
+		}
+		for j := range row {
+			row[j] *= beta
+		}
+	}
+}
+
+// checkArgs validates a GEMM call the way the reference BLAS's SGEMM does
+// (non-negative sizes, leading dimensions at least the stored row length)
+// and additionally that every slice holds the last element addressed.
+func checkArgs(transA, transB bool, m, n, k int, a []float32, lda int, b []float32, ldb int, c []float32, ldc int) {
+	if m < 0 || n < 0 || k < 0 {
+		panic(fmt.Sprintf("kernel: negative GEMM size m=%d n=%d k=%d", m, n, k))
+	}
+	ar, ac := m, k
+	if transA {
+		ar, ac = k, m
+	}
+	br, bc := k, n
+	if transB {
+		br, bc = n, k
+	}
+	checkMat("A", a, ar, ac, lda)
+	checkMat("B", b, br, bc, ldb)
+	checkMat("C", c, m, n, ldc)
+}
+
+func checkMat(name string, x []float32, rows, cols, ld int) {
+	if ld < max(1, cols) {
+		panic(fmt.Sprintf("kernel: GEMM leading dimension of %s is %d, want >= %d", name, ld, max(1, cols)))
+	}
+	if rows == 0 || cols == 0 {
+		return
+	}
+	if need := (rows-1)*ld + cols; len(x) < need {
+		panic(fmt.Sprintf("kernel: GEMM %s has %d elements, want >= %d for %d×%d with stride %d", name, len(x), need, rows, cols, ld))
+	}
+}
