@@ -7,11 +7,12 @@ import (
 	"heedmap/kernel"
 )
 
-// defaultGEMM is the GEMM operators use unless WithGEMM says otherwise.
-func defaultGEMM() kernel.GEMM { return rowGEMM{} }
+// defaultGEMM is the GEMM operators use unless WithGEMM says otherwise: the
+// fastest packed kernel for this CPU.
+func defaultGEMM() kernel.GEMM { return kernel.Best() }
 
-// rowGEMM is a simple multi-threaded GEMM used until a tuned kernel is
-// available: it packs op(A) and op(B) into row-major copies when transposed,
+// rowGEMM is a simple multi-threaded GEMM, kept as a second, independent
+// implementation for tests and comparisons (WithGEMM(rowGEMM{})): it packs op(A) and op(B) into row-major copies when transposed,
 // then computes each row of C as a sum of scaled rows of B (an axpy inner
 // loop that the compiler keeps in registers and streams through memory),
 // splitting rows of C over GOMAXPROCS goroutines. It accumulates in float32.

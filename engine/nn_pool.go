@@ -1,0 +1,287 @@
+package engine
+
+import (
+	"fmt"
+	"math"
+
+	"heedmap/onnx"
+	"heedmap/tensor"
+)
+
+func init() {
+	register("MaxPool", buildMaxPool)
+	register("AveragePool", buildAveragePool)
+	register("GlobalAveragePool", buildGlobalPool(false))
+	register("GlobalMaxPool", buildGlobalPool(true))
+}
+
+// poolOp is MaxPool or AveragePool over 1-D or 2-D windows.
+type poolOp struct {
+	win          windowAttrs
+	max          bool
+	includePad   bool
+	storageOrder int64
+	kernel       []int
+	hasIndices   bool // the node exposes MaxPool's Indices output
+}
+
+func buildMaxPool(n *onnx.Node, env *Env) (Op, error) {
+	return buildPool(n, true)
+}
+
+func buildAveragePool(n *onnx.Node, env *Env) (Op, error) {
+	return buildPool(n, false)
+}
+
+func buildPool(n *onnx.Node, isMax bool) (Op, error) {
+	w, err := parseWindow(n)
+	if err != nil {
+		return nil, err
+	}
+	if w.kernel == nil {
+		return nil, fmt.Errorf("kernel_shape is required")
+	}
+	op := &poolOp{win: w, max: isMax, includePad: n.Int("count_include_pad", 0) != 0, kernel: int64sToInts(w.kernel)}
+	if isMax {
+		op.storageOrder = n.Int("storage_order", 0)
+		op.hasIndices = len(n.Outputs) > 1 && n.Outputs[1] != ""
+		if op.hasIndices && op.storageOrder != 0 {
+			return nil, fmt.Errorf("MaxPool Indices with storage_order=1 not supported")
+		}
+	} else if w.dilations != nil {
+		for _, d := range w.dilations {
+			if d != 1 {
+				// Average pooling with dilation exists only from opset 19;
+				// its divisor rules are not implemented here.
+				return nil, fmt.Errorf("AveragePool dilations %v not supported", w.dilations)
+			}
+		}
+	}
+	return op, nil
+}
+
+func (op *poolOp) geometry(x []int) (geom2, error) {
+	if len(x) != len(op.kernel)+2 {
+		return geom2{}, fmt.Errorf("input %v for kernel_shape %v", x, op.kernel)
+	}
+	return op.win.resolve(x[2:], op.kernel)
+}
+
+func (op *poolOp) Forward(in []*tensor.Tensor) ([]*tensor.Tensor, error) {
+	x := in[0]
+	if err := wantFloat(x, "X", 3); err != nil {
+		return nil, err
+	}
+	g, err := op.geometry(x.Shape)
+	if err != nil {
+		return nil, err
+	}
+	nc := x.Shape[0] * x.Shape[1]
+	spatial := len(x.Shape) - 2
+	y := tensor.New(g.outShape(x.Shape[0], x.Shape[1], spatial)...)
+	ihw, ohw := g.ih*g.iw, g.oh*g.ow
+	var idx *tensor.Tensor
+	if op.max {
+		idx = tensor.NewInt64(y.Shape...)
+	}
+	splitWork(nc, nc*ohw*g.kh*g.kw, func(p0, p1 int) {
+		for p := p0; p < p1; p++ {
+			src := x.F32[p*ihw : (p+1)*ihw]
+			dst := y.F32[p*ohw : (p+1)*ohw]
+			for oy := 0; oy < g.oh; oy++ {
+				for ox := 0; ox < g.ow; ox++ {
+					if op.max {
+						best, arg := float32(math.Inf(-1)), -1
+						for ki := 0; ki < g.kh; ki++ {
+							iy := oy*g.sh - g.pt + ki*g.dh
+							if iy < 0 || iy >= g.ih {
+								continue
+							}
+							for kj := 0; kj < g.kw; kj++ {
+								ix := ox*g.sw - g.pl + kj*g.dw
+								if ix < 0 || ix >= g.iw {
+									continue
+								}
+								if v := src[iy*g.iw+ix]; v > best || arg < 0 {
+									best, arg = v, iy*g.iw+ix
+								}
+							}
+						}
+						if arg < 0 { // window entirely in padding
+							arg = 0
+						}
+						dst[oy*g.ow+ox] = best
+						idx.I64[p*ohw+oy*g.ow+ox] = int64(p*ihw + arg)
+						continue
+					}
+					var sum float32
+					cnt := 0
+					y0, x0 := oy*g.sh-g.pt, ox*g.sw-g.pl
+					for iy := max(y0, 0); iy < min(y0+g.kh, g.ih); iy++ {
+						for ix := max(x0, 0); ix < min(x0+g.kw, g.iw); ix++ {
+							sum += src[iy*g.iw+ix]
+							cnt++
+						}
+					}
+					dst[oy*g.ow+ox] = sum / float32(op.divisor(g, y0, x0, cnt))
+				}
+			}
+		}
+	})
+	if op.max {
+		return []*tensor.Tensor{y, idx}, nil
+	}
+	return []*tensor.Tensor{y}, nil
+}
+
+// divisor is the number of elements a window averages: with
+// count_include_pad the window clipped to the padded input (so a ceil_mode
+// window hanging past the end padding counts only the padded part, as in
+// PyTorch), otherwise the cnt in-bounds elements.
+func (op *poolOp) divisor(g geom2, y0, x0, cnt int) int {
+	if !op.includePad {
+		return max(cnt, 1)
+	}
+	h := min(y0+g.kh, g.ih+g.pb) - y0
+	w := min(x0+g.kw, g.iw+g.pr) - x0
+	return max(h*w, 1)
+}
+
+// BackwardNeeds: MaxPool routes through the argmax, kept from the forward
+// pass when the node exposes Indices and recomputed from X otherwise;
+// AveragePool needs only shapes.
+func (op *poolOp) BackwardNeeds() (in, out []int) {
+	if op.max && op.hasIndices {
+		return nil, []int{1}
+	}
+	if op.max {
+		return []int{0}, nil
+	}
+	return nil, nil
+}
+
+func (op *poolOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor, error) {
+	x, dy := in[0], gradOut[0]
+	dx := tensor.New(x.Shape...)
+	if op.max {
+		var arg *tensor.Tensor
+		if len(out) > 1 && out[1] != nil && out[1].I64 != nil {
+			arg = out[1]
+		} else {
+			res, err := op.Forward(in[:1])
+			if err != nil {
+				return nil, err
+			}
+			arg = res[1]
+		}
+		for i, j := range arg.I64 {
+			dx.F32[j] += dy.F32[i]
+		}
+		return []*tensor.Tensor{dx}, nil
+	}
+	g, err := op.geometry(x.Shape)
+	if err != nil {
+		return nil, err
+	}
+	nc := x.Shape[0] * x.Shape[1]
+	ihw, ohw := g.ih*g.iw, g.oh*g.ow
+	splitWork(nc, nc*ohw*g.kh*g.kw, func(p0, p1 int) {
+		for p := p0; p < p1; p++ {
+			dsrc := dx.F32[p*ihw : (p+1)*ihw]
+			gy := dy.F32[p*ohw : (p+1)*ohw]
+			for oy := 0; oy < g.oh; oy++ {
+				for ox := 0; ox < g.ow; ox++ {
+					y0, x0 := oy*g.sh-g.pt, ox*g.sw-g.pl
+					ylo, yhi := max(y0, 0), min(y0+g.kh, g.ih)
+					xlo, xhi := max(x0, 0), min(x0+g.kw, g.iw)
+					cnt := max(yhi-ylo, 0) * max(xhi-xlo, 0)
+					v := gy[oy*g.ow+ox] / float32(op.divisor(g, y0, x0, cnt))
+					for iy := ylo; iy < yhi; iy++ {
+						for ix := xlo; ix < xhi; ix++ {
+							dsrc[iy*g.iw+ix] += v
+						}
+					}
+				}
+			}
+		}
+	})
+	return []*tensor.Tensor{dx}, nil
+}
+
+// globalPoolOp is GlobalAveragePool or GlobalMaxPool over all spatial axes
+// of any rank.
+type globalPoolOp struct{ max bool }
+
+func buildGlobalPool(isMax bool) Builder {
+	return func(n *onnx.Node, env *Env) (Op, error) { return &globalPoolOp{max: isMax}, nil }
+}
+
+func (op *globalPoolOp) Forward(in []*tensor.Tensor) ([]*tensor.Tensor, error) {
+	x := in[0]
+	if err := wantFloat(x, "X", 3); err != nil {
+		return nil, err
+	}
+	nc := x.Shape[0] * x.Shape[1]
+	hw := tensor.Numel(x.Shape[2:])
+	shape := []int{x.Shape[0], x.Shape[1]}
+	for range x.Shape[2:] {
+		shape = append(shape, 1)
+	}
+	y := tensor.New(shape...)
+	if hw == 0 {
+		return nil, fmt.Errorf("global pooling over empty spatial shape %v", x.Shape)
+	}
+	for p := 0; p < nc; p++ {
+		src := x.F32[p*hw : (p+1)*hw]
+		if op.max {
+			best := src[0]
+			for _, v := range src[1:] {
+				if v > best {
+					best = v
+				}
+			}
+			y.F32[p] = best
+			continue
+		}
+		var s float64
+		for _, v := range src {
+			s += float64(v)
+		}
+		y.F32[p] = float32(s / float64(hw))
+	}
+	return []*tensor.Tensor{y}, nil
+}
+
+func (op *globalPoolOp) BackwardNeeds() (in, out []int) {
+	if op.max {
+		return []int{0}, []int{0}
+	}
+	return nil, nil
+}
+
+// Backward spreads the mean's gradient evenly; the max's goes to the first
+// position attaining the maximum (a subgradient choice, matching MaxPool).
+func (op *globalPoolOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor, error) {
+	x, dy := in[0], gradOut[0]
+	nc := x.Shape[0] * x.Shape[1]
+	hw := tensor.Numel(x.Shape[2:])
+	dx := tensor.New(x.Shape...)
+	for p := 0; p < nc; p++ {
+		d := dx.F32[p*hw : (p+1)*hw]
+		if op.max {
+			src, m := x.F32[p*hw:(p+1)*hw], out[0].F32[p]
+			for i, v := range src {
+				if v == m {
+					d[i] = dy.F32[p]
+					break
+				}
+			}
+			continue
+		}
+		v := dy.F32[p] / float32(hw)
+		for i := range d {
+			d[i] = v
+		}
+	}
+	return []*tensor.Tensor{dx}, nil
+}
