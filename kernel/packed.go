@@ -74,12 +74,11 @@ type config struct {
 	minParallelOps int // m·n·k below which one goroutine is used
 }
 
-// portableConfig: a 4×4 tile is what the Go compiler keeps in registers
-// without spilling (16 scalar accumulators in the 16 XMM registers minus
-// a few loads spill a little; wider tiles spill much more). Blocking sizes
-// are those of the SIMD paths scaled to the smaller tile.
+// portableConfig: the 2×4 tile is the largest the Go compiler keeps in
+// registers (see portableKernel). kc=256 as for the SIMD paths; mc and nc
+// are smaller because the scalar kernel is far from memory-bound.
 var portableConfig = config{
-	isa: ISAPortable, mr: 4, nr: 4, kc: 256, mc: 64, nc: 1024,
+	isa: ISAPortable, mr: 2, nr: 4, kc: 256, mc: 64, nc: 1024,
 	kernel: portableKernel, minParallelOps: 1 << 18,
 }
 
