@@ -1,0 +1,139 @@
+package batch
+
+import (
+	"fmt"
+	"io"
+	"io/fs"
+	"os"
+	"path/filepath"
+	"sort"
+)
+
+func sortIndex(e []IndexEntry) {
+	sort.Slice(e, func(i, j int) bool { return e[i].ID < e[j].ID })
+}
+
+// MergeReport says what Merge found.
+type MergeReport struct {
+	Summary Summary
+	Shards  int      // shard folders read
+	Missing []string // shard indices "I/N" absent from the inputs
+}
+
+// Merge combines shard output folders into out: it checks that the shards
+// share a fingerprint and a shard count, copies every indexed record and
+// each record's item folder, writes an index covering all shards and
+// rebuilds metrics.csv and summary.json. Files named by extra (such as the
+// resolved config) are copied from the first shard. A missing shard is
+// reported, not fatal; a mismatched one is an error.
+func Merge(out string, shardDirs []string, extra ...string) (MergeReport, error) {
+	var rep MergeReport
+	if len(shardDirs) == 0 {
+		return rep, fmt.Errorf("merge: no shard folders given")
+	}
+	merged := Index{Version: 1}
+	seen := map[int]string{}
+	count := -1
+	byID := map[string]string{}
+	for _, d := range shardDirs {
+		idx, err := ReadIndex(d)
+		if err != nil {
+			return rep, fmt.Errorf("merge: %s is not a heedmap output folder: %w", d, err)
+		}
+		n := max(idx.Shard.Count, 1)
+		if count == -1 {
+			count, merged.Fingerprint = n, idx.Fingerprint
+		} else if n != count {
+			return rep, fmt.Errorf("merge: %s has shard count %d, %s has %d", d, n, shardDirs[0], count)
+		} else if idx.Fingerprint != merged.Fingerprint {
+			return rep, fmt.Errorf("merge: %s used a different model or configuration (fingerprint %.12s, first shard %.12s)", d, idx.Fingerprint, merged.Fingerprint)
+		}
+		if prev, dup := seen[idx.Shard.Index]; dup {
+			return rep, fmt.Errorf("merge: %s and %s are both shard %d/%d", prev, d, idx.Shard.Index, n)
+		}
+		seen[idx.Shard.Index] = d
+		if err := os.MkdirAll(filepath.Join(out, "records"), 0o755); err != nil {
+			return rep, err
+		}
+		for _, e := range idx.Items {
+			if k, dup := byID[e.ID]; dup && k != e.Key {
+				return rep, fmt.Errorf("merge: id %q appears in two shards with different inputs", e.ID)
+			}
+			byID[e.ID] = e.Key
+			merged.Items = append(merged.Items, e)
+			rec, ok := readRecord(d, e.Key)
+			if !ok {
+				continue // pending in that shard; counted by Finish
+			}
+			if err := writeRecord(out, rec); err != nil {
+				return rep, err
+			}
+			if err := copyTree(filepath.Join(d, "items", SafeName(e.ID)), filepath.Join(out, "items", SafeName(e.ID))); err != nil {
+				return rep, err
+			}
+		}
+		rep.Shards++
+	}
+	for i := 0; i < count; i++ {
+		if _, ok := seen[i]; !ok {
+			rep.Missing = append(rep.Missing, fmt.Sprintf("%d/%d", i, count))
+		}
+	}
+	for _, name := range extra {
+		if filepath.IsLocal(name) {
+			copyFile(filepath.Join(shardDirs[0], name), filepath.Join(out, name)) // optional files
+		}
+	}
+	sortIndex(merged.Items)
+	if err := writeJSON(filepath.Join(out, "index.json"), merged); err != nil {
+		return rep, err
+	}
+	sum, err := Finish(out, merged)
+	if err != nil {
+		return rep, err
+	}
+	sum.Shard = "all"
+	sum.Complete = sum.Complete && len(rep.Missing) == 0
+	rep.Summary = sum
+	return rep, writeJSON(filepath.Join(out, "summary.json"), sum)
+}
+
+// copyTree copies regular files under src into dst; a missing src is fine.
+func copyTree(src, dst string) error {
+	if _, err := os.Stat(src); os.IsNotExist(err) {
+		return nil
+	}
+	return filepath.WalkDir(src, func(p string, d fs.DirEntry, err error) error {
+		if err != nil {
+			return err
+		}
+		rel, err := filepath.Rel(src, p)
+		if err != nil || !filepath.IsLocal(rel) && rel != "." {
+			return fmt.Errorf("merge: unexpected path %s", p)
+		}
+		target := filepath.Join(dst, rel)
+		if d.IsDir() {
+			return os.MkdirAll(target, 0o755)
+		}
+		if !d.Type().IsRegular() {
+			return nil // never follow links out of a shard folder
+		}
+		return copyFile(p, target)
+	})
+}
+
+func copyFile(src, dst string) error {
+	in, err := os.Open(src)
+	if err != nil {
+		return err
+	}
+	defer in.Close()
+	if err := os.MkdirAll(filepath.Dir(dst), 0o755); err != nil {
+		return err
+	}
+	data, err := io.ReadAll(in)
+	if err != nil {
+		return err
+	}
+	return WriteFileAtomic(dst, data)
+}
