@@ -1,0 +1,224 @@
+package explain
+
+import (
+	"context"
+	"fmt"
+	"math"
+
+	"heedmap/tensor"
+)
+
+// Method is one attribution method. Attribute explains target's score for
+// a single image x [1, C, H, W] in model-input space (already preprocessed).
+// Methods are deterministic: the same options (including Seed), network and
+// input give byte-identical maps, whatever the batch size.
+type Method interface {
+	Name() string
+	Attribute(ctx context.Context, net Network, x *tensor.Tensor, target Target) (*Result, error)
+}
+
+// Result is an attribution in model-input space.
+type Result struct {
+	Method string
+	Target Target // resolved: Classes filled in
+	// Map is the method's map as its paper defines it: signed and summed
+	// over channels, except the plain gradient and SmoothGrad over it, whose
+	// map is the maximum over channels of |gradient| (Simonyan et al. 2014).
+	Map Map
+	// Signed is the signed channel sum for methods with per-channel
+	// attributions (equal to Map for all but the gradient family); for
+	// Grad-CAM and RISE it equals Map.
+	Signed Map
+	// Channels holds per-channel attributions [1, C, H, W] where the method
+	// has them, else nil.
+	Channels *tensor.Tensor
+	// Score is the target's score at x.
+	Score float64
+	// Baseline and Gap: integrated gradients' score at the baseline and
+	// completeness gap |Σ IG − (F(x) − F(x′))| / |F(x) − F(x′)|; NaN for
+	// other methods.
+	Baseline, Gap float64
+	// Coarse is Grad-CAM's map at the layer's resolution, before upsampling.
+	Coarse *Map
+	// Warnings are conditions a user should be told about.
+	Warnings []string
+}
+
+func newResult(name string, t Target, score float64) *Result {
+	return &Result{Method: name, Target: t, Score: score, Baseline: math.NaN(), Gap: math.NaN()}
+}
+
+// geometry validates x against the network and returns C, H, W.
+func geometry(net Network, x *tensor.Tensor) (c, h, w int, err error) {
+	if x == nil || x.DType != tensor.Float32 || len(x.Shape) != 4 || x.Shape[0] != 1 {
+		return 0, 0, 0, fmt.Errorf("explain: input must be a float [1, C, H, W] tensor, got %v", x)
+	}
+	if len(x.F32) != x.Len() {
+		return 0, 0, 0, fmt.Errorf("explain: input %v has %d values", x, len(x.F32))
+	}
+	in := net.InputShape()
+	if len(in) != 4 {
+		return 0, 0, 0, fmt.Errorf("explain: network input shape %v is not 4-D", in)
+	}
+	for i := 1; i < 4; i++ {
+		if in[i] > 0 && in[i] != x.Shape[i] {
+			return 0, 0, 0, fmt.Errorf("explain: input %v does not fit the network input shape %v", x, in)
+		}
+	}
+	return x.Shape[1], x.Shape[2], x.Shape[3], nil
+}
+
+// batchSize is the batch to use: the network's fixed batch if it has one,
+// else the requested size (default 16).
+func batchSize(net Network, want int) int {
+	if n := net.InputShape()[0]; n > 0 {
+		return n
+	}
+	if want <= 0 {
+		return 16
+	}
+	return want
+}
+
+// ForwardScores evaluates n inputs of one image's shape img = (C, H, W),
+// written by fill(i, dst), through net.Forward in batches, and returns the
+// target's score for each. Batches of a network with a fixed batch size are
+// padded with copies of the last input. target must be resolved.
+func ForwardScores(ctx context.Context, net Network, n int, img []int, batch int, fill func(i int, dst []float32), target Target) ([]float64, error) {
+	shape := net.InputShape()
+	b := batchSize(net, batch)
+	out := make([]float64, 0, n)
+	size := tensor.Numel(img)
+	buf := tensor.New(append([]int{b}, img...)...)
+	for start := 0; start < n; start += b {
+		if err := ctx.Err(); err != nil {
+			return nil, err
+		}
+		m := min(b, n-start)
+		x := buf
+		if m < b && shape[0] <= 0 {
+			x = tensor.FromFloat32(buf.F32[:m*size], append([]int{m}, buf.Shape[1:]...)...)
+		}
+		for j := 0; j < x.Shape[0]; j++ {
+			fill(start+min(j, m-1), x.F32[j*size:(j+1)*size])
+		}
+		logits, err := net.Forward(ctx, x)
+		if err != nil {
+			return nil, err
+		}
+		s, err := target.Scores(logits)
+		if err != nil {
+			return nil, err
+		}
+		if len(s) < m {
+			return nil, fmt.Errorf("explain: network returned %d rows for a batch of %d", len(s), m)
+		}
+		out = append(out, s[:m]...)
+	}
+	return out, nil
+}
+
+// gradients runs n inputs written by fill through net.Gradient in batches
+// and hands each input's gradients to visit (slices into the batch result,
+// valid only during the call). target must be resolved.
+func gradients(ctx context.Context, net Network, n int, img []int, batch int, fill func(i int, dst []float32), target Target, layer string,
+	visit func(i int, logits, grad, act, actGrad []float32) error) error {
+	shape := net.InputShape()
+	b := batchSize(net, batch)
+	size := tensor.Numel(img)
+	buf := tensor.New(append([]int{b}, img...)...)
+	seed := target.Seed()
+	for start := 0; start < n; start += b {
+		if err := ctx.Err(); err != nil {
+			return err
+		}
+		m := min(b, n-start)
+		x := buf
+		if m < b && shape[0] <= 0 {
+			x = tensor.FromFloat32(buf.F32[:m*size], append([]int{m}, buf.Shape[1:]...)...)
+		}
+		for j := 0; j < x.Shape[0]; j++ {
+			fill(start+min(j, m-1), x.F32[j*size:(j+1)*size])
+		}
+		g, err := net.Gradient(ctx, x, seed, layer)
+		if err != nil {
+			return err
+		}
+		if g.Input == nil || len(g.Input.F32) != len(x.F32) {
+			return fmt.Errorf("explain: network returned no input gradient of shape %v", x.Shape)
+		}
+		_, k, err := logitsShape(g.Logits)
+		if err != nil {
+			return err
+		}
+		var al, agl int
+		if layer != "" {
+			if g.Layer == nil || g.LayerGrad == nil || len(g.Layer.F32) != len(g.LayerGrad.F32) || len(g.Layer.F32)%x.Shape[0] != 0 {
+				return fmt.Errorf("explain: network returned no activation/gradient for layer %q", layer)
+			}
+			al = len(g.Layer.F32) / x.Shape[0]
+			agl = al
+		}
+		for j := 0; j < m; j++ {
+			var act, actGrad []float32
+			if layer != "" {
+				act, actGrad = g.Layer.F32[j*al:(j+1)*al], g.LayerGrad.F32[j*agl:(j+1)*agl]
+			}
+			if err := visit(start+j, g.Logits.F32[j*k:(j+1)*k], g.Input.F32[j*size:(j+1)*size], act, actGrad); err != nil {
+				return err
+			}
+		}
+	}
+	return nil
+}
+
+// resolve runs x forward once and resolves the target on its logits.
+func resolve(ctx context.Context, net Network, x *tensor.Tensor, target Target) (Target, float64, error) {
+	logits, err := net.Forward(ctx, x)
+	if err != nil {
+		return target, 0, err
+	}
+	if _, _, err := logitsShape(logits); err != nil {
+		return target, 0, err
+	}
+	k := logits.Shape[1]
+	t, err := target.Resolve(logits.F32[:k])
+	if err != nil {
+		return t, 0, err
+	}
+	return t, t.Eval(logits.F32[:k], nil), nil
+}
+
+// channelSum is Σ_c a[c, y, x] over a [C, H, W] slice of float64.
+func channelSum(a []float64, c, h, w int) Map {
+	m := Map{W: w, H: h, Data: make([]float32, h*w)}
+	for i := range m.Data {
+		var s float64
+		for k := 0; k < c; k++ {
+			s += a[k*h*w+i]
+		}
+		m.Data[i] = float32(s)
+	}
+	return m
+}
+
+// maxAbs is max_c |a[c, y, x]|.
+func maxAbs(a []float64, c, h, w int) Map {
+	m := Map{W: w, H: h, Data: make([]float32, h*w)}
+	for i := range m.Data {
+		var s float64
+		for k := 0; k < c; k++ {
+			s = math.Max(s, math.Abs(a[k*h*w+i]))
+		}
+		m.Data[i] = float32(s)
+	}
+	return m
+}
+
+func toTensor(a []float64, c, h, w int) *tensor.Tensor {
+	t := tensor.New(1, c, h, w)
+	for i, v := range a {
+		t.F32[i] = float32(v)
+	}
+	return t
+}
