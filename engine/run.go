@@ -75,6 +75,9 @@ func (g *Graph) Run(ctx context.Context, inputs map[string]*tensor.Tensor, opt R
 	set := func(v int, t *tensor.Tensor) {
 		p.vals[v] = t
 		p.shapes[v] = t.Shape
+		if p.shapes[v] == nil { // a scalar; nil marks "not computed"
+			p.shapes[v] = []int{}
+		}
 		p.dtypes[v] = t.DType
 	}
 	for v, c := range g.consts {
