@@ -167,11 +167,15 @@ func nnPos(rng *rand.Rand, shape ...int) *tensor.Tensor {
 func nnInts(name string, v ...int64) *onnx.Attr {
 	return &onnx.Attr{Name: name, Type: onnx.AttrInts, Ints: v}
 }
-func nnInt(name string, v int64) *onnx.Attr { return &onnx.Attr{Name: name, Type: onnx.AttrInt, Int: v} }
+func nnInt(name string, v int64) *onnx.Attr {
+	return &onnx.Attr{Name: name, Type: onnx.AttrInt, Int: v}
+}
 func nnFloat(name string, v float32) *onnx.Attr {
 	return &onnx.Attr{Name: name, Type: onnx.AttrFloat, Float: v}
 }
-func nnStr(name, v string) *onnx.Attr { return &onnx.Attr{Name: name, Type: onnx.AttrString, String: v} }
+func nnStr(name, v string) *onnx.Attr {
+	return &onnx.Attr{Name: name, Type: onnx.AttrString, String: v}
+}
 
 func nnAttrs(as ...*onnx.Attr) map[string]*onnx.Attr {
 	m := map[string]*onnx.Attr{}
