@@ -1,0 +1,220 @@
+package kernel
+
+import "fmt"
+
+// Conv2D is the geometry of a 2-D convolution of one image and one group of
+// channels, in the terms of the ONNX Conv operator: the input is C×H×W
+// (the group's slice of an NCHW tensor), the kernel KH×KW, and zero padding
+// is added before (PadTop, PadLeft) and after (PadBottom, PadRight) each
+// spatial axis. Zero strides and dilations mean 1.
+type Conv2D struct {
+	C, H, W                              int
+	KH, KW                               int
+	StrideH, StrideW                     int
+	DilationH, DilationW                 int
+	PadTop, PadLeft, PadBottom, PadRight int
+}
+
+// Im2colPlan lowers a convolution to a matrix product (Chellapilla, Puri &
+// Simard, "High performance convolutional neural networks for document
+// processing", IWFHR 2006). Its column matrix is row-major with
+// K = C·KH·KW rows ordered (c, kh, kw) and N = OH·OW columns ordered
+// (oh, ow), so for a group's weights Wg (Mg×K, ONNX's M×C/group×KH×KW
+// layout as is) the group's output in NCHW layout is the GEMM
+//
+//	Yg (Mg×N) = Wg (Mg×K) · col (K×N)
+//
+// with no transposes. The valid output ranges of every kernel tap are
+// computed once when the plan is made, so the copy loops hold no
+// bounds tests on the padding.
+type Im2colPlan struct {
+	g      Conv2D
+	oh, ow int
+	// For kernel column kw: output columns [owLo, owHi) read inside the
+	// image; likewise per kernel row kh for output rows.
+	owLo, owHi []int
+	ohLo, ohHi []int
+}
+
+// NewIm2col validates g and precomputes the plan.
+func NewIm2col(g Conv2D) (*Im2colPlan, error) {
+	if g.StrideH == 0 {
+		g.StrideH = 1
+	}
+	if g.StrideW == 0 {
+		g.StrideW = 1
+	}
+	if g.DilationH == 0 {
+		g.DilationH = 1
+	}
+	if g.DilationW == 0 {
+		g.DilationW = 1
+	}
+	if g.C <= 0 || g.H <= 0 || g.W <= 0 || g.KH <= 0 || g.KW <= 0 {
+		return nil, fmt.Errorf("kernel: im2col needs positive sizes, got C=%d H=%d W=%d KH=%d KW=%d", g.C, g.H, g.W, g.KH, g.KW)
+	}
+	if g.StrideH < 0 || g.StrideW < 0 || g.DilationH < 0 || g.DilationW < 0 {
+		return nil, fmt.Errorf("kernel: im2col strides %dx%d and dilations %dx%d must be positive", g.StrideH, g.StrideW, g.DilationH, g.DilationW)
+	}
+	if g.PadTop < 0 || g.PadLeft < 0 || g.PadBottom < 0 || g.PadRight < 0 {
+		return nil, fmt.Errorf("kernel: im2col pads %d,%d,%d,%d must be non-negative", g.PadTop, g.PadLeft, g.PadBottom, g.PadRight)
+	}
+	// Output size as the ONNX Conv operator defines it (floor mode).
+	spanH := (g.KH-1)*g.DilationH + 1
+	spanW := (g.KW-1)*g.DilationW + 1
+	inH := g.H + g.PadTop + g.PadBottom
+	inW := g.W + g.PadLeft + g.PadRight
+	if inH < spanH || inW < spanW {
+		return nil, fmt.Errorf("kernel: im2col kernel span %dx%d exceeds padded input %dx%d", spanH, spanW, inH, inW)
+	}
+	p := &Im2colPlan{
+		g:  g,
+		oh: (inH-spanH)/g.StrideH + 1,
+		ow: (inW-spanW)/g.StrideW + 1,
+	}
+	p.ohLo, p.ohHi = validRange(g.KH, p.oh, g.StrideH, g.DilationH, g.PadTop, g.H)
+	p.owLo, p.owHi = validRange(g.KW, p.ow, g.StrideW, g.DilationW, g.PadLeft, g.W)
+	return p, nil
+}
+
+// validRange returns, for each kernel tap t, the outputs o whose input
+// coordinate o·stride − pad + t·dilation lies in [0, size).
+func validRange(taps, out, stride, dil, pad, size int) (lo, hi []int) {
+	lo, hi = make([]int, taps), make([]int, taps)
+	for t := 0; t < taps; t++ {
+		off := t*dil - pad // input coordinate of output 0
+		// smallest o with o·stride + off >= 0
+		l := 0
+		if off < 0 {
+			l = (-off + stride - 1) / stride
+		}
+		// largest o with o·stride + off <= size-1, plus one
+		h := 0
+		if size-1-off >= 0 {
+			h = (size-1-off)/stride + 1
+		}
+		lo[t], hi[t] = min(l, out), max(min(h, out), min(l, out))
+	}
+	return lo, hi
+}
+
+// Geometry returns the validated geometry (zero strides and dilations
+// replaced by 1).
+func (p *Im2colPlan) Geometry() Conv2D { return p.g }
+
+// Out returns the output height and width.
+func (p *Im2colPlan) Out() (oh, ow int) { return p.oh, p.ow }
+
+// Shape returns the column matrix's rows (C·KH·KW) and columns (OH·OW).
+func (p *Im2colPlan) Shape() (rows, cols int) {
+	return p.g.C * p.g.KH * p.g.KW, p.oh * p.ow
+}
+
+// Pointwise reports whether the column matrix equals the input (1×1
+// kernel, unit stride, no padding), so callers can skip the copy.
+func (p *Im2colPlan) Pointwise() bool {
+	g := p.g
+	return g.KH == 1 && g.KW == 1 && g.StrideH == 1 && g.StrideW == 1 &&
+		g.PadTop == 0 && g.PadLeft == 0 && g.PadBottom == 0 && g.PadRight == 0
+}
+
+func (p *Im2colPlan) check(col, img []float32, op string) error {
+	rows, cols := p.Shape()
+	if len(col) < rows*cols {
+		return fmt.Errorf("kernel: %s column buffer has %d values, want %d (%d×%d)", op, len(col), rows*cols, rows, cols)
+	}
+	if n := p.g.C * p.g.H * p.g.W; len(img) < n {
+		return fmt.Errorf("kernel: %s image has %d values, want %d (%d×%d×%d)", op, len(img), n, p.g.C, p.g.H, p.g.W)
+	}
+	return nil
+}
+
+// Im2col writes the column matrix of src (C×H×W) into dst (K×N, see
+// Im2colPlan); padded positions are written as zero.
+func (p *Im2colPlan) Im2col(dst, src []float32) error {
+	if err := p.check(dst, src, "im2col"); err != nil {
+		return err
+	}
+	g := p.g
+	ohw := p.oh * p.ow
+	row := 0
+	for c := 0; c < g.C; c++ {
+		plane := src[c*g.H*g.W : (c+1)*g.H*g.W]
+		for kh := 0; kh < g.KH; kh++ {
+			for kw := 0; kw < g.KW; kw++ {
+				d := dst[row*ohw : (row+1)*ohw]
+				row++
+				ohLo, ohHi := p.ohLo[kh], p.ohHi[kh]
+				owLo, owHi := p.owLo[kw], p.owHi[kw]
+				clear(d[:ohLo*p.ow])
+				clear(d[ohHi*p.ow:])
+				for oh := ohLo; oh < ohHi; oh++ {
+					ih := oh*g.StrideH - g.PadTop + kh*g.DilationH
+					out := d[oh*p.ow : (oh+1)*p.ow]
+					clear(out[:owLo])
+					clear(out[owHi:])
+					if owLo == owHi {
+						continue
+					}
+					iw0 := owLo*g.StrideW - g.PadLeft + kw*g.DilationW
+					in := plane[ih*g.W:]
+					if g.StrideW == 1 {
+						copy(out[owLo:owHi], in[iw0:iw0+owHi-owLo])
+						continue
+					}
+					iw := iw0
+					for ow := owLo; ow < owHi; ow++ {
+						out[ow] = in[iw]
+						iw += g.StrideW
+					}
+				}
+			}
+		}
+	}
+	return nil
+}
+
+// Col2im adds the adjoint of Im2col: every column-matrix entry of src is
+// added onto the image position it was copied from in dst (C×H×W);
+// entries that came from padding are dropped. Because it is the exact
+// transpose of Im2col, the input gradient of a convolution is
+// Col2im(Wgᵀ·dYg).
+func (p *Im2colPlan) Col2im(dst, src []float32) error {
+	if err := p.check(src, dst, "col2im"); err != nil {
+		return err
+	}
+	g := p.g
+	ohw := p.oh * p.ow
+	row := 0
+	for c := 0; c < g.C; c++ {
+		plane := dst[c*g.H*g.W : (c+1)*g.H*g.W]
+		for kh := 0; kh < g.KH; kh++ {
+			for kw := 0; kw < g.KW; kw++ {
+				s := src[row*ohw : (row+1)*ohw]
+				row++
+				owLo, owHi := p.owLo[kw], p.owHi[kw]
+				for oh := p.ohLo[kh]; oh < p.ohHi[kh]; oh++ {
+					ih := oh*g.StrideH - g.PadTop + kh*g.DilationH
+					in := s[oh*p.ow : (oh+1)*p.ow]
+					out := plane[ih*g.W:]
+					iw := owLo*g.StrideW - g.PadLeft + kw*g.DilationW
+					for ow := owLo; ow < owHi; ow++ {
+						out[iw] += in[ow]
+						iw += g.StrideW
+					}
+				}
+			}
+		}
+	}
+	return nil
+}
+
+// Im2col is NewIm2col(g) followed by its Im2col, for one-off use; build
+// the plan once when the same geometry is lowered repeatedly.
+func Im2col(dst, src []float32, g Conv2D) error {
+	p, err := NewIm2col(g)
+	if err != nil {
+		return err
+	}
+	return p.Im2col(dst, src)
+}

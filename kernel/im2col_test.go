@@ -1,0 +1,328 @@
+package kernel_test
+
+import (
+	"fmt"
+	"math"
+	"math/rand/v2"
+	"os"
+	"path/filepath"
+	"strings"
+	"testing"
+
+	"heedmap/kernel"
+	"heedmap/onnx"
+	"heedmap/tensor"
+)
+
+// directConv is the ONNX Conv operator's definition written out as loops
+// (onnx/docs/Operators.md, Conv): for image n and output channel m in
+// group gi,
+//
+//	Y[n,m,oh,ow] = Σ_{c<Cg,kh,kw} X[n, gi·Cg+c, oh·sh−pt+kh·dh, ow·sw−pl+kw·dw]·W[m,c,kh,kw]
+//
+// with X zero outside the image, accumulated in float64.
+func directConv(x []float32, n, c, h, w int, wt []float32, m, group int, g kernel.Conv2D, oh, ow int) []float32 {
+	cg, mg := c/group, m/group
+	y := make([]float32, n*m*oh*ow)
+	for b := 0; b < n; b++ {
+		for mo := 0; mo < m; mo++ {
+			gi := mo / mg
+			for i := 0; i < oh; i++ {
+				for j := 0; j < ow; j++ {
+					var s float64
+					for ci := 0; ci < cg; ci++ {
+						for kh := 0; kh < g.KH; kh++ {
+							for kw := 0; kw < g.KW; kw++ {
+								ih := i*g.StrideH - g.PadTop + kh*g.DilationH
+								iw := j*g.StrideW - g.PadLeft + kw*g.DilationW
+								if ih < 0 || ih >= h || iw < 0 || iw >= w {
+									continue
+								}
+								xv := x[((b*c+gi*cg+ci)*h+ih)*w+iw]
+								wv := wt[((mo*cg+ci)*g.KH+kh)*g.KW+kw]
+								s += float64(xv) * float64(wv)
+							}
+						}
+					}
+					y[((b*m+mo)*oh+i)*ow+j] = float32(s)
+				}
+			}
+		}
+	}
+	return y
+}
+
+// convViaIm2col is how an operator lowers Conv: per image and group, one
+// im2col and one GEMM Yg = Wg·col.
+func convViaIm2col(t *testing.T, gemm kernel.GEMM, x []float32, n, c, h, w int, wt []float32, m, group int, g kernel.Conv2D) ([]float32, int, int) {
+	t.Helper()
+	cg, mg := c/group, m/group
+	g.C, g.H, g.W = cg, h, w
+	p, err := kernel.NewIm2col(g)
+	if err != nil {
+		t.Fatal(err)
+	}
+	oh, ow := p.Out()
+	kk, ohw := p.Shape()
+	col := make([]float32, kk*ohw)
+	y := make([]float32, n*m*ohw)
+	for b := 0; b < n; b++ {
+		for gi := 0; gi < group; gi++ {
+			xg := x[(b*c+gi*cg)*h*w : (b*c+(gi+1)*cg)*h*w]
+			if err := p.Im2col(col, xg); err != nil {
+				t.Fatal(err)
+			}
+			yg := y[(b*m+gi*mg)*ohw : (b*m+(gi+1)*mg)*ohw]
+			gemm.Sgemm(false, false, mg, ohw, kk, 1, wt[gi*mg*kk:(gi+1)*mg*kk], kk, col, ohw, 0, yg, ohw)
+		}
+	}
+	return y, oh, ow
+}
+
+func randSlice(r *rand.Rand, n int) []float32 {
+	v := make([]float32, n)
+	for i := range v {
+		v[i] = float32(r.NormFloat64())
+	}
+	return v
+}
+
+func TestIm2colMatchesDirectConv(t *testing.T) {
+	r := rand.New(rand.NewPCG(7, 8))
+	cases := []struct {
+		n, c, h, w, m, group int
+		g                    kernel.Conv2D
+	}{
+		{1, 3, 7, 7, 4, 1, kernel.Conv2D{KH: 3, KW: 3}},
+		{2, 3, 9, 8, 5, 1, kernel.Conv2D{KH: 3, KW: 3, PadTop: 1, PadLeft: 1, PadBottom: 1, PadRight: 1}},
+		{1, 4, 11, 10, 6, 2, kernel.Conv2D{KH: 3, KW: 2, StrideH: 2, StrideW: 3, PadTop: 2, PadLeft: 0, PadBottom: 1, PadRight: 3}},
+		{1, 2, 12, 13, 3, 1, kernel.Conv2D{KH: 3, KW: 3, DilationH: 2, DilationW: 3, PadTop: 2, PadLeft: 3, PadBottom: 2, PadRight: 3}},
+		{1, 6, 8, 8, 6, 6, kernel.Conv2D{KH: 3, KW: 3, StrideH: 2, StrideW: 2, PadTop: 1, PadLeft: 1, PadBottom: 1, PadRight: 1}},
+		{1, 3, 16, 16, 8, 1, kernel.Conv2D{KH: 7, KW: 7, StrideH: 2, StrideW: 2, PadTop: 3, PadLeft: 3, PadBottom: 3, PadRight: 3}},
+		{1, 8, 5, 5, 4, 1, kernel.Conv2D{KH: 1, KW: 1}},
+		{1, 2, 3, 3, 2, 1, kernel.Conv2D{KH: 5, KW: 5, PadTop: 2, PadLeft: 2, PadBottom: 2, PadRight: 2}}, // kernel wider than image
+		{1, 1, 4, 4, 1, 1, kernel.Conv2D{KH: 2, KW: 2, StrideH: 5, StrideW: 5, PadTop: 4, PadLeft: 4, PadBottom: 4, PadRight: 4}},
+	}
+	for i, tc := range cases {
+		x := randSlice(r, tc.n*tc.c*tc.h*tc.w)
+		wt := randSlice(r, tc.m*(tc.c/tc.group)*tc.g.KH*tc.g.KW)
+		for _, gemm := range []kernel.GEMM{kernel.Naive{}, kernel.Best()} {
+			got, oh, ow := convViaIm2col(t, gemm, x, tc.n, tc.c, tc.h, tc.w, wt, tc.m, tc.group, tc.g)
+			g := tc.g
+			for _, v := range []*int{&g.StrideH, &g.StrideW, &g.DilationH, &g.DilationW} {
+				if *v == 0 {
+					*v = 1
+				}
+			}
+			// Output size from the ONNX Conv shape formula.
+			wantOH := (tc.h+g.PadTop+g.PadBottom-((g.KH-1)*g.DilationH+1))/g.StrideH + 1
+			wantOW := (tc.w+g.PadLeft+g.PadRight-((g.KW-1)*g.DilationW+1))/g.StrideW + 1
+			if oh != wantOH || ow != wantOW {
+				t.Fatalf("case %d: output %dx%d, want %dx%d", i, oh, ow, wantOH, wantOW)
+			}
+			want := directConv(x, tc.n, tc.c, tc.h, tc.w, wt, tc.m, tc.group, g, oh, ow)
+			if err := closeTo(got, want, 1e-5, 1e-5); err != nil {
+				t.Fatalf("case %d (%T): %v", i, gemm, err)
+			}
+		}
+	}
+}
+
+func closeTo(got, want []float32, rtol, atol float64) error {
+	if len(got) != len(want) {
+		return fmt.Errorf("got %d values, want %d", len(got), len(want))
+	}
+	for i := range got {
+		d := math.Abs(float64(got[i]) - float64(want[i]))
+		if !(d <= atol+rtol*math.Abs(float64(want[i]))) {
+			return fmt.Errorf("value %d = %v, want %v", i, got[i], want[i])
+		}
+	}
+	return nil
+}
+
+// TestCol2imIsAdjoint checks ⟨im2col(x), y⟩ = ⟨x, col2im(y)⟩, the
+// definition of the transpose of a linear map, which is what makes Col2im
+// the input gradient of the lowered convolution.
+func TestCol2imIsAdjoint(t *testing.T) {
+	r := rand.New(rand.NewPCG(9, 10))
+	for _, g := range []kernel.Conv2D{
+		{C: 3, H: 9, W: 8, KH: 3, KW: 3, PadTop: 1, PadLeft: 1, PadBottom: 1, PadRight: 1},
+		{C: 2, H: 11, W: 10, KH: 3, KW: 2, StrideH: 2, StrideW: 3, DilationH: 2, PadTop: 2, PadBottom: 1, PadRight: 3},
+		{C: 1, H: 5, W: 5, KH: 1, KW: 1},
+	} {
+		p, err := kernel.NewIm2col(g)
+		if err != nil {
+			t.Fatal(err)
+		}
+		rows, cols := p.Shape()
+		x := randSlice(r, g.C*g.H*g.W)
+		y := randSlice(r, rows*cols)
+		col := make([]float32, rows*cols)
+		if err := p.Im2col(col, x); err != nil {
+			t.Fatal(err)
+		}
+		back := make([]float32, len(x))
+		if err := p.Col2im(back, y); err != nil {
+			t.Fatal(err)
+		}
+		var lhs, rhs, abs float64
+		for i := range col {
+			lhs += float64(col[i]) * float64(y[i])
+			abs += math.Abs(float64(col[i]) * float64(y[i]))
+		}
+		for i := range x {
+			rhs += float64(x[i]) * float64(back[i])
+		}
+		// Col2im sums at most KH·KW terms per pixel in float32, so each
+		// pixel is off by at most KH·KW·u·Σ|terms| (u = 2⁻²⁴); summed over
+		// pixels against |x| that is KH·KW·u·Σ|col·y|.
+		if math.Abs(lhs-rhs) > float64(g.KH*g.KW+1)*0x1p-24*abs {
+			t.Errorf("%+v: <im2col x, y> = %v, <x, col2im y> = %v", g, lhs, rhs)
+		}
+	}
+}
+
+func TestIm2colRejectsBadInput(t *testing.T) {
+	for _, g := range []kernel.Conv2D{
+		{C: 0, H: 4, W: 4, KH: 3, KW: 3},
+		{C: 1, H: 2, W: 4, KH: 3, KW: 3},
+		{C: 1, H: 4, W: 4, KH: 3, KW: 3, PadTop: -1},
+		{C: 1, H: 4, W: 4, KH: 3, KW: 3, StrideW: -2},
+	} {
+		if _, err := kernel.NewIm2col(g); err == nil {
+			t.Errorf("%+v accepted", g)
+		}
+	}
+	p, err := kernel.NewIm2col(kernel.Conv2D{C: 1, H: 4, W: 4, KH: 3, KW: 3})
+	if err != nil {
+		t.Fatal(err)
+	}
+	if err := p.Im2col(make([]float32, 35), make([]float32, 16)); err == nil {
+		t.Error("short column buffer accepted")
+	}
+	if err := p.Im2col(make([]float32, 36), make([]float32, 15)); err == nil {
+		t.Error("short image accepted")
+	}
+}
+
+// TestIm2colONNXConformance runs Im2col + GEMM on ONNX's own Conv test
+// cases (Debian package libonnx-testdata: node/test_*conv* and
+// pytorch-converted/test_Conv2d*) and compares with their expected outputs
+// using the ONNX backend test tolerances rtol=1e-3, atol=1e-7 (common
+// practice in onnx/backend/test).
+func TestIm2colONNXConformance(t *testing.T) {
+	const root = "/usr/share/libonnx-testdata/data"
+	var dirs []string
+	for _, pat := range []string{"node/test_basic_conv_with*", "node/test_conv_with_*", "pytorch-converted/test_Conv2d*"} {
+		m, _ := filepath.Glob(filepath.Join(root, pat))
+		dirs = append(dirs, m...)
+	}
+	if len(dirs) == 0 {
+		t.Skip("ONNX test data not installed (apt-get install libonnx-testdata)")
+	}
+	for _, dir := range dirs {
+		t.Run(filepath.Base(dir), func(t *testing.T) {
+			runONNXConv(t, dir)
+		})
+	}
+}
+
+func runONNXConv(t *testing.T, dir string) {
+	model, err := onnx.Load(filepath.Join(dir, "model.onnx"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	if len(model.Graph.Nodes) != 1 || model.Graph.Nodes[0].OpType != "Conv" {
+		t.Skipf("%s: not a single Conv node", dir)
+	}
+	node := model.Graph.Nodes[0]
+	inputs := map[string]*tensor.Tensor{}
+	for name, v := range model.Graph.Initializers {
+		inputs[name] = v
+	}
+	set := filepath.Join(dir, "test_data_set_0")
+	entries, err := os.ReadDir(set)
+	if err != nil {
+		t.Fatal(err)
+	}
+	var want *tensor.Tensor
+	var fed []*tensor.Tensor
+	for _, e := range entries {
+		v, _, err := onnx.LoadTensor(filepath.Join(set, e.Name()))
+		if err != nil {
+			t.Fatal(err)
+		}
+		switch {
+		case strings.HasPrefix(e.Name(), "output_0"):
+			want = v
+		case strings.HasPrefix(e.Name(), "input_"):
+			fed = append(fed, v) // ReadDir sorts by name: input_0, input_1, ...
+		}
+	}
+	// Graph inputs that are not initializers are fed in order.
+	i := 0
+	for _, in := range model.Graph.Inputs {
+		if _, ok := inputs[in.Name]; ok {
+			continue
+		}
+		if i >= len(fed) {
+			t.Fatalf("no data for input %s", in.Name)
+		}
+		inputs[in.Name] = fed[i]
+		i++
+	}
+	x, w := inputs[node.Inputs[0]], inputs[node.Inputs[1]]
+	if len(x.Shape) != 4 {
+		t.Skipf("%d-D input", len(x.Shape)-2)
+	}
+	n, c, h, wd := x.Shape[0], x.Shape[1], x.Shape[2], x.Shape[3]
+	m, kh, kw := w.Shape[0], w.Shape[2], w.Shape[3]
+	group := int(node.Int("group", 1))
+	g := kernel.Conv2D{KH: kh, KW: kw, StrideH: 1, StrideW: 1, DilationH: 1, DilationW: 1}
+	if s := node.Ints("strides"); s != nil {
+		g.StrideH, g.StrideW = int(s[0]), int(s[1])
+	}
+	if d := node.Ints("dilations"); d != nil {
+		g.DilationH, g.DilationW = int(d[0]), int(d[1])
+	}
+	if p := node.Ints("pads"); p != nil { // ONNX order: begins then ends
+		g.PadTop, g.PadLeft, g.PadBottom, g.PadRight = int(p[0]), int(p[1]), int(p[2]), int(p[3])
+	}
+	switch ap := node.String("auto_pad", "NOTSET"); ap {
+	case "SAME_UPPER", "SAME_LOWER":
+		// ONNX: output = ceil(in/stride), total pad split evenly, the odd
+		// one at the end (UPPER) or the beginning (LOWER).
+		same := func(in, k, s, d int) (lo, hi int) {
+			out := (in + s - 1) / s
+			total := max(0, (out-1)*s+(k-1)*d+1-in)
+			if ap == "SAME_UPPER" {
+				return total / 2, total - total/2
+			}
+			return total - total/2, total / 2
+		}
+		g.PadTop, g.PadBottom = same(h, kh, g.StrideH, g.DilationH)
+		g.PadLeft, g.PadRight = same(wd, kw, g.StrideW, g.DilationW)
+	case "NOTSET", "VALID":
+	default:
+		t.Fatalf("auto_pad %q", ap)
+	}
+	got, oh, ow := convViaIm2col(t, kernel.Best(), x.F32, n, c, h, wd, w.F32, m, group, g)
+	if len(node.Inputs) > 2 && node.Inputs[2] != "" {
+		bias := inputs[node.Inputs[2]].F32
+		for b := 0; b < n; b++ {
+			for mo := 0; mo < m; mo++ {
+				row := got[(b*m+mo)*oh*ow : (b*m+mo+1)*oh*ow]
+				for j := range row {
+					row[j] += bias[mo]
+				}
+			}
+		}
+	}
+	if fmt.Sprint(want.Shape) != fmt.Sprint([]int{n, m, oh, ow}) {
+		t.Fatalf("output shape %v, want %v", []int{n, m, oh, ow}, want.Shape)
+	}
+	if err := closeTo(got, want.F32, 1e-3, 1e-7); err != nil {
+		t.Fatal(err)
+	}
+}
