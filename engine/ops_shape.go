@@ -963,7 +963,24 @@ func (p *padOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor, e
 	if err != nil {
 		return nil, err
 	}
-	grads[0] = shScatterAdd(g.F32, shAxisTake(in[0].Shape, lists), in[0].Shape)
+	idx := shAxisTake(in[0].Shape, lists)
+	grads[0] = shScatterAdd(g.F32, idx, in[0].Shape)
+	if c := shOptional(in, 2); c != nil && c.DType == tensor.Float32 && !p.attrs {
+		// The constant value fills every padded position.
+		var s float64
+		if p.mode == padConstant {
+			for o, src := range idx {
+				if src < 0 {
+					s += float64(g.F32[o])
+				}
+			}
+		}
+		gc := tensor.New(c.Shape...)
+		if len(gc.F32) > 0 {
+			gc.F32[0] = float32(s)
+		}
+		grads[2] = gc
+	}
 	return grads, nil
 }
 
