@@ -259,8 +259,11 @@ func Summarize(ctx context.Context, images []Image, o SummaryOptions) (*Summary,
 	return s, nil
 }
 
-// flagged reports whether r is flagged and why.
-func flagged(r *Result, o SummaryOptions) (bool, []string) {
+// IsFlagged reports whether a result is flagged off-lesion under the
+// options and why: inside mass below InsideThreshold, or any artefact mass
+// above its threshold. A result whose map is unusable is never flagged (it
+// is counted as undefined instead).
+func IsFlagged(r *Result, o SummaryOptions) (bool, []string) {
 	if r.Undefined != "" {
 		return false, nil
 	}
@@ -301,7 +304,7 @@ func flagList(images []Image, o SummaryOptions) []Flag {
 		if !ok {
 			continue
 		}
-		f, why := flagged(r, o)
+		f, why := IsFlagged(r, o)
 		if !f {
 			continue
 		}
@@ -376,7 +379,7 @@ func groupStats(ctx context.Context, group string, images []Image, methods []str
 			}
 			if r.Undefined == "" {
 				usable++
-				if f, _ := flagged(r, o); f {
+				if f, _ := IsFlagged(r, o); f {
 					flags++
 				}
 			}

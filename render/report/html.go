@@ -104,6 +104,11 @@ const maxGallery = 48
 
 // WriteHTML writes report.html.
 func WriteHTML(w io.Writer, r *Report) error {
+	if r.Caution == "" {
+		c := *r
+		c.Caution = Caution
+		r = &c
+	}
 	d := pageData{Report: r, Methods: methodNames(r), Columns: ColumnDocs(), Statistics: measure.Statistics(), MaxGallery: maxGallery}
 	for _, v := range r.Verdicts {
 		if v.Pass {

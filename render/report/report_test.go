@@ -174,10 +174,12 @@ func TestCSV(t *testing.T) {
 	}
 	// A defined row agrees with the record.
 	first := rows[1]
-	if first[col["inside_mass"]] == "" || first[col["undefined_reason"]] != "" || first[col["method"]] != "occlusion" {
+	// Image a has no ink annotation: its ink mass is undefined, with reason.
+	if first[col["inside_mass"]] == "" || first[col["method"]] != "occlusion" || first[col["artefact_ink_mass"]] != "" ||
+		first[col["undefined_reason"]] != "artefact_ink_mass: artefact mask is empty" || first[col["flagged"]] != "1" {
 		t.Errorf("first row %v", first)
 	}
-	if !strings.Contains(b.String(), "NaN") == false {
+	if strings.Contains(b.String(), "NaN") {
 		t.Error("NaN in CSV")
 	}
 }
