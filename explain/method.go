@@ -174,7 +174,15 @@ func gradients(ctx context.Context, net Network, n int, img []int, batch int, fi
 
 // resolve runs x forward once and resolves the target on its logits.
 func resolve(ctx context.Context, net Network, x *tensor.Tensor, target Target) (Target, float64, error) {
-	logits, err := net.Forward(ctx, x)
+	in := x
+	if b := net.InputShape()[0]; b > 1 {
+		// A fixed batch: repeat the image and read row 0.
+		in = tensor.New(append([]int{b}, x.Shape[1:]...)...)
+		for j := 0; j < b; j++ {
+			copy(in.F32[j*len(x.F32):], x.F32)
+		}
+	}
+	logits, err := net.Forward(ctx, in)
 	if err != nil {
 		return target, 0, err
 	}
