@@ -333,17 +333,41 @@ const (
 
 var binNames = [...]string{"Add", "Sub", "Mul", "Div", "Pow"}
 
-type binaryOp struct{ kind binKind }
+// binaryOp is Add, Sub, Mul, Div or Pow. legacy selects the opset 1–6
+// broadcast (broadcast=1 with axis): B's dims line up with A's starting at
+// legacyAxis instead of at the right.
+type binaryOp struct {
+	kind       binKind
+	legacy     bool
+	legacyAxis int64
+}
 
 func buildBinary(k binKind) Builder {
 	return func(n *onnx.Node, env *Env) (Op, error) {
+		b := &binaryOp{kind: k}
 		if env.Opset < 7 && n.Int("broadcast", 0) != 0 && n.Has("axis") {
-			// Opset 1–6 "legacy" broadcasting with an axis attribute aligns
-			// the second operand at axis instead of the right.
-			return nil, fmt.Errorf("%s: legacy broadcast with axis attribute is not supported", binNames[k])
+			b.legacy, b.legacyAxis = true, n.Int("axis", 0)
 		}
-		return &binaryOp{kind: k}, nil
+		return b, nil
 	}
+}
+
+// yShape is the shape y takes part in broadcasting with: its own, or under
+// legacy broadcasting, padded with 1s so that it starts at legacyAxis of x.
+func (b *binaryOp) yShape(x, y *tensor.Tensor) ([]int, error) {
+	if !b.legacy {
+		return y.Shape, nil
+	}
+	ax := b.legacyAxis
+	if ax < 0 || int(ax)+len(y.Shape) > len(x.Shape) {
+		return nil, fmt.Errorf("%s: legacy broadcast of %s at axis %d of %s", binNames[b.kind], y, ax, x)
+	}
+	s := make([]int, len(x.Shape))
+	for i := range s {
+		s[i] = 1
+	}
+	copy(s[ax:], y.Shape)
+	return s, nil
 }
 
 func (b *binaryOp) Forward(in []*tensor.Tensor) ([]*tensor.Tensor, error) {
@@ -352,11 +376,15 @@ func (b *binaryOp) Forward(in []*tensor.Tensor) ([]*tensor.Tensor, error) {
 		return nil, fmt.Errorf("%s: needs two inputs", name)
 	}
 	x, y := in[0], in[1]
-	shape, err := broadcastShapes(x.Shape, y.Shape)
+	ys, err := b.yShape(x, y)
+	if err != nil {
+		return nil, err
+	}
+	shape, err := broadcastShapes(x.Shape, ys)
 	if err != nil {
 		return nil, fmt.Errorf("%s: %v", name, err)
 	}
-	p, err := newBcastPlan(shape, x.Shape, y.Shape)
+	p, err := newBcastPlan(shape, x.Shape, ys)
 	if err != nil {
 		return nil, fmt.Errorf("%s: %v", name, err)
 	}
@@ -482,6 +510,10 @@ func (b *binaryOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor
 	x, y := in[0], in[1]
 	yFloat := y.DType == tensor.Float32
 	shape := g.Shape
+	ys, err := b.yShape(x, y)
+	if err != nil {
+		return nil, err
+	}
 	var gx, gy []float32 // full-size gradients before reduction
 	switch b.kind {
 	case binAdd, binSub:
@@ -497,7 +529,7 @@ func (b *binaryOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor
 			}
 		}
 	default:
-		p, err := newBcastPlan(shape, x.Shape, y.Shape)
+		p, err := newBcastPlan(shape, x.Shape, ys)
 		if err != nil {
 			return nil, err
 		}
@@ -541,7 +573,7 @@ func (b *binaryOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor
 	}
 	grads[0] = &tensor.Tensor{DType: tensor.Float32, Shape: append([]int(nil), x.Shape...), F32: ownCopy(rx, g.F32)}
 	if gy != nil {
-		ry, err := reduceToShape(gy, shape, y.Shape)
+		ry, err := reduceToShape(gy, shape, ys)
 		if err != nil {
 			return nil, err
 		}

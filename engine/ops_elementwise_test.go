@@ -159,6 +159,20 @@ func TestBinaryGradients(t *testing.T) {
 	checkGrad(t, op, []*tensor.Tensor{a, i64s([]int{3}, 1, 2, 3)}, gradOpts{})
 }
 
+func TestLegacyBroadcastGradients(t *testing.T) {
+	// Opset 6 broadcast=1, axis=1: B of shape [3] lines up with A's axis 1.
+	rng := rand.New(rand.NewSource(13))
+	for _, opType := range []string{"Add", "Mul"} {
+		op := mustOp(t, opType, 6, 1, attrInt("broadcast", 1), attrInt("axis", 1))
+		a, b := randTensor(rng, -1, 1, 2, 3, 4), randTensor(rng, -1, 1, 3)
+		checkGrad(t, op, []*tensor.Tensor{a, b}, gradOpts{})
+		y := forward1(t, op, a, b)
+		if opType == "Add" && y.F32[1*12+2*4+3] != a.F32[1*12+2*4+3]+b.F32[2] {
+			t.Errorf("legacy Add aligned B at the wrong axis")
+		}
+	}
+}
+
 func TestIntegerArithmetic(t *testing.T) {
 	// Shape arithmetic as exported graphs do it: [N,C,H,W] / 2 etc.
 	div := mustOp(t, "Div", 14, 1)
