@@ -172,11 +172,11 @@ func gradients(ctx context.Context, net Network, n int, img []int, batch int, fi
 	return nil
 }
 
-// resolve runs x forward once and resolves the target on its logits.
-func resolve(ctx context.Context, net Network, x *tensor.Tensor, target Target) (Target, float64, error) {
+// Logits runs one image x [1, C, H, W] forward and returns its logits. A
+// network with a fixed batch size gets the image repeated; row 0 is read.
+func Logits(ctx context.Context, net Network, x *tensor.Tensor) ([]float32, error) {
 	in := x
 	if b := net.InputShape()[0]; b > 1 {
-		// A fixed batch: repeat the image and read row 0.
 		in = tensor.New(append([]int{b}, x.Shape[1:]...)...)
 		for j := 0; j < b; j++ {
 			copy(in.F32[j*len(x.F32):], x.F32)
@@ -184,17 +184,25 @@ func resolve(ctx context.Context, net Network, x *tensor.Tensor, target Target) 
 	}
 	logits, err := net.Forward(ctx, in)
 	if err != nil {
-		return target, 0, err
+		return nil, err
 	}
 	if _, _, err := logitsShape(logits); err != nil {
+		return nil, err
+	}
+	return logits.F32[:logits.Shape[1]], nil
+}
+
+// resolve runs x forward once and resolves the target on its logits.
+func resolve(ctx context.Context, net Network, x *tensor.Tensor, target Target) (Target, float64, error) {
+	logits, err := Logits(ctx, net, x)
+	if err != nil {
 		return target, 0, err
 	}
-	k := logits.Shape[1]
-	t, err := target.Resolve(logits.F32[:k])
+	t, err := target.Resolve(logits)
 	if err != nil {
 		return t, 0, err
 	}
-	return t, t.Eval(logits.F32[:k], nil), nil
+	return t, t.Eval(logits, nil), nil
 }
 
 // channelSum is Σ_c a[c, y, x] over a [C, H, W] slice of float64.

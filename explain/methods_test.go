@@ -13,7 +13,7 @@ import (
 	"testing"
 
 	"heedmap/explain"
-	"heedmap/explain/internal/testnet"
+	"heedmap/explain/explaintest"
 	"heedmap/tensor"
 )
 
@@ -26,8 +26,8 @@ func closeTo(a, b, tol float64) bool {
 // Simonyan et al. 2014 (§3.1): for a linear score S_c = w_cᵀx + b_c the
 // saliency is w_c itself; the map is max_c |w| over channels.
 func TestGradientLinear(t *testing.T) {
-	net := testnet.NewLinear(3, 5, 4, 6, 1)
-	x := testnet.RandomInput(3, 5, 4, 2)
+	net := explaintest.NewLinear(3, 5, 4, 6, 1)
+	x := explaintest.RandomInput(3, 5, 4, 2)
 	r, err := explain.Gradient{}.Attribute(ctx, net, x, explain.Class(2, explain.Logit))
 	if err != nil {
 		t.Fatal(err)
@@ -54,8 +54,8 @@ func TestGradientLinear(t *testing.T) {
 // Shrikumar et al. 2016: gradient ⊙ input; for a linear model it is each
 // input's term w_i·x_i of the score.
 func TestGradientTimesInputLinear(t *testing.T) {
-	net := testnet.NewLinear(3, 4, 4, 3, 3)
-	x := testnet.RandomInput(3, 4, 4, 4)
+	net := explaintest.NewLinear(3, 4, 4, 3, 3)
+	x := explaintest.RandomInput(3, 4, 4, 4)
 	r, err := explain.GradientTimesInput{}.Attribute(ctx, net, x, explain.Class(1, explain.Logit))
 	if err != nil {
 		t.Fatal(err)
@@ -73,8 +73,8 @@ func TestGradientTimesInputLinear(t *testing.T) {
 // the path, so IG_i = (x_i − x′_i)·w_i, and completeness Σ IG = F(x) − F(x′)
 // holds up to rounding, for any quadrature and any baseline.
 func TestIGLinear(t *testing.T) {
-	net := testnet.NewLinear(3, 6, 5, 4, 5)
-	x := testnet.RandomInput(3, 6, 5, 6)
+	net := explaintest.NewLinear(3, 6, 5, 4, 5)
+	x := explaintest.RandomInput(3, 6, 5, 6)
 	norm := explain.Normalization{Mean: [3]float32{0.485, 0.456, 0.406}, Std: [3]float32{0.229, 0.224, 0.225}} // ImageNet statistics, common practice
 	for _, q := range []explain.Quadrature{explain.Midpoint, explain.GaussLegendre} {
 		for _, bk := range []explain.BaselineKind{explain.BaselineBlack, explain.BaselineMean, explain.BaselineBlur, explain.BaselineNoise} {
@@ -109,8 +109,8 @@ func TestIGLinear(t *testing.T) {
 // quadrature: on a ReLU MLP (whose gradient is piecewise constant along the
 // path) the gap must fall as the midpoint rule takes 8, 32, 128 steps.
 func TestIGCompletenessConverges(t *testing.T) {
-	net := testnet.NewMLP(2, 4, 4, 24, 3, 11)
-	x := testnet.RandomInput(2, 4, 4, 12)
+	net := explaintest.NewMLP(2, 4, 4, 24, 3, 11)
+	x := explaintest.RandomInput(2, 4, 4, 12)
 	for _, kind := range []explain.ScoreKind{explain.Logit, explain.Softmax} {
 		var gaps []float64
 		for _, m := range []int{8, 32, 128} {
@@ -206,8 +206,8 @@ func TestScoreSeed(t *testing.T) {
 // SmoothGrad (Smilkov et al. 2017) with no noise is the mean of n identical
 // gradients: the gradient, bit for bit.
 func TestSmoothGradZeroSigma(t *testing.T) {
-	net := testnet.NewMLP(3, 4, 4, 16, 3, 21)
-	x := testnet.RandomInput(3, 4, 4, 22)
+	net := explaintest.NewMLP(3, 4, 4, 16, 3, 21)
+	x := explaintest.RandomInput(3, 4, 4, 22)
 	g, err := explain.Gradient{}.Attribute(ctx, net, x, explain.Predicted(explain.Logit))
 	if err != nil {
 		t.Fatal(err)
@@ -233,8 +233,8 @@ func TestSmoothGradZeroSigma(t *testing.T) {
 // Grad-CAM (Selvaraju et al. 2017, eqs. 1–2) on the linear model with the
 // input itself as the layer: α_c = mean_ij w_c,ij, L = ReLU(Σ_c α_c x_c).
 func TestGradCAMLinear(t *testing.T) {
-	net := testnet.NewLinear(3, 5, 6, 4, 31)
-	x := testnet.RandomInput(3, 5, 6, 32)
+	net := explaintest.NewLinear(3, 5, 6, 4, 31)
+	x := explaintest.RandomInput(3, 5, 6, 32)
 	r, err := explain.GradCAM{Layer: "input"}.Attribute(ctx, net, x, explain.Class(0, explain.Logit))
 	if err != nil {
 		t.Fatal(err)
@@ -305,7 +305,7 @@ func TestUpsampleGolden(t *testing.T) {
 // term variance ≤ b²/p, sd ≤ b/√(pN).
 func TestRISEExpectation(t *testing.T) {
 	const h, w, n, p = 28, 28, 4000, 0.5
-	net := testnet.NewLinear(1, h, w, 2, 41)
+	net := explaintest.NewLinear(1, h, w, 2, 41)
 	for i := range net.W {
 		net.W[i] = 0
 	}
@@ -360,9 +360,9 @@ func TestRISEExpectation(t *testing.T) {
 
 // A network with a fixed batch dimension gets full batches (padded).
 func TestFixedBatch(t *testing.T) {
-	net := testnet.NewLinear(1, 4, 4, 2, 51)
+	net := explaintest.NewLinear(1, 4, 4, 2, 51)
 	net.Batch = 4
-	x := testnet.RandomInput(1, 4, 4, 52)
+	x := explaintest.RandomInput(1, 4, 4, 52)
 	fixed, err := explain.IntegratedGradients{Steps: 10}.Attribute(ctx, net, x, explain.Predicted(explain.Logit))
 	if err != nil {
 		t.Fatal(err)

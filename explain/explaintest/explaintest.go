@@ -1,6 +1,6 @@
-// Package testnet holds small networks whose attributions are known in closed
+// Package explaintest holds small networks whose attributions are known in closed
 // form, for the tests of the attribution methods.
-package testnet
+package explaintest
 
 import (
 	"context"
