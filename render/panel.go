@@ -6,6 +6,7 @@ import (
 	"image/color"
 	"image/draw"
 	"math"
+	"strings"
 
 	"github.com/fogleman/gg"
 	"golang.org/x/image/font"
@@ -265,9 +266,6 @@ func Panel(c Case) (*image.RGBA, error) {
 			r = r.Add(image.Pt(picBox.Min.X-r.Min.X, 0)) // left-align with the text
 		}
 		drawPicture(dst, r, b, heats[i], panelHatch, panelHatchW, panelTextPx)
-		if !plan.beside {
-			textBox.Max.X = max(r.Max.X, textBox.Min.X+tileMinTextW)
-		}
 		drawNumbers(dc, textBox, m.Metrics, plan.beside, text, value)
 	}
 
@@ -334,10 +332,10 @@ func numberLines(dc *gg.Context, m Metrics, p tilePlan, labelFace, valueFace fon
 	for _, row := range metricRows(m) {
 		n++
 		dc.SetFontFace(labelFace)
-		lw, _ := dc.MeasureString(row[0] + "   ")
+		lw, _ := dc.MeasureString(row[0] + "  ")
 		dc.SetFontFace(valueFace)
 		if vw, _ := dc.MeasureString(row[1]); lw+vw > cw {
-			n++
+			n += len(wrapValue(dc, row[1], cw))
 		}
 	}
 	return n
@@ -352,19 +350,33 @@ func drawNumbers(dc *gg.Context, r image.Rectangle, m Metrics, stacked bool, lab
 		dc.SetFontFace(labelFace)
 		dc.SetColor(mutedColour)
 		dc.DrawStringAnchored(row[0], float64(r.Min.X), y+tileLineH/2, 0, 0.35)
-		lw, _ := dc.MeasureString(row[0] + "   ")
+		lw, _ := dc.MeasureString(row[0] + "  ")
 		dc.SetFontFace(valueFace)
 		dc.SetColor(textColour)
 		vw, _ := dc.MeasureString(row[1])
 		if stacked || lw+vw > float64(r.Dx()) {
-			y += tileLineH
-			v := fitText(dc, row[1], float64(r.Dx())-12)
-			dc.DrawStringAnchored(v, float64(r.Min.X)+12, y+tileLineH/2, 0, 0.35)
+			for _, v := range wrapValue(dc, row[1], float64(r.Dx())) {
+				y += tileLineH
+				dc.DrawStringAnchored(v, float64(r.Min.X)+12, y+tileLineH/2, 0, 0.35)
+			}
 		} else {
 			dc.DrawStringAnchored(row[1], float64(r.Max.X), y+tileLineH/2, 1, 0.35)
 		}
 		y += tileLineH
 	}
+}
+
+// wrapValue breaks a value that does not fit beside its label into at most
+// two indented lines, shortening the second with an ellipsis if needed.
+func wrapValue(dc *gg.Context, v string, width float64) []string {
+	lines := dc.WordWrap(v, width-12)
+	if len(lines) > 2 {
+		lines = []string{lines[0], strings.Join(lines[1:], " ")}
+	}
+	for i := range lines {
+		lines[i] = fitText(dc, lines[i], width-12)
+	}
+	return lines
 }
 
 // offLesionShort is offLesionText shortened for a tile.
