@@ -69,3 +69,54 @@ func BenchmarkSgemm(b *testing.B) {
 		})
 	}
 }
+
+// BenchmarkPeak measures the register-only FMA rate of one core at the
+// moment (see asmgen genPeak): on a shared machine, compare the other
+// benchmarks with this figure from the same run rather than with a
+// datasheet peak.
+func BenchmarkPeak(b *testing.B) {
+	const iters = 1000
+	for _, p := range []struct {
+		isa   ISA
+		flops float64 // per iteration
+		run   func(int)
+	}{
+		{ISAAVX2, 12 * 16, fmaPeakAVX2},
+		{ISAAVX512, 24 * 32, fmaPeakAVX512},
+	} {
+		if !Supported(p.isa) {
+			continue
+		}
+		b.Run(p.isa.String(), func(b *testing.B) {
+			for b.Loop() {
+				p.run(iters)
+			}
+			b.ReportMetric(p.flops*iters*float64(b.N)/b.Elapsed().Seconds()/1e9, "GFLOP/s")
+		})
+	}
+}
+
+// BenchmarkMicroKernel measures each path's register-tile kernel alone on
+// L1-resident packed panels (kc = 256): the ceiling the blocked GEMM can
+// approach on one core.
+func BenchmarkMicroKernel(b *testing.B) {
+	for _, isa := range []ISA{ISAPortable, ISAAVX2, ISAAVX512} {
+		if !Supported(isa) {
+			continue
+		}
+		g, err := New(Options{ISA: isa, Threads: 1})
+		if err != nil {
+			b.Fatal(err)
+		}
+		mr, nr, k := g.cfg.mr, g.cfg.nr, g.cfg.kc
+		r := rand.New(rand.NewPCG(7, 8))
+		a, bp := newMat(r, 1, mr*k, 0).v, newMat(r, 1, nr*k, 0).v
+		c := make([]float32, mr*nr)
+		b.Run(isa.String(), func(b *testing.B) {
+			for b.Loop() {
+				g.cfg.kernel(k, a, bp, c, nr, 1, 1, true)
+			}
+			b.ReportMetric(2*float64(mr*nr*k)*float64(b.N)/b.Elapsed().Seconds()/1e9, "GFLOP/s")
+		})
+	}
+}

@@ -11,3 +11,9 @@ func sgemm12x32AVX512(k int, a *float32, b *float32, c *float32, ldc int, alpha 
 //
 //go:noescape
 func sgemm6x16AVX2(k int, a *float32, b *float32, c *float32, ldc int, alpha float32, beta float32, load int)
+
+// fmaPeakAVX512 runs n iterations of 24 independent FMAs on registers only.
+func fmaPeakAVX512(n int)
+
+// fmaPeakAVX2 runs n iterations of 12 independent FMAs on registers only.
+func fmaPeakAVX2(n int)

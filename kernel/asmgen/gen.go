@@ -61,7 +61,34 @@ func main() {
 		name: "sgemm6x16AVX2", mr: 6, nv: 2, width: 8, vec: ymm,
 		doc: "6×16 tile: 12 ymm accumulators, 2 for the B row, 2 for broadcasts.",
 	})
+	genPeak("fmaPeakAVX512", zmm, 24)
+	genPeak("fmaPeakAVX2", ymm, 12)
 	Generate()
+}
+
+// genPeak emits a loop of n·acc independent register FMAs with no memory
+// traffic: the machine's attainable FMA rate at the moment, against which
+// the benchmarks report the micro-kernels (useful on a shared machine,
+// where the absolute rate varies from run to run).
+func genPeak(name string, vec []reg.VecPhysical, acc int) {
+	TEXT(name, NOSPLIT, "func(n int)")
+	Doc(fmt.Sprintf("%s runs n iterations of %d independent FMAs on registers only.", name, acc))
+	n := Load(Param("n"), GP64())
+	for _, r := range vec[:2+acc] { // zero inputs too: no NaN/denormal operands
+		if r.Size() == 64 {
+			VPXORD(r, r, r)
+		} else {
+			VXORPS(r, r, r)
+		}
+	}
+	Label(name + "_loop")
+	for _, r := range vec[2 : 2+acc] {
+		VFMADD231PS(vec[0], vec[1], r)
+	}
+	DECQ(n)
+	JNZ(LabelRef(name + "_loop"))
+	VZEROUPPER()
+	RET()
 }
 
 func gen(t tile) {
