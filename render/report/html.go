@@ -26,7 +26,7 @@ var page = template.Must(template.New("report").Funcs(template.FuncMap{
 		if !v.OK {
 			return "undefined"
 		}
-		return fmt.Sprintf("%.1f %%", 100*v.V)
+		return fmt.Sprintf("%.1f\u00a0%%", 100*v.V)
 	},
 	"dv": func(v measure.Value) string { // data-v attribute for sorting; "" = undefined
 		if !v.OK {
@@ -165,7 +165,7 @@ func WriteHTML(w io.Writer, r *Report) error {
 		if res, ok := im.Result(d.Primary); ok {
 			g.Inside = res.InsideMass
 			if name, m := worstArtefact(res); name != "" {
-				g.ArtLabel, g.ArtPercent = name, fmt.Sprintf("%.1f %%", 100*m)
+				g.ArtLabel, g.ArtPercent = name, fmt.Sprintf("%.1f\u00a0%%", 100*m)
 			}
 		}
 		d.Gallery = append(d.Gallery, g)

@@ -122,7 +122,13 @@ func insidePlot(r *Report) svgPlot {
 		p.Empty = "No measurements."
 		return p
 	}
-	left, right, top := 270.0, 1160.0, 30.0
+	// Room for the longest method name at the label size (bold DejaVu
+	// Sans averages about 0.65 em per character).
+	longest := 0
+	for _, m := range methods {
+		longest = max(longest, len([]rune(m)))
+	}
+	left, right, top := math.Min(40+float64(longest)*labelSz*0.65, 600), 1160.0, 30.0
 	bottom := top + rowH*float64(len(methods))
 	p.H = bottom + 90
 	sx := p.xAxis(left, right, bottom, top, 0, 1, 0.1, "inside-lesion mass (fraction of positive relevance, 0–1)")
