@@ -325,4 +325,75 @@ func runONNXConv(t *testing.T, dir string) {
 	if err := closeTo(got, want.F32, 1e-3, 1e-7); err != nil {
 		t.Fatal(err)
 	}
+	if group != c || n != 1 {
+		return
+	}
+	// Depthwise cases also go through the direct depthwise kernel.
+	g.C, g.H, g.W = c, h, wd
+	p, err := kernel.NewIm2col(g)
+	if err != nil {
+		t.Fatal(err)
+	}
+	dw := make([]float32, m*oh*ow)
+	if err := p.Depthwise(dw, x.F32, w.F32, m/c); err != nil {
+		t.Fatal(err)
+	}
+	if len(node.Inputs) > 2 && node.Inputs[2] != "" {
+		for mo, bv := range inputs[node.Inputs[2]].F32 {
+			for j := range oh * ow {
+				dw[mo*oh*ow+j] += bv
+			}
+		}
+	}
+	if err := closeTo(dw, want.F32, 1e-3, 1e-7); err != nil {
+		t.Fatalf("Depthwise: %v", err)
+	}
+}
+
+// TestDepthwiseMatchesDirectConv compares Depthwise with the ONNX Conv
+// definition at group = C, with channel multipliers 1 and 3.
+func TestDepthwiseMatchesDirectConv(t *testing.T) {
+	r := rand.New(rand.NewPCG(11, 12))
+	for i, tc := range []struct {
+		c, h, w, mult int
+		g             kernel.Conv2D
+	}{
+		{4, 9, 9, 1, kernel.Conv2D{KH: 3, KW: 3, PadTop: 1, PadLeft: 1, PadBottom: 1, PadRight: 1}},
+		{3, 12, 11, 3, kernel.Conv2D{KH: 3, KW: 3, StrideH: 2, StrideW: 2, PadTop: 1, PadLeft: 1, PadBottom: 1, PadRight: 1}},
+		{2, 10, 13, 2, kernel.Conv2D{KH: 5, KW: 3, StrideW: 3, DilationH: 2, PadTop: 3, PadLeft: 0, PadBottom: 1, PadRight: 2}},
+		{1, 3, 3, 1, kernel.Conv2D{KH: 5, KW: 5, PadTop: 2, PadLeft: 2, PadBottom: 2, PadRight: 2}},
+	} {
+		g := tc.g
+		g.C, g.H, g.W = tc.c, tc.h, tc.w
+		p, err := kernel.NewIm2col(g)
+		if err != nil {
+			t.Fatal(err)
+		}
+		g = p.Geometry()
+		oh, ow := p.Out()
+		m := tc.c * tc.mult
+		x := randSlice(r, tc.c*tc.h*tc.w)
+		w := randSlice(r, m*g.KH*g.KW)
+		got := make([]float32, m*oh*ow)
+		for j := range got {
+			got[j] = float32(math.NaN()) // dst is overwritten, not accumulated
+		}
+		if err := p.Depthwise(got, x, w, tc.mult); err != nil {
+			t.Fatal(err)
+		}
+		want := directConv(x, 1, tc.c, tc.h, tc.w, w, m, tc.c, g, oh, ow)
+		if err := closeTo(got, want, 1e-5, 1e-5); err != nil {
+			t.Fatalf("case %d: %v", i, err)
+		}
+	}
+	p, _ := kernel.NewIm2col(kernel.Conv2D{C: 2, H: 4, W: 4, KH: 3, KW: 3})
+	if err := p.Depthwise(make([]float32, 8), make([]float32, 32), make([]float32, 18), 1); err != nil {
+		t.Fatal(err)
+	}
+	if err := p.Depthwise(make([]float32, 8), make([]float32, 32), make([]float32, 17), 1); err == nil {
+		t.Error("short weights accepted")
+	}
+	if err := p.Depthwise(make([]float32, 8), make([]float32, 32), make([]float32, 18), 0); err == nil {
+		t.Error("multiplier 0 accepted")
+	}
 }
