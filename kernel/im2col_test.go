@@ -325,7 +325,7 @@ func runONNXConv(t *testing.T, dir string) {
 	if err := closeTo(got, want.F32, 1e-3, 1e-7); err != nil {
 		t.Fatal(err)
 	}
-	if group != c || n != 1 {
+	if group != c {
 		return
 	}
 	// Depthwise cases also go through the direct depthwise kernel.
@@ -334,14 +334,18 @@ func runONNXConv(t *testing.T, dir string) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	dw := make([]float32, m*oh*ow)
-	if err := p.Depthwise(dw, x.F32, w.F32, m/c); err != nil {
-		t.Fatal(err)
-	}
-	if len(node.Inputs) > 2 && node.Inputs[2] != "" {
-		for mo, bv := range inputs[node.Inputs[2]].F32 {
-			for j := range oh * ow {
-				dw[mo*oh*ow+j] += bv
+	dw := make([]float32, n*m*oh*ow)
+	for b := 0; b < n; b++ {
+		img := x.F32[b*c*h*wd : (b+1)*c*h*wd]
+		out := dw[b*m*oh*ow : (b+1)*m*oh*ow]
+		if err := p.Depthwise(out, img, w.F32, m/c); err != nil {
+			t.Fatal(err)
+		}
+		if len(node.Inputs) > 2 && node.Inputs[2] != "" {
+			for mo, bv := range inputs[node.Inputs[2]].F32 {
+				for j := range oh * ow {
+					out[mo*oh*ow+j] += bv
+				}
 			}
 		}
 	}
