@@ -160,7 +160,14 @@ func (ig IntegratedGradients) Attribute(ctx context.Context, net Network, x *ten
 	}
 	r := newResult("integrated-gradients", t, score)
 	r.Baseline = bs[0]
-	r.Gap = math.Abs(total-(score-bs[0])) / math.Abs(score-bs[0])
+	// With F(x) = F(x′) the relative gap is undefined (0/0 when IG sums
+	// to zero too); report the absolute residual then, and say so.
+	if diff := score - bs[0]; diff != 0 {
+		r.Gap = math.Abs(total-diff) / math.Abs(diff)
+	} else {
+		r.Gap = math.Abs(total)
+		r.Warnings = append(r.Warnings, "integrated gradients: F(x) = F(x′), so the completeness gap is the absolute residual |Σ IG|")
+	}
 	r.Map = channelSum(acc, c, h, w)
 	r.Signed = r.Map
 	r.Channels = toTensor(acc, c, h, w)

@@ -292,3 +292,17 @@ func ToNHWC(t *tensor.Tensor) (*tensor.Tensor, error) {
 	}
 	return out, nil
 }
+
+// Load reads an image file and preprocesses it; the Source (upright picture)
+// is returned too, for overlays on the original.
+func (p *Preprocessor) Load(ctx context.Context, path string) (*Input, *Source, error) {
+	src, err := Load(path)
+	if err != nil {
+		return nil, nil, err
+	}
+	in, err := p.Apply(ctx, src.Image)
+	if err != nil {
+		return nil, nil, fmt.Errorf("preprocess: %s: %w", path, err)
+	}
+	return in, src, nil
+}
