@@ -43,21 +43,78 @@ func drawColourBar(dst *image.RGBA, bar image.Rectangle, ramp *colour.Ramp, sign
 	dc.DrawRectangle(float64(bar.Min.X)-1, float64(bar.Min.Y)-1, float64(bar.Dx())+2, float64(bar.Dy())+2)
 	dc.Stroke()
 	dc.SetFontFace(tickFace)
-	for k := 0; k <= 4; k++ {
-		f := float64(k) / 4 // fraction of the way up
-		y := float64(bar.Max.Y-1) - f*float64(n-1) + 0.5
-		var v float64
-		if signed {
-			v = (2*f - 1) * scale
-		} else {
-			v = f * scale
+	// Round-number ticks at their true positions, plus the scale's ends,
+	// dropping round ticks that would crowd an end label.
+	_, th := dc.MeasureString("0")
+	minGap := 1.6 * th / float64(max(n-1, 1)) // in bar fractions
+	lo := 0.0
+	if signed {
+		lo = -scale
+	}
+	type tick struct {
+		v   float64
+		end bool
+	}
+	ticks := []tick{{lo, true}, {scale, true}}
+	if scale > 0 {
+		for _, v := range niceTicks(lo, scale) {
+			ticks = append(ticks, tick{v, false})
 		}
+	}
+	if scale == 0 { // an all-zero map: one honest label
+		ticks = []tick{{0, true}}
+	}
+	for _, tk := range ticks {
+		f := 0.0 // fraction of the way up
+		switch {
+		case scale > 0:
+			f = (tk.v - lo) / (scale - lo)
+		case signed:
+			f = 0.5
+		}
+		if !tk.end && (f-0 < minGap || 1-f < minGap) {
+			continue
+		}
+		y := float64(bar.Max.Y-1) - f*float64(n-1) + 0.5
 		dc.SetColor(textColour)
 		dc.SetLineWidth(2)
 		dc.DrawLine(float64(bar.Max.X)+2, y, float64(bar.Max.X)+12, y)
 		dc.Stroke()
-		dc.DrawStringAnchored(tickLabel(v, signed), float64(bar.Max.X)+18, y, 0, 0.35)
+		label := tickLabel(tk.v, signed)
+		if scale == 0 {
+			label = "0 (map is zero)"
+		}
+		if tk.end && tk.v == scale && scale > 0 {
+			label = "max " + label
+			if signed {
+				label = "max +" + tickLabel(tk.v, false)
+			}
+		}
+		dc.DrawStringAnchored(label, float64(bar.Max.X)+18, y, 0, 0.35)
 	}
+}
+
+// niceTicks returns round values (1, 2, 2.5 or 5 × 10^k apart, about four
+// intervals) strictly inside (lo, hi), and 0 when it lies inside.
+func niceTicks(lo, hi float64) []float64 {
+	span := hi - lo
+	raw := span / 4
+	p := math.Pow(10, math.Floor(math.Log10(raw)))
+	step := 10 * p
+	for _, m := range []float64{1, 2, 2.5, 5} {
+		if m*p >= raw {
+			step = m * p
+			break
+		}
+	}
+	var out []float64
+	for k := math.Ceil(lo / step); k*step < hi; k++ {
+		v := k * step
+		if v > lo {
+			out = append(out, math.Round(v/step)*step)
+		}
+	}
+	return out
 }
 
 // tickLabel prints a scale value with three significant digits, a true

@@ -64,7 +64,7 @@ const (
 type tilePlan struct {
 	rows, cols int
 	beside     bool // numbers to the right of the picture, else below
-	side       int  // picture box side in pixels
+	picW, picH int  // picture size in pixels
 	n          int
 	lines      int // lines of numbers under the picture
 	area       image.Rectangle
@@ -78,9 +78,10 @@ const (
 )
 
 // planTiles picks rows, columns and text placement maximising the picture
-// size for n methods in area, with lines lines of numbers under a picture
-// (or 2·4 lines beside it).
-func planTiles(n int, area image.Rectangle, lines int) tilePlan {
+// size for n methods of a w×h image in area, with lines lines of numbers
+// under a picture (or 2·4 lines beside it).
+func planTiles(n int, area image.Rectangle, lines, w, h int) tilePlan {
+	aspect := float64(h) / float64(w)
 	best := tilePlan{area: area, n: n}
 	for rows := 1; rows <= 3; rows++ {
 		cols := (n + rows - 1) / rows
@@ -90,17 +91,18 @@ func planTiles(n int, area image.Rectangle, lines int) tilePlan {
 		cw := (area.Dx() - (cols-1)*panelGap) / cols
 		rh := (area.Dy() - (rows-1)*panelGap) / rows
 		for _, beside := range []bool{false, true} {
-			var side int
+			var pw float64
 			if beside {
-				side = min(cw-tileBesideTextW-12, rh-tileHeadH)
+				pw = math.Min(float64(cw-tileBesideTextW-12), float64(rh-tileHeadH)/aspect)
 			} else {
 				if cw < tileMinTextW {
 					continue
 				}
-				side = min(cw, rh-tileHeadH-lines*tileLineH-10)
+				pw = math.Min(float64(cw), float64(rh-tileHeadH-lines*tileLineH-10)/aspect)
 			}
-			if side > best.side {
-				best = tilePlan{rows: rows, cols: cols, beside: beside, side: side, n: n, lines: lines, area: area}
+			if int(pw) > best.picW {
+				best = tilePlan{rows: rows, cols: cols, beside: beside, picW: int(pw), picH: int(pw * aspect),
+					n: n, lines: lines, area: area}
 			}
 		}
 	}
@@ -118,9 +120,9 @@ func (p tilePlan) tileRect(i int) image.Rectangle {
 		inRow = p.n - r*p.cols
 	}
 	// Rows only as tall as their content, the grid centred vertically.
-	th := tileHeadH + p.side + 10 + p.lines*tileLineH
+	th := tileHeadH + p.picH + 10 + p.lines*tileLineH
 	if p.beside {
-		th = tileHeadH + max(p.side, 8*tileLineH)
+		th = tileHeadH + max(p.picH, 8*tileLineH)
 	}
 	th = min(th, rh)
 	top := p.area.Min.Y + (p.area.Dy()-(p.rows*th+(p.rows-1)*panelGap))/2
@@ -213,6 +215,7 @@ func Panel(c Case) (*image.RGBA, error) {
 		dc.DrawStringAnchored(label, panelPad, float64(y0)+tileHeadH/2, 0, 0.35)
 		box := image.Rect(panelPad, y0+tileHeadH, panelPad+panelLeftW, y0+leftH)
 		r := fitRect(box, b.w, b.h)
+		r = r.Add(image.Pt(0, box.Min.Y-r.Min.Y)) // under its label
 		if k == 0 {
 			drawPhoto(dst, r, b.img)
 		} else {
@@ -227,7 +230,7 @@ func Panel(c Case) (*image.RGBA, error) {
 	// Plan for four lines of numbers, then again if some value needs a
 	// line of its own at the chosen width.
 	dc.SetFontFace(value)
-	plan := planTiles(n, area, 4)
+	plan := planTiles(n, area, 4, b.w, b.h)
 	for pass := 0; pass < 2; pass++ {
 		need := 4
 		for _, m := range c.Methods {
@@ -236,7 +239,7 @@ func Panel(c Case) (*image.RGBA, error) {
 		if need == plan.lines {
 			break
 		}
-		plan = planTiles(n, area, need)
+		plan = planTiles(n, area, need, b.w, b.h)
 	}
 	for i, m := range c.Methods {
 		tile := plan.tileRect(i)
@@ -253,17 +256,10 @@ func Panel(c Case) (*image.RGBA, error) {
 			dc.DrawStringAnchored(mx, float64(tile.Max.X), float64(tile.Min.Y)+tileHeadH/2, 1, 0.35)
 		}
 
-		var picBox, textBox image.Rectangle
+		r := image.Rect(tile.Min.X, tile.Min.Y+tileHeadH, tile.Min.X+plan.picW, tile.Min.Y+tileHeadH+plan.picH)
+		textBox := image.Rect(tile.Min.X, r.Max.Y+10, tile.Max.X, tile.Max.Y)
 		if plan.beside {
-			picBox = image.Rect(tile.Min.X, tile.Min.Y+tileHeadH, tile.Min.X+plan.side, tile.Min.Y+tileHeadH+plan.side)
-			textBox = image.Rect(picBox.Max.X+12, picBox.Min.Y, tile.Max.X, tile.Max.Y)
-		} else {
-			picBox = image.Rect(tile.Min.X, tile.Min.Y+tileHeadH, tile.Max.X, tile.Min.Y+tileHeadH+plan.side)
-			textBox = image.Rect(tile.Min.X, picBox.Max.Y+10, tile.Max.X, tile.Max.Y)
-		}
-		r := fitRect(picBox, b.w, b.h)
-		if !plan.beside {
-			r = r.Add(image.Pt(picBox.Min.X-r.Min.X, 0)) // left-align with the text
+			textBox = image.Rect(r.Max.X+12, r.Min.Y, tile.Max.X, tile.Max.Y)
 		}
 		drawPicture(dst, r, b, heats[i], panelHatch, panelHatchW, panelTextPx)
 		drawNumbers(dc, textBox, m.Metrics, plan.beside, text, value)
@@ -367,11 +363,11 @@ func drawNumbers(dc *gg.Context, r image.Rectangle, m Metrics, stacked bool, lab
 }
 
 // wrapValue breaks a value that does not fit beside its label into at most
-// two indented lines, shortening the second with an ellipsis if needed.
+// three indented lines, shortening the last with an ellipsis if needed.
 func wrapValue(dc *gg.Context, v string, width float64) []string {
 	lines := dc.WordWrap(v, width-12)
-	if len(lines) > 2 {
-		lines = []string{lines[0], strings.Join(lines[1:], " ")}
+	if len(lines) > 3 {
+		lines = append(lines[:2], strings.Join(lines[2:], " "))
 	}
 	for i := range lines {
 		lines[i] = fitText(dc, lines[i], width-12)

@@ -362,7 +362,7 @@ func TestPanelLayout(t *testing.T) {
 			t.Fatalf("%d methods: size %v", n, img.Bounds())
 		}
 		area := image.Rect(panelPad+panelLeftW+panelGap+10, panelTitleH+14, panelW-panelPad, panelH-panelFooterH-panelLegendH-8)
-		p := planTiles(n, area, 5)
+		p := planTiles(n, area, 5, 120, 90)
 		var rects []image.Rectangle
 		for i := 0; i < n; i++ {
 			r := p.tileRect(i)
@@ -377,8 +377,8 @@ func TestPanelLayout(t *testing.T) {
 			rects = append(rects, r)
 		}
 		// Pictures stay projector-sized even with seven methods.
-		if p.side < 200 {
-			t.Errorf("%d methods: pictures only %d px", n, p.side)
+		if p.picW < 220 || p.picH < 165 {
+			t.Errorf("%d methods: pictures only %d×%d px", n, p.picW, p.picH)
 		}
 	}
 	for _, n := range []int{0, MaxPanelMethods + 1} {

@@ -126,3 +126,17 @@ func HashBytes(b []byte) string {
 	s := sha256.Sum256(b)
 	return hex.EncodeToString(s[:])
 }
+
+// HashFiles hashes each path in order; the first failure is returned with
+// its path.
+func HashFiles(paths []string) ([]FileDigest, error) {
+	out := make([]FileDigest, 0, len(paths))
+	for _, p := range paths {
+		d, err := HashFile(p)
+		if err != nil {
+			return nil, err
+		}
+		out = append(out, d)
+	}
+	return out, nil
+}
