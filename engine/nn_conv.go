@@ -2,6 +2,7 @@ package engine
 
 import (
 	"fmt"
+	"sync"
 
 	"heedmap/kernel"
 	"heedmap/onnx"
@@ -21,6 +22,21 @@ type convOp struct {
 	win   windowAttrs
 	group int
 	gemm  kernel.GEMM
+	// cols recycles im2col buffers (*[]float32) between calls: they are the
+	// largest temporaries of a forward pass and zeroing fresh ones cost as
+	// much as the im2col itself.
+	cols sync.Pool
+}
+
+// colBuf returns a buffer of n floats from the pool; its contents are
+// arbitrary (im2col overwrites every element).
+func (op *convOp) colBuf(n int) *[]float32 {
+	if b, ok := op.cols.Get().(*[]float32); ok && cap(*b) >= n {
+		*b = (*b)[:n]
+		return b
+	}
+	b := make([]float32, n)
+	return &b
 }
 
 func buildConv(n *onnx.Node, env *Env) (Op, error) {
@@ -112,7 +128,9 @@ func (op *convOp) Forward(in []*tensor.Tensor) ([]*tensor.Tensor, error) {
 		kk := s.cg * g.kh * g.kw
 		var col []float32
 		if !s.pointwise() {
-			col = make([]float32, kk*ohw)
+			buf := op.colBuf(kk * ohw)
+			defer op.cols.Put(buf)
+			col = *buf
 		}
 		for n := 0; n < s.n; n++ {
 			for gi := 0; gi < op.group; gi++ {
@@ -162,8 +180,10 @@ func (op *convOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor,
 		pw := s.pointwise()
 		var col, dcol []float32
 		if !pw {
-			col = make([]float32, kk*ohw)
-			dcol = make([]float32, kk*ohw)
+			b1, b2 := op.colBuf(kk*ohw), op.colBuf(kk*ohw)
+			defer op.cols.Put(b1)
+			defer op.cols.Put(b2)
+			col, dcol = *b1, *b2
 		}
 		for n := 0; n < s.n; n++ {
 			for gi := 0; gi < op.group; gi++ {
