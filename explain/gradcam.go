@@ -38,11 +38,7 @@ func (g GradCAM) Attribute(ctx context.Context, net Network, x *tensor.Tensor, t
 	if err != nil {
 		return nil, err
 	}
-	t, score, err := resolve(ctx, net, x, target)
-	if err != nil {
-		return nil, err
-	}
-	gr, err := net.Gradient(ctx, x, t.Seed(), g.Layer)
+	gr, t, score, err := gradientOnce(ctx, net, x, target, g.Layer)
 	if err != nil {
 		return nil, err
 	}

@@ -2,6 +2,7 @@ package explain
 
 import (
 	"context"
+	"fmt"
 
 	"heedmap/tensor"
 )
@@ -61,21 +62,61 @@ func (GradientTimesInput) Attribute(ctx context.Context, net Network, x *tensor.
 
 // inputGradient resolves the target and returns ∂score/∂x in float64.
 func inputGradient(ctx context.Context, net Network, x *tensor.Tensor, target Target) ([]float64, Target, float64, error) {
-	c, h, w, err := geometry(net, x)
-	if err != nil {
+	if _, _, _, err := geometry(net, x); err != nil {
 		return nil, target, 0, err
 	}
-	t, score, err := resolve(ctx, net, x, target)
+	gr, t, score, err := gradientOnce(ctx, net, x, target, "")
 	if err != nil {
 		return nil, t, 0, err
 	}
-	g := make([]float64, c*h*w)
-	err = gradients(ctx, net, 1, []int{c, h, w}, 1, func(_ int, dst []float32) { copy(dst, x.F32) }, t, "",
-		func(_ int, _, grad, _, _ []float32) error {
-			for i, v := range grad {
-				g[i] = float64(v)
-			}
-			return nil
-		})
-	return g, t, score, err
+	g := make([]float64, len(x.F32))
+	for i := range g {
+		g[i] = float64(gr.Input.F32[i])
+	}
+	return g, t, score, nil
+}
+
+// gradientOnce runs one image through net.Gradient, resolving the target on
+// the image's own logits inside the seed, so no separate forward pass is
+// needed. A fixed-batch network gets the image repeated and row 0 is read
+// (its seed rows are all the resolved target's).
+func gradientOnce(ctx context.Context, net Network, x *tensor.Tensor, target Target, layer string) (*Gradients, Target, float64, error) {
+	in := x
+	b := net.InputShape()[0]
+	if b > 1 {
+		in = tensor.New(append([]int{b}, x.Shape[1:]...)...)
+		for j := 0; j < b; j++ {
+			copy(in.F32[j*len(x.F32):], x.F32)
+		}
+	}
+	t := target
+	var score float64
+	seed := func(logits *tensor.Tensor) (*tensor.Tensor, error) {
+		_, k, err := logitsShape(logits)
+		if err != nil {
+			return nil, err
+		}
+		if t, err = target.Resolve(logits.F32[:k]); err != nil {
+			return nil, err
+		}
+		score = t.Eval(logits.F32[:k], nil)
+		return t.Seed()(logits)
+	}
+	gr, err := net.Gradient(ctx, in, seed, layer)
+	if err != nil {
+		return nil, t, 0, err
+	}
+	if gr.Input == nil || gr.Input.Len() != in.Len() {
+		return nil, t, 0, fmt.Errorf("explain: network returned no input gradient of shape %v", in.Shape)
+	}
+	if b > 1 {
+		gr.Input = tensor.FromFloat32(gr.Input.F32[:len(x.F32)], x.Shape...)
+		if gr.Layer != nil && len(gr.Layer.Shape) > 0 && gr.Layer.Shape[0] == b && gr.LayerGrad != nil {
+			per := gr.Layer.Len() / b
+			sh := append([]int{1}, gr.Layer.Shape[1:]...)
+			gr.Layer = tensor.FromFloat32(gr.Layer.F32[:per], sh...)
+			gr.LayerGrad = tensor.FromFloat32(gr.LayerGrad.F32[:per], sh...)
+		}
+	}
+	return gr, t, score, nil
 }

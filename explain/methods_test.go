@@ -375,6 +375,21 @@ func TestFixedBatch(t *testing.T) {
 	if !bytes.Equal(f32bytes(fixed.Map.Data), f32bytes(free.Map.Data)) {
 		t.Error("fixed-batch network gives another map")
 	}
+	for _, m := range []explain.Method{explain.Gradient{}, explain.GradCAM{Layer: "input"}, explain.RISE{Masks: 10}} {
+		net.Batch = 4
+		a, err := m.Attribute(ctx, net, x, explain.Predicted(explain.Logit))
+		if err != nil {
+			t.Fatalf("%s, fixed batch: %v", m.Name(), err)
+		}
+		net.Batch = -1
+		b, err := m.Attribute(ctx, net, x, explain.Predicted(explain.Logit))
+		if err != nil {
+			t.Fatal(err)
+		}
+		if !bytes.Equal(f32bytes(a.Map.Data), f32bytes(b.Map.Data)) {
+			t.Errorf("%s: fixed-batch network gives another map", m.Name())
+		}
+	}
 }
 
 // NPY format (NEP 1 / numpy.lib.format): magic, version 1.0, little-endian
