@@ -1,6 +1,6 @@
 package engine
 
-// ReduceSum and ReduceMean.
+// Reductions: ReduceSum, ReduceMean and (ops_reduce_more.go) the others.
 //
 // A reduction is the adjoint of broadcasting: summing x over some axes is
 // exactly reduceToShape from x's shape to the "kept" shape (reduced axes
@@ -15,15 +15,33 @@ import (
 )
 
 func init() {
-	register("ReduceSum", buildReduce(false))
-	register("ReduceMean", buildReduce(true))
+	register("ReduceSum", buildReduce(redSum))
+	register("ReduceMean", buildReduce(redMean))
 }
 
+type redKind uint8
+
+const (
+	redSum redKind = iota
+	redMean
+	redMax
+	redMin
+	redProd
+	redL1
+	redL2
+	redSumSquare
+	redLogSum
+	redLogSumExp
+)
+
+var redNames = [...]string{"ReduceSum", "ReduceMean", "ReduceMax", "ReduceMin", "ReduceProd", "ReduceL1", "ReduceL2", "ReduceSumSquare", "ReduceLogSum", "ReduceLogSumExp"}
+
 // reduceOp reduces over axes taken from the attribute (ReduceSum before
-// opset 13, ReduceMean before 18) or from optional input 1 afterwards.
+// opset 13, the others before 18) or from optional input 1 afterwards.
 // With no axes every axis is reduced, unless noop_with_empty_axes is set,
 // in which case the op is the identity.
 type reduceOp struct {
+	kind      redKind
 	mean      bool
 	fromInput bool
 	axes      []int64
@@ -31,14 +49,15 @@ type reduceOp struct {
 	noopEmpty bool
 }
 
-func buildReduce(mean bool) Builder {
+func buildReduce(kind redKind) Builder {
 	return func(n *onnx.Node, env *Env) (Op, error) {
-		inputSince := int64(13)
-		if mean {
-			inputSince = 18
+		inputSince := int64(18)
+		if kind == redSum {
+			inputSince = 13
 		}
 		r := &reduceOp{
-			mean:      mean,
+			kind:      kind,
+			mean:      kind == redMean,
 			fromInput: env.Opset >= inputSince,
 			axes:      n.Ints("axes"),
 			keepdims:  n.Int("keepdims", 1) != 0,
@@ -51,12 +70,7 @@ func buildReduce(mean bool) Builder {
 	}
 }
 
-func (r *reduceOp) name() string {
-	if r.mean {
-		return "ReduceMean"
-	}
-	return "ReduceSum"
-}
+func (r *reduceOp) name() string { return redNames[r.kind] }
 
 // shapes returns the kept shape (reduced axes as 1), the output shape, the
 // number of elements reduced into each output, and whether the op is a
@@ -117,6 +131,9 @@ func (r *reduceOp) Forward(in []*tensor.Tensor) ([]*tensor.Tensor, error) {
 	if noop {
 		return []*tensor.Tensor{x.Clone()}, nil
 	}
+	if r.kind > redMean {
+		return r.forwardOther(x, kept, out)
+	}
 	if x.DType == tensor.Float32 {
 		s, err := reduceToShape(x.F32, x.Shape, kept)
 		if err != nil {
@@ -167,6 +184,14 @@ func (r *reduceOp) Backward(in, outs, gradOut []*tensor.Tensor) ([]*tensor.Tenso
 		grads[0] = &tensor.Tensor{DType: tensor.Float32, Shape: append([]int(nil), x.Shape...), F32: append([]float32(nil), g.F32...)}
 		return grads, nil
 	}
+	if r.kind > redMean {
+		gx, err := r.backwardOther(x, outs[0], g, kept)
+		if err != nil {
+			return nil, err
+		}
+		grads[0] = gx
+		return grads, nil
+	}
 	gx, err := expandF32(g.F32, kept, x.Shape)
 	if err != nil {
 		return nil, err
@@ -181,4 +206,9 @@ func (r *reduceOp) Backward(in, outs, gradOut []*tensor.Tensor) ([]*tensor.Tenso
 	return grads, nil
 }
 
-func (r *reduceOp) BackwardNeeds() (in, out []int) { return []int{1}, nil }
+func (r *reduceOp) BackwardNeeds() (in, out []int) {
+	if r.kind > redMean {
+		return []int{0, 1}, []int{0}
+	}
+	return []int{1}, nil
+}

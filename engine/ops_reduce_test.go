@@ -65,3 +65,44 @@ func lookupBuild(opType string, opset int64, attrs ...*onnx.Attr) (Op, error) {
 	b, _ := lookup(opType)
 	return b(testNode(opType, 1, attrs...), &Env{Opset: opset})
 }
+
+func TestOtherReductionGradients(t *testing.T) {
+	rng := rand.New(rand.NewSource(31))
+	for _, k := range []redKind{redMax, redMin, redProd, redL1, redL2, redSumSquare, redLogSum, redLogSumExp} {
+		name := redNames[k]
+		lo, hi := -2.0, 2.0
+		if k == redLogSum || k == redProd {
+			lo, hi = 0.5, 1.5 // LogSum needs a positive sum; keeps Prod O(1)
+		}
+		// Max/Min: distinct random values keep the arg-extreme unique; L1
+		// keeps away from its kink at 0.
+		x := randAwayFrom(rng, lo, hi, 0.02, []float64{0}, 2, 3, 4)
+		for _, axes := range [][]int64{{1}, {0, 2}, nil} {
+			attrs := []*onnx.Attr{attrInt("keepdims", 0)}
+			if axes != nil {
+				attrs = append(attrs, attrInts("axes", axes...))
+			}
+			if err := gradCheck(mustOp(t, name, 13, 1, attrs...), []*tensor.Tensor{x}, gradOpts{}); err != nil {
+				t.Errorf("%s axes=%v: %v", name, axes, err)
+			}
+		}
+		ax := i64s([]int{1}, -1)
+		if err := gradCheck(mustOp(t, name, 18, 1), []*tensor.Tensor{x, ax}, gradOpts{}); err != nil {
+			t.Errorf("%s opset 18: %v", name, err)
+		}
+	}
+	// Prod with zeros: the gradient at a lone zero is the product of the
+	// others, and every gradient vanishes with two zeros.
+	x := tensor.FromFloat32([]float32{2, 0, 3, 0, 0, 5}, 2, 3)
+	op := mustOp(t, "ReduceProd", 13, 1, attrInts("axes", 1))
+	y := forward1(t, op, x)
+	g, err := op.(Differentiable).Backward([]*tensor.Tensor{x}, []*tensor.Tensor{y}, []*tensor.Tensor{tensor.FromFloat32([]float32{1, 1}, 2, 1)})
+	if err != nil {
+		t.Fatal(err)
+	}
+	for i, w := range []float32{0, 6, 0, 0, 0, 0} {
+		if g[0].F32[i] != w {
+			t.Fatalf("ReduceProd gradient with zeros = %v", g[0].F32)
+		}
+	}
+}
