@@ -4,6 +4,7 @@ import (
 	"errors"
 	"fmt"
 	"math"
+	"slices"
 	"sort"
 
 	"heedmap/explain"
@@ -294,9 +295,11 @@ func (pl *Plan) MeasureSign(method string, s Sign, m explain.Map) (Result, error
 	r.BandMass = Num(maskedSum(a, pl.band) / total)
 	r.FarMass = Num(maskedSum(a, pl.far) / total)
 
-	sorted := append([]float64(nil), a...)
-	sort.Sort(sort.Reverse(sort.Float64Slice(sorted)))
-	r.RankAccuracy = Num(rankAccuracy(a, pl.lesion, pl.lesionN, sorted[pl.lesionN-1]))
+	// One ascending sort serves both cuts: the K-th largest value is
+	// asc[n−K].
+	asc := append([]float64(nil), a...)
+	slices.Sort(asc)
+	r.RankAccuracy = Num(rankAccuracy(a, pl.lesion, pl.lesionN, asc[n-pl.lesionN]))
 
 	near := 0
 	for i, v := range a {
@@ -311,7 +314,7 @@ func (pl *Plan) MeasureSign(method string, s Sign, m explain.Map) (Result, error
 	}
 
 	k := int(math.Ceil(pl.params.HotFraction * float64(n)))
-	t := sorted[max(k, 1)-1]
+	t := asc[n-max(k, 1)]
 	r.HotThreshold = Num(t)
 	r.HotRegions = hotRegions(a, pl.far, t, total, pl.w, pl.h)
 	return r, nil

@@ -2,6 +2,7 @@ package measure
 
 import (
 	"context"
+	"os"
 	"strings"
 	"testing"
 )
@@ -166,5 +167,16 @@ func TestCriteria(t *testing.T) {
 	vs, _ = Evaluate(cs[:1], und, "accept.yaml")
 	if vs[0].Pass || !strings.Contains(vs[0].Note, "undefined") {
 		t.Errorf("%+v", vs[0])
+	}
+}
+
+func TestExampleCriteriaFileParses(t *testing.T) {
+	b, err := os.ReadFile("testdata/acceptance.example.yaml")
+	if err != nil {
+		t.Fatal(err)
+	}
+	cs, err := ParseCriteria(b, "testdata/acceptance.example.yaml")
+	if err != nil || len(cs) != 3 || cs[2].Statistic != "flagged_rate_upper95" {
+		t.Errorf("%+v %v", cs, err)
 	}
 }
