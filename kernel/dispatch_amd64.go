@@ -21,13 +21,13 @@ func archKernels() map[ISA]config {
 	if cpu.X86.HasAVX512F {
 		ks[ISAAVX512] = config{
 			isa: ISAAVX512, mr: 12, nr: 32, kc: 256, mc: 192, nc: 4096,
-			kernel: avx512Kernel, minParallelOps: 1 << 20,
+			kernel: avx512Kernel, direct: avx512Direct, minParallelOps: 1 << 20,
 		}
 	}
 	if cpu.X86.HasAVX2 && cpu.X86.HasFMA {
 		ks[ISAAVX2] = config{
 			isa: ISAAVX2, mr: 6, nr: 16, kc: 256, mc: 144, nc: 4096,
-			kernel: avx2Kernel, minParallelOps: 1 << 20,
+			kernel: avx2Kernel, direct: avx2Direct, minParallelOps: 1 << 20,
 		}
 	}
 	return ks
@@ -50,4 +50,14 @@ func avx512Kernel(k int, a, b, c []float32, ldc int, alpha, beta float32, load b
 func avx2Kernel(k int, a, b, c []float32, ldc int, alpha, beta float32, load bool) {
 	_, _, _ = a[6*k-1], b[16*k-1], c[5*ldc+15]
 	sgemm6x16AVX2(k, &a[0], &b[0], &c[0], ldc, alpha, beta, b2i(load))
+}
+
+func avx512Direct(k int, a []float32, lda int, b, c []float32, ldc int, alpha, beta float32, load bool) {
+	_, _, _ = a[11*lda+k-1], b[32*k-1], c[11*ldc+31]
+	sgemm12x32AVX512Direct(k, &a[0], lda, &b[0], &c[0], ldc, alpha, beta, b2i(load))
+}
+
+func avx2Direct(k int, a []float32, lda int, b, c []float32, ldc int, alpha, beta float32, load bool) {
+	_, _, _ = a[5*lda+k-1], b[16*k-1], c[5*ldc+15]
+	sgemm6x16AVX2Direct(k, &a[0], lda, &b[0], &c[0], ldc, alpha, beta, b2i(load))
 }

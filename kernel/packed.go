@@ -56,6 +56,10 @@ type Options struct {
 // asmgen/gen.go for the exact contract. c must hold (mr-1)·ldc+nr values.
 type microKernel func(k int, a, b, c []float32, ldc int, alpha, beta float32, load bool)
 
+// directKernel is a microKernel that reads A unpacked: mr rows lda apart,
+// unit stride along k (see asmgen/gen.go). a must hold (mr-1)·lda+k values.
+type directKernel func(k int, a []float32, lda int, b, c []float32, ldc int, alpha, beta float32, load bool)
+
 // config is one path's register tile and cache blocking.
 //
 // The loop nest is the one of Goto & van de Geijn (ACM TOMS 34(3), 2008) as
@@ -71,7 +75,8 @@ type config struct {
 	mr, nr         int
 	kc, mc, nc     int
 	kernel         microKernel
-	minParallelOps int // m·n·k below which one goroutine is used
+	direct         directKernel // nil when the path has no direct-A kernel
+	minParallelOps int          // m·n·k below which one goroutine is used
 }
 
 // portableConfig: the 2×4 tile is the largest the Go compiler keeps in
@@ -272,6 +277,10 @@ func (g *Packed) run(ws *workspace, transA, transB bool, m, n, k int, alpha floa
 	ws.a = grow(ws.a, mcMax*kcMax)
 	ws.b = grow(ws.b, ncMax*kcMax)
 	kern := cfg.kernel
+	// A non-transposed A is read in place by the direct kernel when the
+	// path has one: packing it would be a strided gather (see
+	// transposeStrip) costing as much as the multiply when n is small.
+	direct := !transA && cfg.direct != nil
 	for jc := 0; jc < n; jc += cfg.nc {
 		nb := min(cfg.nc, n-jc)
 		for pc := 0; pc < k; pc += cfg.kc {
@@ -283,22 +292,43 @@ func (g *Packed) run(ws *workspace, transA, transB bool, m, n, k int, alpha floa
 			}
 			for ic := 0; ic < m; ic += cfg.mc {
 				mb := min(cfg.mc, m-ic)
-				packA(ws.a, transA, a, lda, ic, pc, mb, kb, mr)
+				full := mb // rows read directly from A; the rest is packed
+				if direct {
+					full = mb / mr * mr
+					if full < mb {
+						packA(ws.a, transA, a, lda, ic+full, pc, mb-full, kb, mr)
+					}
+				} else {
+					packA(ws.a, transA, a, lda, ic, pc, mb, kb, mr)
+				}
 				for jr := 0; jr < nb; jr += nr {
 					nrr := min(nr, nb-jr)
 					bp := ws.b[jr*kb : (jr+nr)*kb]
 					for ir := 0; ir < mb; ir += mr {
 						mrr := min(mr, mb-ir)
-						ap := ws.a[ir*kb : (ir+mr)*kb]
 						ci := (ic+ir)*ldc + jc + jr
-						if mrr == mr && nrr == nr {
-							kern(kb, ap, bp, c[ci:], ldc, alpha, bet, bet != 0)
-							continue
+						if direct && ir < full {
+							ad := a[(ic+ir)*lda+pc:]
+							if nrr == nr {
+								cfg.direct(kb, ad, lda, bp, c[ci:], ldc, alpha, bet, bet != 0)
+								continue
+							}
+							cfg.direct(kb, ad, lda, bp, ws.tile, nr, alpha, 0, false)
+						} else {
+							off := ir
+							if direct {
+								off = ir - full
+							}
+							ap := ws.a[off*kb : (off+mr)*kb]
+							if mrr == mr && nrr == nr {
+								kern(kb, ap, bp, c[ci:], ldc, alpha, bet, bet != 0)
+								continue
+							}
+							// Edge tile: compute the full tile into scratch
+							// (the packed panels are zero-padded) and copy
+							// the valid part, so the kernels need no masking.
+							kern(kb, ap, bp, ws.tile, nr, alpha, 0, false)
 						}
-						// Edge tile: compute the full tile into scratch
-						// (the packed panels are zero-padded) and copy the
-						// valid part, so the kernels need no masking.
-						kern(kb, ap, bp, ws.tile, nr, alpha, 0, false)
 						for i := 0; i < mrr; i++ {
 							row := c[ci+i*ldc : ci+i*ldc+nrr]
 							t := ws.tile[i*nr : i*nr+nrr]
@@ -338,12 +368,7 @@ func packB(dst []float32, transB bool, b []float32, ldb, pc, jc, kb, nb, nr int)
 		if nrr < nr {
 			clear(panel)
 		}
-		for j := 0; j < nrr; j++ {
-			src := b[(jc+jr+j)*ldb+pc : (jc+jr+j)*ldb+pc+kb]
-			for p, v := range src {
-				panel[p*nr+j] = v
-			}
-		}
+		transposeStrip(panel, nr, b, ldb, (jc+jr)*ldb+pc, nrr, kb)
 	}
 }
 
@@ -366,11 +391,34 @@ func packA(dst []float32, transA bool, a []float32, lda, ic, pc, mb, kb, mr int)
 		if mrr < mr {
 			clear(panel)
 		}
-		for i := 0; i < mrr; i++ {
-			src := a[(ic+ir+i)*lda+pc : (ic+ir+i)*lda+pc+kb]
-			for p, v := range src {
-				panel[p*mr+i] = v
-			}
+		transposeStrip(panel, mr, a, lda, (ic+ir)*lda+pc, mrr, kb)
+	}
+}
+
+// transposeStrip writes rows [0, rows) of the strip src[off+i·ld : +kb]
+// into panel with stride: panel[p·width+i] = src[off+i·ld+p]. Four rows
+// are read side by side so each store burst is contiguous and the bounds
+// checks hoist out of the loop; this gather is the packing cost of a
+// non-transposed A (and a transposed B), so it matters when the other
+// dimension is small (e.g. n = 49 in late ResNet layers).
+func transposeStrip(panel []float32, width int, src []float32, ld, off, rows, kb int) {
+	i := 0
+	for ; i+4 <= rows; i += 4 {
+		r0 := src[off+i*ld : off+i*ld+kb]
+		r1 := src[off+(i+1)*ld : off+(i+1)*ld+kb]
+		r2 := src[off+(i+2)*ld : off+(i+2)*ld+kb]
+		r3 := src[off+(i+3)*ld : off+(i+3)*ld+kb]
+		r1, r2, r3 = r1[:len(r0)], r2[:len(r0)], r3[:len(r0)]
+		d := panel[i:]
+		for p := range r0 {
+			q := d[p*width : p*width+4 : p*width+4]
+			q[0], q[1], q[2], q[3] = r0[p], r1[p], r2[p], r3[p]
+		}
+	}
+	for ; i < rows; i++ {
+		r := src[off+i*ld : off+i*ld+kb]
+		for p, v := range r {
+			panel[p*width+i] = v
 		}
 	}
 }

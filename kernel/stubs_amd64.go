@@ -7,10 +7,20 @@ package kernel
 //go:noescape
 func sgemm12x32AVX512(k int, a *float32, b *float32, c *float32, ldc int, alpha float32, beta float32, load int)
 
+// sgemm12x32AVX512Direct computes a 12×32 tile of C from an unpacked row-major A with row stride lda; 12×32 tile: 24 zmm accumulators, 2 for the B row, 2 for broadcasts.
+//
+//go:noescape
+func sgemm12x32AVX512Direct(k int, a *float32, lda int, b *float32, c *float32, ldc int, alpha float32, beta float32, load int)
+
 // sgemm6x16AVX2 computes a 6×16 tile of C; 6×16 tile: 12 ymm accumulators, 2 for the B row, 2 for broadcasts.
 //
 //go:noescape
 func sgemm6x16AVX2(k int, a *float32, b *float32, c *float32, ldc int, alpha float32, beta float32, load int)
+
+// sgemm6x16AVX2Direct computes a 6×16 tile of C from an unpacked row-major A with row stride lda; 6×16 tile: 12 ymm accumulators, 2 for the B row, 2 for broadcasts.
+//
+//go:noescape
+func sgemm6x16AVX2Direct(k int, a *float32, lda int, b *float32, c *float32, ldc int, alpha float32, beta float32, load int)
 
 // fmaPeakAVX512 runs n iterations of 24 independent FMAs on registers only.
 func fmaPeakAVX512(n int)

@@ -91,10 +91,30 @@ func genPeak(name string, vec []reg.VecPhysical, acc int) {
 	RET()
 }
 
+// gen emits the packed-A kernel t.name and the direct-A kernel
+// t.name+"Direct". The direct variant reads A where it lies (row-major,
+// unit stride along k, rows lda apart) instead of from a packed panel:
+// for a non-transposed A the packing step would be a strided gather that
+// costs about as much as the multiply when n is small, while the broadcast
+// loads the kernel makes are scalar anyway, so any row stride serves. Row
+// i is addressed as base[i/3] + (i%3)·lda with one base register per three
+// rows, using the x86 scaled-index modes ×1 and ×2.
 func gen(t tile) {
+	genKernel(t, false)
+	genKernel(t, true)
+}
+
+func genKernel(t tile, direct bool) {
 	nr := t.nv * t.width
-	TEXT(t.name, NOSPLIT, "func(k int, a, b, c *float32, ldc int, alpha, beta float32, load int)")
-	Doc(fmt.Sprintf("%s computes a %d×%d tile of C; %s", t.name, t.mr, nr, t.doc))
+	name := t.name
+	if direct {
+		name += "Direct"
+		TEXT(name, NOSPLIT, "func(k int, a *float32, lda int, b, c *float32, ldc int, alpha, beta float32, load int)")
+		Doc(fmt.Sprintf("%s computes a %d×%d tile of C from an unpacked row-major A with row stride lda; %s", name, t.mr, nr, t.doc))
+	} else {
+		TEXT(name, NOSPLIT, "func(k int, a, b, c *float32, ldc int, alpha, beta float32, load int)")
+		Doc(fmt.Sprintf("%s computes a %d×%d tile of C; %s", name, t.mr, nr, t.doc))
+	}
 	Pragma("noescape")
 
 	bv := t.vec[:t.nv]         // B row
@@ -107,6 +127,39 @@ func gen(t tile) {
 	k := Load(Param("k"), GP64())
 	a := Load(Param("a"), GP64())
 	b := Load(Param("b"), GP64())
+	// aAt addresses A(i, p) at k step p of the current iteration.
+	aAt := func(p, i int) Mem { return Mem{Base: a, Disp: 4 * (p*t.mr + i)} }
+	aStep := 4 * t.mr // bytes A advances per k step
+	var bases []reg.Register
+	if direct {
+		lda := Load(Param("lda"), GP64())
+		SHLQ(Imm(2), lda)
+		lda3 := GP64()
+		LEAQ(Mem{Base: lda, Index: lda, Scale: 2}, lda3)
+		bases = []reg.Register{a}
+		for len(bases)*3 < t.mr {
+			r := GP64()
+			LEAQ(Mem{Base: bases[len(bases)-1], Index: lda3, Scale: 1}, r)
+			bases = append(bases, r)
+		}
+		aAt = func(p, i int) Mem {
+			m := Mem{Base: bases[i/3], Disp: 4 * p}
+			if i%3 > 0 {
+				m.Index, m.Scale = lda, uint8(i%3)
+			}
+			return m
+		}
+		aStep = 4
+	}
+	advanceA := func(steps int) {
+		if direct {
+			for _, r := range bases {
+				ADDQ(U32(aStep*steps), r)
+			}
+			return
+		}
+		ADDQ(U32(aStep*steps), a)
+	}
 
 	Comment("Zero the accumulators.")
 	for _, r := range acc {
@@ -123,7 +176,7 @@ func gen(t tile) {
 		}
 		for i := 0; i < t.mr; i++ {
 			x := bc[i%2]
-			VBROADCASTSS(Mem{Base: a, Disp: 4 * (p*t.mr + i)}, x)
+			VBROADCASTSS(aAt(p, i), x)
 			for v := 0; v < t.nv; v++ {
 				VFMADD231PS(bv[v], x, acc[i*t.nv+v])
 			}
@@ -131,27 +184,27 @@ func gen(t tile) {
 	}
 
 	Comment(fmt.Sprintf("Main loop, %d k steps per iteration.", unroll))
-	Label(t.name + "_unrolled")
+	Label(name + "_unrolled")
 	CMPQ(k, Imm(unroll))
-	JL(LabelRef(t.name + "_tail"))
+	JL(LabelRef(name + "_tail"))
 	for p := 0; p < unroll; p++ {
 		step(p)
 	}
-	ADDQ(U32(4*unroll*t.mr), a)
+	advanceA(unroll)
 	ADDQ(U32(4*unroll*nr), b)
 	SUBQ(Imm(unroll), k)
-	JMP(LabelRef(t.name + "_unrolled"))
+	JMP(LabelRef(name + "_unrolled"))
 
-	Label(t.name + "_tail")
+	Label(name + "_tail")
 	TESTQ(k, k)
-	JZ(LabelRef(t.name + "_store"))
+	JZ(LabelRef(name + "_store"))
 	step(0)
-	ADDQ(U32(4*t.mr), a)
+	advanceA(1)
 	ADDQ(U32(4*nr), b)
 	DECQ(k)
-	JMP(LabelRef(t.name + "_tail"))
+	JMP(LabelRef(name + "_tail"))
 
-	Label(t.name + "_store")
+	Label(name + "_store")
 	alpha, beta := t.vec[0], t.vec[1] // B row registers are free now
 	am, err := Param("alpha").Resolve()
 	check(err)
@@ -168,7 +221,7 @@ func gen(t tile) {
 		VMULPS(alpha, r, r)
 	}
 	TESTQ(load, load)
-	JZ(LabelRef(t.name + "_overwrite"))
+	JZ(LabelRef(name + "_overwrite"))
 
 	Comment("C = alpha·AB + beta·C")
 	for i := 0; i < t.mr; i++ {
@@ -184,7 +237,7 @@ func gen(t tile) {
 	VZEROUPPER()
 	RET()
 
-	Label(t.name + "_overwrite")
+	Label(name + "_overwrite")
 	Comment("C = alpha·AB; C is not read")
 	for i := 0; i < t.mr; i++ {
 		for v := 0; v < t.nv; v++ {
