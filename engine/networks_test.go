@@ -1,0 +1,195 @@
+package engine_test
+
+import (
+	"context"
+	"encoding/json"
+	"math"
+	"os"
+	"os/exec"
+	"path/filepath"
+	"testing"
+
+	"heedmap/engine"
+	"heedmap/onnx"
+	"heedmap/tensor"
+)
+
+// The reference for these tests is PyTorch 1.13 autograd (Debian
+// python3-torch, python3-torchvision 0.14): testdata/reference/export_nets.py
+// builds eight architectures from torchvision's own blocks, exports them
+// with torch.onnx.export (opset 13) and stores, for a fixed input x, the
+// logits, the gradient of Σ_batch logit[class] with respect to x and to one
+// inner activation, and that activation's value. Rerun the script to
+// regenerate testdata/nets.
+
+// netMeta is testdata/nets/<name>/meta.json.
+type netMeta struct {
+	Name   string `json:"name"`
+	Input  string `json:"input"`
+	Output string `json:"output"`
+	Layer  string `json:"layer"`
+	Class  int    `json:"class"`
+}
+
+// Tolerances for float32 CPU arithmetic against PyTorch's float32 CPU
+// kernels (summation order differs): logits within 1e-4 of their largest
+// magnitude; gradients within cosine 0.9999 and relative L2 error 1e-3.
+const (
+	logitTol = 1e-4
+	minCos   = 0.9999
+	maxRelL2 = 1e-3
+)
+
+// TestCompactNetworks checks forward and reverse mode on the compact
+// reference networks committed in testdata/nets.
+func TestCompactNetworks(t *testing.T) {
+	dirs, _ := filepath.Glob(filepath.Join("..", "testdata", "nets", "*", "meta.json"))
+	if len(dirs) < 8 {
+		t.Fatalf("expected 8 reference networks in testdata/nets, found %d", len(dirs))
+	}
+	for _, m := range dirs {
+		dir := filepath.Dir(m)
+		t.Run(filepath.Base(dir), func(t *testing.T) { checkNetwork(t, dir) })
+	}
+}
+
+// TestFullSizeNetworks runs the same checks on the full-size torchvision
+// architectures (random weights), exported on the fly by the reference
+// script. Opt-in: HEEDMAP_FULLNETS=1 (needs /usr/bin/python3 with torch,
+// torchvision and onnx; several minutes and a few GB of memory).
+func TestFullSizeNetworks(t *testing.T) {
+	if os.Getenv("HEEDMAP_FULLNETS") != "1" {
+		t.Skip("set HEEDMAP_FULLNETS=1 to export and check the full-size networks")
+	}
+	out := t.TempDir()
+	cmd := exec.Command("/usr/bin/python3", filepath.Join("..", "testdata", "reference", "export_nets.py"), "--full", "--out", out)
+	cmd.Stderr = os.Stderr
+	if b, err := cmd.Output(); err != nil {
+		t.Fatalf("export_nets.py --full: %v\n%s", err, b)
+	} else {
+		t.Logf("%s", b)
+	}
+	dirs, _ := filepath.Glob(filepath.Join(out, "*", "meta.json"))
+	if len(dirs) < 8 {
+		t.Fatalf("expected 8 exported networks, found %d", len(dirs))
+	}
+	for _, m := range dirs {
+		dir := filepath.Dir(m)
+		t.Run(filepath.Base(dir), func(t *testing.T) { checkNetwork(t, dir) })
+	}
+}
+
+func checkNetwork(t *testing.T, dir string) {
+	b, err := os.ReadFile(filepath.Join(dir, "meta.json"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	var meta netMeta
+	if err := json.Unmarshal(b, &meta); err != nil {
+		t.Fatalf("meta.json: %v", err)
+	}
+	load := func(file string) *tensor.Tensor {
+		tt, _, err := onnx.LoadTensor(filepath.Join(dir, file))
+		if err != nil {
+			t.Fatal(err)
+		}
+		return tt
+	}
+	g, err := engine.Load(filepath.Join(dir, "model.onnx"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	x := load("input.pb")
+	ctx := context.Background()
+	pass, err := g.Run(ctx, map[string]*tensor.Tensor{meta.Input: x}, engine.RunOptions{Keep: []string{meta.Layer}, Backward: true})
+	if err != nil {
+		t.Fatal(err)
+	}
+	logits, ok := pass.Value(meta.Output)
+	if !ok {
+		t.Fatalf("no output %q", meta.Output)
+	}
+	want := load("logits.pb")
+	if !sameShape(logits.Shape, want.Shape) {
+		t.Fatalf("logits %v, PyTorch %v", logits, want)
+	}
+	if e := maxRel(logits.F32, want.F32); e > logitTol {
+		t.Errorf("logits: max|a-b|/max|b| = %.2e > %.0e vs PyTorch", e, logitTol)
+	} else {
+		t.Logf("logits: max|a-b|/max|b| = %.2e", e)
+	}
+	act, ok := pass.Value(meta.Layer)
+	if !ok {
+		t.Fatalf("layer %q not kept", meta.Layer)
+	}
+	if wantAct := load("layer.pb"); !sameShape(act.Shape, wantAct.Shape) {
+		t.Errorf("layer %q: %v, PyTorch %v", meta.Layer, act, wantAct)
+	} else if e := maxRel(act.F32, wantAct.F32); e > logitTol {
+		t.Errorf("layer %q value: max|a-b|/max|b| = %.2e vs PyTorch", meta.Layer, e)
+	}
+
+	seed := tensor.New(logits.Shape...)
+	classes := logits.Shape[len(logits.Shape)-1]
+	for i := meta.Class; i < len(seed.F32); i += classes {
+		seed.F32[i] = 1
+	}
+	grads, err := pass.Backward(ctx, map[string]*tensor.Tensor{meta.Output: seed}, []string{meta.Input, meta.Layer})
+	if err != nil {
+		t.Fatal(err)
+	}
+	for _, c := range []struct{ name, file string }{{meta.Input, "grad_input.pb"}, {meta.Layer, "grad_layer.pb"}} {
+		got := grads[c.name]
+		want := load(c.file)
+		if got == nil || !sameShape(got.Shape, want.Shape) {
+			t.Errorf("gradient w.r.t. %q: %v, PyTorch %v", c.name, got, want)
+			continue
+		}
+		cos, rel := compareGrad(got.F32, want.F32)
+		if cos < minCos || rel > maxRelL2 || math.IsNaN(cos) || math.IsNaN(rel) {
+			t.Errorf("gradient w.r.t. %q: cosine %.6f (need ≥ %v), relative L2 %.2e (need ≤ %.0e) vs PyTorch", c.name, cos, minCos, rel, maxRelL2)
+		} else {
+			t.Logf("gradient w.r.t. %q: cosine %.7f, relative L2 %.2e", c.name, cos, rel)
+		}
+	}
+}
+
+func sameShape(a, b []int) bool {
+	if len(a) != len(b) {
+		return false
+	}
+	for i := range a {
+		if a[i] != b[i] {
+			return false
+		}
+	}
+	return true
+}
+
+// maxRel is max|a−b| / max|b|.
+func maxRel(a, b []float32) float64 {
+	var num, den float64
+	for i := range b {
+		num = math.Max(num, math.Abs(float64(a[i])-float64(b[i])))
+		den = math.Max(den, math.Abs(float64(b[i])))
+	}
+	if den == 0 {
+		return num
+	}
+	return num / den
+}
+
+// compareGrad returns the cosine similarity and ‖a−b‖₂/‖b‖₂.
+func compareGrad(a, b []float32) (cos, rel float64) {
+	var ab, aa, bb, dd float64
+	for i := range b {
+		x, y := float64(a[i]), float64(b[i])
+		ab += x * y
+		aa += x * x
+		bb += y * y
+		dd += (x - y) * (x - y)
+	}
+	if bb == 0 {
+		return math.NaN(), math.NaN() // a zero golden gradient would make the check vacuous
+	}
+	return ab / math.Sqrt(aa*bb), math.Sqrt(dd / bb)
+}
