@@ -17,7 +17,9 @@ type Masks struct {
 	Lesion []bool
 	// Seen marks pixels that came from the original image (not padding
 	// added by letterboxing). nil means every pixel was seen. Lesion and
-	// artefact pixels outside Seen are ignored.
+	// artefact pixels outside Seen are ignored. Relevance on unseen pixels
+	// still counts in Σ A⁺ (the model did see the padding) and falls in the
+	// band or far background.
 	Seen []bool
 	// Artefacts maps a category name (ruler, ink, hair, ...) to its mask.
 	Artefacts map[string][]bool

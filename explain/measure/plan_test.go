@@ -351,7 +351,7 @@ func TestBadInput(t *testing.T) {
 func TestSignTable(t *testing.T) {
 	for name, s := range map[string]Sign{
 		MethodOcclusion: Positive, MethodIntegratedGradients: Positive, MethodGradientXInput: Positive,
-		MethodGradCAM: Positive, MethodRISE: Positive, "Grad-CAM": Positive, "gradient×input": Positive,
+		MethodGradCAM: Positive, MethodRISE: Positive, MethodSmoothGradIG: Positive, "Grad-CAM": Positive, "gradient×input": Positive,
 		MethodGradient: Absolute, MethodSmoothGrad: Absolute, "Smooth_Grad": Absolute,
 	} {
 		got, err := SignFor(name)

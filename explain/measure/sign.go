@@ -43,6 +43,7 @@ const (
 	MethodSmoothGrad          = "smoothgrad"
 	MethodGradCAM             = "grad-cam"
 	MethodRISE                = "rise"
+	MethodSmoothGradIG        = "smoothgrad-ig"
 )
 
 var signTable = map[string]Sign{
@@ -55,9 +56,12 @@ var signTable = map[string]Sign{
 	"gradientinput":        Positive,
 	"gradcam":              Positive,
 	"rise":                 Positive,
-	"gradient":             Absolute,
-	"saliency":             Absolute,
-	"smoothgrad":           Absolute,
+	// SmoothGrad over integrated gradients averages signed IG maps, so it
+	// keeps IG's convention.
+	"smoothgradig": Positive,
+	"gradient":     Absolute,
+	"saliency":     Absolute,
+	"smoothgrad":   Absolute,
 }
 
 func normalise(name string) string {
@@ -79,7 +83,7 @@ func SignFor(method string) (Sign, error) {
 	if s, ok := signTable[normalise(method)]; ok {
 		return s, nil
 	}
-	return 0, fmt.Errorf("measure: no sign convention for method %q (known: occlusion, gradient, gradient-x-input, integrated-gradients, smoothgrad, grad-cam, rise)", method)
+	return 0, fmt.Errorf("measure: no sign convention for method %q (known: occlusion, gradient, gradient-x-input, integrated-gradients, smoothgrad, smoothgrad-ig, grad-cam, rise)", method)
 }
 
 // apply converts a raw value to relevance.
