@@ -7,6 +7,7 @@ import (
 	"os"
 	"os/exec"
 	"path/filepath"
+	"strings"
 	"testing"
 
 	"heedmap/engine"
@@ -55,14 +56,23 @@ func TestCompactNetworks(t *testing.T) {
 
 // TestFullSizeNetworks runs the same checks on the full-size torchvision
 // architectures (random weights), exported on the fly by the reference
-// script. Opt-in: HEEDMAP_FULLNETS=1 (needs /usr/bin/python3 with torch,
-// torchvision and onnx; several minutes and a few GB of memory).
+// script. Opt-in: HEEDMAP_FULLNETS=1 for all eight, or a comma-separated
+// subset such as HEEDMAP_FULLNETS=resnet18,vit_b16 (needs /usr/bin/python3
+// with torch, torchvision and onnx; several minutes and a few GB of memory).
 func TestFullSizeNetworks(t *testing.T) {
-	if os.Getenv("HEEDMAP_FULLNETS") != "1" {
-		t.Skip("set HEEDMAP_FULLNETS=1 to export and check the full-size networks")
+	sel := os.Getenv("HEEDMAP_FULLNETS")
+	if sel == "" {
+		t.Skip("set HEEDMAP_FULLNETS=1 (or a list of names) to export and check the full-size networks")
 	}
-	out := t.TempDir()
-	cmd := exec.Command("/usr/bin/python3", filepath.Join("..", "testdata", "reference", "export_nets.py"), "--full", "--out", out)
+	args := []string{filepath.Join("..", "testdata", "reference", "export_nets.py"), "--full", "--out", t.TempDir()}
+	want := 8
+	if sel != "1" {
+		names := strings.Split(sel, ",")
+		args = append(args, names...)
+		want = len(names)
+	}
+	out := args[3]
+	cmd := exec.Command("/usr/bin/python3", args...)
 	cmd.Stderr = os.Stderr
 	if b, err := cmd.Output(); err != nil {
 		t.Fatalf("export_nets.py --full: %v\n%s", err, b)
@@ -70,8 +80,8 @@ func TestFullSizeNetworks(t *testing.T) {
 		t.Logf("%s", b)
 	}
 	dirs, _ := filepath.Glob(filepath.Join(out, "*", "meta.json"))
-	if len(dirs) < 8 {
-		t.Fatalf("expected 8 exported networks, found %d", len(dirs))
+	if len(dirs) != want {
+		t.Fatalf("expected %d exported networks, found %d", want, len(dirs))
 	}
 	for _, m := range dirs {
 		dir := filepath.Dir(m)

@@ -131,6 +131,10 @@ func (d *decoder) graph(gp *onnxpb.GraphProto, opsets map[string]int64) (*Graph,
 		if err != nil {
 			return nil, err
 		}
+		// Drop the protobuf's copy so the collector can reclaim it while
+		// later initializers are converted: peak memory stays near one
+		// copy of the weights rather than two.
+		tp.RawData, tp.FloatData = nil, nil
 		g.Initializers[name] = t
 		g.InitOrder = append(g.InitOrder, name)
 	}
