@@ -207,3 +207,31 @@ func TestShapeAndConstantOfShape(t *testing.T) {
 		t.Errorf("ConstantOfShape = %v %v", y, y.I64)
 	}
 }
+
+func TestMoreShapeGradients(t *testing.T) {
+	rng := rand.New(rand.NewSource(25))
+	x := randTensor(rng, -1, 1, 1, 8, 2, 3)
+	checkGrad(t, mustOp(t, "Tile", 13, 1), []*tensor.Tensor{x, i64s([]int{4}, 2, 1, 3, 1)}, gradOpts{})
+	for _, mode := range []string{"DCR", "CRD"} {
+		checkGrad(t, mustOp(t, "DepthToSpace", 13, 1, attrInt("blocksize", 2), attrString("mode", mode)), []*tensor.Tensor{x}, gradOpts{})
+	}
+	sp := randTensor(rng, -1, 1, 2, 3, 4, 6)
+	checkGrad(t, mustOp(t, "SpaceToDepth", 13, 1, attrInt("blocksize", 2)), []*tensor.Tensor{sp}, gradOpts{})
+	// SpaceToDepth then DepthToSpace (DCR) is the identity.
+	s2d := forward1(t, mustOp(t, "SpaceToDepth", 13, 1, attrInt("blocksize", 2)), sp)
+	back := forward1(t, mustOp(t, "DepthToSpace", 13, 1, attrInt("blocksize", 2)), s2d)
+	for i := range sp.F32 {
+		if back.F32[i] != sp.F32[i] {
+			t.Fatalf("DepthToSpace(SpaceToDepth(x)) differs from x at %d", i)
+		}
+	}
+	m := randTensor(rng, -1, 1, 2, 3, 4)
+	checkGrad(t, mustOp(t, "Trilu", 14, 1), []*tensor.Tensor{m, i64s(nil, -1)}, gradOpts{})
+	checkGrad(t, mustOp(t, "Trilu", 14, 1, attrInt("upper", 0)), []*tensor.Tensor{m}, gradOpts{})
+	ge := mustOp(t, "GatherElements", 13, 1, attrInt("axis", 1))
+	checkGrad(t, ge, []*tensor.Tensor{m, i64s([]int{2, 2, 4}, 0, 1, 2, -1, 2, 2, 0, 0, 1, 1, 1, 1, 0, 2, 1, 0)}, gradOpts{})
+	for _, attrs := range [][]*onnx.Attr{nil, {attrInt("exclusive", 1)}, {attrInt("reverse", 1)}, {attrInt("exclusive", 1), attrInt("reverse", 1)}} {
+		checkGrad(t, mustOp(t, "CumSum", 14, 1, attrs...), []*tensor.Tensor{m, i64s(nil, -2)}, gradOpts{})
+	}
+	checkGrad(t, mustOp(t, "CastLike", 15, 1), []*tensor.Tensor{m, tensor.New(1)}, gradOpts{Wrt: []int{0}})
+}
