@@ -1,0 +1,393 @@
+package main
+
+import (
+	"bytes"
+	"crypto/sha256"
+	"encoding/hex"
+	"flag"
+	"fmt"
+	"io"
+	"os"
+	"sort"
+	"strconv"
+	"strings"
+
+	"gopkg.in/yaml.v3"
+)
+
+// Methods lists the attribution methods `run --methods` accepts.
+var methodNames = []string{"occlusion", "gradient", "gradient-x-input", "integrated-gradients", "smoothgrad", "grad-cam", "rise"}
+
+// Config is the resolved configuration of a run: defaults, then the YAML
+// file given with --config, then flags set on the command line. YAML keys
+// are the flag names. The resolved value is written to OUT/config.yaml.
+type Config struct {
+	Model      string   `yaml:"model"`
+	Images     string   `yaml:"images"`
+	Masks      string   `yaml:"masks,omitempty"`
+	MaskSuffix string   `yaml:"mask-suffix,omitempty"`
+	Out        string   `yaml:"out"`
+	Methods    []string `yaml:"methods,flow"`
+	Target     string   `yaml:"target"`
+	Score      string   `yaml:"score"`
+	SaveMaps   bool     `yaml:"save-maps"`
+	Labels     string   `yaml:"labels,omitempty"`
+	Criteria   string   `yaml:"criteria,omitempty"`
+
+	// Preprocessing.
+	Size     int       `yaml:"size"`
+	Resize   string    `yaml:"resize"`
+	Mean     []float64 `yaml:"mean,flow,omitempty"`
+	Std      []float64 `yaml:"std,flow,omitempty"`
+	Channels string    `yaml:"channels"`
+
+	// Method parameters.
+	Patch    int    `yaml:"patch"`
+	Stride   int    `yaml:"stride"`
+	Fill     string `yaml:"fill"`
+	Baseline string `yaml:"baseline"`
+	Steps    int    `yaml:"steps"`
+	Samples  int    `yaml:"samples"`
+	Layer    string `yaml:"layer,omitempty"`
+	Seed     uint64 `yaml:"seed"`
+
+	// Execution; these do not change results and stay out of the record key.
+	Workers int    `yaml:"workers"`
+	Shard   string `yaml:"shard,omitempty"`
+	Strict  bool   `yaml:"strict"`
+}
+
+// defaultConfig holds the stated defaults. Patch/stride 0 mean "chosen
+// from the input size by the occlusion method"; size 0 means "from the
+// model's input shape"; workers 0 means one per core.
+func defaultConfig() Config {
+	return Config{
+		Methods:  []string{"occlusion", "gradient", "integrated-gradients", "grad-cam"},
+		Target:   "predicted",
+		Score:    "logit",
+		Resize:   "stretch",
+		Channels: "rgb",
+		Fill:     "image-mean",
+		Baseline: "black",
+		Steps:    32,
+		Samples:  32,
+		Seed:     1,
+	}
+}
+
+// option is one flag that can also come from the YAML file.
+type option struct {
+	name, arg, usage, group string
+	set                     func(c *Config, v string) error
+	get                     func(c *Config) string
+	boolean                 bool
+}
+
+func parseInt(dst *int, min int) func(v string) error {
+	return func(v string) error {
+		n, err := strconv.Atoi(strings.TrimSpace(v))
+		if err != nil || n < min {
+			return fmt.Errorf("want an integer >= %d, got %q", min, v)
+		}
+		*dst = n
+		return nil
+	}
+}
+
+func parseTriple(v string) ([]float64, error) {
+	parts := strings.Split(v, ",")
+	if len(parts) != 3 && len(parts) != 1 {
+		return nil, fmt.Errorf("want R,G,B or one value, got %q", v)
+	}
+	out := make([]float64, len(parts))
+	for i, p := range parts {
+		f, err := strconv.ParseFloat(strings.TrimSpace(p), 64)
+		if err != nil {
+			return nil, fmt.Errorf("want numbers R,G,B, got %q", v)
+		}
+		out[i] = f
+	}
+	if len(out) == 1 {
+		out = []float64{out[0], out[0], out[0]}
+	}
+	return out, nil
+}
+
+func oneOf(v string, allowed ...string) error {
+	for _, a := range allowed {
+		if v == a {
+			return nil
+		}
+	}
+	return fmt.Errorf("want one of %s, got %q", strings.Join(allowed, "|"), v)
+}
+
+func joinFloats(f []float64) string {
+	s := make([]string, len(f))
+	for i, v := range f {
+		s[i] = strconv.FormatFloat(v, 'g', -1, 64)
+	}
+	return strings.Join(s, ",")
+}
+
+// runOptions is the flag table of `heedmap run`; the same table validates a
+// YAML config, so a bad value reads the same from either source.
+func runOptions() []option {
+	str := func(p func(c *Config) *string) (func(*Config, string) error, func(*Config) string) {
+		return func(c *Config, v string) error { *p(c) = v; return nil }, func(c *Config) string { return *p(c) }
+	}
+	num := func(p func(c *Config) *int, min int) (func(*Config, string) error, func(*Config) string) {
+		return func(c *Config, v string) error { return parseInt(p(c), min)(v) }, func(c *Config) string { return strconv.Itoa(*p(c)) }
+	}
+	flg := func(p func(c *Config) *bool) (func(*Config, string) error, func(*Config) string) {
+		return func(c *Config, v string) error {
+				b, err := strconv.ParseBool(v)
+				*p(c) = b
+				return err
+			}, func(c *Config) string {
+				return strconv.FormatBool(*p(c))
+			}
+	}
+	var opts []option
+	add := func(group, name, arg, usage string, set func(*Config, string) error, get func(*Config) string) {
+		opts = append(opts, option{name: name, arg: arg, usage: usage, group: group, set: set, get: get})
+	}
+	addBool := func(group, name, usage string, set func(*Config, string) error, get func(*Config) string) {
+		opts = append(opts, option{name: name, usage: usage, group: group, set: set, get: get, boolean: true})
+	}
+	const io, pre, met, exe = "Input and output", "Preprocessing", "Methods", "Execution"
+	s, g := str(func(c *Config) *string { return &c.Model })
+	add(io, "model", "M.onnx", "ONNX image classifier (required)", s, g)
+	s, g = str(func(c *Config) *string { return &c.Images })
+	add(io, "images", "DIR|manifest.csv", "folder of PNG/JPEG images, or a CSV manifest with columns id,image[,mask,label,artifact:NAME...] (required)", s, g)
+	s, g = str(func(c *Config) *string { return &c.Masks })
+	add(io, "masks", "DIR", "folder of lesion masks paired with images by file stem (folder input only)", s, g)
+	s, g = str(func(c *Config) *string { return &c.MaskSuffix })
+	add(io, "mask-suffix", "S", "mask file stem = image stem + S, e.g. _segmentation", s, g)
+	s, g = str(func(c *Config) *string { return &c.Out })
+	add(io, "out", "DIR", "output folder (required); reruns resume in it", s, g)
+	add(io, "methods", "LIST", "comma-separated: "+strings.Join(methodNames, ","), func(c *Config, v string) error {
+		var m []string
+		for _, p := range strings.Split(v, ",") {
+			p = strings.TrimSpace(p)
+			if p == "" {
+				continue
+			}
+			if err := oneOf(p, methodNames...); err != nil {
+				return err
+			}
+			m = append(m, p)
+		}
+		if len(m) == 0 {
+			return fmt.Errorf("no method in %q", v)
+		}
+		c.Methods = m
+		return nil
+	}, func(c *Config) string { return strings.Join(c.Methods, ",") })
+	s, g = str(func(c *Config) *string { return &c.Target })
+	add(io, "target", "T", "class to explain: predicted, label (from the manifest), a class index or a name from --labels", s, g)
+	add(io, "score", "logit|prob", "explain the raw logit or the softmax probability of the target", func(c *Config, v string) error {
+		if err := oneOf(v, "logit", "prob"); err != nil {
+			return err
+		}
+		c.Score = v
+		return nil
+	}, func(c *Config) string { return c.Score })
+	s, g = flg(func(c *Config) *bool { return &c.SaveMaps })
+	addBool(io, "save-maps", "also save raw attribution maps (NPY) per image and method", s, g)
+	s, g = str(func(c *Config) *string { return &c.Labels })
+	add(io, "labels", "FILE", "class names, one per line, in logit order", s, g)
+	s, g = str(func(c *Config) *string { return &c.Criteria })
+	add(io, "criteria", "FILE", "YAML acceptance criteria evaluated on the dataset summary", s, g)
+
+	s, g = num(func(c *Config) *int { return &c.Size }, 0)
+	add(pre, "size", "N", "model input width and height; 0 = from the model", s, g)
+	add(pre, "resize", "stretch|crop|pad", "how pictures of another aspect ratio are fitted", func(c *Config, v string) error {
+		if err := oneOf(v, "stretch", "crop", "pad"); err != nil {
+			return err
+		}
+		c.Resize = v
+		return nil
+	}, func(c *Config) string { return c.Resize })
+	add(pre, "mean", "R,G,B", "per-channel mean on the 0-1 scale subtracted before --std", func(c *Config, v string) error {
+		f, err := parseTriple(v)
+		c.Mean = f
+		return err
+	}, func(c *Config) string { return joinFloats(c.Mean) })
+	add(pre, "std", "R,G,B", "per-channel standard deviation on the 0-1 scale", func(c *Config, v string) error {
+		f, err := parseTriple(v)
+		for _, x := range f {
+			if x <= 0 {
+				return fmt.Errorf("std must be positive, got %q", v)
+			}
+		}
+		c.Std = f
+		return err
+	}, func(c *Config) string { return joinFloats(c.Std) })
+	add(pre, "channels", "rgb|bgr", "channel order the model expects", func(c *Config, v string) error {
+		if err := oneOf(v, "rgb", "bgr"); err != nil {
+			return err
+		}
+		c.Channels = v
+		return nil
+	}, func(c *Config) string { return c.Channels })
+
+	s, g = num(func(c *Config) *int { return &c.Patch }, 0)
+	add(met, "patch", "PX", "occlusion patch side in model-input pixels; 0 = automatic", s, g)
+	s, g = num(func(c *Config) *int { return &c.Stride }, 0)
+	add(met, "stride", "PX", "occlusion stride; 0 = automatic", s, g)
+	add(met, "fill", "F", "occlusion fill: mean (dataset mean colour), image-mean, black, blur or R,G,B (0-255)", func(c *Config, v string) error {
+		if oneOf(v, "mean", "image-mean", "black", "blur") != nil {
+			f, err := parseTriple(v)
+			if err != nil || len(f) != 3 {
+				return fmt.Errorf("want mean|image-mean|black|blur|R,G,B, got %q", v)
+			}
+		}
+		c.Fill = v
+		return nil
+	}, func(c *Config) string { return c.Fill })
+	s, g = str(func(c *Config) *string { return &c.Baseline })
+	add(met, "baseline", "B", "integrated-gradients baseline: black, blur, mean or R,G,B", s, g)
+	s, g = num(func(c *Config) *int { return &c.Steps }, 1)
+	add(met, "steps", "N", "integrated-gradients steps", s, g)
+	s, g = num(func(c *Config) *int { return &c.Samples }, 1)
+	add(met, "samples", "N", "SmoothGrad noise samples and RISE masks per batch of work", s, g)
+	s, g = str(func(c *Config) *string { return &c.Layer })
+	add(met, "layer", "NAME", "Grad-CAM layer (tensor name); empty = last 4-D activation before global pooling", s, g)
+	add(met, "seed", "N", "seed for SmoothGrad noise and RISE masks", func(c *Config, v string) error {
+		n, err := strconv.ParseUint(v, 10, 64)
+		c.Seed = n
+		return err
+	}, func(c *Config) string { return strconv.FormatUint(c.Seed, 10) })
+
+	s, g = num(func(c *Config) *int { return &c.Workers }, 0)
+	add(exe, "workers", "N", "images processed at once; 0 = one per CPU core", s, g)
+	s, g = str(func(c *Config) *string { return &c.Shard })
+	add(exe, "shard", "I/N", "process shard I of N (0-based); default from SLURM_ARRAY_TASK_ID/COUNT or JOB_COMPLETION_INDEX with HEEDMAP_SHARD_COUNT", s, g)
+	s, g = flg(func(c *Config) *bool { return &c.Strict })
+	addBool(exe, "strict", "exit 1 if any image is invalid or fails", s, g)
+	return opts
+}
+
+// recorder is a flag.Value that remembers what was given, so flags can be
+// applied after the YAML file.
+type recorder struct {
+	name    string
+	val     *[]kv
+	boolean bool
+}
+
+type kv struct{ name, value string }
+
+func (r recorder) String() string { return "" }
+func (r recorder) Set(v string) error {
+	*r.val = append(*r.val, kv{r.name, v})
+	return nil
+}
+func (r recorder) IsBoolFlag() bool { return r.boolean }
+
+// loadYAML reads a config file over c. Unknown keys are errors (a typo must
+// not silently fall back to a default); each value goes through the same
+// parser as its flag.
+func loadYAML(path string, c *Config, opts []option) error {
+	data, err := os.ReadFile(path)
+	if err != nil {
+		return err
+	}
+	var raw map[string]yaml.Node
+	if err := yaml.Unmarshal(data, &raw); err != nil {
+		return fmt.Errorf("%s: %w", path, err)
+	}
+	byName := map[string]option{}
+	for _, o := range opts {
+		byName[o.name] = o
+	}
+	keys := make([]string, 0, len(raw))
+	for k := range raw {
+		keys = append(keys, k)
+	}
+	sort.Strings(keys)
+	for _, k := range keys {
+		n := raw[k]
+		o, ok := byName[k]
+		if !ok {
+			return fmt.Errorf("%s: line %d: unknown key %q", path, n.Line, k)
+		}
+		var v string
+		switch n.Kind {
+		case yaml.ScalarNode:
+			v = n.Value
+		case yaml.SequenceNode:
+			parts := make([]string, len(n.Content))
+			for i, e := range n.Content {
+				parts[i] = e.Value
+			}
+			v = strings.Join(parts, ",")
+		default:
+			return fmt.Errorf("%s: line %d: %s: want a value or a list", path, n.Line, k)
+		}
+		if err := o.set(c, v); err != nil {
+			return fmt.Errorf("%s: line %d: %s: %v", path, n.Line, k, err)
+		}
+	}
+	return nil
+}
+
+// marshal renders the resolved configuration as YAML.
+func (c Config) marshal() []byte {
+	var buf bytes.Buffer
+	buf.WriteString("# heedmap resolved configuration: defaults < --config file < flags\n")
+	enc := yaml.NewEncoder(&buf)
+	enc.SetIndent(2)
+	enc.Encode(c)
+	enc.Close()
+	return buf.Bytes()
+}
+
+// fingerprint identifies what changes results: the model bytes, the labels
+// file bytes and every setting except paths and execution options. It
+// enters every record key, so changing any of these redoes the work.
+func fingerprint(c Config, model []byte) string {
+	k := c
+	k.Model, k.Images, k.Masks, k.MaskSuffix, k.Out, k.Criteria = "", "", "", "", "", ""
+	k.Workers, k.Shard, k.Strict = 0, "", false
+	h := sha256.New()
+	ms := sha256.Sum256(model)
+	fmt.Fprintf(h, "model %x\n", ms)
+	if c.Labels != "" {
+		if data, err := os.ReadFile(c.Labels); err == nil {
+			ls := sha256.Sum256(data)
+			fmt.Fprintf(h, "labels %x\n", ls)
+		}
+	}
+	k.Labels = ""
+	h.Write(k.marshal())
+	return hex.EncodeToString(h.Sum(nil))
+}
+
+// printOptions writes grouped flag help.
+func printOptions(w io.Writer, opts []option, c Config) {
+	group := ""
+	for _, o := range opts {
+		if o.group != group {
+			group = o.group
+			fmt.Fprintf(w, "\n%s:\n", group)
+		}
+		name := "--" + o.name
+		if o.arg != "" {
+			name += " " + o.arg
+		}
+		def := ""
+		if d := o.get(&c); d != "" && d != "0" && d != "false" {
+			def = " (default " + d + ")"
+		}
+		fmt.Fprintf(w, "  %-28s %s%s\n", name, o.usage, def)
+	}
+}
+
+// registerOptions adds every option to fs as a recorder.
+func registerOptions(fs *flag.FlagSet, opts []option, got *[]kv) {
+	for _, o := range opts {
+		fs.Var(recorder{name: o.name, val: got, boolean: o.boolean}, o.name, o.usage)
+	}
+}

@@ -1,0 +1,273 @@
+package main
+
+import (
+	"bytes"
+	"context"
+	"fmt"
+	"os"
+	"os/exec"
+	"path/filepath"
+	"strings"
+	"syscall"
+	"testing"
+	"time"
+
+	"heedmap/synth"
+)
+
+func runCLI(t *testing.T, args ...string) (int, string, string) {
+	t.Helper()
+	var o, e bytes.Buffer
+	code := dispatch(context.Background(), args, &o, &e)
+	return code, o.String(), e.String()
+}
+
+func TestHelpForEveryCommand(t *testing.T) {
+	for _, c := range append(commands(), command{name: "help"}) {
+		args := []string{c.name, "--help"}
+		if c.name == "help" {
+			args = []string{"help"}
+		}
+		code, out, _ := runCLI(t, args...)
+		if code != 0 {
+			t.Errorf("%v: exit %d", args, code)
+		}
+		if !strings.Contains(out, "Example") || !strings.Contains(out, "Exit codes") {
+			t.Errorf("%v: help lacks an example or exit codes:\n%s", args, out)
+		}
+	}
+	_, out, _ := runCLI(t, "run", "--help")
+	for _, want := range append(methodNames, "--model", "--images", "--masks", "--out", "--methods", "--config", "--target", "--score",
+		"--save-maps", "--workers", "--shard", "--size", "--resize", "--mean", "--std", "--channels", "--patch", "--stride",
+		"--fill", "--baseline", "--steps", "--samples", "--layer", "--seed", "--dry-run", "--strict", "--mask-suffix",
+		"--criteria", "--labels", "stretch|crop|pad", "rgb|bgr", "logit|prob") {
+		if !strings.Contains(out, want) {
+			t.Errorf("run --help lacks %q", want)
+		}
+	}
+	if strings.Contains(out, "x-test-worker") {
+		t.Error("the hidden test flag is listed in run --help")
+	}
+	if code, _, _ := runCLI(t, "frobnicate"); code != exitUsage {
+		t.Errorf("unknown command exit %d", code)
+	}
+}
+
+func TestFlagsOverrideConfigFile(t *testing.T) {
+	dir := t.TempDir()
+	y := filepath.Join(dir, "run.yaml")
+	os.WriteFile(y, []byte("model: m.onnx\nimages: imgs\nout: o\nsize: 128\nworkers: 3\nmethods: [occlusion, grad-cam]\nmean: [0.5, 0.5, 0.5]\nstd: 0.25\n"), 0o644)
+	var e bytes.Buffer
+	cfg, _, code, done := parseRun([]string{"--config", y, "--size", "64", "--methods", "rise"}, &e, &e)
+	if done {
+		t.Fatalf("exit %d: %s", code, e.String())
+	}
+	if cfg.Size != 64 || cfg.Workers != 3 || strings.Join(cfg.Methods, ",") != "rise" || cfg.Std[2] != 0.25 || cfg.Mean[0] != 0.5 || cfg.Score != "logit" {
+		t.Errorf("resolved %+v", cfg)
+	}
+	os.WriteFile(y, []byte("model: m.onnx\nsizee: 3\n"), 0o644)
+	if _, _, code, done := parseRun([]string{"--config", y, "--images", "i", "--out", "o"}, &e, &e); !done || code != exitUsage || !strings.Contains(e.String(), `unknown key "sizee"`) {
+		t.Errorf("typo in config: exit %d, %s", code, e.String())
+	}
+	for _, bad := range [][]string{{"--methods", "saliency"}, {"--resize", "zoom"}, {"--mean", "1,2"}, {"--std", "0,1,1"}, {"--fill", "grey"}, {"--steps", "0"}} {
+		e.Reset()
+		args := append([]string{"--model", "m", "--images", "i", "--out", "o"}, bad...)
+		if _, _, code, done := parseRun(args, &e, &e); !done || code != exitUsage {
+			t.Errorf("%v accepted", bad)
+		}
+	}
+}
+
+// dataset writes n synthetic scenes plus a corrupt image and an id that the
+// test worker fails on, and returns the manifest path.
+func dataset(t *testing.T, dir string, n int) string {
+	t.Helper()
+	if err := synth.WriteDataset(dir, n, synth.Options{Size: 24, Seed: 9}); err != nil {
+		t.Fatal(err)
+	}
+	os.WriteFile(filepath.Join(dir, "images", "broken.png"), []byte("\x89PNG truncated"), 0o644)
+	f, _ := os.OpenFile(filepath.Join(dir, "manifest.csv"), os.O_APPEND|os.O_WRONLY, 0)
+	fmt.Fprintln(f, "broken,images/broken.png,,0,,,,,")
+	fmt.Fprintln(f, "will-fail,images/syn00000.png,masks/syn00000.png,1,,,,,")
+	fmt.Fprintln(f, "../../escape,images/syn00001.png,,1,,,,,")
+	f.Close()
+	return filepath.Join(dir, "manifest.csv")
+}
+
+func TestRunWithTestWorker(t *testing.T) {
+	dir := t.TempDir()
+	man := dataset(t, filepath.Join(dir, "data"), 6)
+	out := filepath.Join(dir, "out")
+	code, _, errText := runCLI(t, "run", "--x-test-worker", "0s", "--images", man, "--out", out, "--dry-run")
+	if code != 0 || !strings.Contains(errText, "9 images found") || !strings.Contains(errText, "1 invalid") {
+		t.Fatalf("dry run: exit %d\n%s", code, errText)
+	}
+	if _, err := os.Stat(out); !os.IsNotExist(err) {
+		t.Fatal("dry run wrote the output folder")
+	}
+	code, _, errText = runCLI(t, "run", "--x-test-worker", "0s", "--images", man, "--out", out, "--workers", "2", "--size", "48")
+	if code != 0 {
+		t.Fatalf("exit %d\n%s", code, errText)
+	}
+	cfg, err := os.ReadFile(filepath.Join(out, "config.yaml"))
+	if err != nil || !strings.Contains(string(cfg), "size: 48") || !strings.Contains(string(cfg), "workers: 2") {
+		t.Errorf("resolved config not written: %s %v", cfg, err)
+	}
+	rows, _ := os.ReadFile(filepath.Join(out, "metrics.csv"))
+	for _, want := range []string{"broken,error,0", "broken.png: not a readable PNG", "will-fail,error,1", "deliberate test failure", "../../escape,ok,1", "syn00005,ok"} {
+		if !strings.Contains(string(rows), want) {
+			t.Errorf("metrics.csv lacks %q:\n%s", want, rows)
+		}
+	}
+	if code, _, _ := runCLI(t, "run", "--x-test-worker", "0s", "--images", man, "--out", out, "--strict"); code != exitFailed {
+		t.Errorf("--strict with failures: exit %d, want 1", code)
+	}
+	// Nothing succeeding is exit 1.
+	only := filepath.Join(dir, "bad.csv")
+	os.WriteFile(only, []byte("id,image\nx,data/images/broken.png\n"), 0o644)
+	if code, _, e := runCLI(t, "run", "--x-test-worker", "0s", "--images", only, "--out", filepath.Join(dir, "o2")); code != exitFailed {
+		t.Errorf("all bad: exit %d, want 1\n%s", code, e)
+	}
+	if code, _, _ := runCLI(t, "run", "--images", man, "--out", out); code != exitUsage {
+		t.Errorf("missing --model: exit %d", code)
+	}
+}
+
+func buildBinary(t *testing.T) string {
+	t.Helper()
+	bin := filepath.Join(t.TempDir(), "heedmap")
+	cmd := exec.Command("go", "build", "-o", bin, ".")
+	if out, err := cmd.CombinedOutput(); err != nil {
+		t.Fatalf("build: %v\n%s", err, out)
+	}
+	return bin
+}
+
+func countRecords(out string) int {
+	m, _ := filepath.Glob(filepath.Join(out, "records", "*.json"))
+	return len(m)
+}
+
+// Killing the process with SIGKILL at several points and rerunning must give
+// the same metrics.csv as one uninterrupted run; SIGINT must exit 130.
+func TestKill9AndResume(t *testing.T) {
+	if testing.Short() {
+		t.Skip("builds the binary")
+	}
+	bin := buildBinary(t)
+	dir := t.TempDir()
+	man := dataset(t, filepath.Join(dir, "data"), 40)
+	args := func(out, delay string) []string {
+		return []string{"run", "--x-test-worker", delay, "--images", man, "--out", out, "--workers", "2"}
+	}
+	ref := filepath.Join(dir, "ref")
+	if out, err := exec.Command(bin, args(ref, "0s")...).CombinedOutput(); err != nil {
+		t.Fatalf("reference run: %v\n%s", err, out)
+	}
+	want, _ := os.ReadFile(filepath.Join(ref, "metrics.csv"))
+
+	out := filepath.Join(dir, "out")
+	for _, at := range []int{0, 1, 9, 25, 41} {
+		cmd := exec.Command(bin, args(out, "25ms")...)
+		if err := cmd.Start(); err != nil {
+			t.Fatal(err)
+		}
+		deadline := time.Now().Add(20 * time.Second)
+		for countRecords(out) < at && time.Now().Before(deadline) {
+			time.Sleep(2 * time.Millisecond)
+		}
+		cmd.Process.Signal(syscall.SIGKILL)
+		cmd.Wait()
+		t.Logf("killed with %d records on disk", countRecords(out))
+	}
+	// Ctrl-C: clean stop with exit 130.
+	cmd := exec.Command(bin, args(out, "200ms")...)
+	cmd.Start()
+	time.Sleep(300 * time.Millisecond)
+	cmd.Process.Signal(os.Interrupt)
+	err := cmd.Wait()
+	if ee, ok := err.(*exec.ExitError); err != nil && (!ok || ee.ExitCode() != exitInterrupted) {
+		t.Errorf("SIGINT: %v, want exit %d", err, exitInterrupted)
+	}
+	if b, err := exec.Command(bin, args(out, "0s")...).CombinedOutput(); err != nil {
+		t.Fatalf("final run: %v\n%s", err, b)
+	}
+	got, _ := os.ReadFile(filepath.Join(out, "metrics.csv"))
+	if !bytes.Equal(got, want) {
+		t.Fatalf("metrics.csv after kills differs from the uninterrupted run:\n%s\n---\n%s", got, want)
+	}
+}
+
+// Three shards (one via --shard, two via Slurm and Kubernetes variables)
+// merged give the single run's metrics.csv.
+func TestShardsThroughEnvAndMerge(t *testing.T) {
+	if testing.Short() {
+		t.Skip("builds the binary")
+	}
+	bin := buildBinary(t)
+	dir := t.TempDir()
+	man := dataset(t, filepath.Join(dir, "data"), 15)
+	single := filepath.Join(dir, "single")
+	if b, err := exec.Command(bin, "run", "--x-test-worker", "0s", "--images", man, "--out", single).CombinedOutput(); err != nil {
+		t.Fatalf("%v\n%s", err, b)
+	}
+	envs := [][]string{
+		nil,
+		{"SLURM_ARRAY_TASK_ID=1", "SLURM_ARRAY_TASK_COUNT=3"},
+		{"JOB_COMPLETION_INDEX=2", "HEEDMAP_SHARD_COUNT=3"},
+	}
+	var shards []string
+	for i, env := range envs {
+		d := filepath.Join(dir, fmt.Sprintf("shard-%d", i))
+		a := []string{"run", "--x-test-worker", "0s", "--images", man, "--out", d}
+		if env == nil {
+			a = append(a, "--shard", "0/3")
+		}
+		cmd := exec.Command(bin, a...)
+		cmd.Env = append(os.Environ(), env...)
+		if b, err := cmd.CombinedOutput(); err != nil {
+			t.Fatalf("shard %d: %v\n%s", i, err, b)
+		}
+		shards = append(shards, d)
+	}
+	merged := filepath.Join(dir, "merged")
+	if b, err := exec.Command(bin, append([]string{"merge", "--out", merged}, shards...)...).CombinedOutput(); err != nil {
+		t.Fatalf("merge: %v\n%s", err, b)
+	}
+	a, _ := os.ReadFile(filepath.Join(single, "metrics.csv"))
+	b, _ := os.ReadFile(filepath.Join(merged, "metrics.csv"))
+	if len(a) == 0 || !bytes.Equal(a, b) {
+		t.Fatalf("merged metrics.csv differs:\n%s\n---\n%s", b, a)
+	}
+	err := exec.Command(bin, append([]string{"merge", "--out", filepath.Join(dir, "partial")}, shards[:2]...)...).Run()
+	if ee, ok := err.(*exec.ExitError); !ok || ee.ExitCode() != exitFailed {
+		t.Errorf("merge with a missing shard: %v, want exit 1", err)
+	}
+}
+
+func TestDemoModelMatchesTestdata(t *testing.T) {
+	td, err := os.ReadFile("../../testdata/demo/shortcut.onnx")
+	if err != nil {
+		t.Skip("testdata/demo/shortcut.onnx not present")
+	}
+	if !bytes.Equal(td, demoModel) {
+		t.Fatal("cmd/heedmap/demo_shortcut.onnx differs from testdata/demo/shortcut.onnx; rerun testdata/demo/train_demo.py")
+	}
+}
+
+func TestInspectDemoModel(t *testing.T) {
+	p := filepath.Join(t.TempDir(), "m.onnx")
+	os.WriteFile(p, demoModel, 0o644)
+	code, out, errText := runCLI(t, "inspect", p)
+	if code != 0 {
+		t.Fatalf("exit %d\n%s%s", code, out, errText)
+	}
+	for _, want := range []string{"input:      input float32 [N, 3, 64, 64]", "output:     logits float32 [N, 2]", "Conv×4", "grad-cam:"} {
+		if !strings.Contains(out, want) {
+			t.Errorf("inspect output lacks %q:\n%s", want, out)
+		}
+	}
+	if code, _, _ := runCLI(t, "inspect", filepath.Join(t.TempDir(), "none.onnx")); code != exitUsage {
+		t.Errorf("missing model: exit %d", code)
+	}
+}

@@ -1,0 +1,254 @@
+package main
+
+import (
+	"context"
+	"crypto/sha256"
+	"encoding/hex"
+	"errors"
+	"fmt"
+	"io"
+	"os"
+	"path/filepath"
+	"runtime"
+	"runtime/debug"
+	"strings"
+	"time"
+
+	"heedmap/batch"
+)
+
+const runHelpHead = `Usage: heedmap run --model M.onnx --images DIR|manifest.csv [--masks DIR] --out DIR [flags]
+
+Computes attribution maps for every image (occlusion, gradient,
+gradient-x-input, integrated-gradients, smoothgrad, grad-cam, rise), measures
+how much attribution falls inside the lesion mask and on annotated artefacts,
+and writes per-image records, overlays and OUT/metrics.csv. All input is
+validated before heavy work; a bad image gets an error record and the batch
+goes on. Each finished image is saved at once, so an interrupted or killed
+run resumes where it stopped when the same command is run again.
+
+Settings come from defaults, then --config FILE (YAML, keys are the flag
+names below, e.g. "size: 224" or "methods: [occlusion, grad-cam]"), then
+flags, which win. The resolved configuration is written to OUT/config.yaml.
+
+Examples:
+  heedmap run --model model.onnx --images imgs/ --masks masks/ --mask-suffix _segmentation --out results/
+  heedmap run --config run.yaml --images manifest.csv --out results/ --methods occlusion,grad-cam --workers 2
+  heedmap run --config run.yaml --out results/shard-3 --shard 3/16     # one of 16 cluster jobs
+  heedmap run --config run.yaml --out results/ --dry-run               # check inputs, show the plan
+`
+
+// runFlags are the flags of `run` that are not configuration.
+type runFlags struct {
+	config     string
+	dryRun     bool
+	testWorker string // hidden: see testworker.go
+}
+
+func cmdRun(ctx context.Context, args []string, stdout, stderr io.Writer) int {
+	cfg, rf, code, done := parseRun(args, stdout, stderr)
+	if done {
+		return code
+	}
+	return execute(ctx, cfg, rf, stdout, stderr)
+}
+
+// parseRun resolves the configuration: defaults < YAML < flags.
+func parseRun(args []string, stdout, stderr io.Writer) (Config, runFlags, int, bool) {
+	fs := newFlagSet("run", stderr)
+	opts := runOptions()
+	var got []kv
+	var rf runFlags
+	registerOptions(fs, opts, &got)
+	fs.StringVar(&rf.config, "config", "", "YAML configuration file")
+	fs.BoolVar(&rf.dryRun, "dry-run", false, "validate inputs, print the plan and problems, and stop")
+	fs.StringVar(&rf.testWorker, "x-test-worker", "", "")
+	help := func(w io.Writer) {
+		fmt.Fprint(w, runHelpHead)
+		printOptions(w, opts, defaultConfig())
+		fmt.Fprintf(w, "\nOther:\n  %-28s %s\n  %-28s %s\n\n", "--config FILE", "YAML configuration; flags override it", "--dry-run", "validate everything, print the plan and problems, stop")
+		fmt.Fprint(w, "Sharding: with --shard I/N, or inside a Slurm job array, or a Kubernetes\nIndexed Job (set HEEDMAP_SHARD_COUNT), each process takes the images whose\nid hashes to its shard; write each shard to its own --out and combine them\nwith 'heedmap merge'.\n\n")
+		fmt.Fprint(w, exitCodesHelp)
+	}
+	if code, stop := parse(fs, args, help, stdout, stderr); stop {
+		return Config{}, rf, code, true
+	}
+	if fs.NArg() > 0 {
+		fmt.Fprintf(stderr, "heedmap run: unexpected argument %q (flags go before it?)\n", fs.Arg(0))
+		return Config{}, rf, exitUsage, true
+	}
+	cfg := defaultConfig()
+	if rf.config != "" {
+		if err := loadYAML(rf.config, &cfg, opts); err != nil {
+			fmt.Fprintf(stderr, "heedmap run: config: %v\n", err)
+			return cfg, rf, exitUsage, true
+		}
+	}
+	byName := map[string]option{}
+	for _, o := range opts {
+		byName[o.name] = o
+	}
+	for _, f := range got {
+		if err := byName[f.name].set(&cfg, f.value); err != nil {
+			fmt.Fprintf(stderr, "heedmap run: --%s: %v\n", f.name, err)
+			return cfg, rf, exitUsage, true
+		}
+	}
+	var missing []string
+	if cfg.Model == "" && rf.testWorker == "" {
+		missing = append(missing, "--model")
+	}
+	if cfg.Images == "" {
+		missing = append(missing, "--images")
+	}
+	if cfg.Out == "" {
+		missing = append(missing, "--out")
+	}
+	if len(missing) > 0 {
+		fmt.Fprintf(stderr, "heedmap run: missing %s (in flags or --config); see 'heedmap run --help'\n", strings.Join(missing, ", "))
+		return cfg, rf, exitUsage, true
+	}
+	if (len(cfg.Mean) > 0) != (len(cfg.Std) > 0) {
+		fmt.Fprintln(stderr, "heedmap run: --mean and --std go together")
+		return cfg, rf, exitUsage, true
+	}
+	return cfg, rf, 0, false
+}
+
+// hashFile streams a file through SHA-256.
+func hashFile(path string) (string, error) {
+	f, err := os.Open(path)
+	if err != nil {
+		return "", err
+	}
+	defer f.Close()
+	h := sha256.New()
+	if _, err := io.Copy(h, f); err != nil {
+		return "", fmt.Errorf("%s: %w", path, err)
+	}
+	return hex.EncodeToString(h.Sum(nil)), nil
+}
+
+func execute(ctx context.Context, cfg Config, rf runFlags, stdout, stderr io.Writer) int {
+	shard, source, err := batch.ResolveShard(cfg.Shard, os.Getenv)
+	if err != nil {
+		fmt.Fprintf(stderr, "heedmap run: %v\n", err)
+		return exitUsage
+	}
+	cfg.Shard = ""
+	if shard.Count > 1 {
+		cfg.Shard = shard.String()
+	}
+	modelSum := "test-worker:" + rf.testWorker
+	if rf.testWorker == "" {
+		if modelSum, err = hashFile(cfg.Model); err != nil {
+			fmt.Fprintf(stderr, "heedmap run: model: %v\n", err)
+			return exitUsage
+		}
+	}
+	fp := fingerprint(cfg, []byte(modelSum))
+	workers := cfg.Workers
+	if workers <= 0 {
+		workers = runtime.NumCPU()
+	}
+
+	items, probs, err := batch.Discover(batch.Input{Images: cfg.Images, Masks: cfg.Masks, MaskSuffix: cfg.MaskSuffix})
+	if err != nil {
+		fmt.Fprintf(stderr, "heedmap run: %v\n", err)
+		return exitUsage
+	}
+	if len(items) == 0 {
+		fmt.Fprintf(stderr, "heedmap run: no images found in %s (PNG or JPEG)\n", cfg.Images)
+		batch.WriteProblems(stderr, probs, 20)
+		return exitUsage
+	}
+	plan, err := batch.Validate(ctx, items, probs, shard, fp, workers)
+	if err != nil {
+		fmt.Fprintf(stderr, "heedmap run: %v\n", err)
+		return exitInterrupted
+	}
+	batch.WriteProblems(stderr, plan.Problems, 20)
+	doneAlready := plan.Done(cfg.Out)
+	shardText := "all images"
+	if shard.Count > 1 {
+		shardText = fmt.Sprintf("shard %s (from %s)", shard, source)
+	}
+	fmt.Fprintf(stderr, "plan: %d images found, %s: %d valid, %d invalid; %d already done, %d to process with %d worker(s); methods %s\n",
+		plan.Discovered, shardText, len(plan.Items), len(plan.Invalid), doneAlready, len(plan.Items)-doneAlready, workers, strings.Join(cfg.Methods, ","))
+	if rf.dryRun {
+		fmt.Fprintf(stdout, "dry run: nothing written. Resolved configuration:\n%s", cfg.marshal())
+		if cfg.Strict && len(plan.Invalid) > 0 {
+			return exitFailed
+		}
+		return exitOK
+	}
+
+	var worker batch.Worker
+	var finish func(context.Context) error
+	if rf.testWorker != "" {
+		d, err := time.ParseDuration(rf.testWorker)
+		if err != nil {
+			fmt.Fprintf(stderr, "heedmap run: --x-test-worker: %v\n", err)
+			return exitUsage
+		}
+		worker = testWorker{delay: d}
+	} else {
+		p, err := newPipeline(cfg)
+		if err != nil {
+			fmt.Fprintf(stderr, "heedmap run: %v\n", err)
+			return exitUsage
+		}
+		worker, finish = p.worker, p.finish
+	}
+
+	if err := os.MkdirAll(cfg.Out, 0o755); err != nil {
+		fmt.Fprintf(stderr, "heedmap run: %v\n", err)
+		return exitUsage
+	}
+	if err := batch.WriteFileAtomic(filepath.Join(cfg.Out, "config.yaml"), cfg.marshal()); err != nil {
+		fmt.Fprintf(stderr, "heedmap run: %v\n", err)
+		return exitUsage
+	}
+	term := false
+	if f, ok := stderr.(*os.File); ok {
+		term = batch.IsTerminal(f)
+	}
+	r := &batch.Runner{Out: cfg.Out, Worker: worker, Workers: workers, Progress: stderr, Terminal: term}
+	sum, err := r.Run(ctx, plan)
+	fmt.Fprintf(stderr, "done: %d ok, %d failed (%d invalid), %d skipped as already done, %d pending; %s, %s\n",
+		sum.OK, sum.Failed, sum.Invalid, sum.Skipped, sum.Pending, sum.Elapsed, sum.Rate)
+	if err != nil {
+		if errors.Is(err, context.Canceled) || ctx.Err() != nil {
+			fmt.Fprintln(stderr, "interrupted: finished images are saved; run the same command again to resume")
+			return exitInterrupted
+		}
+		fmt.Fprintf(stderr, "heedmap run: %v\n", err)
+		return exitFailed
+	}
+	if finish != nil && sum.Complete {
+		if err := finish(ctx); err != nil {
+			fmt.Fprintf(stderr, "heedmap run: report: %v\n", err)
+			return exitFailed
+		}
+	}
+	fmt.Fprintf(stdout, "results in %s (metrics.csv, records/, items/)\n", cfg.Out)
+	switch {
+	case sum.OK == 0:
+		return exitFailed
+	case cfg.Strict && sum.Failed > 0:
+		return exitFailed
+	}
+	return exitOK
+}
+
+func goInfo() string {
+	s := runtime.Version() + ", " + runtime.GOOS + "/" + runtime.GOARCH
+	if bi, ok := debug.ReadBuildInfo(); ok {
+		for _, kv := range bi.Settings {
+			if kv.Key == "vcs.revision" && len(kv.Value) >= 12 {
+				s += ", commit " + kv.Value[:12]
+			}
+		}
+	}
+	return s
+}
