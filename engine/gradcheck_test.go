@@ -193,7 +193,7 @@ func gradCheck(op Op, in []*tensor.Tensor, o gradOpts) error {
 			// Divide by the step actually taken after float32 rounding.
 			num := (lp - lm) / (hi - lo)
 			ana := float64(g.F32[j])
-			if math.Abs(ana-num) > o.Atol+o.Rtol*math.Abs(num) || math.IsNaN(ana) {
+			if !(math.Abs(ana-num) <= o.Atol+o.Rtol*math.Abs(num)) { // NaN on either side fails
 				return fmt.Errorf("input %d element %d (x=%g): analytic %.6g, numeric %.6g", i, j, orig, ana, num)
 			}
 		}
