@@ -298,3 +298,40 @@ func ReadIndex(out string) (Index, error) {
 	}
 	return idx, nil
 }
+
+// Done counts the plan's items that already have a record in out (what a
+// run would skip).
+func (p *Plan) Done(out string) int {
+	n := 0
+	for _, it := range p.Items {
+		if _, ok := readRecord(out, it.Key); ok {
+			n++
+		}
+	}
+	return n
+}
+
+// WriteProblems prints problems to w, at most limit lines plus a count of
+// the rest, errors before warnings.
+func WriteProblems(w io.Writer, probs []Problem, limit int) {
+	var errs, warns []Problem
+	for _, p := range probs {
+		if p.Warning {
+			warns = append(warns, p)
+		} else {
+			errs = append(errs, p)
+		}
+	}
+	all := append(errs, warns...)
+	if len(all) == 0 {
+		return
+	}
+	fmt.Fprintf(w, "input problems: %d error(s), %d warning(s)\n", len(errs), len(warns))
+	for i, p := range all {
+		if i == limit {
+			fmt.Fprintf(w, "  ... and %d more (all are in the error records and metrics.csv)\n", len(all)-limit)
+			break
+		}
+		fmt.Fprintf(w, "  %s\n", p)
+	}
+}

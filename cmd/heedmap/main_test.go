@@ -271,3 +271,20 @@ func TestInspectDemoModel(t *testing.T) {
 		t.Errorf("missing model: exit %d", code)
 	}
 }
+
+func TestDemoWithTestWorker(t *testing.T) {
+	out := filepath.Join(t.TempDir(), "demo")
+	code, _, errText := runCLI(t, "demo", "--out", out, "--n", "5", "--x-test-worker", "0s")
+	if code != 0 {
+		t.Fatalf("exit %d\n%s", code, errText)
+	}
+	rows, _ := os.ReadFile(filepath.Join(out, "metrics.csv"))
+	if n := strings.Count(string(rows), ",ok,"); n != 5 {
+		t.Errorf("%d ok rows, want 5:\n%s", n, rows)
+	}
+	for _, f := range []string{"data/manifest.csv", "data/shortcut.onnx", "data/labels.txt", "config.yaml"} {
+		if _, err := os.Stat(filepath.Join(out, f)); err != nil {
+			t.Error(err)
+		}
+	}
+}
