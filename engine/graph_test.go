@@ -125,6 +125,9 @@ func TestConstantNodesAreFolded(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
+	if _, err := g.Run(context.Background(), map[string]*tensor.Tensor{"x": tensor.New(1, 3), "w": tensor.New(2, 3)}, RunOptions{}); err == nil || !strings.Contains(err.Error(), `"w" is an initializer`) {
+		t.Errorf("feeding a folded constant: %v", err)
+	}
 	// [1 0 -1]·[[1 2 3],[4 5 6]]ᵀ = [1−3, 4−6]
 	if y, _ := p.Value("y"); y.F32[0] != -2 || y.F32[1] != -2 {
 		t.Errorf("y = %v, want [-2 -2]", y.F32)

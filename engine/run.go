@@ -88,12 +88,6 @@ func (g *Graph) Run(ctx context.Context, inputs map[string]*tensor.Tensor, opt R
 	for i, v := range g.inputIdx {
 		set(v, inputs[g.inputs[i].Name])
 	}
-	// Initializers that are also declared graph inputs may be overridden.
-	for name, t := range inputs {
-		if v, ok := g.index[name]; ok && g.consts[v] != nil && t != nil {
-			set(v, t)
-		}
-	}
 	live := 0
 	in := make([]*tensor.Tensor, 0, 8)
 	for k, nd := range g.nodes {
@@ -204,10 +198,20 @@ func (g *Graph) checkInputs(inputs map[string]*tensor.Tensor) error {
 			}
 		}
 	}
+	isInput := map[string]bool{}
+	for _, vi := range g.inputs {
+		isInput[vi.Name] = true
+	}
 	for name := range inputs {
-		if _, ok := g.index[name]; !ok {
-			return fmt.Errorf("engine: graph has no input %q", name)
+		if isInput[name] {
+			continue
 		}
+		if _, ok := g.index[name]; ok {
+			// Overriding an initializer would leave the constants folded
+			// from it at compile time stale.
+			return fmt.Errorf("engine: %q is an initializer or intermediate value, not a graph input; it cannot be fed", name)
+		}
+		return fmt.Errorf("engine: graph has no input %q", name)
 	}
 	return nil
 }
