@@ -52,6 +52,9 @@ type unaryOp struct {
 	df            func(x, y float32) float32
 	i64           func(x int64) int64 // integer version, nil when float only
 	useIn, useOut bool
+	// vec, when set, is a whole-slice forward kernel for hot activations,
+	// avoiding an indirect call per element.
+	vec func(dst, src []float32)
 }
 
 func (u *unaryOp) Forward(in []*tensor.Tensor) ([]*tensor.Tensor, error) {
@@ -62,6 +65,10 @@ func (u *unaryOp) Forward(in []*tensor.Tensor) ([]*tensor.Tensor, error) {
 	switch {
 	case x.DType == tensor.Float32:
 		y := tensor.New(x.Shape...)
+		if u.vec != nil {
+			u.vec(y.F32, x.F32)
+			return []*tensor.Tensor{y}, nil
+		}
 		for i, v := range x.F32 {
 			y.F32[i] = u.f(v)
 		}
@@ -131,6 +138,12 @@ func buildRelu(n *onnx.Node, env *Env) (Op, error) {
 				return x
 			}
 			return 0
+		},
+		vec: func(dst, src []float32) {
+			dst = dst[:len(src)]
+			for i, v := range src {
+				dst[i] = max(v, 0)
+			}
 		},
 		useIn: true}, nil
 }
@@ -545,6 +558,19 @@ func (b *binaryOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor
 			gy = make([]float32, len(g.F32))
 		}
 		xv, gv, kind := x.F32, g.F32, b.kind
+		if kind == binMul {
+			// The common case (scaling, gating) without float64 round trips.
+			p.rows(func(o int, offs, steps []int, n int) {
+				ia, sa, ib, sb := offs[0], steps[0], offs[1], steps[1]
+				for i, gr := range gv[o : o+n] {
+					gx[o+i] = gr * yv[ib+i*sb]
+					if gy != nil {
+						gy[o+i] = gr * xv[ia+i*sa]
+					}
+				}
+			})
+			break
+		}
 		p.rows(func(o int, offs, steps []int, n int) {
 			for i := 0; i < n; i++ {
 				a, c, gr := float64(xv[offs[0]+i*steps[0]]), float64(yv[offs[1]+i*steps[1]]), float64(gv[o+i])
