@@ -78,6 +78,9 @@ func (w *meanWorker) Process(ctx context.Context, it Item, dst Dest) (Result, er
 		return Result{}, err
 	}
 	res.Files = []string{rel}
+	res.Detail = struct {
+		W, H int
+	}{b.Dx(), b.Dy()}
 	return res, nil
 }
 
@@ -282,6 +285,11 @@ func TestResumeSkipsFinishedWork(t *testing.T) {
 	if w.calls.Load() != 6 {
 		t.Fatalf("first run made %d calls", w.calls.Load())
 	}
+	for _, r := range Records(out, mustIndex(t, out)) {
+		if string(r.Detail) != `{"W":12,"H":10}` || len(r.Files) != 1 {
+			t.Fatalf("record %s: detail %s, files %v", r.ID, r.Detail, r.Files)
+		}
+	}
 	w2 := &meanWorker{}
 	s := run(t, out, plan(t, in, Shard{}), w2)
 	if w2.calls.Load() != 0 || s.Skipped != 6 {
@@ -371,7 +379,7 @@ func TestShardsPartitionAndMergeEqualsSingleRun(t *testing.T) {
 		}
 	}
 	merged := filepath.Join(dir, "merged")
-	rep, err := Merge(merged, shardDirs, "config.yaml")
+	rep, err := Merge(merged, shardDirs, MergeOptions{Extra: []string{"config.yaml"}})
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -390,7 +398,7 @@ func TestShardsPartitionAndMergeEqualsSingleRun(t *testing.T) {
 		t.Errorf("item files differ:\n%v\n%v", a, b)
 	}
 	// A missing shard is reported; mixing fingerprints is refused.
-	rep, err = Merge(filepath.Join(dir, "partial"), shardDirs[:2])
+	rep, err = Merge(filepath.Join(dir, "partial"), shardDirs[:2], MergeOptions{})
 	if err != nil || len(rep.Missing) != 1 || rep.Summary.Complete {
 		t.Errorf("partial merge: %+v, %v", rep, err)
 	}
@@ -398,7 +406,7 @@ func TestShardsPartitionAndMergeEqualsSingleRun(t *testing.T) {
 	items, probs, _ := Discover(in)
 	p, _ := Validate(context.Background(), items, probs, Shard{2, n}, "other-model", 1)
 	run(t, other, p, &meanWorker{})
-	if _, err := Merge(filepath.Join(dir, "bad"), []string{shardDirs[0], shardDirs[1], other}); err == nil {
+	if _, err := Merge(filepath.Join(dir, "bad"), []string{shardDirs[0], shardDirs[1], other}, MergeOptions{}); err == nil {
 		t.Error("merge of shards with different fingerprints accepted")
 	}
 }
@@ -514,4 +522,13 @@ func TestHostileIDsStayInsideOutput(t *testing.T) {
 	if !strings.Contains(rows, "../../etc/x,ok") {
 		t.Errorf("the id is kept verbatim in the results:\n%s", rows)
 	}
+}
+
+func mustIndex(t testing.TB, out string) Index {
+	t.Helper()
+	idx, err := ReadIndex(out)
+	if err != nil {
+		t.Fatal(err)
+	}
+	return idx
 }

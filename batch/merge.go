@@ -13,6 +13,13 @@ func sortIndex(e []IndexEntry) {
 	sort.Slice(e, func(i, j int) bool { return e[i].ID < e[j].ID })
 }
 
+// MergeOptions: Table is the per-image CSV name ("" = DefaultTable); Extra
+// names files (such as the resolved config) copied from the first shard.
+type MergeOptions struct {
+	Table string
+	Extra []string
+}
+
 // MergeReport says what Merge found.
 type MergeReport struct {
 	Summary Summary
@@ -23,10 +30,9 @@ type MergeReport struct {
 // Merge combines shard output folders into out: it checks that the shards
 // share a fingerprint and a shard count, copies every indexed record and
 // each record's item folder, writes an index covering all shards and
-// rebuilds metrics.csv and summary.json. Files named by extra (such as the
-// resolved config) are copied from the first shard. A missing shard is
+// rebuilds the per-image table and summary.json. A missing shard is
 // reported, not fatal; a mismatched one is an error.
-func Merge(out string, shardDirs []string, extra ...string) (MergeReport, error) {
+func Merge(out string, shardDirs []string, opt MergeOptions) (MergeReport, error) {
 	var rep MergeReport
 	if len(shardDirs) == 0 {
 		return rep, fmt.Errorf("merge: no shard folders given")
@@ -79,7 +85,7 @@ func Merge(out string, shardDirs []string, extra ...string) (MergeReport, error)
 			rep.Missing = append(rep.Missing, fmt.Sprintf("%d/%d", i, count))
 		}
 	}
-	for _, name := range extra {
+	for _, name := range opt.Extra {
 		if filepath.IsLocal(name) {
 			copyFile(filepath.Join(shardDirs[0], name), filepath.Join(out, name)) // optional files
 		}
@@ -88,7 +94,7 @@ func Merge(out string, shardDirs []string, extra ...string) (MergeReport, error)
 	if err := writeJSON(filepath.Join(out, "index.json"), merged); err != nil {
 		return rep, err
 	}
-	sum, err := Finish(out, merged)
+	sum, err := Finish(out, merged, opt.Table)
 	if err != nil {
 		return rep, err
 	}

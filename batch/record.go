@@ -33,6 +33,9 @@ type Record struct {
 	// Files lists outputs written for the image, relative to OUT, with
 	// forward slashes.
 	Files []string `json:"files,omitempty"`
+	// Detail is the worker's own structured result (for example full
+	// measurements for a report), stored verbatim.
+	Detail json.RawMessage `json:"detail,omitempty"`
 }
 
 // Record statuses.
@@ -45,7 +48,11 @@ const (
 type Result struct {
 	Info    map[string]string
 	Metrics map[string]float64
-	Files   []string // relative to OUT; Dest.Rel makes them
+	Files   []string // relative to OUT; Dest.Path makes them
+	// Detail, if not nil, is marshalled to JSON into Record.Detail. It must
+	// marshal deterministically (no maps of floats keyed by time...) for
+	// reruns to give identical records.
+	Detail any
 }
 
 // SafeName turns an id into a single path element that cannot escape a

@@ -59,6 +59,20 @@ type Runner struct {
 	Progress io.Writer
 	Terminal bool
 	Interval time.Duration
+	// Table is the name of the per-image CSV written under Out; "" means
+	// DefaultTable. A caller that writes its own metrics.csv (a report)
+	// picks another name.
+	Table string
+}
+
+// DefaultTable is the per-image CSV's default name.
+const DefaultTable = "metrics.csv"
+
+func tableName(t string) string {
+	if t == "" {
+		return DefaultTable
+	}
+	return t
 }
 
 // Summary counts a run's outcome.
@@ -193,7 +207,7 @@ feed:
 		runErr = firstErr // a record could not be written: disk trouble
 	}
 
-	sum, err := Finish(r.Out, idx)
+	sum, err := Finish(r.Out, idx, r.Table)
 	if err != nil && runErr == nil {
 		runErr = err
 	}
@@ -238,6 +252,15 @@ func (r *Runner) one(ctx context.Context, it Item) (Record, error) {
 		rec.Status, rec.Error = StatusError, err.Error()
 	} else {
 		rec.Status, rec.Info, rec.Metrics, rec.Files = StatusOK, res.Info, res.Metrics, res.Files
+		if res.Detail != nil {
+			d, err := json.Marshal(res.Detail)
+			if err != nil {
+				rec.Status, rec.Error = StatusError, fmt.Sprintf("%s: result detail: %v", it.Image, err)
+				rec.Info, rec.Metrics, rec.Files = nil, nil, nil
+			} else {
+				rec.Detail = d
+			}
+		}
 	}
 	if err := writeRecord(r.Out, rec); err != nil {
 		return Record{}, fmt.Errorf("record for %s: %w", it.ID, err)
@@ -256,9 +279,10 @@ func safeProcess(ctx context.Context, w Worker, it Item, d Dest) (res Result, er
 	return w.Process(ctx, it, d)
 }
 
-// Finish rebuilds metrics.csv from the records listed in idx and returns
-// the counts. Items without a record count as pending.
-func Finish(out string, idx Index) (Summary, error) {
+// Finish rebuilds the per-image table (named table, "" for DefaultTable)
+// from the records listed in idx and returns the counts. Items without a
+// record count as pending.
+func Finish(out string, idx Index, table string) (Summary, error) {
 	var recs []Record
 	s := Summary{Planned: len(idx.Items)}
 	for _, e := range idx.Items {
@@ -275,7 +299,7 @@ func Finish(out string, idx Index) (Summary, error) {
 		recs = append(recs, rec)
 	}
 	s.Complete = s.Pending == 0
-	return s, WriteFileAtomic(filepath.Join(out, "metrics.csv"), MetricsCSV(recs))
+	return s, WriteFileAtomic(filepath.Join(out, tableName(table)), MetricsCSV(recs))
 }
 
 func writeJSON(path string, v any) error {
@@ -284,6 +308,18 @@ func writeJSON(path string, v any) error {
 		return err
 	}
 	return WriteFileAtomic(path, append(data, '\n'))
+}
+
+// Records returns the records listed in idx that exist in out, in index
+// order (by id).
+func Records(out string, idx Index) []Record {
+	var recs []Record
+	for _, e := range idx.Items {
+		if r, ok := readRecord(out, e.Key); ok {
+			recs = append(recs, r)
+		}
+	}
+	return recs
 }
 
 // ReadIndex reads OUT/index.json.

@@ -39,7 +39,7 @@ Exit codes:
 		fmt.Fprintln(stderr, "heedmap merge: need --out DIR and at least one shard folder; see 'heedmap merge --help'")
 		return exitUsage
 	}
-	rep, err := batch.Merge(*out, fs.Args(), "config.yaml")
+	rep, err := batch.Merge(*out, fs.Args(), batch.MergeOptions{Extra: []string{"config.yaml"}})
 	if err != nil {
 		fmt.Fprintf(stderr, "heedmap merge: %v\n", err)
 		return exitUsage
