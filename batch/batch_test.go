@@ -3,6 +3,7 @@ package batch
 import (
 	"bytes"
 	"context"
+	"encoding/json"
 	"errors"
 	"fmt"
 	"image"
@@ -286,7 +287,9 @@ func TestResumeSkipsFinishedWork(t *testing.T) {
 		t.Fatalf("first run made %d calls", w.calls.Load())
 	}
 	for _, r := range Records(out, mustIndex(t, out)) {
-		if string(r.Detail) != `{"W":12,"H":10}` || len(r.Files) != 1 {
+		var c bytes.Buffer
+		json.Compact(&c, r.Detail)
+		if c.String() != `{"W":12,"H":10}` || len(r.Files) != 1 {
 			t.Fatalf("record %s: detail %s, files %v", r.ID, r.Detail, r.Files)
 		}
 	}
