@@ -92,7 +92,123 @@ func shAxisTake(src []int, axes [][]int) []int {
 	return cur
 }
 
-// shTake gathers x at offsets idx into a new tensor of the given shape;
+// shAxisPlan describes an output whose element at index (i_0, …, i_k)
+// reads source offset Σ_d offs[d][i_d], or a fill value when any of those
+// terms is negative. Slice, Pad and Transpose are all of this form; walking
+// it row by row needs memory per axis, not per element.
+type shAxisPlan struct {
+	shape []int
+	offs  [][]int
+}
+
+// newShAxisPlan turns per-axis source indices (−1: outside) into offsets.
+func newShAxisPlan(src []int, lists [][]int) *shAxisPlan {
+	st := shStrides(src)
+	p := &shAxisPlan{shape: make([]int, len(lists)), offs: make([][]int, len(lists))}
+	for d, list := range lists {
+		p.shape[d] = len(list)
+		o := make([]int, len(list))
+		for i, a := range list {
+			if a < 0 {
+				o[i] = -1
+			} else {
+				o[i] = a * st[d]
+			}
+		}
+		p.offs[d] = o
+	}
+	return p
+}
+
+// rows calls fn for each output row along the last axis: o is the row's
+// output offset, base the summed offset of the outer axes (negative when
+// the whole row is fill) and last the last axis's offsets.
+func (p *shAxisPlan) rows(fn func(o, base int, last []int)) {
+	rank := len(p.shape)
+	if rank == 0 {
+		fn(0, 0, []int{0})
+		return
+	}
+	if tensor.Numel(p.shape) == 0 {
+		return
+	}
+	last := p.offs[rank-1]
+	idx := make([]int, rank-1)
+	for o := 0; ; o += len(last) {
+		base := 0
+		for d, i := range idx {
+			v := p.offs[d][i]
+			if v < 0 || base < 0 {
+				base = -1
+			} else {
+				base += v
+			}
+		}
+		fn(o, base, last)
+		d := rank - 2
+		for ; d >= 0; d-- {
+			idx[d]++
+			if idx[d] < p.shape[d] {
+				break
+			}
+			idx[d] = 0
+		}
+		if d < 0 {
+			return
+		}
+	}
+}
+
+// gather materialises the plan over x; fill (fillI for integer data) goes
+// where the plan points outside x.
+func (p *shAxisPlan) gather(x *tensor.Tensor, fill float32, fillI int64) *tensor.Tensor {
+	y := shNewLike(x, p.shape)
+	if x.DType == tensor.Float32 {
+		src, dst := x.F32, y.F32
+		p.rows(func(o, base int, last []int) {
+			d := dst[o : o+len(last)]
+			for i, lo := range last {
+				if base < 0 || lo < 0 {
+					d[i] = fill
+				} else {
+					d[i] = src[base+lo]
+				}
+			}
+		})
+		return y
+	}
+	src, dst := x.I64, y.I64
+	p.rows(func(o, base int, last []int) {
+		d := dst[o : o+len(last)]
+		for i, lo := range last {
+			if base < 0 || lo < 0 {
+				d[i] = fillI
+			} else {
+				d[i] = src[base+lo]
+			}
+		}
+	})
+	return y
+}
+
+// scatterAdd is the adjoint of gather: g (of the plan's shape) is added
+// into a zero tensor of shape src; fill positions are dropped.
+func (p *shAxisPlan) scatterAdd(g []float32, src []int) *tensor.Tensor {
+	gx := tensor.New(src...)
+	p.rows(func(o, base int, last []int) {
+		if base < 0 {
+			return
+		}
+		for i, lo := range last {
+			if lo >= 0 {
+				gx.F32[base+lo] += g[o+i]
+			}
+		}
+	})
+	return gx
+}
+
+// shTake gathers x at flat offsets idx into a new tensor of the given shape;
 // offset −1 takes fill (fillI for integer tensors).
 func shTake(x *tensor.Tensor, shape []int, idx []int, fill float32, fillI int64) *tensor.Tensor {
 	if x.DType == tensor.Float32 {
@@ -499,11 +615,11 @@ func (s *sliceOp) Forward(in []*tensor.Tensor) ([]*tensor.Tensor, error) {
 	if err := shNeed(in, 1, "Slice"); err != nil {
 		return nil, err
 	}
-	shape, lists, err := s.plan(in)
+	_, lists, err := s.plan(in)
 	if err != nil {
 		return nil, err
 	}
-	return []*tensor.Tensor{shTake(in[0], shape, shAxisTake(in[0].Shape, lists), 0, 0)}, nil
+	return []*tensor.Tensor{newShAxisPlan(in[0].Shape, lists).gather(in[0], 0, 0)}, nil
 }
 
 func (s *sliceOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor, error) {
@@ -516,7 +632,7 @@ func (s *sliceOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor,
 	if err != nil {
 		return nil, err
 	}
-	grads[0] = shScatterAdd(g.F32, shAxisTake(in[0].Shape, lists), in[0].Shape)
+	grads[0] = newShAxisPlan(in[0].Shape, lists).scatterAdd(g.F32, in[0].Shape)
 	return grads, nil
 }
 
@@ -645,33 +761,19 @@ func (t *transposeOp) permFor(rank int) ([]int, error) {
 	return perm, nil
 }
 
-// shTransposeIndex lists, for each element of the transposed output, its
-// offset in the source of shape src.
-func shTransposeIndex(src []int, perm []int) ([]int, []int) {
+// shTransposePlan is the gather plan of a transpose: output axis i walks
+// source axis perm[i] with that axis's stride.
+func shTransposePlan(src []int, perm []int) *shAxisPlan {
 	st := shStrides(src)
-	shape := make([]int, len(perm))
-	pst := make([]int, len(perm))
-	lists := make([][]int, len(perm))
-	for i, p := range perm {
-		shape[i] = src[p]
-		pst[i] = st[p]
-		lists[i] = make([]int, src[p])
-		for j := range lists[i] {
-			lists[i][j] = j * pst[i]
+	p := &shAxisPlan{shape: make([]int, len(perm)), offs: make([][]int, len(perm))}
+	for i, a := range perm {
+		p.shape[i] = src[a]
+		p.offs[i] = make([]int, src[a])
+		for j := range p.offs[i] {
+			p.offs[i][j] = j * st[a]
 		}
 	}
-	// Like shAxisTake, but each list already holds source offsets.
-	idx := []int{0}
-	for d := range lists {
-		next := make([]int, 0, len(idx)*len(lists[d]))
-		for _, b := range idx {
-			for _, a := range lists[d] {
-				next = append(next, b+a)
-			}
-		}
-		idx = next
-	}
-	return shape, idx
+	return p
 }
 
 func (t *transposeOp) Forward(in []*tensor.Tensor) ([]*tensor.Tensor, error) {
@@ -682,8 +784,7 @@ func (t *transposeOp) Forward(in []*tensor.Tensor) ([]*tensor.Tensor, error) {
 	if err != nil {
 		return nil, err
 	}
-	shape, idx := shTransposeIndex(in[0].Shape, perm)
-	return []*tensor.Tensor{shTake(in[0], shape, idx, 0, 0)}, nil
+	return []*tensor.Tensor{shTransposePlan(in[0].Shape, perm).gather(in[0], 0, 0)}, nil
 }
 
 func (t *transposeOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor, error) {
@@ -695,8 +796,7 @@ func (t *transposeOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Ten
 	if err != nil {
 		return nil, err
 	}
-	_, idx := shTransposeIndex(in[0].Shape, perm)
-	return []*tensor.Tensor{shScatterAdd(g.F32, idx, in[0].Shape)}, nil
+	return []*tensor.Tensor{shTransposePlan(in[0].Shape, perm).scatterAdd(g.F32, in[0].Shape)}, nil
 }
 
 func (t *transposeOp) BackwardNeeds() (in, out []int) { return nil, nil }
@@ -944,11 +1044,11 @@ func (p *padOp) Forward(in []*tensor.Tensor) ([]*tensor.Tensor, error) {
 	if err := shNeed(in, 1, "Pad"); err != nil {
 		return nil, err
 	}
-	shape, lists, v, vi, err := p.plan(in)
+	_, lists, v, vi, err := p.plan(in)
 	if err != nil {
 		return nil, err
 	}
-	return []*tensor.Tensor{shTake(in[0], shape, shAxisTake(in[0].Shape, lists), v, vi)}, nil
+	return []*tensor.Tensor{newShAxisPlan(in[0].Shape, lists).gather(in[0], v, vi)}, nil
 }
 
 // Backward scatters the gradient back: for edge and reflect several output
@@ -963,17 +1063,19 @@ func (p *padOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor, e
 	if err != nil {
 		return nil, err
 	}
-	idx := shAxisTake(in[0].Shape, lists)
-	grads[0] = shScatterAdd(g.F32, idx, in[0].Shape)
+	plan := newShAxisPlan(in[0].Shape, lists)
+	grads[0] = plan.scatterAdd(g.F32, in[0].Shape)
 	if c := shOptional(in, 2); c != nil && c.DType == tensor.Float32 && !p.attrs {
 		// The constant value fills every padded position.
 		var s float64
 		if p.mode == padConstant {
-			for o, src := range idx {
-				if src < 0 {
-					s += float64(g.F32[o])
+			plan.rows(func(o, base int, last []int) {
+				for i, lo := range last {
+					if base < 0 || lo < 0 {
+						s += float64(g.F32[o+i])
+					}
 				}
-			}
+			})
 		}
 		gc := tensor.New(c.Shape...)
 		if len(gc.F32) > 0 {
