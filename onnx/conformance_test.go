@@ -157,3 +157,28 @@ func matchDecl(tt *tensor.Tensor, vi onnx.ValueInfo) error {
 	}
 	return nil
 }
+
+// TestInitializerInputs: older exporters (the pytorch-converted conformance
+// models) list every weight as a graph input too. Those stay in Inputs but
+// FeedInputs leaves only what a caller feeds, as the test_data_set files do.
+func TestInitializerInputs(t *testing.T) {
+	conformanceModels(t)
+	m, err := onnx.Load(filepath.Join(testdataRoot, "pytorch-converted/test_Conv2d/model.onnx"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	g := m.Graph
+	feeds := g.FeedInputs()
+	if len(g.Inputs) <= len(feeds) || len(feeds) != 1 {
+		t.Fatalf("inputs %d, feed inputs %d; want weights listed as inputs and one image input", len(g.Inputs), len(feeds))
+	}
+	for _, in := range g.Inputs {
+		if g.IsInitializer(in.Name) == (in.Name == feeds[0].Name) {
+			t.Errorf("input %q: IsInitializer = %v", in.Name, g.IsInitializer(in.Name))
+		}
+	}
+	sets, _ := filepath.Glob(filepath.Join(testdataRoot, "pytorch-converted/test_Conv2d/test_data_set_0/input_*.pb"))
+	if len(sets) != len(feeds) {
+		t.Errorf("%d input files for %d feed inputs", len(sets), len(feeds))
+	}
+}
