@@ -135,7 +135,11 @@ func (p *Pass) Backward(ctx context.Context, seeds map[string]*tensor.Tensor, wr
 				out[i] = &tensor.Tensor{DType: p.dtypes[v], Shape: p.shapes[v]}
 			}
 		}
-		gin, err := d.Backward(in, out, gradOut)
+		need := make([]bool, len(nd.in))
+		for i, v := range nd.in {
+			need[i] = v >= 0 && upstream[v]
+		}
+		gin, err := safeBackward(nd.op, d, in, out, gradOut, need)
 		if err != nil {
 			return nil, fmt.Errorf("engine: Backward: %s: %w", nd.label(), err)
 		}
@@ -194,4 +198,18 @@ func shapeEq(a, b []int) bool {
 		}
 	}
 	return true
+}
+
+// safeBackward calls the op's selective backward when it has one, turning
+// a panic into an error like safeForward.
+func safeBackward(op Op, d Differentiable, in, out, gradOut []*tensor.Tensor, need []bool) (gin []*tensor.Tensor, err error) {
+	defer func() {
+		if r := recover(); r != nil {
+			gin, err = nil, fmt.Errorf("operator backward panicked: %v", r)
+		}
+	}()
+	if sb, ok := op.(SelectiveBackward); ok {
+		return sb.BackwardFor(in, out, gradOut, need)
+	}
+	return d.Backward(in, out, gradOut)
 }

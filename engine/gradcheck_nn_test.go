@@ -16,13 +16,25 @@ import (
 // in a real model, including which forward values the plan retains); int64
 // inputs become initializers. A nil input is an omitted optional input.
 type nnCase struct {
-	name   string
-	op     string
-	attrs  map[string]*onnx.Attr
-	opset  int64
-	in     []*tensor.Tensor
-	nOut   int // node outputs (only the first is seeded); 0 means 1
-	skipIn []int
+	name  string
+	op    string
+	attrs map[string]*onnx.Attr
+	opset int64
+	in    []*tensor.Tensor
+	nOut  int // node outputs (only the first is seeded); 0 means 1
+	// constIn lists float inputs given as initializers (weights, as in a
+	// real model): no gradient is asked for them, which exercises the
+	// SelectiveBackward paths and the reduced retention they allow.
+	constIn []int
+}
+
+func (c nnCase) isConst(i int) bool {
+	for _, j := range c.constIn {
+		if i == j {
+			return true
+		}
+	}
+	return false
 }
 
 func nnModel(c nnCase) *onnx.Model {
@@ -33,7 +45,7 @@ func nnModel(c nnCase) *onnx.Model {
 		switch {
 		case t == nil:
 			name = ""
-		case t.DType == tensor.Float32:
+		case t.DType == tensor.Float32 && !c.isConst(i):
 			g.Inputs = append(g.Inputs, onnx.ValueInfo{Name: name, DType: tensor.Float32})
 		default:
 			g.Initializers[name] = t
@@ -77,17 +89,11 @@ func nnGradCheck(t *testing.T, c nnCase) {
 	}
 	inputs := map[string]*tensor.Tensor{}
 	var wrt []string
-	skip := map[int]bool{}
-	for _, i := range c.skipIn {
-		skip[i] = true
-	}
 	for i, x := range c.in {
-		if x != nil && x.DType == tensor.Float32 {
+		if x != nil && x.DType == tensor.Float32 && !c.isConst(i) {
 			name := fmt.Sprintf("x%d", i)
 			inputs[name] = x
-			if !skip[i] {
-				wrt = append(wrt, name)
-			}
+			wrt = append(wrt, name)
 		}
 	}
 	ctx := context.Background()
@@ -200,6 +206,18 @@ func TestGradCheckNN(t *testing.T) {
 			in: []*tensor.Tensor{nnRand(rng, 1, 2, 5, 6), nnRand(rng, 3, 2, 4, 3)}},
 		{name: "conv_1d", op: "Conv", attrs: nnAttrs(nnInts("pads", 2, 1), nnInts("dilations", 2)),
 			in: []*tensor.Tensor{nnRand(rng, 2, 3, 7), nnRand(rng, 2, 3, 3), nnRand(rng, 2)}},
+		{name: "conv_const_weights", op: "Conv", attrs: nnAttrs(nnInts("pads", 0, 1, 1, 0), nnInts("strides", 1, 2)), constIn: []int{1, 2},
+			in: []*tensor.Tensor{nnRand(rng, 2, 3, 5, 5), nnRand(rng, 4, 3, 2, 3), nnRand(rng, 4)}},
+		{name: "conv_depthwise_const_weights", op: "Conv", attrs: nnAttrs(nnInt("group", 2), nnInts("pads", 1, 1, 1, 1)), constIn: []int{1},
+			in: []*tensor.Tensor{nnRand(rng, 1, 2, 4, 4), nnRand(rng, 2, 1, 3, 3)}},
+		{name: "conv_only_weights", op: "Conv", constIn: []int{0},
+			in: []*tensor.Tensor{nnRand(rng, 1, 2, 4, 4), nnRand(rng, 3, 2, 3, 3), nnRand(rng, 3)}},
+		{name: "gemm_const_weights", op: "Gemm", attrs: nnAttrs(nnInt("transB", 1)), constIn: []int{1, 2},
+			in: []*tensor.Tensor{nnRand(rng, 2, 4), nnRand(rng, 3, 4), nnRand(rng, 3)}},
+		{name: "matmul_const_left", op: "MatMul", constIn: []int{0},
+			in: []*tensor.Tensor{nnRand(rng, 3, 4), nnRand(rng, 2, 4, 2)}},
+		{name: "batchnorm_const_params", op: "BatchNormalization", constIn: []int{1, 2, 3, 4},
+			in: []*tensor.Tensor{nnRand(rng, 2, 3, 2, 2), nnRand(rng, 3), nnRand(rng, 3), nnRand(rng, 3), nnPos(rng, 3)}},
 		{name: "gemm_plain_vector_bias", op: "Gemm",
 			in: []*tensor.Tensor{nnRand(rng, 3, 4), nnRand(rng, 4, 5), nnRand(rng, 5)}},
 		{name: "gemm_transA_alpha_beta_matrix", op: "Gemm", attrs: nnAttrs(nnInt("transA", 1), nnFloat("alpha", 0.5), nnFloat("beta", 2)),

@@ -178,7 +178,7 @@ func Compile(m *onnx.Model, opts ...Option) (*Graph, error) {
 					in[i] = g.consts[v]
 				}
 			}
-			out, err := nd.op.Forward(in)
+			out, err := safeForward(nd.op, in)
 			if err != nil {
 				return nil, fmt.Errorf("engine: folding constant %s: %w", nd.label(), err)
 			}
@@ -211,7 +211,7 @@ func Compile(m *onnx.Model, opts ...Option) (*Graph, error) {
 		if folded != nil {
 			continue
 		}
-		nd.needIn, nd.needOut = backwardNeeds(nd)
+		nd.needIn, nd.needOut = backwardNeeds(nd, g.varying)
 		g.nodes = append(g.nodes, nd)
 	}
 
@@ -249,13 +249,21 @@ func countNonEmpty(names []string) int {
 	return n
 }
 
-func backwardNeeds(nd *node) (in, out []bool) {
+func backwardNeeds(nd *node, varying []bool) (in, out []bool) {
 	in, out = make([]bool, len(nd.in)), make([]bool, len(nd.out))
 	if _, ok := nd.op.(Differentiable); !ok {
 		return in, out
 	}
-	bn, ok := nd.op.(BackwardNeeder)
-	if !ok {
+	var ii, oo []int
+	if sb, ok := nd.op.(SelectiveBackward); ok {
+		need := make([]bool, len(nd.in))
+		for i, v := range nd.in {
+			need[i] = v >= 0 && varying[v]
+		}
+		ii, oo = sb.BackwardNeedsFor(need)
+	} else if bn, ok := nd.op.(BackwardNeeder); ok {
+		ii, oo = bn.BackwardNeeds()
+	} else {
 		for i := range in {
 			in[i] = true
 		}
@@ -264,7 +272,6 @@ func backwardNeeds(nd *node) (in, out []bool) {
 		}
 		return in, out
 	}
-	ii, oo := bn.BackwardNeeds()
 	for _, i := range ii {
 		if i >= 0 && i < len(in) {
 			in[i] = true

@@ -234,26 +234,51 @@ func TestPlanFreesActivations(t *testing.T) {
 }
 
 func TestPlanBackwardKeepsOnlyWhatIsNeeded(t *testing.T) {
-	// Flatten's backward needs only shapes; Gemm needs its operands. So of
-	// f (Flatten output) and y (Gemm output) only f is retained.
+	// Flatten's backward needs only shapes; Gemm's dW reads its input f and
+	// its df reads W. With W an initializer no gradient flows to it, so f
+	// need not be kept; with W a graph input f must be kept. The Gemm
+	// output y is read by no backward in either case.
 	w := tensor.FromFloat32([]float32{1, 2, 3, 4, 5, 6}, 3, 2)
-	m := nnGraphModel([]onnx.ValueInfo{nnIn("x", 1, 3, 1)}, []string{"z"}, map[string]*tensor.Tensor{"w": w},
+	nodes := []*onnx.Node{
 		nnNode("f", "Flatten", []string{"x"}, []string{"f"}),
 		nnNode("mm", "Gemm", []string{"f", "w"}, []string{"y"}),
-		nnNode("id", "Flatten", []string{"y"}, []string{"z"}))
-	g, err := Compile(m)
-	if err != nil {
-		t.Fatal(err)
+		nnNode("id", "Flatten", []string{"y"}, []string{"z"}),
 	}
-	p, err := g.Run(context.Background(), map[string]*tensor.Tensor{"x": tensor.New(1, 3, 1)}, RunOptions{Backward: true})
-	if err != nil {
-		t.Fatal(err)
-	}
-	if _, ok := p.Value("f"); !ok {
-		t.Error("Gemm operand f freed before Backward")
-	}
-	if _, ok := p.Value("y"); ok {
-		t.Error("y retained although no backward reads it")
+	for _, wIsInput := range []bool{false, true} {
+		in := []onnx.ValueInfo{nnIn("x", 1, 3, 1)}
+		init := map[string]*tensor.Tensor{"w": w}
+		feed := map[string]*tensor.Tensor{"x": tensor.New(1, 3, 1)}
+		if wIsInput {
+			in = append(in, nnIn("w", 3, 2))
+			init = nil
+			feed["w"] = w
+		}
+		g, err := Compile(nnGraphModel(in, []string{"z"}, init, nodes...))
+		if err != nil {
+			t.Fatal(err)
+		}
+		p, err := g.Run(context.Background(), feed, RunOptions{Backward: true})
+		if err != nil {
+			t.Fatal(err)
+		}
+		if _, kept := p.Value("f"); kept != wIsInput {
+			t.Errorf("W a graph input: %v; Gemm operand f kept: %v", wIsInput, kept)
+		}
+		if _, ok := p.Value("y"); ok {
+			t.Error("y retained although no backward reads it")
+		}
+		wrt := []string{"x"}
+		if wIsInput {
+			wrt = append(wrt, "w")
+		}
+		grads, err := p.Backward(context.Background(), map[string]*tensor.Tensor{"z": tensor.FromFloat32([]float32{1, 1}, 1, 2)}, wrt)
+		if err != nil {
+			t.Fatal(err)
+		}
+		// ∂Σz/∂x = W·[1 1]ᵀ = [3 7 11]
+		if gx := grads["x"].F32; gx[0] != 3 || gx[1] != 7 || gx[2] != 11 {
+			t.Errorf("∂/∂x = %v, want [3 7 11]", gx)
+		}
 	}
 }
 

@@ -163,7 +163,24 @@ func (op *convOp) Forward(in []*tensor.Tensor) ([]*tensor.Tensor, error) {
 // BackwardNeeds implements BackwardNeeder: the output is not needed.
 func (op *convOp) BackwardNeeds() (in, out []int) { return []int{0, 1}, nil }
 
+// BackwardNeedsFor implements SelectiveBackward: dX reads W, dW reads X.
+func (op *convOp) BackwardNeedsFor(need []bool) (in, out []int) {
+	if need[0] {
+		in = append(in, 1)
+	}
+	if len(need) > 1 && need[1] {
+		in = append(in, 0)
+	}
+	return in, nil
+}
+
 func (op *convOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor, error) {
+	return op.BackwardFor(in, out, gradOut, []bool{true, true, true})
+}
+
+// BackwardFor implements SelectiveBackward. With constant weights (every
+// attribution) only dX = col2im(Wᵀ·dY) is computed.
+func (op *convOp) BackwardFor(in, out, gradOut []*tensor.Tensor, need []bool) ([]*tensor.Tensor, error) {
 	x, w, dy := in[0], in[1], gradOut[0]
 	s, err := op.shape(x, w)
 	if err != nil {
@@ -171,11 +188,17 @@ func (op *convOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor,
 	}
 	g := s.g
 	ihw, ohw := g.ih*g.iw, g.oh*g.ow
-	dx := tensor.New(x.Shape...)
-	dw := tensor.New(w.Shape...)
+	needX, needW := need[0], len(need) > 1 && need[1]
+	var dx, dw *tensor.Tensor
+	if needX {
+		dx = tensor.New(x.Shape...)
+	}
+	if needW {
+		dw = tensor.New(w.Shape...)
+	}
 	if s.depthwise() {
-		depthwiseBackward(x.F32, w.F32, dy.F32, dx.F32, dw.F32, s)
-	} else {
+		depthwiseBackward(x.F32, w.F32, dy.F32, dx, dw, s)
+	} else if needX || needW {
 		kk := s.cg * g.kh * g.kw
 		pw := s.pointwise()
 		var col, dcol []float32
@@ -188,18 +211,23 @@ func (op *convOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor,
 		for n := 0; n < s.n; n++ {
 			for gi := 0; gi < op.group; gi++ {
 				off := (n*s.c + gi*s.cg) * ihw
-				xg := x.F32[off : off+s.cg*ihw]
-				dxg := dx.F32[off : off+s.cg*ihw]
 				dyg := dy.F32[(n*s.m+gi*s.mg)*ohw : (n*s.m+(gi+1)*s.mg)*ohw]
-				wg := w.F32[gi*s.mg*kk : (gi+1)*s.mg*kk]
-				dwg := dw.F32[gi*s.mg*kk : (gi+1)*s.mg*kk]
-				src := xg
-				if !pw {
-					im2col(xg, s.cg, g, col)
-					src = col
+				if needW {
+					xg := x.F32[off : off+s.cg*ihw]
+					src := xg
+					if !pw {
+						im2col(xg, s.cg, g, col)
+						src = col
+					}
+					// dW_g += dY_g · colᵀ
+					dwg := dw.F32[gi*s.mg*kk : (gi+1)*s.mg*kk]
+					op.gemm.Sgemm(false, true, s.mg, kk, ohw, 1, dyg, ohw, src, ohw, 1, dwg, kk)
 				}
-				// dW_g += dY_g · colᵀ
-				op.gemm.Sgemm(false, true, s.mg, kk, ohw, 1, dyg, ohw, src, ohw, 1, dwg, kk)
+				if !needX {
+					continue
+				}
+				dxg := dx.F32[off : off+s.cg*ihw]
+				wg := w.F32[gi*s.mg*kk : (gi+1)*s.mg*kk]
 				// dcol = W_gᵀ · dY_g, scattered back onto dX.
 				if pw {
 					op.gemm.Sgemm(true, false, kk, ohw, s.mg, 1, wg, kk, dyg, ohw, 0, dxg, ohw)
@@ -211,7 +239,7 @@ func (op *convOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor,
 		}
 	}
 	res := []*tensor.Tensor{dx, dw, nil}
-	if len(in) > 2 && in[2] != nil {
+	if len(in) > 2 && in[2] != nil && need[2] {
 		db := tensor.New(in[2].Shape...)
 		for n := 0; n < s.n; n++ {
 			for m := 0; m < s.m; m++ {
@@ -332,20 +360,34 @@ func depthwiseForward(x, w, y []float32, s convShape) {
 	})
 }
 
-// depthwiseBackward accumulates dX and dW for the direct depthwise path.
-// Work is split by input channel so each goroutine owns the dX planes and
-// dW rows it writes.
-func depthwiseBackward(x, w, dy, dx, dw []float32, s convShape) {
+// depthwiseBackward accumulates dX and dW (each skipped when nil) for the
+// direct depthwise path. Work is split by input channel so each goroutine
+// owns the dX planes and dW rows it writes.
+func depthwiseBackward(x, w, dy []float32, dxT, dwT *tensor.Tensor, s convShape) {
+	var dx, dw []float32
+	if dxT != nil {
+		dx = dxT.F32
+	}
+	if dwT != nil {
+		dw = dwT.F32
+	}
 	g := s.g
 	ihw, ohw, khw := g.ih*g.iw, g.oh*g.ow, g.kh*g.kw
 	splitWork(s.c, s.n*s.m*ohw*khw, func(c0, c1 int) {
 		for ch := c0; ch < c1; ch++ {
 			for m := ch * s.mg; m < (ch+1)*s.mg; m++ {
 				ker := w[m*khw : (m+1)*khw]
-				dker := dw[m*khw : (m+1)*khw]
+				var dker, src, dsrc []float32
+				if dw != nil {
+					dker = dw[m*khw : (m+1)*khw]
+				}
 				for n := 0; n < s.n; n++ {
-					src := x[(n*s.c+ch)*ihw : (n*s.c+ch+1)*ihw]
-					dsrc := dx[(n*s.c+ch)*ihw : (n*s.c+ch+1)*ihw]
+					if dw != nil {
+						src = x[(n*s.c+ch)*ihw : (n*s.c+ch+1)*ihw]
+					}
+					if dx != nil {
+						dsrc = dx[(n*s.c+ch)*ihw : (n*s.c+ch+1)*ihw]
+					}
 					gy := dy[(n*s.m+m)*ohw : (n*s.m+m+1)*ohw]
 					for oy := 0; oy < g.oh; oy++ {
 						for ox := 0; ox < g.ow; ox++ {
@@ -362,8 +404,12 @@ func depthwiseBackward(x, w, dy, dx, dw []float32, s convShape) {
 									ix := ox*g.sw - g.pl + kj*g.dw
 									if ix >= 0 && ix < g.iw {
 										j := iy*g.iw + ix
-										dker[ki*g.kw+kj] += gv * src[j]
-										dsrc[j] += gv * ker[ki*g.kw+kj]
+										if dker != nil {
+											dker[ki*g.kw+kj] += gv * src[j]
+										}
+										if dsrc != nil {
+											dsrc[j] += gv * ker[ki*g.kw+kj]
+										}
 									}
 								}
 							}

@@ -119,26 +119,49 @@ func (op *gemmOp) Forward(in []*tensor.Tensor) ([]*tensor.Tensor, error) {
 
 func (op *gemmOp) BackwardNeeds() (in, out []int) { return []int{0, 1}, nil }
 
-// Backward: with G = dY, dop(A) = α·G·op(B)ᵀ and dop(B) = α·op(A)ᵀ·G,
-// transposed back when the attribute transposed the operand; dC is β·G
-// summed over C's broadcast axes.
+// BackwardNeedsFor implements SelectiveBackward: dA reads B, dB reads A.
+func (op *gemmOp) BackwardNeedsFor(need []bool) (in, out []int) { return crossNeeds(need), nil }
+
+// crossNeeds is the need set of a product: each operand's gradient reads
+// the other operand.
+func crossNeeds(need []bool) []int {
+	var in []int
+	if need[0] {
+		in = append(in, 1)
+	}
+	if need[1] {
+		in = append(in, 0)
+	}
+	return in
+}
+
 func (op *gemmOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor, error) {
+	return op.BackwardFor(in, out, gradOut, []bool{true, true, true})
+}
+
+// BackwardFor: with G = dY, dop(A) = α·G·op(B)ᵀ and dop(B) = α·op(A)ᵀ·G,
+// transposed back when the attribute transposed the operand; dC is β·G
+// summed over C's broadcast axes. Unneeded gradients are skipped.
+func (op *gemmOp) BackwardFor(in, out, gradOut []*tensor.Tensor, need []bool) ([]*tensor.Tensor, error) {
 	a, b, g := in[0], in[1], gradOut[0]
 	m, n, k, err := op.dims(a.Shape, b.Shape)
 	if err != nil {
 		return nil, err
 	}
-	da := tensor.New(a.Shape...)
-	db := tensor.New(b.Shape...)
+	var da, db *tensor.Tensor
 	lda, ldb := a.Shape[1], b.Shape[1]
-	if op.transA {
+	if !need[0] {
+		// skip dA
+	} else if da = tensor.New(a.Shape...); op.transA {
 		// A is k×m: dA = α·op(B)·Gᵀ  (k×m)
 		op.gemm.Sgemm(op.transB, true, k, m, n, op.alpha, b.F32, ldb, g.F32, n, 0, da.F32, lda)
 	} else {
 		// dA = α·G·op(B)ᵀ  (m×k)
 		op.gemm.Sgemm(false, !op.transB, m, k, n, op.alpha, g.F32, n, b.F32, ldb, 0, da.F32, lda)
 	}
-	if op.transB {
+	if !need[1] {
+		// skip dB
+	} else if db = tensor.New(b.Shape...); op.transB {
 		// B is n×k: dB = α·Gᵀ·op(A)  (n×k)
 		op.gemm.Sgemm(true, op.transA, n, k, m, op.alpha, g.F32, n, a.F32, lda, 0, db.F32, ldb)
 	} else {
@@ -148,7 +171,7 @@ func (op *gemmOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor,
 	res := []*tensor.Tensor{da, db}
 	if len(in) > 2 {
 		var dc *tensor.Tensor
-		if c := in[2]; c != nil {
+		if c := in[2]; c != nil && need[2] {
 			dc = tensor.New(c.Shape...)
 			if op.beta != 0 {
 				rs, cs, err := gemmBiasStrides(c.Shape, m, n)
@@ -276,20 +299,37 @@ func (op *matMulOp) Forward(in []*tensor.Tensor) ([]*tensor.Tensor, error) {
 
 func (op *matMulOp) BackwardNeeds() (in, out []int) { return []int{0, 1}, nil }
 
-// Backward: dA_b = G_b·B_bᵀ and dB_b = A_bᵀ·G_b, accumulated (beta 1) into
-// the operand slot each broadcast batch index read from.
+// BackwardNeedsFor implements SelectiveBackward.
+func (op *matMulOp) BackwardNeedsFor(need []bool) (in, out []int) { return crossNeeds(need), nil }
+
 func (op *matMulOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor, error) {
+	return op.BackwardFor(in, out, gradOut, []bool{true, true})
+}
+
+// BackwardFor: dA_b = G_b·B_bᵀ and dB_b = A_bᵀ·G_b, accumulated (beta 1)
+// into the operand slot each broadcast batch index read from.
+func (op *matMulOp) BackwardFor(in, out, gradOut []*tensor.Tensor, need []bool) ([]*tensor.Tensor, error) {
 	a, b, g := in[0], in[1], gradOut[0]
 	p, err := planMatMul(a.Shape, b.Shape)
 	if err != nil {
 		return nil, err
 	}
-	da, db := tensor.New(a.Shape...), tensor.New(b.Shape...)
+	var da, db *tensor.Tensor
+	if need[0] {
+		da = tensor.New(a.Shape...)
+	}
+	if need[1] {
+		db = tensor.New(b.Shape...)
+	}
 	mn := p.m * p.n
 	for bi := range p.aOff {
 		gb := g.F32[bi*mn : (bi+1)*mn]
-		op.gemm.Sgemm(false, true, p.m, p.k, p.n, 1, gb, p.n, b.F32[p.bOff[bi]:], p.n, 1, da.F32[p.aOff[bi]:], p.k)
-		op.gemm.Sgemm(true, false, p.k, p.n, p.m, 1, a.F32[p.aOff[bi]:], p.k, gb, p.n, 1, db.F32[p.bOff[bi]:], p.n)
+		if da != nil {
+			op.gemm.Sgemm(false, true, p.m, p.k, p.n, 1, gb, p.n, b.F32[p.bOff[bi]:], p.n, 1, da.F32[p.aOff[bi]:], p.k)
+		}
+		if db != nil {
+			op.gemm.Sgemm(true, false, p.k, p.n, p.m, 1, a.F32[p.aOff[bi]:], p.k, gb, p.n, 1, db.F32[p.bOff[bi]:], p.n)
+		}
 	}
 	return []*tensor.Tensor{da, db}, nil
 }

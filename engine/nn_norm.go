@@ -80,6 +80,39 @@ func (op *batchNormOp) Forward(in []*tensor.Tensor) ([]*tensor.Tensor, error) {
 
 func (op *batchNormOp) BackwardNeeds() (in, out []int) { return []int{0, 1, 3, 4}, nil }
 
+// BackwardNeedsFor implements SelectiveBackward: with constant statistics
+// and affine parameters, dX = dY·scale/√(var+ε) does not read X, so the
+// activation feeding a BatchNormalization need not be kept.
+func (op *batchNormOp) BackwardNeedsFor(need []bool) (in, out []int) {
+	if need[1] || need[3] || need[4] {
+		return []int{0, 1, 3, 4}, nil
+	}
+	return []int{1, 4}, nil
+}
+
+// BackwardFor implements SelectiveBackward.
+func (op *batchNormOp) BackwardFor(in, out, gradOut []*tensor.Tensor, need []bool) ([]*tensor.Tensor, error) {
+	if need[1] || need[2] || need[3] || need[4] {
+		return op.Backward(in, out, gradOut)
+	}
+	x, dy := in[0], gradOut[0]
+	c, inner := x.Shape[1], tensor.Numel(x.Shape[2:])
+	scale, vr := in[1].F32, in[4].F32
+	dx := tensor.New(x.Shape...)
+	nc := x.Shape[0] * c
+	splitWork(nc, nc*inner, func(p0, p1 int) {
+		for p := p0; p < p1; p++ {
+			ch := p % c
+			a := float32(float64(scale[ch]) / math.Sqrt(float64(vr[ch])+float64(op.eps)))
+			g, d := dy.F32[p*inner:(p+1)*inner], dx.F32[p*inner:(p+1)*inner]
+			for i, v := range g {
+				d[i] = a * v
+			}
+		}
+	})
+	return []*tensor.Tensor{dx, nil, nil, nil, nil}, nil
+}
+
 // Backward treats mean and var as constants of the affine map (inference
 // mode), so every input gets its exact partial derivative.
 func (op *batchNormOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor, error) {

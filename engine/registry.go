@@ -77,3 +77,19 @@ func shapeOnly(t *tensor.Tensor) *tensor.Tensor {
 	}
 	return &tensor.Tensor{DType: t.DType, Shape: append([]int(nil), t.Shape...)}
 }
+
+// SelectiveBackward is optionally implemented by Differentiable ops whose
+// input gradients differ much in cost, typically ops with weights: an
+// attribution needs ∂/∂activation and never ∂/∂weight, and for Conv the
+// weight gradient costs as much as the whole forward pass.
+//
+// need[i] reports whether input i can receive a gradient (it depends on a
+// graph input); BackwardNeedsFor declares the forward values Backward then
+// reads (so a Conv whose weights are constants does not keep its input
+// alive), and BackwardFor returns nil for inputs with need[i] false. The
+// engine calls BackwardNeedsFor once at compile time with the inputs that
+// depend on a graph input and BackwardFor with a subset of them.
+type SelectiveBackward interface {
+	BackwardNeedsFor(need []bool) (in, out []int)
+	BackwardFor(in, out, gradOut []*tensor.Tensor, need []bool) ([]*tensor.Tensor, error)
+}

@@ -102,7 +102,7 @@ func (g *Graph) Run(ctx context.Context, inputs map[string]*tensor.Tensor, opt R
 			}
 			in = append(in, p.vals[v])
 		}
-		out, err := nd.op.Forward(in)
+		out, err := safeForward(nd.op, in)
 		if err != nil {
 			return nil, fmt.Errorf("engine: %s: %w", nd.label(), err)
 		}
@@ -254,4 +254,16 @@ func fmtDims(ds []onnx.Dim) string {
 		}
 	}
 	return s + "]"
+}
+
+// safeForward runs an operator, turning a panic (an operator bug on an
+// input shape it failed to validate) into an error so one bad model or
+// input cannot crash the caller.
+func safeForward(op Op, in []*tensor.Tensor) (out []*tensor.Tensor, err error) {
+	defer func() {
+		if r := recover(); r != nil {
+			out, err = nil, fmt.Errorf("operator panicked: %v", r)
+		}
+	}()
+	return op.Forward(in)
 }
