@@ -58,8 +58,9 @@ type Config struct {
 }
 
 // defaultConfig holds the stated defaults. Patch/stride 0 mean "chosen
-// from the input size by the occlusion method"; size 0 means "from the
-// model's input shape"; workers 0 means one per core.
+// from the input size by the occlusion method"; steps/samples 0 mean each
+// method's own default; size 0 means "from the model's input shape";
+// workers 0 means one per core.
 func defaultConfig() Config {
 	return Config{
 		Methods:  []string{"occlusion", "gradient", "integrated-gradients", "grad-cam"},
@@ -67,10 +68,8 @@ func defaultConfig() Config {
 		Score:    "logit",
 		Resize:   "stretch",
 		Channels: "rgb",
-		Fill:     "image-mean",
+		Fill:     "mean",
 		Baseline: "black",
-		Steps:    32,
-		Samples:  32,
 		Seed:     1,
 	}
 }
@@ -236,7 +235,7 @@ func runOptions() []option {
 	add(met, "patch", "PX", "occlusion patch side in model-input pixels; 0 = automatic", s, g)
 	s, g = num(func(c *Config) *int { return &c.Stride }, 0)
 	add(met, "stride", "PX", "occlusion stride; 0 = automatic", s, g)
-	add(met, "fill", "F", "occlusion fill: mean (dataset mean colour), image-mean, black, blur or R,G,B (0-255)", func(c *Config, v string) error {
+	add(met, "fill", "F", "occlusion fill: mean (the --mean colour, i.e. zero model input), image-mean, black, blur or R,G,B (0-255)", func(c *Config, v string) error {
 		if oneOf(v, "mean", "image-mean", "black", "blur") != nil {
 			f, err := parseTriple(v)
 			if err != nil || len(f) != 3 {
@@ -248,10 +247,10 @@ func runOptions() []option {
 	}, func(c *Config) string { return c.Fill })
 	s, g = str(func(c *Config) *string { return &c.Baseline })
 	add(met, "baseline", "B", "integrated-gradients baseline: black, blur, mean or R,G,B", s, g)
-	s, g = num(func(c *Config) *int { return &c.Steps }, 1)
-	add(met, "steps", "N", "integrated-gradients steps", s, g)
-	s, g = num(func(c *Config) *int { return &c.Samples }, 1)
-	add(met, "samples", "N", "SmoothGrad noise samples and RISE masks per batch of work", s, g)
+	s, g = num(func(c *Config) *int { return &c.Steps }, 0)
+	add(met, "steps", "N", "integrated-gradients steps; 0 = the method's default (64)", s, g)
+	s, g = num(func(c *Config) *int { return &c.Samples }, 0)
+	add(met, "samples", "N", "SmoothGrad noise samples and RISE masks; 0 = the methods' defaults (25 and 2000)", s, g)
 	s, g = str(func(c *Config) *string { return &c.Layer })
 	add(met, "layer", "NAME", "Grad-CAM layer (tensor name); empty = last 4-D activation before global pooling", s, g)
 	add(met, "seed", "N", "seed for SmoothGrad noise and RISE masks", func(c *Config, v string) error {

@@ -36,7 +36,8 @@ const (
 
 const exitCodesHelp = `Exit codes:
   0    success; images that failed have error records and rows in metrics.csv
-  1    no image succeeded, or --strict and some image was invalid or failed
+  1    no image succeeded, an acceptance criterion (--criteria) failed, or
+       --strict and some image was invalid or failed
   2    usage error: bad flag or config, unreadable model, images not found
   130  interrupted (Ctrl-C or SIGTERM); finished images are kept and the
        same command resumes

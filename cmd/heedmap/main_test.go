@@ -69,7 +69,7 @@ func TestFlagsOverrideConfigFile(t *testing.T) {
 	if _, _, code, done := parseRun([]string{"--config", y, "--images", "i", "--out", "o"}, &e, &e); !done || code != exitUsage || !strings.Contains(e.String(), `unknown key "sizee"`) {
 		t.Errorf("typo in config: exit %d, %s", code, e.String())
 	}
-	for _, bad := range [][]string{{"--methods", "saliency"}, {"--resize", "zoom"}, {"--mean", "1,2"}, {"--std", "0,1,1"}, {"--fill", "grey"}, {"--steps", "0"}} {
+	for _, bad := range [][]string{{"--methods", "saliency"}, {"--resize", "zoom"}, {"--mean", "1,2"}, {"--std", "0,1,1"}, {"--fill", "grey"}, {"--steps", "-1"}} {
 		e.Reset()
 		args := append([]string{"--model", "m", "--images", "i", "--out", "o"}, bad...)
 		if _, _, code, done := parseRun(args, &e, &e); !done || code != exitUsage {
@@ -286,5 +286,49 @@ func TestDemoWithTestWorker(t *testing.T) {
 		if _, err := os.Stat(filepath.Join(out, f)); err != nil {
 			t.Error(err)
 		}
+	}
+}
+
+// The real pipeline on the embedded demo model: records, overlays, panel,
+// report files; a rerun skips everything and leaves the tables unchanged.
+func TestRunRealPipelineOnDemoModel(t *testing.T) {
+	dir := t.TempDir()
+	data := filepath.Join(dir, "data")
+	if err := synth.WriteDataset(data, 3, synth.Options{Size: 64, Seed: 77, Rates: map[string][2]float64{synth.Ruler: {1, 1}}}); err != nil {
+		t.Fatal(err)
+	}
+	model := filepath.Join(dir, "m.onnx")
+	labels := filepath.Join(dir, "labels.txt")
+	os.WriteFile(model, demoModel, 0o644)
+	os.WriteFile(labels, []byte(demoLabels), 0o644)
+	out := filepath.Join(dir, "out")
+	args := []string{"run", "--model", model, "--images", filepath.Join(data, "manifest.csv"), "--out", out, "--labels", labels,
+		"--config", "../../testdata/demo/demo.yaml", "--methods", "occlusion,grad-cam", "--workers", "2", "--save-maps"}
+	code, stdout, stderr := runCLI(t, args...)
+	if code != 0 {
+		t.Fatalf("exit %d\n%s\n%s", code, stdout, stderr)
+	}
+	for _, f := range []string{"metrics.csv", "images.csv", "report.json", "report.html", "items/syn00000/overlay-occlusion.png", "items/syn00000/overlay-grad-cam.png", "items/syn00000/map-grad-cam.npy", "items/syn00000/panel.png"} {
+		if _, err := os.Stat(filepath.Join(out, f)); err != nil {
+			t.Error(err)
+		}
+	}
+	table, _ := os.ReadFile(filepath.Join(out, "images.csv"))
+	for _, col := range []string{"occlusion.inside_mass", "occlusion.artifact_mass:ruler", "grad-cam.pointing_hit", "predicted", "target"} {
+		if !strings.Contains(string(table), col) {
+			t.Errorf("images.csv lacks column %q", col)
+		}
+	}
+	if n := strings.Count(string(table), ",ok,"); n != 3 {
+		t.Errorf("%d ok rows:\n%s", n, table)
+	}
+	metrics, _ := os.ReadFile(filepath.Join(out, "metrics.csv"))
+	code, _, stderr = runCLI(t, args...)
+	if code != 0 || !strings.Contains(stderr, "3 already done, 0 to process") {
+		t.Fatalf("rerun: exit %d\n%s", code, stderr)
+	}
+	again, _ := os.ReadFile(filepath.Join(out, "metrics.csv"))
+	if !bytes.Equal(metrics, again) {
+		t.Error("metrics.csv changed on a rerun that skipped every image")
 	}
 }

@@ -4,6 +4,9 @@ import (
 	"context"
 	"fmt"
 	"io"
+	"os"
+	"path/filepath"
+	"time"
 
 	"heedmap/batch"
 )
@@ -28,7 +31,8 @@ Flags:
 
 Exit codes:
   0    merged, and every shard and image is present
-  1    merged, but shards are missing or images unfinished (listed)
+  1    merged, but shards are missing or images unfinished (listed), or an
+       acceptance criterion failed
   2    usage error, or shards from different models or configurations
 `)
 	}
@@ -39,7 +43,14 @@ Exit codes:
 		fmt.Fprintln(stderr, "heedmap merge: need --out DIR and at least one shard folder; see 'heedmap merge --help'")
 		return exitUsage
 	}
-	rep, err := batch.Merge(*out, fs.Args(), batch.MergeOptions{Extra: []string{"config.yaml"}})
+	// Shards of a real run keep the per-image table in images.csv and the
+	// report owns metrics.csv; test-worker shards have only metrics.csv.
+	opt := batch.MergeOptions{Extra: []string{"config.yaml"}}
+	withReport := false
+	if _, err := os.Stat(filepath.Join(fs.Arg(0), recordsTable)); err == nil {
+		opt.Table, withReport = recordsTable, true
+	}
+	rep, err := batch.Merge(*out, fs.Args(), opt)
 	if err != nil {
 		fmt.Fprintf(stderr, "heedmap merge: %v\n", err)
 		return exitUsage
@@ -49,6 +60,23 @@ Exit codes:
 	if len(rep.Missing) > 0 || s.Pending > 0 {
 		fmt.Fprintf(stderr, "incomplete: missing shards %v, %d unfinished images; rerun those shards and merge again\n", rep.Missing, s.Pending)
 		return exitFailed
+	}
+	if withReport {
+		cfg := defaultConfig()
+		if err := loadYAML(filepath.Join(*out, "config.yaml"), &cfg, runOptions()); err != nil {
+			fmt.Fprintf(stderr, "heedmap merge: %v\n", err)
+			return exitUsage
+		}
+		pass, err := writeReport(ctx, cfg, *out, time.Now())
+		if err != nil {
+			fmt.Fprintf(stderr, "heedmap merge: report: %v\n", err)
+			return exitFailed
+		}
+		fmt.Fprintf(stdout, "report: %s\n", filepath.Join(*out, "report.html"))
+		if !pass {
+			fmt.Fprintln(stderr, "acceptance criteria: at least one FAILED (see report.html)")
+			return exitFailed
+		}
 	}
 	return exitOK
 }

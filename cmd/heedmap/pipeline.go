@@ -2,45 +2,516 @@ package main
 
 import (
 	"context"
-	"errors"
+	"encoding/json"
+	"fmt"
+	"image"
+	"image/color"
+	"math"
+	"os"
+	"path/filepath"
+	"strconv"
+	"strings"
+	"time"
 
 	"heedmap/batch"
+	"heedmap/engine"
+	"heedmap/explain"
+	"heedmap/explain/measure"
+	"heedmap/explain/preprocess"
+	"heedmap/occlusion"
+	"heedmap/render"
+	"heedmap/render/report"
 )
+
+// recordsTable is the per-image CSV the batch layer writes when the report
+// owns metrics.csv (one row per image × method).
+const recordsTable = "images.csv"
 
 // pipeline is the real per-image work of `heedmap run` and what happens
 // once all images are done.
 type pipeline struct {
 	worker batch.Worker
 	// finish runs after a complete run (every planned image has a record):
-	// dataset summary, acceptance criteria, report. May be nil.
-	finish func(ctx context.Context) error
+	// dataset summary, acceptance criteria, report. It reports whether every
+	// acceptance criterion passed.
+	finish func(ctx context.Context) (bool, error)
+	table  string
 }
 
-// newPipeline connects the engine and the attribution, measurement and
-// rendering packages for cfg.
-//
-// INTEGRATION SEAM. What the integrator connects here:
-//  1. engine.Load(cfg.Model) → *engine.Graph, wrapped as explain.Network
-//     (input/output names from g.Inputs()/g.Outputs(); Grad-CAM layer from
-//     cfg.Layer or g.GradCAMLayer()).
-//  2. explain/preprocess: preprocess.New(preprocess.Config{Width: cfg.Size,
-//     Height: cfg.Size, Resize: preprocess.ResizeMode(cfg.Resize),
-//     Mean/Std: cfg.Mean/cfg.Std as float32, Channels: upper(cfg.Channels)})
-//     resolved against the model input shape.
-//  3. the methods named in cfg.Methods with cfg.Patch, Stride, Fill,
-//     Baseline, Steps, Samples, Seed; cfg.Target/cfg.Score choose the score
-//     (Item.Label is the manifest label for --target label; --labels names
-//     classes).
-//  4. explain/measure on the lesion mask (Item.Mask) and each artefact mask
-//     (Item.Artefacts) → Result.Metrics, column names "METHOD.MEASURE" and
-//     "METHOD.MEASURE@artifact:NAME"; predicted class and target → Result.Info.
-//  5. render: overlays written with dst.Path(NAME) (and maps as NPY when
-//     cfg.SaveMaps) → Result.Files.
-//  6. finish: render/report over OUT/records and OUT/metrics.csv, and
-//     measure's criteria from cfg.Criteria.
-//
-// The Worker must be safe for concurrent use (one engine.Graph may be shared
-// if Run is concurrency-safe; otherwise build one per worker goroutine).
+// attributionWorker preprocesses an image, runs every configured method,
+// measures each map against the lesion and artefact masks and renders
+// overlays and a case panel. One value serves all worker goroutines: the
+// compiled graph is safe for concurrent runs and the rest is read-only.
+type attributionWorker struct {
+	cfg     Config
+	pp      *preprocess.Preprocessor
+	net     explain.Network
+	methods []explain.Method
+	labels  []string
+	kind    explain.ScoreKind
+	params  measure.Params
+}
+
+// detail is what the worker stores in each record for the report.
+type detail struct {
+	Image    measure.Image     `json:"image"`
+	Overlays map[string]string `json:"overlays,omitempty"`
+	Panel    string            `json:"panel,omitempty"`
+}
+
 func newPipeline(cfg Config) (*pipeline, error) {
-	return nil, errors.New("this build has no attribution pipeline connected (cmd/heedmap/pipeline.go: newPipeline); use --dry-run to check inputs")
+	g, err := engine.Load(cfg.Model)
+	if err != nil {
+		return nil, fmt.Errorf("model: %w", err)
+	}
+	ins := g.Inputs()
+	if len(ins) != 1 {
+		return nil, fmt.Errorf("model %s has %d inputs; heedmap needs one image input", cfg.Model, len(ins))
+	}
+	shape := make([]int, len(ins[0].Shape))
+	for i, d := range ins[0].Shape {
+		shape[i] = -1
+		if d.Param == "" && d.Value > 0 {
+			shape[i] = int(d.Value)
+		}
+	}
+	pc := preprocess.Config{Width: cfg.Size, Height: cfg.Size, Resize: preprocess.ResizeMode(cfg.Resize), Channels: strings.ToUpper(cfg.Channels)}
+	for _, v := range cfg.Mean {
+		pc.Mean = append(pc.Mean, float32(v))
+	}
+	for _, v := range cfg.Std {
+		pc.Std = append(pc.Std, float32(v))
+	}
+	pc, err = pc.Resolve(shape)
+	if err != nil {
+		return nil, fmt.Errorf("preprocessing for %s: %w", cfg.Model, err)
+	}
+	pp, err := preprocess.New(pc)
+	if err != nil {
+		return nil, err
+	}
+	net, err := explain.FromGraph(g, explain.GraphOptions{NHWC: pc.Layout == "NHWC"})
+	if err != nil {
+		return nil, err
+	}
+	w := &attributionWorker{cfg: cfg, pp: pp, net: net, params: measure.DefaultParams()}
+	if w.kind, err = explain.ParseScoreKind(cfg.Score); err != nil {
+		return nil, err
+	}
+	if cfg.Labels != "" {
+		if w.labels, err = explain.ReadLabels(cfg.Labels); err != nil {
+			return nil, err
+		}
+	}
+	if _, err := w.target(batch.Item{Label: "0"}); err != nil && cfg.Target != "label" {
+		return nil, fmt.Errorf("--target %s: %w", cfg.Target, err)
+	}
+	norm := pp.Normalization()
+	for _, name := range cfg.Methods {
+		var m explain.Method
+		switch name {
+		case "occlusion":
+			o := occlusion.Occlusion{Patch: cfg.Patch, Stride: cfg.Stride, Norm: norm}
+			if f, perr := occlusion.ParseFill(cfg.Fill); perr == nil {
+				o.Fill = f
+			} else if rgb, terr := parseTriple(cfg.Fill); terr == nil {
+				o.Fill = occlusion.FillColor
+				for i := range o.Color {
+					o.Color[i] = float32(rgb[i] / 255)
+				}
+			} else {
+				return nil, perr
+			}
+			m = o
+		case "gradient":
+			m = explain.Gradient{}
+		case "gradient-x-input":
+			m = explain.GradientTimesInput{}
+		case "integrated-gradients":
+			b, err := explain.ParseBaseline(cfg.Baseline)
+			if err != nil {
+				return nil, err
+			}
+			m = explain.IntegratedGradients{Steps: cfg.Steps, Baseline: b, Norm: norm, Seed: cfg.Seed}
+		case "smoothgrad":
+			m = explain.SmoothGrad{Samples: cfg.Samples, Seed: cfg.Seed}
+		case "grad-cam":
+			layer := cfg.Layer
+			if layer == "" {
+				if layer, err = g.GradCAMLayer(); err != nil {
+					return nil, fmt.Errorf("grad-cam: %w (pass --layer)", err)
+				}
+			}
+			m = explain.GradCAM{Layer: layer}
+		case "rise":
+			m = explain.RISE{Masks: cfg.Samples, Seed: cfg.Seed}
+		default:
+			return nil, fmt.Errorf("unknown method %q", name)
+		}
+		w.methods = append(w.methods, m)
+	}
+	start := time.Now()
+	return &pipeline{
+		worker: w,
+		table:  recordsTable,
+		finish: func(ctx context.Context) (bool, error) { return writeReport(ctx, cfg, cfg.Out, start) },
+	}, nil
+}
+
+// target resolves --target for one item.
+func (w *attributionWorker) target(it batch.Item) (explain.Target, error) {
+	t := w.cfg.Target
+	if t == "label" {
+		if it.Label == "" {
+			return explain.Target{}, fmt.Errorf("--target label but %s has no label", it.ID)
+		}
+		t = it.Label
+	}
+	if t == "predicted" || t == "" {
+		return explain.Predicted(w.kind), nil
+	}
+	if i, err := strconv.Atoi(t); err == nil {
+		if i < 0 || (len(w.labels) > 0 && i >= len(w.labels)) {
+			return explain.Target{}, fmt.Errorf("class index %d out of range", i)
+		}
+		tg := explain.Class(i, w.kind)
+		if i < len(w.labels) {
+			tg.Name = w.labels[i]
+		}
+		return tg, nil
+	}
+	return explain.ClassByName(w.labels, t, w.kind)
+}
+
+func (w *attributionWorker) className(i int) string {
+	if i >= 0 && i < len(w.labels) {
+		return w.labels[i]
+	}
+	return strconv.Itoa(i)
+}
+
+// loadMask reads a mask image as booleans (luminance ≥ 50 %) on its own grid.
+func loadMask(path string) ([]bool, int, int, error) {
+	img, err := decodeFile(path)
+	if err != nil {
+		return nil, 0, 0, fmt.Errorf("mask %w", err)
+	}
+	b := img.Bounds()
+	m := make([]bool, b.Dx()*b.Dy())
+	for y := b.Min.Y; y < b.Max.Y; y++ {
+		for x := b.Min.X; x < b.Max.X; x++ {
+			g := color.GrayModel.Convert(img.At(x, y)).(color.Gray)
+			m[(y-b.Min.Y)*b.Dx()+x-b.Min.X] = g.Y >= 128
+		}
+	}
+	return m, b.Dx(), b.Dy(), nil
+}
+
+func count(m []bool) int {
+	n := 0
+	for _, v := range m {
+		if v {
+			n++
+		}
+	}
+	return n
+}
+
+func (w *attributionWorker) Process(ctx context.Context, it batch.Item, dst batch.Dest) (batch.Result, error) {
+	in, src, err := w.pp.Load(ctx, it.Image)
+	if err != nil {
+		return batch.Result{}, err
+	}
+	pl := in.Placement
+	logits, err := w.net.Forward(ctx, in.Tensor)
+	if err != nil {
+		return batch.Result{}, fmt.Errorf("%s: model: %w", it.Image, err)
+	}
+	tg, err := w.target(it)
+	if err != nil {
+		return batch.Result{}, fmt.Errorf("%s: %w", it.Image, err)
+	}
+	row := logits.F32
+	pred := 0
+	for i, v := range row {
+		if v > row[pred] {
+			pred = i
+		}
+	}
+	probs := softmax(row)
+
+	// Masks on the source grid (for overlays) and in model space (for measures).
+	sb := src.Image.Bounds()
+	srcLesion := make([]bool, sb.Dx()*sb.Dy())
+	if it.Mask != "" {
+		m, mw, mh, err := loadMask(it.Mask)
+		if err != nil {
+			return batch.Result{}, err
+		}
+		if mw != sb.Dx() || mh != sb.Dy() {
+			return batch.Result{}, fmt.Errorf("mask %s is %d×%d but the upright image %s is %d×%d", it.Mask, mw, mh, it.Image, sb.Dx(), sb.Dy())
+		}
+		srcLesion = m
+	}
+	lesion, err := pl.MaskToModel(srcLesion, sb.Dx(), sb.Dy())
+	if err != nil {
+		return batch.Result{}, err
+	}
+	masks := measure.Masks{W: pl.W, H: pl.H, Lesion: lesion, Seen: seenMask(pl), Artefacts: map[string][]bool{}, SourceLesionPixels: count(srcLesion)}
+	srcArts := map[string][]bool{}
+	for name, p := range it.Artefacts {
+		if p == "" {
+			continue
+		}
+		m, mw, mh, err := loadMask(p)
+		if err != nil || mw != sb.Dx() || mh != sb.Dy() {
+			continue // validation already warned; the artefact measure is skipped
+		}
+		if masks.Artefacts[name], err = pl.MaskToModel(m, mw, mh); err != nil {
+			return batch.Result{}, err
+		}
+		srcArts[name] = m
+	}
+	plan, err := measure.NewPlan(masks, w.params)
+	if err != nil {
+		return batch.Result{}, fmt.Errorf("%s: masks: %w", it.Image, err)
+	}
+
+	res := batch.Result{Metrics: map[string]float64{}, Info: map[string]string{}}
+	res.Info["predicted"] = w.className(pred)
+	d := detail{Overlays: map[string]string{}}
+	d.Image = measure.Image{ID: it.ID, TrueClass: w.trueClass(it.Label), PredClass: w.className(pred)}
+	var views []render.MethodView
+	for _, m := range w.methods {
+		r, err := m.Attribute(ctx, w.net, in.Tensor, tg)
+		if err != nil {
+			return batch.Result{}, fmt.Errorf("%s: %s: %w", it.Image, m.Name(), err)
+		}
+		if len(r.Target.Classes) == 1 {
+			res.Info["target"] = w.className(r.Target.Classes[0])
+			d.Image.Score = float64(probs[r.Target.Classes[0]])
+		}
+		mr, err := plan.Measure(r.Method, r.Map)
+		if err != nil {
+			return batch.Result{}, fmt.Errorf("%s: %s: measure: %w", it.Image, r.Method, err)
+		}
+		d.Image.Results = append(d.Image.Results, mr)
+		put := func(k string, v measure.Value) {
+			if f, ok := v.Float(); ok {
+				res.Metrics[r.Method+"."+k] = f
+			}
+		}
+		put("inside_mass", mr.InsideMass)
+		put("rank_accuracy", mr.RankAccuracy)
+		put("pointing_hit", mr.PointingHit)
+		put("band_mass", mr.BandMass)
+		put("far_mass", mr.FarMass)
+		for a, v := range mr.ArtefactMass {
+			put("artifact_mass:"+a, v)
+		}
+		res.Metrics[r.Method+".score"] = r.Score
+		if !math.IsNaN(r.Gap) {
+			res.Metrics[r.Method+".completeness_gap"] = r.Gap
+		}
+
+		values, seen := pl.ToOriginal(r.Map)
+		attr := render.Attribution{Values: values, Seen: seen, Signed: signed(r.Method), HotRegions: hotBoxes(pl, mr.HotRegions)}
+		met := renderMetrics(mr)
+		img, err := render.Overlay(render.Scene{Image: src.Image, Map: attr, Lesion: srcLesion, Artefacts: srcArts,
+			Caption: render.Caption{Method: r.Method, Target: res.Info["target"], ScoreKind: w.kind.String(), Score: r.Score, Metrics: met}})
+		if err != nil {
+			return batch.Result{}, fmt.Errorf("%s: %s: overlay: %w", it.Image, r.Method, err)
+		}
+		abs, rel, err := dst.Path("overlay-" + r.Method + ".png")
+		if err != nil {
+			return batch.Result{}, err
+		}
+		if err := render.WritePNG(abs, img); err != nil {
+			return batch.Result{}, err
+		}
+		d.Overlays[r.Method] = rel
+		res.Files = append(res.Files, rel)
+		if w.cfg.SaveMaps {
+			abs, rel, err := dst.Path("map-" + r.Method + ".npy")
+			if err != nil {
+				return batch.Result{}, err
+			}
+			if err := explain.SaveNPY(abs, r.Map); err != nil {
+				return batch.Result{}, err
+			}
+			res.Files = append(res.Files, rel)
+		}
+		if len(views) < render.MaxPanelMethods {
+			views = append(views, render.MethodView{Name: r.Method, Map: attr, Metrics: met})
+		}
+	}
+	panel, err := render.Panel(render.Case{ID: it.ID, TrueClass: d.Image.TrueClass, PredictedClass: d.Image.PredClass,
+		ScoreKind: "probability", Score: float64(probs[pred]), Image: src.Image, Lesion: srcLesion, Artefacts: srcArts, Methods: views})
+	if err != nil {
+		return batch.Result{}, fmt.Errorf("%s: panel: %w", it.Image, err)
+	}
+	abs, rel, err := dst.Path("panel.png")
+	if err != nil {
+		return batch.Result{}, err
+	}
+	if err := render.WritePNG(abs, panel); err != nil {
+		return batch.Result{}, err
+	}
+	d.Panel = rel
+	res.Files = append(res.Files, rel)
+	res.Detail = d
+	return res, nil
+}
+
+func (w *attributionWorker) trueClass(label string) string {
+	if label == "" {
+		return ""
+	}
+	if i, err := strconv.Atoi(label); err == nil {
+		return w.className(i)
+	}
+	return label
+}
+
+func softmax(x []float32) []float32 {
+	out := make([]float32, len(x))
+	mx := math.Inf(-1)
+	for _, v := range x {
+		mx = math.Max(mx, float64(v))
+	}
+	s := 0.0
+	for i, v := range x {
+		e := math.Exp(float64(v) - mx)
+		out[i] = float32(e)
+		s += e
+	}
+	for i := range out {
+		out[i] = float32(float64(out[i]) / s)
+	}
+	return out
+}
+
+// seenMask marks model pixels that show the picture (not letterbox
+// padding); nil when every pixel does.
+func seenMask(p preprocess.Placement) []bool {
+	if p.OffX <= 0 && p.OffY <= 0 && p.OffX+p.ScaledW >= p.W && p.OffY+p.ScaledH >= p.H {
+		return nil
+	}
+	s := make([]bool, p.W*p.H)
+	for y := max(0, p.OffY); y < min(p.H, p.OffY+p.ScaledH); y++ {
+		for x := max(0, p.OffX); x < min(p.W, p.OffX+p.ScaledW); x++ {
+			s[y*p.W+x] = true
+		}
+	}
+	return s
+}
+
+// signed says whether a method's map is drawn on the diverging ramp.
+func signed(method string) bool {
+	s, err := measure.SignFor(method)
+	return err == nil && s == measure.Positive && method != "grad-cam" && method != "rise"
+}
+
+// maxBoxes caps the hot regions drawn per overlay: noisy maps (integrated
+// gradients) can have dozens of tiny components, and numbered boxes beyond
+// the first few hide the picture without adding information. All regions
+// stay in the records.
+const maxBoxes = 5
+
+// hotBoxes carries the largest off-lesion regions to source pixels.
+func hotBoxes(p preprocess.Placement, rs []measure.Region) []image.Rectangle {
+	var out []image.Rectangle
+	for _, r := range rs[:min(len(rs), maxBoxes)] {
+		x0, y0 := p.ToSourcePoint(float64(r.X0), float64(r.Y0))
+		x1, y1 := p.ToSourcePoint(float64(r.X1+1), float64(r.Y1+1))
+		out = append(out, image.Rect(int(math.Floor(x0)), int(math.Floor(y0)), int(math.Ceil(x1)), int(math.Ceil(y1))))
+	}
+	return out
+}
+
+func renderMetrics(r measure.Result) render.Metrics {
+	m := render.NoMetrics()
+	if v, ok := r.InsideMass.Float(); ok {
+		m.InsideMass = v
+	} else {
+		m.InsideMassUndefined = r.InsideMass.Reason
+	}
+	if v, ok := r.RankAccuracy.Float(); ok {
+		m.RankAccuracy = v
+	}
+	if v, ok := r.PointingHit.Float(); ok {
+		m.Pointing = render.PointingMiss
+		if v == 1 {
+			m.Pointing = render.PointingHit
+		}
+	}
+	if len(r.HotRegions) > 0 {
+		m.OffLesion, m.OffLesionBox = r.HotRegions[0].Mass, 1
+	}
+	return m
+}
+
+// writeReport builds report.json, report.html and metrics.csv (one row per
+// image × method) from the records of OUT's index. It returns whether every
+// acceptance criterion passed (true when there are none).
+func writeReport(ctx context.Context, cfg Config, out string, start time.Time) (bool, error) {
+	idx, err := batch.ReadIndex(out)
+	if err != nil {
+		return false, err
+	}
+	var images []measure.Image
+	r := &report.Report{Title: "heedmap: " + filepath.Base(cfg.Model)}
+	for _, rec := range batch.Records(out, idx) {
+		if rec.Status != batch.StatusOK {
+			r.Failures = append(r.Failures, report.Failure{File: rec.Image, Stage: "image", Reason: rec.Error})
+			continue
+		}
+		var d detail
+		if err := json.Unmarshal(rec.Detail, &d); err != nil {
+			r.Failures = append(r.Failures, report.Failure{File: rec.Image, Stage: "record", Reason: err.Error()})
+			continue
+		}
+		images = append(images, d.Image)
+		r.Images = append(r.Images, report.ImageRecord{Image: d.Image, File: rec.Image, MaskFile: rec.Mask, Overlays: d.Overlays, Panel: d.Panel})
+	}
+	pass := true
+	if len(images) > 0 {
+		if r.Summary, err = measure.Summarize(ctx, images, measure.DefaultSummaryOptions()); err != nil {
+			return false, err
+		}
+		if cfg.Criteria != "" {
+			data, err := os.ReadFile(cfg.Criteria)
+			if err != nil {
+				return false, err
+			}
+			cs, err := measure.ParseCriteria(data, cfg.Criteria)
+			if err != nil {
+				return false, err
+			}
+			if r.Verdicts, err = measure.Evaluate(cs, r.Summary, cfg.Criteria); err != nil {
+				return false, err
+			}
+			r.CriteriaFile = cfg.Criteria
+			for _, v := range r.Verdicts {
+				pass = pass && v.Pass
+			}
+		}
+	}
+	p := report.NewProvenance(start)
+	p.End = time.Now()
+	if cfg.Model != "" {
+		if p.Model, err = report.HashFile(cfg.Model); err != nil {
+			return false, err
+		}
+	}
+	p.Config = cfg
+	p.ConfigSHA256 = report.HashBytes(cfg.marshal())
+	p.Seeds["methods"] = cfg.Seed
+	p.Seeds["bootstrap"] = measure.DefaultSummaryOptions().Seed
+	p.Measure = measure.DefaultParams()
+	for _, m := range cfg.Methods {
+		p.Methods[m] = map[string]any{"patch": cfg.Patch, "stride": cfg.Stride, "fill": cfg.Fill, "baseline": cfg.Baseline, "steps": cfg.Steps, "samples": cfg.Samples, "layer": cfg.Layer, "seed": cfg.Seed}
+	}
+	r.Provenance = p
+	return pass, report.WriteAll(out, r)
 }

@@ -184,7 +184,8 @@ func execute(ctx context.Context, cfg Config, rf runFlags, stdout, stderr io.Wri
 	}
 
 	var worker batch.Worker
-	var finish func(context.Context) error
+	var finish func(context.Context) (bool, error)
+	table := ""
 	if rf.testWorker != "" {
 		d, err := time.ParseDuration(rf.testWorker)
 		if err != nil {
@@ -198,7 +199,7 @@ func execute(ctx context.Context, cfg Config, rf runFlags, stdout, stderr io.Wri
 			fmt.Fprintf(stderr, "heedmap run: %v\n", err)
 			return exitUsage
 		}
-		worker, finish = p.worker, p.finish
+		worker, finish, table = p.worker, p.finish, p.table
 	}
 
 	if err := os.MkdirAll(cfg.Out, 0o755); err != nil {
@@ -213,7 +214,7 @@ func execute(ctx context.Context, cfg Config, rf runFlags, stdout, stderr io.Wri
 	if f, ok := stderr.(*os.File); ok {
 		term = batch.IsTerminal(f)
 	}
-	r := &batch.Runner{Out: cfg.Out, Worker: worker, Workers: workers, Progress: stderr, Terminal: term}
+	r := &batch.Runner{Out: cfg.Out, Worker: worker, Workers: workers, Progress: stderr, Terminal: term, Table: table}
 	sum, err := r.Run(ctx, plan)
 	fmt.Fprintf(stderr, "done: %d ok, %d failed (%d invalid), %d skipped as already done, %d pending; %s, %s\n",
 		sum.OK, sum.Failed, sum.Invalid, sum.Skipped, sum.Pending, sum.Elapsed, sum.Rate)
@@ -225,17 +226,22 @@ func execute(ctx context.Context, cfg Config, rf runFlags, stdout, stderr io.Wri
 		fmt.Fprintf(stderr, "heedmap run: %v\n", err)
 		return exitFailed
 	}
+	pass := true
 	if finish != nil && sum.Complete {
-		if err := finish(ctx); err != nil {
+		if pass, err = finish(ctx); err != nil {
 			fmt.Fprintf(stderr, "heedmap run: report: %v\n", err)
 			return exitFailed
 		}
+		fmt.Fprintf(stdout, "report: %s\n", filepath.Join(cfg.Out, "report.html"))
 	}
 	fmt.Fprintf(stdout, "results in %s (metrics.csv, records/, items/)\n", cfg.Out)
 	switch {
 	case sum.OK == 0:
 		return exitFailed
 	case cfg.Strict && sum.Failed > 0:
+		return exitFailed
+	case !pass:
+		fmt.Fprintln(stderr, "acceptance criteria: at least one FAILED (see report.html)")
 		return exitFailed
 	}
 	return exitOK
