@@ -35,7 +35,10 @@ package engine
 // implements BackwardNeeder, entries it did not ask for are replaced by
 // shape-only tensors (as the runtime does), so a wrong declaration fails
 // here; Backward must not modify its arguments; gradients must have their
-// input's shape; integer inputs must get a nil gradient.
+// input's shape; integer inputs must get a nil gradient. For ops that
+// implement SelectiveBackward, BackwardFor asked for one input at a time,
+// given only what BackwardNeedsFor declared, must reproduce Backward's
+// gradient for that input and return nil for the others.
 
 import (
 	"fmt"
@@ -195,6 +198,45 @@ func gradCheck(op Op, in []*tensor.Tensor, o gradOpts) error {
 			ana := float64(g.F32[j])
 			if !(math.Abs(ana-num) <= o.Atol+o.Rtol*math.Abs(num)) { // NaN on either side fails
 				return fmt.Errorf("input %d element %d (x=%g): analytic %.6g, numeric %.6g", i, j, orig, ana, num)
+			}
+		}
+	}
+	if sb, ok := op.(SelectiveBackward); ok {
+		// Each differentiable input alone: BackwardFor must give the same
+		// gradient from only the values BackwardNeedsFor declared, and nil
+		// for the inputs not asked for.
+		for _, i := range wrt {
+			need := make([]bool, len(in))
+			need[i] = true
+			ni, no := sb.BackwardNeedsFor(need)
+			sin, sout := make([]*tensor.Tensor, len(in)), make([]*tensor.Tensor, len(out))
+			for k := range in {
+				sin[k] = shapeOnly(in[k])
+			}
+			for k := range out {
+				sout[k] = shapeOnly(out[k])
+			}
+			for _, k := range ni {
+				if k >= 0 && k < len(in) {
+					sin[k] = in[k]
+				}
+			}
+			for _, k := range no {
+				if k >= 0 && k < len(out) {
+					sout[k] = out[k]
+				}
+			}
+			sg, err := sb.BackwardFor(sin, sout, w, need)
+			if err != nil {
+				return fmt.Errorf("BackwardFor input %d only: %v", i, err)
+			}
+			for k := range sg {
+				if k != i && sg[k] != nil {
+					return fmt.Errorf("BackwardFor input %d only: got a gradient for input %d", i, k)
+				}
+			}
+			if sg[i] == nil || !equalAll([]*tensor.Tensor{sg[i]}, []*tensor.Tensor{grads[i]}) {
+				return fmt.Errorf("BackwardFor input %d only: gradient differs from Backward", i)
 			}
 		}
 	}

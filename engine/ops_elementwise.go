@@ -515,13 +515,44 @@ func (b *binaryOp) intForward(p *bcastPlan, shape []int, x, y []int64) (*tensor.
 // Backward reduces each operand's gradient back over its broadcast
 // dimensions.
 func (b *binaryOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor, error) {
+	return b.BackwardFor(in, out, gradOut, []bool{true, true})
+}
+
+// BackwardNeedsFor implements SelectiveBackward: with a constant operand
+// (a scale, a bias) only the other operand's gradient is formed, and only
+// the forward values it reads are kept.
+func (b *binaryOp) BackwardNeedsFor(need []bool) (in, out []int) {
+	nx, ny := len(need) > 0 && need[0], len(need) > 1 && need[1]
+	switch b.kind {
+	case binAdd, binSub:
+		return nil, nil
+	case binMul:
+		if nx {
+			in = append(in, 1)
+		}
+		if ny {
+			in = append(in, 0)
+		}
+		return in, nil
+	case binDiv:
+		if ny {
+			return []int{0, 1}, nil
+		}
+		return []int{1}, nil
+	}
+	return []int{0, 1}, nil
+}
+
+// BackwardFor implements SelectiveBackward.
+func (b *binaryOp) BackwardFor(in, out, gradOut []*tensor.Tensor, need []bool) ([]*tensor.Tensor, error) {
 	grads := make([]*tensor.Tensor, 2)
 	g := gradOut[0]
 	if g == nil || in[0].DType != tensor.Float32 {
 		return grads, nil
 	}
 	x, y := in[0], in[1]
-	yFloat := y.DType == tensor.Float32
+	needX, needY := len(need) > 0 && need[0], len(need) > 1 && need[1]
+	yFloat := y.DType == tensor.Float32 && needY
 	shape := g.Shape
 	ys, err := b.yShape(x, y)
 	if err != nil {
@@ -530,7 +561,9 @@ func (b *binaryOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor
 	var gx, gy []float32 // full-size gradients before reduction
 	switch b.kind {
 	case binAdd, binSub:
-		gx = g.F32
+		if needX {
+			gx = g.F32
+		}
 		if yFloat {
 			gy = make([]float32, len(g.F32))
 			if b.kind == binAdd {
@@ -547,13 +580,15 @@ func (b *binaryOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor
 			return nil, err
 		}
 		yv := y.F32
-		if !yFloat { // integer exponent of Pow
+		if y.DType != tensor.Float32 { // integer exponent of Pow
 			yv = make([]float32, len(y.I64))
 			for i, v := range y.I64 {
 				yv[i] = float32(v)
 			}
 		}
-		gx = make([]float32, len(g.F32))
+		if needX {
+			gx = make([]float32, len(g.F32))
+		}
 		if yFloat {
 			gy = make([]float32, len(g.F32))
 		}
@@ -563,7 +598,9 @@ func (b *binaryOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor
 			p.rows(func(o int, offs, steps []int, n int) {
 				ia, sa, ib, sb := offs[0], steps[0], offs[1], steps[1]
 				for i, gr := range gv[o : o+n] {
-					gx[o+i] = gr * yv[ib+i*sb]
+					if gx != nil {
+						gx[o+i] = gr * yv[ib+i*sb]
+					}
 					if gy != nil {
 						gy[o+i] = gr * xv[ia+i*sa]
 					}
@@ -573,7 +610,11 @@ func (b *binaryOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor
 		}
 		p.rows(func(o int, offs, steps []int, n int) {
 			for i := 0; i < n; i++ {
-				a, c, gr := float64(xv[offs[0]+i*steps[0]]), float64(yv[offs[1]+i*steps[1]]), float64(gv[o+i])
+				c, gr := float64(yv[offs[1]+i*steps[1]]), float64(gv[o+i])
+				var a float64
+				if xv != nil { // Div's dx does not read x, which may not be kept
+					a = float64(xv[offs[0]+i*steps[0]])
+				}
 				var da, dc float64
 				switch kind {
 				case binMul:
@@ -586,18 +627,22 @@ func (b *binaryOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor
 						dc = gr * math.Pow(a, c) * math.Log(a)
 					}
 				}
-				gx[o+i] = float32(da)
+				if gx != nil {
+					gx[o+i] = float32(da)
+				}
 				if gy != nil {
 					gy[o+i] = float32(dc)
 				}
 			}
 		})
 	}
-	rx, err := reduceToShape(gx, shape, x.Shape)
-	if err != nil {
-		return nil, err
+	if gx != nil {
+		rx, err := reduceToShape(gx, shape, x.Shape)
+		if err != nil {
+			return nil, err
+		}
+		grads[0] = &tensor.Tensor{DType: tensor.Float32, Shape: append([]int(nil), x.Shape...), F32: ownCopy(rx, g.F32)}
 	}
-	grads[0] = &tensor.Tensor{DType: tensor.Float32, Shape: append([]int(nil), x.Shape...), F32: ownCopy(rx, g.F32)}
 	if gy != nil {
 		ry, err := reduceToShape(gy, shape, ys)
 		if err != nil {
@@ -609,10 +654,7 @@ func (b *binaryOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor
 }
 
 func (b *binaryOp) BackwardNeeds() (in, out []int) {
-	if b.kind == binAdd || b.kind == binSub {
-		return nil, nil // shapes only
-	}
-	return []int{0, 1}, nil
+	return b.BackwardNeedsFor([]bool{true, true})
 }
 
 // ownCopy returns s, or a copy of it when it aliases shared (the incoming
@@ -683,10 +725,20 @@ func (p *preluOp) Forward(in []*tensor.Tensor) ([]*tensor.Tensor, error) {
 }
 
 func (p *preluOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor, error) {
+	return p.BackwardFor(in, out, gradOut, []bool{true, true})
+}
+
+// BackwardNeedsFor implements SelectiveBackward; the slope gradient is
+// skipped when the slope is a trained constant.
+func (p *preluOp) BackwardNeedsFor(need []bool) (in, out []int) { return []int{0, 1}, nil }
+
+// BackwardFor implements SelectiveBackward.
+func (p *preluOp) BackwardFor(in, out, gradOut []*tensor.Tensor, need []bool) ([]*tensor.Tensor, error) {
 	g := gradOut[0]
 	if g == nil {
 		return make([]*tensor.Tensor, 2), nil
 	}
+	needSlope := len(need) > 1 && need[1]
 	x, s := in[0], in[1]
 	ss, err := p.slopeShape(x, s)
 	if err != nil {
@@ -697,23 +749,35 @@ func (p *preluOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor,
 		return nil, err
 	}
 	gx := tensor.New(x.Shape...)
-	gsFull := make([]float32, len(x.F32))
+	var gsFull []float32
+	if needSlope {
+		gsFull = make([]float32, len(x.F32))
+	}
 	plan.rows(func(o int, offs, steps []int, n int) {
 		for i := 0; i < n; i++ {
 			v, gv := x.F32[o+i], g.F32[o+i]
 			if v < 0 {
 				gx.F32[o+i] = gv * s.F32[offs[1]+i*steps[1]]
-				gsFull[o+i] = gv * v
+				if gsFull != nil {
+					gsFull[o+i] = gv * v
+				}
 			} else {
 				gx.F32[o+i] = gv
 			}
 		}
 	})
-	gs, err := reduceToShape(gsFull, x.Shape, ss)
-	if err != nil {
-		return nil, err
+	grads := []*tensor.Tensor{gx, nil}
+	if len(need) > 0 && !need[0] {
+		grads[0] = nil
 	}
-	return []*tensor.Tensor{gx, {DType: tensor.Float32, Shape: append([]int(nil), s.Shape...), F32: gs}}, nil
+	if needSlope {
+		gs, err := reduceToShape(gsFull, x.Shape, ss)
+		if err != nil {
+			return nil, err
+		}
+		grads[1] = &tensor.Tensor{DType: tensor.Float32, Shape: append([]int(nil), s.Shape...), F32: gs}
+	}
+	return grads, nil
 }
 
 // ---------------------------------------------------------------------------
