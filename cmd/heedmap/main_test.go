@@ -12,6 +12,7 @@ import (
 	"testing"
 	"time"
 
+	"heedmap/batch"
 	"heedmap/synth"
 )
 
@@ -331,4 +332,58 @@ func TestRunRealPipelineOnDemoModel(t *testing.T) {
 	if !bytes.Equal(metrics, again) {
 		t.Error("metrics.csv changed on a rerun that skipped every image")
 	}
+	// Two shards merged give the same tables and a report.
+	var shards []string
+	for i := 0; i < 2; i++ {
+		d := filepath.Join(dir, fmt.Sprintf("shard-%d", i))
+		a := append([]string{}, args...)
+		a[6] = d // --out
+		if code, _, e := runCLI(t, append(a, "--shard", fmt.Sprintf("%d/2", i))...); code != 0 {
+			t.Fatalf("shard %d: exit %d\n%s", i, code, e)
+		}
+		shards = append(shards, d)
+	}
+	merged := filepath.Join(dir, "merged")
+	if code, _, e := runCLI(t, append([]string{"merge", "--out", merged}, shards...)...); code != 0 {
+		t.Fatalf("merge: exit %d\n%s", code, e)
+	}
+	for _, f := range []string{"metrics.csv", "images.csv"} {
+		a, _ := os.ReadFile(filepath.Join(out, f))
+		b, _ := os.ReadFile(filepath.Join(merged, f))
+		if !bytes.Equal(a, b) {
+			t.Errorf("merged %s differs from the single run:\n%s\n---\n%s", f, b, a)
+		}
+	}
+	if _, err := os.Stat(filepath.Join(merged, "report.html")); err != nil {
+		t.Error(err)
+	}
+}
+
+// BenchmarkDemoImage measures the whole per-image pipeline (preprocess,
+// occlusion, gradient, integrated gradients, Grad-CAM, measures, four
+// overlays and a panel) on one 64×64 synthetic image with the demo model.
+func BenchmarkDemoImage(b *testing.B) {
+	dir := b.TempDir()
+	if err := synth.WriteDataset(dir, 1, synth.Options{Size: 64, Seed: 5}); err != nil {
+		b.Fatal(err)
+	}
+	model := filepath.Join(dir, "m.onnx")
+	os.WriteFile(model, demoModel, 0o644)
+	cfg := defaultConfig()
+	cfg.Model, cfg.Out = model, dir
+	cfg.Size, cfg.Mean, cfg.Std = 64, []float64{0.5, 0.5, 0.5}, []float64{0.25, 0.25, 0.25}
+	p, err := newPipeline(cfg)
+	if err != nil {
+		b.Fatal(err)
+	}
+	it := batch.Item{ID: "syn00000", Image: filepath.Join(dir, "images", "syn00000.png"), Mask: filepath.Join(dir, "masks", "syn00000.png")}
+	d := batch.Dest{Out: dir, Dir: filepath.Join(dir, "items", "x")}
+	os.MkdirAll(d.Dir, 0o755)
+	b.ResetTimer()
+	for i := 0; i < b.N; i++ {
+		if _, err := p.worker.Process(context.Background(), it, d); err != nil {
+			b.Fatal(err)
+		}
+	}
+	b.ReportMetric(float64(b.N)/b.Elapsed().Seconds(), "img/s")
 }
