@@ -88,7 +88,8 @@ var portableConfig = config{
 }
 
 // Packed is a cache-blocked, packed SGEMM with a SIMD micro-kernel where the
-// CPU has one. It is safe for concurrent use; packing buffers are reused
+// CPU has one. The zero value is the portable path using GOMAXPROCS
+// goroutines; use it through a pointer, as it must not be copied. It is safe for concurrent use; packing buffers are reused
 // through a pool owned by the value, so steady-state calls do not allocate
 // (apart from goroutine start-up when a call is split across threads).
 type Packed struct {
@@ -152,10 +153,19 @@ func Portable() *Packed {
 }
 
 // ISA reports the path this GEMM runs.
-func (g *Packed) ISA() ISA { return g.cfg.isa }
+func (g *Packed) ISA() ISA { return g.conf().isa }
 
 // Tile reports the micro-kernel's register tile (rows × columns of C).
-func (g *Packed) Tile() (mr, nr int) { return g.cfg.mr, g.cfg.nr }
+func (g *Packed) Tile() (mr, nr int) { return g.conf().mr, g.conf().nr }
+
+// conf returns the path's configuration; the zero Packed is the portable
+// path with GOMAXPROCS goroutines.
+func (g *Packed) conf() *config {
+	if g.cfg.kernel == nil {
+		return &portableConfig
+	}
+	return &g.cfg
+}
 
 // Sgemm implements GEMM. Dimensions, strides and slice lengths are checked
 // before any work, because the SIMD micro-kernels address memory directly;
@@ -174,7 +184,7 @@ func (g *Packed) Sgemm(transA, transB bool, m, n, k int, alpha float32, a []floa
 	if threads == 0 {
 		threads = runtime.GOMAXPROCS(0)
 	}
-	cfg := &g.cfg
+	cfg := g.conf()
 	if threads < 2 || m*n*k < cfg.minParallelOps {
 		ws := g.get()
 		g.run(ws, transA, transB, m, n, k, alpha, a, lda, b, ldb, beta, c, ldc)
@@ -191,7 +201,7 @@ func (g *Packed) Sgemm(transA, transB bool, m, n, k int, alpha float32, a []floa
 // is. No slab shares any part of C, so no synchronisation beyond the final
 // wait is needed.
 func (g *Packed) parallel(threads int, transA, transB bool, m, n, k int, alpha float32, a []float32, lda int, b []float32, ldb int, beta float32, c []float32, ldc int) {
-	cfg := &g.cfg
+	cfg := g.conf()
 	mTiles := (m + cfg.mr - 1) / cfg.mr
 	nTiles := (n + cfg.nr - 1) / cfg.nr
 	splitN := nTiles >= mTiles
@@ -256,7 +266,7 @@ func (g *Packed) get() *workspace {
 	if ws, ok := g.pool.Get().(*workspace); ok {
 		return ws
 	}
-	return &workspace{tile: make([]float32, g.cfg.mr*g.cfg.nr)}
+	return &workspace{tile: make([]float32, g.conf().mr*g.conf().nr)}
 }
 
 // grow returns buf with length n, reallocating only when it is too small.
@@ -269,7 +279,7 @@ func grow(buf []float32, n int) []float32 {
 
 // run is the sequential blocked algorithm on one slab of C.
 func (g *Packed) run(ws *workspace, transA, transB bool, m, n, k int, alpha float32, a []float32, lda int, b []float32, ldb int, beta float32, c []float32, ldc int) {
-	cfg := &g.cfg
+	cfg := g.conf()
 	mr, nr := cfg.mr, cfg.nr
 	kcMax := min(cfg.kc, k)
 	ncMax := min(cfg.nc, roundUp(n, nr))
