@@ -4,6 +4,7 @@ import (
 	"fmt"
 	"math"
 	"math/rand/v2"
+	"os"
 	"strings"
 	"testing"
 )
@@ -51,9 +52,15 @@ func paths(t testing.TB) []path {
 
 type shape struct{ m, n, k int }
 
+// testShapes is every combination of m, n, k in {1, 7, 17, 33} plus chosen
+// larger shapes; with HEEDMAP_LONG=1 it is the full cross product of
+// {1, 7, 17, 33, 64, 100, 257} as well.
 func testShapes() []shape {
 	var ss []shape
 	small := []int{1, 7, 17, 33}
+	if os.Getenv("HEEDMAP_LONG") == "1" {
+		small = []int{1, 7, 17, 33, 64, 100, 257}
+	}
 	for _, m := range small {
 		for _, n := range small {
 			for _, k := range small {
