@@ -357,6 +357,20 @@ func TestRunRealPipelineOnDemoModel(t *testing.T) {
 	if _, err := os.Stat(filepath.Join(merged, "report.html")); err != nil {
 		t.Error(err)
 	}
+	// An acceptance criterion no map can meet (pointing accuracy above 1)
+	// makes the run exit 1 after writing the report; one every map meets
+	// (at least 0) keeps exit 0.
+	for _, c := range []struct {
+		compare string
+		want    int
+	}{{">=", exitFailed}, {"<=", exitOK}} {
+		crit := filepath.Join(dir, "criteria.yaml")
+		os.WriteFile(crit, []byte("criteria:\n  - method: grad-cam\n    statistic: pointing_accuracy\n    compare: \""+c.compare+"\"\n    threshold: "+map[string]string{">=": "1.01", "<=": "1"}[c.compare]+"\n"), 0o644)
+		code, _, e := runCLI(t, append(args, "--criteria", crit)...)
+		if code != c.want {
+			t.Errorf("criterion %s: exit %d, want %d\n%s", c.compare, code, c.want, e)
+		}
+	}
 }
 
 // BenchmarkDemoImage measures the whole per-image pipeline (preprocess,

@@ -152,6 +152,27 @@ func execute(ctx context.Context, cfg Config, rf runFlags, stdout, stderr io.Wri
 		workers = runtime.NumCPU()
 	}
 
+	var worker batch.Worker
+	var finish func(context.Context) (bool, error)
+	table := ""
+	if rf.testWorker != "" {
+		d, err := time.ParseDuration(rf.testWorker)
+		if err != nil {
+			fmt.Fprintf(stderr, "heedmap run: --x-test-worker: %v\n", err)
+			return exitUsage
+		}
+		worker = testWorker{delay: d}
+	} else {
+		// The model and every setting are checked before the images, so a
+		// bad model or option fails in seconds, dry run included.
+		p, err := newPipeline(cfg)
+		if err != nil {
+			fmt.Fprintf(stderr, "heedmap run: %v\n", err)
+			return exitUsage
+		}
+		worker, finish, table = p.worker, p.finish, p.table
+	}
+
 	items, probs, err := batch.Discover(batch.Input{Images: cfg.Images, Masks: cfg.Masks, MaskSuffix: cfg.MaskSuffix})
 	if err != nil {
 		fmt.Fprintf(stderr, "heedmap run: %v\n", err)
@@ -181,25 +202,6 @@ func execute(ctx context.Context, cfg Config, rf runFlags, stdout, stderr io.Wri
 			return exitFailed
 		}
 		return exitOK
-	}
-
-	var worker batch.Worker
-	var finish func(context.Context) (bool, error)
-	table := ""
-	if rf.testWorker != "" {
-		d, err := time.ParseDuration(rf.testWorker)
-		if err != nil {
-			fmt.Fprintf(stderr, "heedmap run: --x-test-worker: %v\n", err)
-			return exitUsage
-		}
-		worker = testWorker{delay: d}
-	} else {
-		p, err := newPipeline(cfg)
-		if err != nil {
-			fmt.Fprintf(stderr, "heedmap run: %v\n", err)
-			return exitUsage
-		}
-		worker, finish, table = p.worker, p.finish, p.table
 	}
 
 	if err := os.MkdirAll(cfg.Out, 0o755); err != nil {
