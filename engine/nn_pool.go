@@ -68,7 +68,14 @@ func (op *poolOp) geometry(x []int) (geom2, error) {
 }
 
 func (op *poolOp) Forward(in []*tensor.Tensor) ([]*tensor.Tensor, error) {
-	x := in[0]
+	return op.forward(in[0], op.hasIndices)
+}
+
+// forward pools x; for MaxPool with wantIdx it also returns the argmax of
+// every window as ONNX Indices (flat offsets into x), which is what
+// Backward routes gradients through. Without a consumer for Indices they
+// are not materialised in the forward pass but recomputed by Backward.
+func (op *poolOp) forward(x *tensor.Tensor, wantIdx bool) ([]*tensor.Tensor, error) {
 	if err := wantFloat(x, "X", 3); err != nil {
 		return nil, err
 	}
@@ -81,7 +88,7 @@ func (op *poolOp) Forward(in []*tensor.Tensor) ([]*tensor.Tensor, error) {
 	y := tensor.New(g.outShape(x.Shape[0], x.Shape[1], spatial)...)
 	ihw, ohw := g.ih*g.iw, g.oh*g.ow
 	var idx *tensor.Tensor
-	if op.max {
+	if op.max && wantIdx {
 		idx = tensor.NewInt64(y.Shape...)
 	}
 	splitWork(nc, nc*ohw*g.kh*g.kw, func(p0, p1 int) {
@@ -111,7 +118,9 @@ func (op *poolOp) Forward(in []*tensor.Tensor) ([]*tensor.Tensor, error) {
 							arg = 0
 						}
 						dst[oy*g.ow+ox] = best
-						idx.I64[p*ohw+oy*g.ow+ox] = int64(p*ihw + arg)
+						if idx != nil {
+							idx.I64[p*ohw+oy*g.ow+ox] = int64(p*ihw + arg)
+						}
 						continue
 					}
 					var sum float32
@@ -128,7 +137,7 @@ func (op *poolOp) Forward(in []*tensor.Tensor) ([]*tensor.Tensor, error) {
 			}
 		}
 	})
-	if op.max {
+	if idx != nil {
 		return []*tensor.Tensor{y, idx}, nil
 	}
 	return []*tensor.Tensor{y}, nil
@@ -168,7 +177,7 @@ func (op *poolOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor,
 		if len(out) > 1 && out[1] != nil && out[1].I64 != nil {
 			arg = out[1]
 		} else {
-			res, err := op.Forward(in[:1])
+			res, err := op.forward(in[0], true)
 			if err != nil {
 				return nil, err
 			}
