@@ -401,3 +401,48 @@ func BenchmarkDemoImage(b *testing.B) {
 	}
 	b.ReportMetric(float64(b.N)/b.Elapsed().Seconds(), "img/s")
 }
+
+// The kill -9 test with the real pipeline (slow: HEEDMAP_LONG=1).
+func TestKill9RealPipeline(t *testing.T) {
+	if os.Getenv("HEEDMAP_LONG") == "" {
+		t.Skip("set HEEDMAP_LONG=1 (runs the demo model on 8 images three times)")
+	}
+	bin := buildBinary(t)
+	dir := t.TempDir()
+	data := filepath.Join(dir, "data")
+	if err := synth.WriteDataset(data, 8, synth.Options{Size: 64, Seed: 31}); err != nil {
+		t.Fatal(err)
+	}
+	model := filepath.Join(dir, "m.onnx")
+	os.WriteFile(model, demoModel, 0o644)
+	args := func(out string) []string {
+		return []string{"run", "--model", model, "--images", filepath.Join(data, "manifest.csv"), "--out", out,
+			"--config", "../../testdata/demo/demo.yaml", "--methods", "occlusion,integrated-gradients,grad-cam", "--workers", "2"}
+	}
+	ref := filepath.Join(dir, "ref")
+	if b, err := exec.Command(bin, args(ref)...).CombinedOutput(); err != nil {
+		t.Fatalf("%v\n%s", err, b)
+	}
+	out := filepath.Join(dir, "out")
+	for _, at := range []int{1, 4} {
+		cmd := exec.Command(bin, args(out)...)
+		cmd.Start()
+		deadline := time.Now().Add(120 * time.Second)
+		for countRecords(out) < at && time.Now().Before(deadline) {
+			time.Sleep(5 * time.Millisecond)
+		}
+		cmd.Process.Signal(syscall.SIGKILL)
+		cmd.Wait()
+		t.Logf("killed with %d records", countRecords(out))
+	}
+	if b, err := exec.Command(bin, args(out)...).CombinedOutput(); err != nil {
+		t.Fatalf("%v\n%s", err, b)
+	}
+	for _, f := range []string{"metrics.csv", "images.csv"} {
+		a, _ := os.ReadFile(filepath.Join(ref, f))
+		b, _ := os.ReadFile(filepath.Join(out, f))
+		if len(a) == 0 || !bytes.Equal(a, b) {
+			t.Errorf("%s after kills differs from the uninterrupted run", f)
+		}
+	}
+}
