@@ -245,8 +245,13 @@ func runOptions() []option {
 		c.Fill = v
 		return nil
 	}, func(c *Config) string { return c.Fill })
-	s, g = str(func(c *Config) *string { return &c.Baseline })
-	add(met, "baseline", "B", "integrated-gradients baseline: black, blur, mean or R,G,B", s, g)
+	add(met, "baseline", "B", "integrated-gradients baseline: black, mean (the image's mean colour), blur or noise", func(c *Config, v string) error {
+		if err := oneOf(v, "black", "mean", "blur", "noise"); err != nil {
+			return err
+		}
+		c.Baseline = v
+		return nil
+	}, func(c *Config) string { return c.Baseline })
 	s, g = num(func(c *Config) *int { return &c.Steps }, 0)
 	add(met, "steps", "N", "integrated-gradients steps; 0 = the method's default (64)", s, g)
 	s, g = num(func(c *Config) *int { return &c.Samples }, 0)

@@ -35,7 +35,8 @@ const (
 )
 
 const exitCodesHelp = `Exit codes:
-  0    success; images that failed have error records and rows in metrics.csv
+  0    success; images that failed have error records, rows in images.csv
+       and entries in the report
   1    no image succeeded, an acceptance criterion (--criteria) failed, or
        --strict and some image was invalid or failed
   2    usage error: bad flag or config, unreadable model, images not found

@@ -70,7 +70,7 @@ func TestFlagsOverrideConfigFile(t *testing.T) {
 	if _, _, code, done := parseRun([]string{"--config", y, "--images", "i", "--out", "o"}, &e, &e); !done || code != exitUsage || !strings.Contains(e.String(), `unknown key "sizee"`) {
 		t.Errorf("typo in config: exit %d, %s", code, e.String())
 	}
-	for _, bad := range [][]string{{"--methods", "saliency"}, {"--resize", "zoom"}, {"--mean", "1,2"}, {"--std", "0,1,1"}, {"--fill", "grey"}, {"--steps", "-1"}} {
+	for _, bad := range [][]string{{"--methods", "saliency"}, {"--resize", "zoom"}, {"--mean", "1,2"}, {"--std", "0,1,1"}, {"--fill", "grey"}, {"--steps", "-1"}, {"--baseline", "1,2,3"}} {
 		e.Reset()
 		args := append([]string{"--model", "m", "--images", "i", "--out", "o"}, bad...)
 		if _, _, code, done := parseRun(args, &e, &e); !done || code != exitUsage {
