@@ -3,6 +3,7 @@ package engine
 import (
 	"context"
 	"errors"
+	"math/rand"
 	"strings"
 	"testing"
 
@@ -447,5 +448,51 @@ func TestGradCAMLayerAndDescribe(t *testing.T) {
 	g3, _ := Compile(m3)
 	if _, err := g3.GradCAMLayer(); err == nil {
 		t.Error("GradCAMLayer found a layer in a graph without pooling")
+	}
+}
+
+// TestConcurrentRuns: a Graph is shared by goroutines (batch workers); each
+// Run must give the single-threaded result. Run with -race to check the
+// operators hold no shared mutable state.
+func TestConcurrentRuns(t *testing.T) {
+	rng := rand.New(rand.NewSource(3))
+	w := nnRand(rng, 4, 2, 3, 3)
+	m := nnGraphModel([]onnx.ValueInfo{nnIn("x", "N", 2, 6, 6)}, []string{"y"}, map[string]*tensor.Tensor{"w": w},
+		nnNode("c", "Conv", []string{"x", "w"}, []string{"h"}, nnInts("pads", 1, 1, 1, 1)),
+		nnNode("p", "MaxPool", []string{"h"}, []string{"y"}, nnInts("kernel_shape", 2, 2), nnInts("strides", 2, 2)))
+	g, err := Compile(m)
+	if err != nil {
+		t.Fatal(err)
+	}
+	x := nnRand(rng, 2, 2, 6, 6)
+	ctx := context.Background()
+	ref, err := g.Run(ctx, map[string]*tensor.Tensor{"x": x}, RunOptions{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	want, _ := ref.Value("y")
+	errs := make(chan error, 8)
+	for i := 0; i < 8; i++ {
+		go func() {
+			p, err := g.Run(ctx, map[string]*tensor.Tensor{"x": x}, RunOptions{Backward: true})
+			if err == nil {
+				y, _ := p.Value("y")
+				for j := range y.F32 {
+					if y.F32[j] != want.F32[j] {
+						err = errors.New("concurrent run differs from the sequential one")
+						break
+					}
+				}
+				if err == nil {
+					_, err = p.Backward(ctx, map[string]*tensor.Tensor{"y": y}, []string{"x"})
+				}
+			}
+			errs <- err
+		}()
+	}
+	for i := 0; i < 8; i++ {
+		if err := <-errs; err != nil {
+			t.Error(err)
+		}
 	}
 }
