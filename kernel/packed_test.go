@@ -286,3 +286,37 @@ func TestNewRejects(t *testing.T) {
 		t.Errorf("Best picked %v", g.ISA())
 	}
 }
+
+// TestSgemmConcurrentUse runs one GEMM value from several goroutines at
+// once (as parallel explanation workers do); each must get its own
+// packing buffers. Run under -race to check the pool use.
+func TestSgemmConcurrentUse(t *testing.T) {
+	r := rand.New(rand.NewPCG(13, 14))
+	m, n, k := 37, 70, 300
+	a, b := newMat(r, m, k, 1), newMat(r, k, n, 2)
+	want := make([]float32, m*n)
+	Naive{}.Sgemm(false, false, m, n, k, 1, a.v, a.ld, b.v, b.ld, 0, want, n)
+	bound := errBound(false, false, shape{m, n, k}, 1, a, b, 0, mat{m, n, n, want})
+	for _, p := range paths(t) {
+		const workers = 4
+		errs := make(chan error, workers)
+		for w := 0; w < workers; w++ {
+			go func() {
+				c := make([]float32, m*n)
+				for range 5 {
+					p.g.Sgemm(false, false, m, n, k, 1, a.v, a.ld, b.v, b.ld, 0, c, n)
+					if err := compare(c, want, bound, n, n); err != nil {
+						errs <- err
+						return
+					}
+				}
+				errs <- nil
+			}()
+		}
+		for w := 0; w < workers; w++ {
+			if err := <-errs; err != nil {
+				t.Fatalf("%s: %v", p.name, err)
+			}
+		}
+	}
+}
