@@ -95,43 +95,27 @@ func (op *poolOp) forward(x *tensor.Tensor, wantIdx bool) ([]*tensor.Tensor, err
 		for p := p0; p < p1; p++ {
 			src := x.F32[p*ihw : (p+1)*ihw]
 			dst := y.F32[p*ohw : (p+1)*ohw]
+			var ix64 []int64
+			if idx != nil {
+				ix64 = idx.I64[p*ohw : (p+1)*ohw]
+			}
+			if op.max {
+				maxPlane(src, dst, ix64, g, int64(p*ihw))
+				continue
+			}
 			for oy := 0; oy < g.oh; oy++ {
+				y0 := oy*g.sh - g.pt
+				ylo, yhi := max(y0, 0), min(y0+g.kh, g.ih)
 				for ox := 0; ox < g.ow; ox++ {
-					if op.max {
-						best, arg := float32(math.Inf(-1)), -1
-						for ki := 0; ki < g.kh; ki++ {
-							iy := oy*g.sh - g.pt + ki*g.dh
-							if iy < 0 || iy >= g.ih {
-								continue
-							}
-							for kj := 0; kj < g.kw; kj++ {
-								ix := ox*g.sw - g.pl + kj*g.dw
-								if ix < 0 || ix >= g.iw {
-									continue
-								}
-								if v := src[iy*g.iw+ix]; v > best || arg < 0 {
-									best, arg = v, iy*g.iw+ix
-								}
-							}
-						}
-						if arg < 0 { // window entirely in padding
-							arg = 0
-						}
-						dst[oy*g.ow+ox] = best
-						if idx != nil {
-							idx.I64[p*ohw+oy*g.ow+ox] = int64(p*ihw + arg)
-						}
-						continue
-					}
+					x0 := ox*g.sw - g.pl
+					xlo, xhi := max(x0, 0), min(x0+g.kw, g.iw)
 					var sum float32
-					cnt := 0
-					y0, x0 := oy*g.sh-g.pt, ox*g.sw-g.pl
-					for iy := max(y0, 0); iy < min(y0+g.kh, g.ih); iy++ {
-						for ix := max(x0, 0); ix < min(x0+g.kw, g.iw); ix++ {
-							sum += src[iy*g.iw+ix]
-							cnt++
+					for iy := ylo; iy < yhi; iy++ {
+						for _, v := range src[iy*g.iw+xlo : iy*g.iw+xhi] {
+							sum += v
 						}
 					}
+					cnt := max(yhi-ylo, 0) * max(xhi-xlo, 0)
 					dst[oy*g.ow+ox] = sum / float32(op.divisor(g, y0, x0, cnt))
 				}
 			}
@@ -293,4 +277,48 @@ func (op *globalPoolOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.T
 		}
 	}
 	return []*tensor.Tensor{dx}, nil
+}
+
+// tapRange returns the kernel taps [lo, hi) whose input coordinate
+// start + k·d lies inside [0, n), so the inner loops need no bounds tests.
+func tapRange(start, d, k, n int) (lo, hi int) {
+	if start < 0 {
+		lo = (-start + d - 1) / d
+	}
+	hi = k
+	if last := start + (k-1)*d; last >= n {
+		hi = (n-1-start)/d + 1
+	}
+	return lo, max(hi, lo)
+}
+
+// maxPlane max-pools one channel plane. Ties keep the first position in
+// scan order (row-major within the window), as PyTorch does; idx, when not
+// nil, receives off + the flat offset of each window's maximum.
+func maxPlane(src, dst []float32, idx []int64, g geom2, off int64) {
+	for oy := 0; oy < g.oh; oy++ {
+		y0 := oy*g.sh - g.pt
+		kilo, kihi := tapRange(y0, g.dh, g.kh, g.ih)
+		for ox := 0; ox < g.ow; ox++ {
+			x0 := ox*g.sw - g.pl
+			kjlo, kjhi := tapRange(x0, g.dw, g.kw, g.iw)
+			best, arg := float32(math.Inf(-1)), -1
+			for ki := kilo; ki < kihi; ki++ {
+				row := (y0 + ki*g.dh) * g.iw
+				for kj := kjlo; kj < kjhi; kj++ {
+					j := row + x0 + kj*g.dw
+					if v := src[j]; v > best || arg < 0 {
+						best, arg = v, j
+					}
+				}
+			}
+			if arg < 0 { // window entirely in padding
+				arg = 0
+			}
+			dst[oy*g.ow+ox] = best
+			if idx != nil {
+				idx[oy*g.ow+ox] = off + int64(arg)
+			}
+		}
+	}
 }
