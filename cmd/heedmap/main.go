@@ -48,7 +48,22 @@ const version = "0.1.0-dev"
 
 func main() {
 	ctx, stop := signal.NotifyContext(context.Background(), os.Interrupt, syscall.SIGTERM)
+	finished := make(chan struct{})
+	go func() {
+		// After the first signal, restore the default handling so a second
+		// Ctrl-C ends the process at once (finished records are safe: each
+		// was renamed into place complete).
+		<-ctx.Done()
+		select {
+		case <-finished: // cancelled by the stop() below, not by a signal
+			return
+		default:
+		}
+		stop()
+		fmt.Fprintln(os.Stderr, "\nstopping after the images in progress (Ctrl-C again to quit at once)")
+	}()
 	code := dispatch(ctx, os.Args[1:], os.Stdout, os.Stderr)
+	close(finished)
 	stop()
 	os.Exit(code)
 }
