@@ -4,6 +4,7 @@ import (
 	"fmt"
 	"runtime"
 	"sync"
+	"sync/atomic"
 )
 
 // ISA names an instruction-set path of the packed GEMM.
@@ -96,6 +97,7 @@ type Packed struct {
 	cfg     config
 	threads int
 	pool    sync.Pool // *workspace
+	jobs    sync.Pool // *parJob
 }
 
 type workspace struct {
@@ -194,12 +196,15 @@ func (g *Packed) Sgemm(transA, transB bool, m, n, k int, alpha float32, a []floa
 	g.parallel(threads, transA, transB, m, n, k, alpha, a, lda, b, ldb, beta, c, ldc)
 }
 
-// parallel splits C into threads slabs of whole register tiles along the
-// dimension with more tiles, and runs the sequential algorithm on each slab.
-// Each goroutine packs its own panels: along n, A is packed once per
-// goroutine (a small cost next to the m·n·k/threads multiply); along m, B
-// is. No slab shares any part of C, so no synchronisation beyond the final
-// wait is needed.
+// parallel splits C into slabs of whole register tiles along the dimension
+// with more tiles and runs the sequential algorithm on each slab. There are
+// a few more slabs than goroutines and each goroutine takes the next free
+// slab, so a core that is slowed by other work (the machine is shared)
+// does fewer slabs instead of holding up the call. Each slab packs its own
+// B panels, and its own A block when A is transposed (a non-transposed A is
+// read in place); that repeated packing is small next to the slab's
+// multiply. No two slabs share any part of C, so only the final wait
+// synchronises.
 func (g *Packed) parallel(threads int, transA, transB bool, m, n, k int, alpha float32, a []float32, lda int, b []float32, ldb int, beta float32, c []float32, ldc int) {
 	cfg := g.conf()
 	mTiles := (m + cfg.mr - 1) / cfg.mr
@@ -210,56 +215,88 @@ func (g *Packed) parallel(threads int, transA, transB bool, m, n, k int, alpha f
 		tiles, unit = nTiles, cfg.nr
 	}
 	threads = min(threads, tiles)
+	// slabsPerThread trades load balance against repeated packing.
+	const slabsPerThread = 3
+	slabs := min(tiles, threads*slabsPerThread, max(threads, m*n*k/(cfg.minParallelOps/2)))
 	if threads < 2 {
 		ws := g.get()
 		g.run(ws, transA, transB, m, n, k, alpha, a, lda, b, ldb, beta, c, ldc)
 		g.pool.Put(ws)
 		return
 	}
-	var wg sync.WaitGroup
-	for t := 0; t < threads; t++ {
-		lo := tiles * t / threads * unit
-		hi := tiles * (t + 1) / threads * unit
-		var (
-			sa, sb, sc []float32
-			sm, sn     = m, n
-		)
-		if splitN {
-			hi = min(hi, n)
-			sn = hi - lo
-			sa = a
-			if transB {
-				sb = b[lo*ldb:]
-			} else {
-				sb = b[lo:]
-			}
-			sc = c[lo:]
-		} else {
-			hi = min(hi, m)
-			sm = hi - lo
-			sb = b
-			if transA {
-				sa = a[lo:]
-			} else {
-				sa = a[lo*lda:]
-			}
-			sc = c[lo*ldc:]
-		}
-		if t == threads-1 {
-			ws := g.get()
-			g.run(ws, transA, transB, sm, sn, k, alpha, sa, lda, sb, ldb, beta, sc, ldc)
-			g.pool.Put(ws)
-			break
-		}
-		wg.Add(1)
-		go func() {
-			defer wg.Done()
-			ws := g.get()
-			g.run(ws, transA, transB, sm, sn, k, alpha, sa, lda, sb, ldb, beta, sc, ldc)
-			g.pool.Put(ws)
-		}()
+	j, _ := g.jobs.Get().(*parJob)
+	if j == nil {
+		j = new(parJob)
 	}
-	wg.Wait()
+	j.g, j.transA, j.transB, j.m, j.n, j.k = g, transA, transB, m, n, k
+	j.alpha, j.a, j.lda, j.b, j.ldb, j.beta, j.c, j.ldc = alpha, a, lda, b, ldb, beta, c, ldc
+	j.splitN, j.tiles, j.unit, j.slabs = splitN, tiles, unit, slabs
+	j.next.Store(0)
+	j.wg.Add(threads - 1)
+	for t := 1; t < threads; t++ {
+		go j.helper()
+	}
+	j.work()
+	j.wg.Wait()
+	j.a, j.b, j.c = nil, nil, nil // do not keep the caller's matrices alive
+	g.jobs.Put(j)
+}
+
+// parJob is one parallel Sgemm call; it is pooled so a call allocates only
+// its goroutines.
+type parJob struct {
+	g                  *Packed
+	transA, transB     bool
+	m, n, k            int
+	alpha, beta        float32
+	a, b, c            []float32
+	lda, ldb, ldc      int
+	splitN             bool
+	tiles, unit, slabs int
+	next               atomic.Int64 // next unclaimed slab
+	wg                 sync.WaitGroup
+}
+
+func (j *parJob) helper() {
+	defer j.wg.Done()
+	j.work()
+}
+
+// work claims slabs until none is left.
+func (j *parJob) work() {
+	g := j.g
+	ws := g.get()
+	defer g.pool.Put(ws)
+	for {
+		s := int(j.next.Add(1) - 1)
+		if s >= j.slabs {
+			return
+		}
+		lo := j.tiles * s / j.slabs * j.unit
+		hi := j.tiles * (s + 1) / j.slabs * j.unit
+		sa, sb, sc := j.a, j.b, j.c
+		sm, sn := j.m, j.n
+		if j.splitN {
+			hi = min(hi, j.n)
+			sn = hi - lo
+			if j.transB {
+				sb = j.b[lo*j.ldb:]
+			} else {
+				sb = j.b[lo:]
+			}
+			sc = j.c[lo:]
+		} else {
+			hi = min(hi, j.m)
+			sm = hi - lo
+			if j.transA {
+				sa = j.a[lo:]
+			} else {
+				sa = j.a[lo*j.lda:]
+			}
+			sc = j.c[lo*j.ldc:]
+		}
+		g.run(ws, j.transA, j.transB, sm, sn, j.k, j.alpha, sa, j.lda, sb, j.ldb, j.beta, sc, j.ldc)
+	}
 }
 
 func (g *Packed) get() *workspace {
