@@ -59,6 +59,11 @@ func TestCompactNetworks(t *testing.T) {
 // script. Opt-in: HEEDMAP_FULLNETS=1 for all eight, or a comma-separated
 // subset such as HEEDMAP_FULLNETS=resnet18,vit_b16 (needs /usr/bin/python3
 // with torch, torchvision and onnx; several minutes and a few GB of memory).
+// The tolerances are those of the compact nets. At 224×224 the input
+// gradient of ReLU/ReLU6 networks sits near them: PyTorch's own float32
+// gradient moves by a relative L2 of 1e-3 to 7e-3 when computed in float64
+// or with BatchNorm folded into the convolutions as the export does
+// (testdata/reference/noise_floor.py), since rounding flips some units.
 func TestFullSizeNetworks(t *testing.T) {
 	sel := os.Getenv("HEEDMAP_FULLNETS")
 	if sel == "" {
