@@ -68,6 +68,7 @@ func TestHostileTensors(t *testing.T) {
 		{"external too short", external("ext", []int64{100}, "weights.bin", "0", ""), "need 400 bytes"},
 		{"external offset past end", external("off", []int64{1}, "weights.bin", "1000", ""), "past the end"},
 		{"external bad length", external("len", []int64{1}, "weights.bin", "0", "-4"), "non-negative"},
+		{"external symlink out", external("link", []int64{1}, "link.bin", "", ""), "link.bin"},
 	}
 	dir := t.TempDir()
 	if err := os.WriteFile(filepath.Join(dir, "weights.bin"), f32bytes(4), 0o644); err != nil {
@@ -77,6 +78,10 @@ func TestHostileTensors(t *testing.T) {
 		t.Fatal(err)
 	}
 	defer os.Remove(filepath.Join(filepath.Dir(dir), "outside.bin"))
+	// A symlink inside the model's directory that leads out of it.
+	if err := os.Symlink(filepath.Join(filepath.Dir(dir), "outside.bin"), filepath.Join(dir, "link.bin")); err != nil {
+		t.Fatal(err)
+	}
 	for _, c := range cases {
 		t.Run(c.name, func(t *testing.T) {
 			path := filepath.Join(dir, "hostile.onnx")
