@@ -71,7 +71,7 @@ func (w *meanWorker) Process(ctx context.Context, it Item, dst Dest) (Result, er
 		}
 		res.Metrics["mask_fraction"] = float64(in) / n
 	}
-	abs, rel, err := dst.Path("stats.txt")
+	abs, rel, err := dst.Path("stats", ".txt")
 	if err != nil {
 		return Result{}, err
 	}
@@ -397,7 +397,7 @@ func TestShardsPartitionAndMergeEqualsSingleRun(t *testing.T) {
 	if a, b := listFiles(t, filepath.Join(single, "records")), listFiles(t, filepath.Join(merged, "records")); strings.Join(a, ",") != strings.Join(b, ",") {
 		t.Errorf("record sets differ:\n%v\n%v", a, b)
 	}
-	if a, b := listFiles(t, filepath.Join(single, "items")), listFiles(t, filepath.Join(merged, "items")); strings.Join(a, ",") != strings.Join(b, ",") {
+	if a, b := listFiles(t, filepath.Join(single, "stats")), listFiles(t, filepath.Join(merged, "stats")); len(a) == 0 || strings.Join(a, ",") != strings.Join(b, ",") {
 		t.Errorf("item files differ:\n%v\n%v", a, b)
 	}
 	// A missing shard is reported; mixing fingerprints is refused.
@@ -489,8 +489,18 @@ func TestSafeName(t *testing.T) {
 	if SafeName("ok-name_1.2") != "ok-name_1.2" {
 		t.Error("a safe id was changed")
 	}
-	if _, _, err := (Dest{Out: "/o", Dir: "/o/items/a"}).Path("../../x"); err == nil {
-		t.Error("Dest.Path accepted ../../x")
+	out := t.TempDir()
+	for _, c := range []struct{ name, folder, suffix string }{
+		{"a", "..", ".png"}, {"a", "../x", ".png"}, {"a", "x/y", ".png"}, {"a", "/abs", ".png"}, {"a", "records", ".json"},
+		{"a", "x", "/../../y"}, {"a", "x", `\..\y`}, {"..", "x", ""}, {"", "x", ".png"}, {"a/b", "x", ".png"},
+	} {
+		if _, _, err := (Dest{Out: out, Name: c.name}).Path(c.folder, c.suffix); err == nil {
+			t.Errorf("Dest{Name: %q}.Path(%q, %q) accepted", c.name, c.folder, c.suffix)
+		}
+	}
+	abs, rel, err := (Dest{Out: out, Name: SafeName("../a")}).Path("overlays", ".occlusion.png")
+	if err != nil || rel != "overlays/"+SafeName("../a")+".occlusion.png" || abs != filepath.Join(out, filepath.FromSlash(rel)) {
+		t.Errorf("Dest.Path = %q, %q, %v", abs, rel, err)
 	}
 }
 

@@ -3,7 +3,6 @@ package batch
 import (
 	"fmt"
 	"io"
-	"io/fs"
 	"os"
 	"path/filepath"
 	"sort"
@@ -29,7 +28,7 @@ type MergeReport struct {
 
 // Merge combines shard output folders into out: it checks that the shards
 // share a fingerprint and a shard count, copies every indexed record and
-// each record's item folder, writes an index covering all shards and
+// the files each record lists, writes an index covering all shards and
 // rebuilds the per-image table and summary.json. A missing shard is
 // reported, not fatal; a mismatched one is an error.
 func Merge(out string, shardDirs []string, opt MergeOptions) (MergeReport, error) {
@@ -74,8 +73,10 @@ func Merge(out string, shardDirs []string, opt MergeOptions) (MergeReport, error
 			if err := writeRecord(out, rec); err != nil {
 				return rep, err
 			}
-			if err := copyTree(filepath.Join(d, "items", SafeName(e.ID)), filepath.Join(out, "items", SafeName(e.ID))); err != nil {
-				return rep, err
+			for _, f := range rec.Files {
+				if err := copyListed(d, out, f); err != nil {
+					return rep, err
+				}
 			}
 		}
 		rep.Shards++
@@ -104,28 +105,24 @@ func Merge(out string, shardDirs []string, opt MergeOptions) (MergeReport, error
 	return rep, writeJSON(filepath.Join(out, "summary.json"), sum)
 }
 
-// copyTree copies regular files under src into dst; a missing src is fine.
-func copyTree(src, dst string) error {
-	if _, err := os.Stat(src); os.IsNotExist(err) {
-		return nil
+// copyListed copies one file a record lists (slash-separated, relative to
+// the shard folder) into out. A listed path that would leave either folder
+// is refused; a listed file that is missing is an error, since the merged
+// report would link to it.
+func copyListed(shard, out, rel string) error {
+	p := filepath.FromSlash(rel)
+	if !filepath.IsLocal(p) {
+		return fmt.Errorf("merge: %s: record lists %q, outside the folder", shard, rel)
 	}
-	return filepath.WalkDir(src, func(p string, d fs.DirEntry, err error) error {
-		if err != nil {
-			return err
-		}
-		rel, err := filepath.Rel(src, p)
-		if err != nil || !filepath.IsLocal(rel) && rel != "." {
-			return fmt.Errorf("merge: unexpected path %s", p)
-		}
-		target := filepath.Join(dst, rel)
-		if d.IsDir() {
-			return os.MkdirAll(target, 0o755)
-		}
-		if !d.Type().IsRegular() {
-			return nil // never follow links out of a shard folder
-		}
-		return copyFile(p, target)
-	})
+	src := filepath.Join(shard, p)
+	fi, err := os.Lstat(src)
+	if err != nil {
+		return fmt.Errorf("merge: %w", err)
+	}
+	if !fi.Mode().IsRegular() {
+		return fmt.Errorf("merge: %s is not a regular file", src) // never follow links out of a shard folder
+	}
+	return copyFile(src, filepath.Join(out, p))
 }
 
 func copyFile(src, dst string) error {

@@ -9,6 +9,7 @@ import (
 	"os"
 	"path/filepath"
 	"runtime"
+	"strings"
 	"sync"
 	"time"
 )
@@ -29,24 +30,35 @@ func (f WorkerFunc) Process(ctx context.Context, it Item, dst Dest) (Result, err
 	return f(ctx, it, dst)
 }
 
-// Dest is where a worker writes an image's files.
+// Dest is where a worker writes an image's files. Files are grouped by
+// kind, one folder per kind directly under Out, and named after the image:
+// Out/FOLDER/NAME+SUFFIX, for example overlays/img001.occlusion.png or
+// panels/img001.png. NAME is SafeName(id), so an id can never lead a file
+// out of Out, and distinct ids give distinct names.
 type Dest struct {
-	Out string // the output folder
-	Dir string // OUT/items/SafeName(id), created before Process is called
+	Out  string // the output folder
+	Name string // SafeName of the image id
 }
 
-// Path returns a path for name inside Dir, refusing names that would leave
-// it, and the same path relative to Out (slash-separated) for Result.Files.
-func (d Dest) Path(name string) (abs, rel string, err error) {
-	if !filepath.IsLocal(name) {
-		return "", "", fmt.Errorf("output name %q escapes the image folder", name)
+// Path returns Out/folder/Name+suffix, creating the folder, and the same
+// path relative to Out (slash-separated) for Result.Files. folder must be
+// one plain path element and suffix must not contain a separator, so the
+// file stays in folder whatever the caller passes.
+func (d Dest) Path(folder, suffix string) (abs, rel string, err error) {
+	base := d.Name + suffix
+	switch {
+	case d.Name == "" || strings.ContainsAny(d.Name, `/\`) || !filepath.IsLocal(d.Name):
+		return "", "", fmt.Errorf("output name %q is not a safe file name", d.Name)
+	case strings.ContainsAny(folder, `/\`) || !filepath.IsLocal(folder) || folder == "records":
+		return "", "", fmt.Errorf("output folder %q must be one plain folder name other than records", folder)
+	case strings.ContainsAny(suffix, `/\`) || !filepath.IsLocal(base):
+		return "", "", fmt.Errorf("output suffix %q would leave folder %s", suffix, folder)
 	}
-	abs = filepath.Join(d.Dir, name)
-	r, err := filepath.Rel(d.Out, abs)
-	if err != nil {
+	dir := filepath.Join(d.Out, folder)
+	if err := os.MkdirAll(dir, 0o755); err != nil {
 		return "", "", err
 	}
-	return abs, filepath.ToSlash(r), nil
+	return filepath.Join(dir, base), folder + "/" + base, nil
 }
 
 // Runner executes a Plan.
@@ -116,10 +128,8 @@ func (r *Runner) Run(ctx context.Context, p *Plan) (Summary, error) {
 	if r.Worker == nil {
 		return Summary{}, errors.New("batch: no worker")
 	}
-	for _, d := range []string{"records", "items"} {
-		if err := os.MkdirAll(filepath.Join(r.Out, d), 0o755); err != nil {
-			return Summary{}, err
-		}
+	if err := os.MkdirAll(filepath.Join(r.Out, "records"), 0o755); err != nil {
+		return Summary{}, err
 	}
 	idx := Index{Version: 1, Fingerprint: p.Fingerprint, Shard: p.Shard}
 	for _, it := range p.Items {
@@ -236,15 +246,8 @@ feed:
 // one processes an item and writes its record. It returns an error only
 // when no record could be written (cancellation or disk failure).
 func (r *Runner) one(ctx context.Context, it Item) (Record, error) {
-	dir, err := within(r.Out, "items", SafeName(it.ID))
-	if err != nil {
-		return Record{}, err
-	}
 	rec := Record{Key: it.Key, ID: it.ID, Image: it.Image, Mask: it.Mask, Label: it.Label}
-	if err := os.MkdirAll(dir, 0o755); err != nil {
-		return Record{}, err
-	}
-	res, err := safeProcess(ctx, r.Worker, it, Dest{Out: r.Out, Dir: dir})
+	res, err := safeProcess(ctx, r.Worker, it, Dest{Out: r.Out, Name: SafeName(it.ID)})
 	if err != nil {
 		if ctx.Err() != nil {
 			return Record{}, ctx.Err()

@@ -38,7 +38,12 @@ func WritePNG(path string, img image.Image) (err error) {
 		}
 	}()
 	w := bufio.NewWriterSize(f, 1<<16)
-	if err = png.Encode(w, img); err != nil {
+	// zlib's fastest level halves the encoding time of a 1920×1080 panel
+	// (about 100 ms → 50 ms) for files about 20 % larger
+	// (BenchmarkEncodePNG). Encoding was nearly half of the per-image time
+	// of a demo run, and the pictures are read on screen, not archived.
+	enc := png.Encoder{CompressionLevel: png.BestSpeed}
+	if err = enc.Encode(w, img); err != nil {
 		return fmt.Errorf("render: encode %s: %w", path, err)
 	}
 	if err = w.Flush(); err != nil {
