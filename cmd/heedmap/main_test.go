@@ -309,7 +309,7 @@ func TestRunRealPipelineOnDemoModel(t *testing.T) {
 	if code != 0 {
 		t.Fatalf("exit %d\n%s\n%s", code, stdout, stderr)
 	}
-	for _, f := range []string{"metrics.csv", "images.csv", "report.json", "report.html", "items/syn00000/overlay-occlusion.png", "items/syn00000/overlay-grad-cam.png", "items/syn00000/map-grad-cam.npy", "items/syn00000/panel.png"} {
+	for _, f := range []string{"metrics.csv", "images.csv", "report.json", "report.html", "overlays/syn00000.occlusion.png", "overlays/syn00000.grad-cam.png", "maps/syn00000.grad-cam.npy", "panels/syn00000.png"} {
 		if _, err := os.Stat(filepath.Join(out, f)); err != nil {
 			t.Error(err)
 		}
@@ -391,8 +391,7 @@ func BenchmarkDemoImage(b *testing.B) {
 		b.Fatal(err)
 	}
 	it := batch.Item{ID: "syn00000", Image: filepath.Join(dir, "images", "syn00000.png"), Mask: filepath.Join(dir, "masks", "syn00000.png")}
-	d := batch.Dest{Out: dir, Dir: filepath.Join(dir, "items", "x")}
-	os.MkdirAll(d.Dir, 0o755)
+	d := batch.Dest{Out: dir, Name: "x"}
 	b.ResetTimer()
 	for i := 0; i < b.N; i++ {
 		if _, err := p.worker.Process(context.Background(), it, d); err != nil {

@@ -322,7 +322,7 @@ func (w *attributionWorker) Process(ctx context.Context, it batch.Item, dst batc
 		if err != nil {
 			return batch.Result{}, fmt.Errorf("%s: %s: overlay: %w", it.Image, r.Method, err)
 		}
-		abs, rel, err := dst.Path("overlay-" + r.Method + ".png")
+		abs, rel, err := dst.Path("overlays", "."+r.Method+".png")
 		if err != nil {
 			return batch.Result{}, err
 		}
@@ -332,7 +332,7 @@ func (w *attributionWorker) Process(ctx context.Context, it batch.Item, dst batc
 		d.Overlays[r.Method] = rel
 		res.Files = append(res.Files, rel)
 		if w.cfg.SaveMaps {
-			abs, rel, err := dst.Path("map-" + r.Method + ".npy")
+			abs, rel, err := dst.Path("maps", "."+r.Method+".npy")
 			if err != nil {
 				return batch.Result{}, err
 			}
@@ -350,7 +350,7 @@ func (w *attributionWorker) Process(ctx context.Context, it batch.Item, dst batc
 	if err != nil {
 		return batch.Result{}, fmt.Errorf("%s: panel: %w", it.Image, err)
 	}
-	abs, rel, err := dst.Path("panel.png")
+	abs, rel, err := dst.Path("panels", ".png")
 	if err != nil {
 		return batch.Result{}, err
 	}

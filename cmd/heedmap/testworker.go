@@ -65,7 +65,7 @@ func (w testWorker) Process(ctx context.Context, it batch.Item, dst batch.Dest) 
 		}
 		res.Metrics["test_mask_fraction"] = float64(in) / n
 	}
-	abs, rel, err := dst.Path("test.txt")
+	abs, rel, err := dst.Path("checks", ".txt")
 	if err != nil {
 		return batch.Result{}, err
 	}
