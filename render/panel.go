@@ -67,11 +67,14 @@ type tilePlan struct {
 	picW, picH int  // picture size in pixels
 	n          int
 	lines      int // lines of numbers under the picture
+	sideLines  int // lines of numbers beside the picture (label and value on lines of their own)
+	headH      int // method name line, plus the scale line when it cannot share it
 	area       image.Rectangle
 }
 
 const (
 	tileHeadH       = 40  // method name line
+	tileScaleH      = 28  // scale line under a name too long to share its line
 	tileLineH       = 29  // one line of numbers
 	tileBesideTextW = 216 // label + value column beside the picture
 	tileMinTextW    = 340 // narrowest tile that fits the numbers below
@@ -79,10 +82,11 @@ const (
 
 // planTiles picks rows, columns and text placement maximising the picture
 // size for n methods of a w×h image in area, with lines lines of numbers
-// under a picture (or 2·4 lines beside it).
-func planTiles(n int, area image.Rectangle, lines, w, h int) tilePlan {
+// under a picture or sideLines beside it, and a method header headH pixels
+// tall. A layout whose numbers would run past the tile is not considered.
+func planTiles(n int, area image.Rectangle, lines, sideLines, headH, w, h int) tilePlan {
 	aspect := float64(h) / float64(w)
-	best := tilePlan{area: area, n: n}
+	best := tilePlan{area: area, n: n, headH: headH}
 	for rows := 1; rows <= 3; rows++ {
 		cols := (n + rows - 1) / rows
 		if (rows-1)*cols >= n { // an empty row
@@ -93,16 +97,19 @@ func planTiles(n int, area image.Rectangle, lines, w, h int) tilePlan {
 		for _, beside := range []bool{false, true} {
 			var pw float64
 			if beside {
-				pw = math.Min(float64(cw-tileBesideTextW-12), float64(rh-tileHeadH)/aspect)
+				if headH+sideLines*tileLineH > rh {
+					continue
+				}
+				pw = math.Min(float64(cw-tileBesideTextW-12), float64(rh-headH)/aspect)
 			} else {
 				if cw < tileMinTextW {
 					continue
 				}
-				pw = math.Min(float64(cw), float64(rh-tileHeadH-lines*tileLineH-10)/aspect)
+				pw = math.Min(float64(cw), float64(rh-headH-lines*tileLineH-10)/aspect)
 			}
 			if int(pw) > best.picW {
 				best = tilePlan{rows: rows, cols: cols, beside: beside, picW: int(pw), picH: int(pw * aspect),
-					n: n, lines: lines, area: area}
+					n: n, lines: lines, sideLines: sideLines, headH: headH, area: area}
 			}
 		}
 	}
@@ -120,9 +127,9 @@ func (p tilePlan) tileRect(i int) image.Rectangle {
 		inRow = p.n - r*p.cols
 	}
 	// Rows only as tall as their content, the grid centred vertically.
-	th := tileHeadH + p.picH + 10 + p.lines*tileLineH
+	th := p.headH + p.picH + 10 + p.lines*tileLineH
 	if p.beside {
-		th = tileHeadH + max(p.picH, 8*tileLineH)
+		th = p.headH + max(p.picH, p.sideLines*tileLineH)
 	}
 	th = min(th, rh)
 	top := p.area.Min.Y + (p.area.Dy()-(p.rows*th+(p.rows-1)*panelGap))/2
@@ -227,36 +234,33 @@ func Panel(c Case) (*image.RGBA, error) {
 
 	// Method tiles.
 	area := image.Rect(panelPad+panelLeftW+panelGap+10, mainTop, panelW-panelPad, mainBot)
-	// Plan for four lines of numbers, then again if some value needs a
-	// line of its own at the chosen width.
-	dc.SetFontFace(value)
-	plan := planTiles(n, area, 4, b.w, b.h)
-	for pass := 0; pass < 2; pass++ {
-		need := 4
-		for _, m := range c.Methods {
-			need = max(need, numberLines(dc, m.Metrics, plan, text, value))
-		}
-		if need == plan.lines {
-			break
-		}
-		plan = planTiles(n, area, need, b.w, b.h)
+	scales := make([]string, n)
+	for i := range heats {
+		scales[i] = "max " + tickLabel(heats[i].scale, false)
 	}
+	plan := planPanelTiles(dc, c.Methods, scales, area, b.w, b.h, head, text, value)
 	for i, m := range c.Methods {
 		tile := plan.tileRect(i)
-		// Method name; the colour scale's top value after it when it fits.
+		cw := float64(tile.Dx())
+		oneLine := headerFits(dc, m.Name, scales[i], cw, head, text)
+		// Method name; the colour scale's top value after it, or on a line
+		// of its own under a long name.
 		dc.SetFontFace(head)
 		dc.SetColor(textColour)
-		name := fitText(dc, quoteEmpty(m.Name), float64(tile.Dx()))
-		dc.DrawStringAnchored(name, float64(tile.Min.X), float64(tile.Min.Y)+tileHeadH/2, 0, 0.35)
-		nw, _ := dc.MeasureString(name)
-		dc.SetFontFace(text)
-		mx := "max " + tickLabel(heats[i].scale, false)
-		if mw, _ := dc.MeasureString(mx); nw+mw+20 <= float64(tile.Dx()) {
+		name := quoteEmpty(m.Name)
+		if oneLine {
+			dc.DrawStringAnchored(name, float64(tile.Min.X), float64(tile.Min.Y)+tileHeadH/2, 0, 0.35)
+			dc.SetFontFace(text)
 			dc.SetColor(mutedColour)
-			dc.DrawStringAnchored(mx, float64(tile.Max.X), float64(tile.Min.Y)+tileHeadH/2, 1, 0.35)
+			dc.DrawStringAnchored(scales[i], float64(tile.Max.X), float64(tile.Min.Y)+tileHeadH/2, 1, 0.35)
+		} else {
+			dc.DrawStringAnchored(fitText(dc, name, cw), float64(tile.Min.X), float64(tile.Min.Y)+tileHeadH/2, 0, 0.35)
+			dc.SetFontFace(text)
+			dc.SetColor(mutedColour)
+			dc.DrawStringAnchored(fitText(dc, "colour scale "+scales[i], cw), float64(tile.Max.X), float64(tile.Min.Y)+tileHeadH+tileScaleH/2-6, 1, 0.35)
 		}
 
-		r := image.Rect(tile.Min.X, tile.Min.Y+tileHeadH, tile.Min.X+plan.picW, tile.Min.Y+tileHeadH+plan.picH)
+		r := image.Rect(tile.Min.X, tile.Min.Y+plan.headH, tile.Min.X+plan.picW, tile.Min.Y+plan.headH+plan.picH)
 		textBox := image.Rect(tile.Min.X, r.Max.Y+10, tile.Max.X, tile.Max.Y)
 		if plan.beside {
 			textBox = image.Rect(r.Max.X+12, r.Min.Y, tile.Max.X, tile.Max.Y)
@@ -307,6 +311,51 @@ func Panel(c Case) (*image.RGBA, error) {
 	return dst, nil
 }
 
+// planPanelTiles plans for four lines of numbers and a one-line header,
+// then again if some value needs a line of its own or some method's scale
+// does not fit beside its name at the chosen width. The scale is never
+// dropped: a map without its maximum cannot be compared with its
+// neighbours.
+func planPanelTiles(dc *gg.Context, ms []MethodView, scales []string, area image.Rectangle, w, h int, head, text, value font.Face) tilePlan {
+	side := 0
+	for _, m := range ms {
+		side = max(side, sideLines(dc, m.Metrics, value))
+	}
+	plan := planTiles(len(ms), area, 4, side, tileHeadH, w, h)
+	for pass := 0; pass < 3; pass++ {
+		need, headH := 4, tileHeadH
+		for i, m := range ms {
+			need = max(need, numberLines(dc, m.Metrics, plan, text, value))
+			if !headerFits(dc, m.Name, scales[i], plan.colW(), head, text) {
+				headH = tileHeadH + tileScaleH
+			}
+		}
+		if need == plan.lines && headH == plan.headH {
+			break
+		}
+		plan = planTiles(len(ms), area, need, side, headH, w, h)
+	}
+	return plan
+}
+
+// colW is the width of one tile column.
+func (p tilePlan) colW() float64 {
+	if p.cols == 0 {
+		return 0
+	}
+	return float64((p.area.Dx() - (p.cols-1)*panelGap) / p.cols)
+}
+
+// headerFits reports whether a method's name and its scale share one line
+// of width w with at least 20 px between them.
+func headerFits(dc *gg.Context, name, scale string, w float64, nameFace, scaleFace font.Face) bool {
+	dc.SetFontFace(nameFace)
+	nw, _ := dc.MeasureString(quoteEmpty(name))
+	dc.SetFontFace(scaleFace)
+	sw, _ := dc.MeasureString(scale)
+	return nw+sw+20 <= w
+}
+
 func metricRows(m Metrics) [][2]string {
 	return [][2]string{
 		{"inside lesion", massText(m)},
@@ -314,6 +363,17 @@ func metricRows(m Metrics) [][2]string {
 		{"pointing game", m.Pointing.String()},
 		{"largest off-lesion", offLesionShort(m)},
 	}
+}
+
+// sideLines counts the lines drawNumbers needs beside a picture: a label
+// line and the wrapped value lines for every metric.
+func sideLines(dc *gg.Context, m Metrics, valueFace font.Face) int {
+	dc.SetFontFace(valueFace)
+	n := 0
+	for _, row := range metricRows(m) {
+		n += 1 + len(wrapValue(dc, row[1], tileBesideTextW))
+	}
+	return n
 }
 
 // numberLines counts the lines drawNumbers needs under a picture of plan's
@@ -363,11 +423,13 @@ func drawNumbers(dc *gg.Context, r image.Rectangle, m Metrics, stacked bool, lab
 }
 
 // wrapValue breaks a value that does not fit beside its label into at most
-// three indented lines, shortening the last with an ellipsis if needed.
+// two indented lines, shortening the last with an ellipsis if needed: a
+// long reason for an undefined value would otherwise shrink every picture
+// on the slide (the full reason is in the report).
 func wrapValue(dc *gg.Context, v string, width float64) []string {
 	lines := dc.WordWrap(v, width-12)
-	if len(lines) > 3 {
-		lines = append(lines[:2], strings.Join(lines[2:], " "))
+	if len(lines) > 2 {
+		lines = append(lines[:1], strings.Join(lines[1:], " "))
 	}
 	for i := range lines {
 		lines[i] = fitText(dc, lines[i], width-12)

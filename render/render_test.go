@@ -10,6 +10,8 @@ import (
 	"path/filepath"
 	"testing"
 
+	"github.com/fogleman/gg"
+
 	"heedmap/render/colour"
 )
 
@@ -362,7 +364,7 @@ func TestPanelLayout(t *testing.T) {
 			t.Fatalf("%d methods: size %v", n, img.Bounds())
 		}
 		area := image.Rect(panelPad+panelLeftW+panelGap+10, panelTitleH+14, panelW-panelPad, panelH-panelFooterH-panelLegendH-8)
-		p := planTiles(n, area, 5, 120, 90)
+		p := planTiles(n, area, 5, 10, tileHeadH+tileScaleH, 120, 90)
 		var rects []image.Rectangle
 		for i := 0; i < n; i++ {
 			r := p.tileRect(i)
@@ -465,4 +467,68 @@ func TestExamples(t *testing.T) {
 			t.Errorf("%s is %d×%d", path, cfg.Width, cfg.Height)
 		}
 	}
+}
+
+// Every method tile shows its colour-scale maximum, whatever the length of
+// the method's name: a long name pushes the scale to a line of its own
+// instead of hiding it. The test looks for text pixels (well above the
+// background's lightness) in the right half of the header strip of each
+// tile, where the scale is right-aligned.
+func TestPanelShowsEveryScale(t *testing.T) {
+	s := newSynth(120, 90)
+	for _, names := range [][]string{
+		{"occlusion", "gradient", "integrated-gradients", "grad-cam"},
+		{"integrated-gradients", "smoothgrad-integrated-gradients-long", "occlusion-sensitivity-16px", "gradient-x-input", "grad-cam", "rise"},
+		{"x"},
+	} {
+		c := s.panel(len(names))
+		for i := range c.Methods {
+			c.Methods[i].Name = names[i]
+		}
+		img, err := Panel(c)
+		if err != nil {
+			t.Fatal(err)
+		}
+		dc := gg.NewContext(10, 10)
+		head, text, value := face(true, panelHeadPx), face(false, panelTextPx), face(true, panelValuePx)
+		area := image.Rect(panelPad+panelLeftW+panelGap+10, panelTitleH+14, panelW-panelPad, panelH-panelFooterH-panelLegendH-8)
+		scales := make([]string, len(names))
+		for i := range scales {
+			scales[i] = "max 1"
+		}
+		plan := planPanelTiles(dc, c.Methods, scales, area, s.w, s.h, head, text, value)
+		for i, name := range names {
+			tile := plan.tileRect(i)
+			// The scale is right-aligned; a strip as wide as its text
+			// cannot reach a name that shares the line (20 px gap).
+			dc.SetFontFace(text)
+			sw, _ := dc.MeasureString(scales[i])
+			strip := image.Rect(tile.Max.X-int(sw), tile.Min.Y, tile.Max.X, tile.Min.Y+plan.headH)
+			if !headerFits(dc, name, scales[i], float64(tile.Dx()), head, text) {
+				// Second line only: the first holds the name.
+				strip.Min.Y += tileHeadH
+			}
+			bright := 0
+			for y := strip.Min.Y; y < strip.Max.Y; y++ {
+				for x := strip.Min.X; x < strip.Max.X; x++ {
+					// Text is light grey; the pictures' skin tones and
+					// artefact colours are not grey.
+					c := img.RGBAAt(x, y)
+					if c.R > 150 && absDiff(c.R, c.G) < 16 && absDiff(c.G, c.B) < 16 {
+						bright++
+					}
+				}
+			}
+			if bright < 20 {
+				t.Errorf("%d methods, %q: no scale text in %v (%d text pixels)", len(names), name, strip, bright)
+			}
+		}
+	}
+}
+
+func absDiff(a, b uint8) int {
+	if a > b {
+		return int(a - b)
+	}
+	return int(b - a)
 }
