@@ -27,6 +27,12 @@ type Masks struct {
 	// before it was carried to model space, or 0 when unknown. It lets the
 	// plan tell "the lesion was cropped away" from "the mask is empty".
 	SourceLesionPixels int
+	// LesionUnseen is the fraction of the source mask's lesion pixels that
+	// the model never saw (cropped away by the resize), computed by the
+	// caller from the image's geometry (preprocess.Placement.UnseenFraction).
+	// The zero Value means "not supplied": the result then says so, unless
+	// the plan can tell by itself (all of the lesion unseen, or no lesion).
+	LesionUnseen Value
 }
 
 // Params are the measurement choices. Start from [DefaultParams].
@@ -79,6 +85,7 @@ type Plan struct {
 	tolPx     float64
 	bandPx    float64
 	noLesion  string // reason lesion measures are undefined, "" when they are defined
+	unseen    Value  // fraction of the source lesion the model never saw
 	artefacts []artefact
 }
 
@@ -140,6 +147,20 @@ func NewPlan(m Masks, p Params) (*Plan, error) {
 	default:
 		pl.noLesion = "lesion mask is empty"
 	}
+	switch v, ok := m.LesionUnseen.Float(); {
+	case ok && (v < 0 || v > 1):
+		return nil, fmt.Errorf("measure: unseen lesion fraction %v is outside [0, 1]", v)
+	case m.SourceLesionPixels > 0 && pl.lesionN == 0:
+		pl.unseen = Num(1)
+	case ok:
+		pl.unseen = m.LesionUnseen
+	case m.SourceLesionPixels == 0 && pl.lesionN == 0:
+		pl.unseen = Undef("lesion mask is empty")
+	case m.LesionUnseen.Reason != "":
+		pl.unseen = m.LesionUnseen
+	default:
+		pl.unseen = Undef("not measured: the caller gave no image geometry")
+	}
 	if pl.noLesion != "" {
 		return pl, nil
 	}
@@ -171,6 +192,9 @@ func (pl *Plan) BandWidthPx() float64 { return pl.bandPx }
 
 // LesionPixels is the lesion area in model-input pixels, seen part only.
 func (pl *Plan) LesionPixels() int { return pl.lesionN }
+
+// LesionUnseen is the fraction of the source lesion the model never saw.
+func (pl *Plan) LesionUnseen() Value { return pl.unseen }
 
 // Result is one image × method.
 type Result struct {
@@ -209,7 +233,11 @@ type Result struct {
 	HotThreshold Value    `json:"hot_threshold"`
 	HotRegions   []Region `json:"hot_regions"`
 
-	LesionPixels int     `json:"lesion_px"`
+	LesionPixels int `json:"lesion_px"`
+	// LesionUnseen is the fraction (0–1) of the lesion in the source mask
+	// that the model never saw because the resize cropped it away; the
+	// lesion measures describe only the seen part.
+	LesionUnseen Value   `json:"lesion_unseen_fraction"`
 	TolerancePx  float64 `json:"pointing_tolerance_px"`
 	BandWidthPx  float64 `json:"band_width_px"`
 }
@@ -247,7 +275,7 @@ func (pl *Plan) MeasureSign(method string, s Sign, m explain.Map) (Result, error
 		return Result{}, fmt.Errorf("measure: %s: map is %d×%d with %d values, masks are %d×%d", method, m.W, m.H, len(m.Data), pl.w, pl.h)
 	}
 	r := Result{
-		Method: method, Sign: s, LesionPixels: pl.lesionN,
+		Method: method, Sign: s, LesionPixels: pl.lesionN, LesionUnseen: pl.unseen,
 		TolerancePx: pl.tolPx, BandWidthPx: pl.bandPx,
 		ArtefactMass: map[string]Value{}, ArtefactPixels: map[string]int{},
 	}

@@ -395,3 +395,40 @@ func TestSquaredEDTBruteForce(t *testing.T) {
 		}
 	}
 }
+
+// The unseen part of the lesion is reported per image (issue: "report per
+// image how much of the lesion the model never saw"), never as a silent
+// zero: supplied values pass through, a lesion wholly outside the view is
+// 1, an empty lesion and a missing geometry are undefined with a reason.
+func TestLesionUnseen(t *testing.T) {
+	m := explain.Map{W: 4, H: 4, Data: make([]float32, 16)}
+	m.Data[0] = 1
+	lesion := grid(4, 4, [2]int{0, 0}, [2]int{1, 0})
+	top := make([]bool, 16)
+	for i := 0; i < 8; i++ {
+		top[i] = true
+	}
+	for _, c := range []struct {
+		name   string
+		masks  Masks
+		want   float64 // -1 = undefined
+		reason string
+	}{
+		{"supplied", Masks{W: 4, H: 4, Lesion: lesion, SourceLesionPixels: 40, LesionUnseen: Num(0.25)}, 0.25, ""},
+		{"all cropped", Masks{W: 4, H: 4, Lesion: lesion, Seen: make([]bool, 16), SourceLesionPixels: 40}, 1, ""},
+		{"seen, caller silent", Masks{W: 4, H: 4, Lesion: lesion, Seen: top, SourceLesionPixels: 40}, -1, "not measured"},
+		{"empty", Masks{W: 4, H: 4, Lesion: make([]bool, 16)}, -1, "empty"},
+	} {
+		pl := mustPlan(t, c.masks, DefaultParams())
+		r := mustMeasure(t, pl, "occlusion", m)
+		switch {
+		case c.want >= 0 && (!r.LesionUnseen.OK || r.LesionUnseen.V != c.want):
+			t.Errorf("%s: unseen %v, want %v", c.name, r.LesionUnseen, c.want)
+		case c.want < 0 && (r.LesionUnseen.OK || !strings.Contains(r.LesionUnseen.Reason, c.reason)):
+			t.Errorf("%s: unseen %v, want undefined (%s)", c.name, r.LesionUnseen, c.reason)
+		}
+	}
+	if _, err := NewPlan(Masks{W: 4, H: 4, Lesion: lesion, LesionUnseen: Num(1.5)}, DefaultParams()); err == nil {
+		t.Error("unseen fraction 1.5 accepted")
+	}
+}
