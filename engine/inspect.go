@@ -17,32 +17,60 @@ import (
 // Rank is taken from the declared value_info when present and otherwise
 // from the pooling op (GlobalAveragePool on image models is NCHW).
 func (g *Graph) GradCAMLayer() (string, error) {
+	return GradCAMLayerOf(g.model)
+}
+
+// GradCAMLayerOf is GradCAMLayer on a decoded model that need not compile
+// (heedmap inspect reports it next to the unsupported nodes). It walks the
+// nodes in topological order from the last; a ReduceMean's axes come from
+// its attribute or from a constant second input (an initializer or a
+// Constant node).
+func GradCAMLayerOf(m *onnx.Model) (string, error) {
+	if m == nil || m.Graph == nil {
+		return "", errors.New("engine: model has no graph")
+	}
+	mg := m.Graph
+	nodes, err := topoSort(mg)
+	if err != nil {
+		return "", err
+	}
 	declared := map[string]int{}
-	for _, vis := range [][]onnx.ValueInfo{g.model.Graph.ValueInfo, g.model.Graph.Inputs, g.model.Graph.Outputs} {
+	for _, vis := range [][]onnx.ValueInfo{mg.ValueInfo, mg.Inputs, mg.Outputs} {
 		for _, vi := range vis {
 			if vi.Shape != nil {
 				declared[vi.Name] = len(vi.Shape)
 			}
 		}
 	}
-	for k := len(g.nodes) - 1; k >= 0; k-- {
-		nd := g.nodes[k]
-		if len(nd.in) == 0 || nd.in[0] < 0 {
+	constInt := func(name string) []int64 {
+		if t := mg.Initializers[name]; t != nil && t.DType == tensor.Int64 {
+			return t.I64
+		}
+		for _, n := range mg.Nodes {
+			if n.OpType == "Constant" && len(n.Outputs) == 1 && n.Outputs[0] == name {
+				if a := n.Attrs["value"]; a != nil && a.Tensor != nil && a.Tensor.DType == tensor.Int64 {
+					return a.Tensor.I64
+				}
+			}
+		}
+		return nil
+	}
+	for k := len(nodes) - 1; k >= 0; k-- {
+		nd := nodes[k]
+		if len(nd.Inputs) == 0 || nd.Inputs[0] == "" {
 			continue
 		}
-		name := g.names[nd.in[0]]
+		name := nd.Inputs[0]
 		if r, ok := declared[name]; ok && r != 4 {
 			continue
 		}
-		switch nd.src.OpType {
+		switch nd.OpType {
 		case "GlobalAveragePool":
 			return name, nil
 		case "ReduceMean":
-			axes := nd.src.Ints("axes")
-			if axes == nil && len(nd.in) > 1 && nd.in[1] >= 0 {
-				if c := g.consts[nd.in[1]]; c != nil && c.DType == tensor.Int64 {
-					axes = c.I64
-				}
+			axes := nd.Ints("axes")
+			if axes == nil && len(nd.Inputs) > 1 && nd.Inputs[1] != "" {
+				axes = constInt(nd.Inputs[1])
 			}
 			if spatialAxes(axes) {
 				return name, nil
@@ -76,6 +104,10 @@ type Summary struct {
 	Parameters int64
 	// Unsupported lists the nodes this runtime has no operator for.
 	Unsupported []UnsupportedNode
+	// GradCAMLayer is the default Grad-CAM layer (GradCAMLayerOf), or ""
+	// with the reason in GradCAMErr.
+	GradCAMLayer string
+	GradCAMErr   error
 }
 
 // OpCount is one row of the op-type histogram.
@@ -137,5 +169,6 @@ func Describe(m *onnx.Model) Summary {
 	for _, t := range mg.Initializers {
 		s.Parameters += int64(tensor.Numel(t.Shape))
 	}
+	s.GradCAMLayer, s.GradCAMErr = GradCAMLayerOf(m)
 	return s
 }
