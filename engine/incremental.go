@@ -1,0 +1,1028 @@
+package engine
+
+import (
+	"context"
+	"fmt"
+	"math"
+	"runtime"
+	"sync"
+
+	"heedmap/kernel"
+	"heedmap/onnx"
+	"heedmap/tensor"
+)
+
+// Rect is a half-open rectangle [X0, X1) × [Y0, Y1) of a spatial map.
+type Rect struct{ X0, Y0, X1, Y1 int }
+
+func (r Rect) empty() bool { return r.X0 >= r.X1 || r.Y0 >= r.Y1 }
+
+func (r Rect) union(s Rect) Rect {
+	switch {
+	case r.empty():
+		return s
+	case s.empty():
+		return r
+	}
+	return Rect{min(r.X0, s.X0), min(r.Y0, s.Y0), max(r.X1, s.X1), max(r.Y1, s.Y1)}
+}
+
+// Incremental evaluates a network on many copies of one image that each
+// differ from it in a small rectangle, recomputing only what a rectangle can
+// reach (exact incremental inference, Nakandala, Kumar & Papakonstantinou,
+// "Incremental and Approximate Inference for Faster Occlusion-based Deep CNN
+// Explanations", SIGMOD 2019). The unchanged image is run once and every
+// activation kept. For a batch of changed rectangles each spatial operator
+// maps its input's changed rectangle to the output positions whose receptive
+// field meets it, recomputes just that output patch from the kept
+// activations overlaid with the upstream patches, and passes the patch on.
+// Once a patch covers its whole map, or the graph leaves 4-D spatial
+// tensors (global pooling, Flatten, Gemm), the rest of the graph runs in
+// full on the batch, which is what an ordinary batched forward pass does.
+//
+// Supported in patch form: Conv (any kernel, stride, dilation, pads and
+// group; auto_pad resolved against the kept shapes), MaxPool, AveragePool
+// (unless padding is excluded from the divisor), BatchNormalization and
+// elementwise operators whose other inputs are constant across space,
+// elementwise operators of several changed inputs (Add of a skip
+// connection), Concat over channels and spatial constant Pad. Any other
+// operator reached by a patch makes its output fully recomputed: still
+// exact, only slower; Fallbacks lists those nodes.
+//
+// Within one batch every patch of a layer has the same size (the largest
+// in the batch, slid inward at the borders) so a layer is one matrix
+// product over all windows; this recomputes a few unchanged positions near
+// borders, which is exact. Results equal a full forward pass up to the
+// order of float summation.
+//
+// An Incremental holds the kept activations of one image; it is safe for
+// concurrent Occlude calls.
+type Incremental struct {
+	plan *incPlan
+	base []*tensor.Tensor // every value of the unchanged pass (nil if unused)
+}
+
+// incPlan is the static analysis of a graph for one input shape, shared by
+// the Incrementals of every image of that shape.
+type incPlan struct {
+	g         *Graph
+	in, out   int
+	shapes    [][]int
+	steps     []incStep // parallel to g.nodes
+	fallbacks []string
+}
+
+type incKind int
+
+const (
+	incFull      incKind = iota // recompute in full on the batch
+	incConv                     // Conv on a patch
+	incPool                     // MaxPool/AveragePool through a zero-padding copy of the op
+	incPointwise                // one spatial input; the others constant across space
+	incMulti                    // elementwise over several spatial inputs of one shape
+	incConcat                   // Concat over channels
+	incPad                      // spatial constant Pad: the patch only moves
+)
+
+type incStep struct {
+	kind    incKind
+	spatial []bool // which inputs are spatial (varying 4-D) values
+	g       geom2  // Conv, pools: resolved on the kept shapes
+	// Conv
+	group, m, cg int
+	w, b         []float32
+	gemm         kernel.GEMM
+	// pools
+	patchOp Op
+	fill    float32
+	// Pad
+	padT, padL int
+	// MAC count of one full evaluation (Conv, Gemm, MatMul), per image.
+	fullMACs int64
+	reason   string // why a node that reads a patch is recomputed in full
+}
+
+// NewIncremental runs x [1, C, H, W] (the graph input named input) through
+// g, keeps every activation and plans incremental evaluation of the output
+// named output.
+func NewIncremental(ctx context.Context, g *Graph, input, output string, x *tensor.Tensor) (*Incremental, error) {
+	in, ok := g.index[input]
+	if !ok {
+		return nil, fmt.Errorf("engine: incremental: graph has no value %q", input)
+	}
+	out, ok := g.index[output]
+	if !ok {
+		return nil, fmt.Errorf("engine: incremental: graph has no value %q", output)
+	}
+	if x == nil || x.DType != tensor.Float32 || len(x.Shape) != 4 || x.Shape[0] != 1 {
+		return nil, fmt.Errorf("engine: incremental: input must be a float [1, C, H, W] tensor, got %v", x)
+	}
+	base, shapes, err := g.runKeepAll(ctx, input, x)
+	if err != nil {
+		return nil, err
+	}
+	p := &incPlan{g: g, in: in, out: out, shapes: shapes}
+	p.analyse()
+	return &Incremental{plan: p, base: base}, nil
+}
+
+// Rebase returns an Incremental for another image of the same shape,
+// reusing the plan.
+func (inc *Incremental) Rebase(ctx context.Context, x *tensor.Tensor) (*Incremental, error) {
+	p := inc.plan
+	if x == nil || x.DType != tensor.Float32 || !shapeEq(x.Shape, p.shapes[p.in]) {
+		return nil, fmt.Errorf("engine: incremental: rebase needs an input of shape %v, got %v", p.shapes[p.in], x)
+	}
+	base, shapes, err := p.g.runKeepAll(ctx, p.g.names[p.in], x)
+	if err != nil {
+		return nil, err
+	}
+	for v, s := range shapes {
+		if s != nil && !shapeEq(s, p.shapes[v]) {
+			return nil, fmt.Errorf("engine: incremental: value %q has shape %v for this image, %v in the plan", p.g.names[v], s, p.shapes[v])
+		}
+	}
+	return &Incremental{plan: p, base: base}, nil
+}
+
+// Fallbacks lists the nodes reached by a patch that are recomputed in full
+// because their operator has no patch form here, with the reason.
+func (inc *Incremental) Fallbacks() []string { return append([]string(nil), inc.plan.fallbacks...) }
+
+// Base returns the kept output of the unchanged image.
+func (inc *Incremental) Base() *tensor.Tensor { return inc.base[inc.plan.out] }
+
+func (g *Graph) runKeepAll(ctx context.Context, input string, x *tensor.Tensor) ([]*tensor.Tensor, [][]int, error) {
+	var keep []string
+	for v, name := range g.names {
+		if g.producer[v] >= 0 {
+			keep = append(keep, name)
+		}
+	}
+	if len(g.inputs) != 1 {
+		return nil, nil, fmt.Errorf("engine: incremental: the graph has %d inputs; only single-input graphs are supported", len(g.inputs))
+	}
+	pass, err := g.Run(ctx, map[string]*tensor.Tensor{input: x}, RunOptions{Keep: keep})
+	if err != nil {
+		return nil, nil, err
+	}
+	shapes := make([][]int, len(g.names))
+	for v := range g.names {
+		if pass.vals[v] != nil {
+			shapes[v] = pass.vals[v].Shape
+		}
+	}
+	return pass.vals, shapes, nil
+}
+
+// isSpatial reports whether value v is a 4-D map with more than one
+// position whose contents depend on the graph input.
+func (p *incPlan) isSpatial(v int) bool {
+	s := p.shapes[v]
+	return v >= 0 && p.g.varying[v] && len(s) == 4 && s[0] == 1 && s[2]*s[3] > 1
+}
+
+// constAcrossSpace reports whether a constant of shape s broadcast against
+// a [1, C, H, W] map is the same at every position and batch entry.
+func constAcrossSpace(s []int) bool {
+	if len(s) > 4 {
+		return false
+	}
+	pad := make([]int, 4-len(s), 4)
+	for i := range pad {
+		pad[i] = 1
+	}
+	a := append(pad, s...)
+	return a[0] == 1 && a[2] == 1 && a[3] == 1
+}
+
+var pointwiseOps = map[string]bool{
+	"Relu": true, "Clip": true, "Sigmoid": true, "Tanh": true, "LeakyRelu": true, "HardSigmoid": true,
+	"HardSwish": true, "Elu": true, "Selu": true, "Softplus": true, "Identity": true, "Dropout": true,
+	"BatchNormalization": true, "Neg": true, "Abs": true, "Exp": true, "Erf": true, "Sqrt": true,
+	"Add": true, "Sub": true, "Mul": true, "Div": true, "Pow": true, "Max": true, "Min": true,
+	"PRelu": true, "Sum": true, "Mish": true, "Gelu": true,
+}
+
+// analyse decides, for every node, how a patch passes through it.
+func (p *incPlan) analyse() {
+	g := p.g
+	p.steps = make([]incStep, len(g.nodes))
+	for k, nd := range g.nodes {
+		st := &p.steps[k]
+		st.spatial = make([]bool, len(nd.in))
+		nSpatial := 0
+		for i, v := range nd.in {
+			if v >= 0 && p.isSpatial(v) {
+				st.spatial[i] = true
+				nSpatial++
+			}
+		}
+		st.fullMACs = p.macs(nd)
+		if nSpatial == 0 {
+			continue // nothing spatial reaches it: a normal node
+		}
+		outSpatial := true
+		for _, v := range nd.out {
+			if v >= 0 && !p.isSpatial(v) {
+				outSpatial = false
+			}
+		}
+		nOut := 0
+		for _, v := range nd.out {
+			if v >= 0 {
+				nOut++
+			}
+		}
+		if !outSpatial || nOut != 1 || nd.out[0] < 0 {
+			st.reason = "leaves the spatial maps"
+			continue
+		}
+		st.kind, st.reason = p.classify(nd, st, nSpatial)
+		if st.kind == incFull {
+			p.fallbacks = append(p.fallbacks, fmt.Sprintf("%s: %s", nd.label(), st.reason))
+		}
+	}
+}
+
+func (p *incPlan) classify(nd *node, st *incStep, nSpatial int) (incKind, string) {
+	g := p.g
+	src := nd.src
+	xs := p.shapes[nd.in[0]]
+	ys := p.shapes[nd.out[0]]
+	// Every non-spatial input must be a constant (a kept varying value has
+	// batch 1 and would not broadcast against the batch).
+	for i, v := range nd.in {
+		if v >= 0 && !st.spatial[i] && g.consts[v] == nil {
+			return incFull, "an input depends on the image but is not a spatial map (e.g. a squeeze-and-excitation scale)"
+		}
+	}
+	switch src.OpType {
+	case "Conv":
+		if nSpatial != 1 || !st.spatial[0] {
+			return incFull, "weights depend on the image"
+		}
+		gemm, ok := convGEMM(nd.op)
+		if !ok {
+			return incFull, "unknown Conv operator"
+		}
+		w := g.consts[nd.in[1]]
+		win, err := parseWindow(src)
+		if err != nil || w == nil || len(w.Shape) != 4 {
+			return incFull, "not a 2-D convolution"
+		}
+		geo, err := win.resolve(xs[2:], w.Shape[2:])
+		if err != nil {
+			return incFull, err.Error()
+		}
+		st.g, st.gemm = geo, gemm
+		st.group = int(src.Int("group", 1))
+		st.m, st.cg = w.Shape[0], w.Shape[1]
+		st.w = w.F32
+		if len(nd.in) > 2 && nd.in[2] >= 0 {
+			st.b = g.consts[nd.in[2]].F32
+		}
+		return incConv, ""
+	case "MaxPool", "AveragePool":
+		if len(nd.out) > 1 {
+			return incFull, "MaxPool Indices output"
+		}
+		win, err := parseWindow(src)
+		if err != nil || len(win.kernel) != 2 {
+			return incFull, "not a 2-D pooling"
+		}
+		geo, err := win.resolve(xs[2:], int64sToInts(win.kernel))
+		if err != nil {
+			return incFull, err.Error()
+		}
+		st.g = geo
+		padded := geo.pt+geo.pl+geo.pb+geo.pr > 0
+		if src.OpType == "MaxPool" {
+			st.fill = float32(math.Inf(-1))
+		} else if win.ceil {
+			return incFull, "AveragePool with ceil_mode (clipped divisor)"
+		} else if padded && src.Int("count_include_pad", 0) == 0 {
+			return incFull, "AveragePool excluding padding from the divisor"
+		}
+		// The same operator without padding, applied to a gathered patch
+		// whose out-of-map positions hold the fill value.
+		clone := &onnx.Node{Name: src.Name, OpType: src.OpType, Inputs: src.Inputs[:1], Outputs: src.Outputs[:1], Attrs: map[string]*onnx.Attr{}}
+		for name, a := range src.Attrs {
+			clone.Attrs[name] = a
+		}
+		delete(clone.Attrs, "pads")
+		delete(clone.Attrs, "auto_pad")
+		delete(clone.Attrs, "ceil_mode")
+		b, _ := lookup(src.OpType)
+		op, err := b(clone, &Env{GEMM: st.gemm, Opset: p.opset()})
+		if err != nil {
+			return incFull, err.Error()
+		}
+		st.patchOp = op
+		return incPool, ""
+	case "Concat":
+		axis := src.Int("axis", 1)
+		if axis != 1 && axis != -3 {
+			return incFull, "Concat not over channels"
+		}
+		if nSpatial != len(nd.in) {
+			return incFull, "Concat with a constant input"
+		}
+		return incConcat, ""
+	case "Pad":
+		if src.String("mode", "constant") != "constant" {
+			return incFull, "Pad mode is not constant"
+		}
+		pads := src.Ints("pads")
+		if p.opset() >= 11 {
+			if len(nd.in) < 2 || nd.in[1] < 0 || (len(nd.in) > 3 && nd.in[3] >= 0) {
+				return incFull, "Pad without constant pads, or with axes"
+			}
+			c := g.consts[nd.in[1]]
+			if c == nil || c.DType != tensor.Int64 {
+				return incFull, "Pad pads not constant"
+			}
+			pads = c.I64
+		}
+		if len(pads) != 8 || pads[0] != 0 || pads[1] != 0 || pads[4] != 0 || pads[5] != 0 {
+			return incFull, "Pad over batch or channels"
+		}
+		for _, v := range pads {
+			if v < 0 {
+				return incFull, "Pad crops"
+			}
+		}
+		st.padT, st.padL = int(pads[2]), int(pads[3])
+		return incPad, ""
+	}
+	if !pointwiseOps[src.OpType] {
+		return incFull, "no patch form for " + src.OpType
+	}
+	for i, v := range nd.in {
+		// BatchNormalization's constants are per channel by definition;
+		// the other operators broadcast theirs numpy-style.
+		if v >= 0 && !st.spatial[i] && src.OpType != "BatchNormalization" && !constAcrossSpace(p.shapes[v]) {
+			return incFull, "a constant input varies across space"
+		}
+		if st.spatial[i] && !shapeEq(p.shapes[v], ys) {
+			return incFull, "inputs broadcast across space"
+		}
+	}
+	if nSpatial == 1 {
+		return incPointwise, ""
+	}
+	return incMulti, ""
+}
+
+func (p *incPlan) opset() int64 {
+	m := p.g.model
+	if o, ok := m.Opsets[""]; ok {
+		return o
+	}
+	return m.Opsets["ai.onnx"]
+}
+
+// macs counts the multiply-adds of one full evaluation of a Conv, Gemm or
+// MatMul node (the usual cost measure of a CNN; elementwise work is not
+// counted).
+func (p *incPlan) macs(nd *node) int64 {
+	if len(nd.out) == 0 || nd.out[0] < 0 || p.shapes[nd.out[0]] == nil {
+		return 0
+	}
+	ys := p.shapes[nd.out[0]]
+	switch nd.src.OpType {
+	case "Conv":
+		w := p.shapes[nd.in[1]]
+		if w == nil {
+			return 0
+		}
+		k := int64(1)
+		for _, d := range w[1:] {
+			k *= int64(d)
+		}
+		return int64(tensor.Numel(ys)) * k
+	case "Gemm", "MatMul":
+		a := p.shapes[nd.in[0]]
+		if len(a) == 0 {
+			return 0
+		}
+		k := int64(a[len(a)-1])
+		if nd.src.OpType == "Gemm" && nd.src.Int("transA", 0) != 0 {
+			k = int64(a[0])
+		}
+		return int64(tensor.Numel(ys)) * k
+	}
+	return 0
+}
+
+// incGeo is where a value differs from the kept one, for each window of a
+// batch: a patch of P×Q positions at (oy[b], ox[b]) that contains the
+// changed rectangle chg[b]. full marks values recomputed in full.
+type incGeo struct {
+	full   bool
+	p, q   int
+	oy, ox []int
+	chg    []Rect
+}
+
+// incVal is a value of a batch: its geometry and data ([B, C, P, Q] patch
+// or the full [B, ...] value).
+type incVal struct {
+	incGeo
+	t *tensor.Tensor
+}
+
+// place fixes a batch's patch size as the largest changed rectangle and
+// slides each patch inside the h×w map.
+func place(chg []Rect, h, w int) incGeo {
+	gm := incGeo{chg: chg, oy: make([]int, len(chg)), ox: make([]int, len(chg)), p: 1, q: 1}
+	for _, r := range chg {
+		if !r.empty() {
+			gm.p, gm.q = max(gm.p, r.Y1-r.Y0), max(gm.q, r.X1-r.X0)
+		}
+	}
+	gm.p, gm.q = min(gm.p, h), min(gm.q, w)
+	for b, r := range chg {
+		if r.empty() {
+			continue
+		}
+		gm.oy[b] = max(0, min(r.Y0, h-gm.p))
+		gm.ox[b] = max(0, min(r.X0, w-gm.q))
+	}
+	gm.full = gm.p == h && gm.q == w
+	return gm
+}
+
+// windowRange maps changed input positions [a, b) along one axis to the
+// output positions whose window reads one of them: output o reads
+// o·s − pad + t·d for t in [0, k).
+func windowRange(a, b, k, s, d, pad, n int) (lo, hi int) {
+	if a >= b {
+		return 0, 0
+	}
+	lo = incCeilDiv(a+pad-(k-1)*d, s)
+	hi = incFloorDiv(b-1+pad, s) + 1
+	return max(lo, 0), min(hi, n)
+}
+
+func incCeilDiv(a, b int) int { return -incFloorDiv(-a, b) }
+func incFloorDiv(a, b int) int {
+	q := a / b
+	if (a%b != 0) && ((a < 0) != (b < 0)) {
+		q--
+	}
+	return q
+}
+
+func (st *incStep) windowChg(r Rect) Rect {
+	g := st.g
+	y0, y1 := windowRange(r.Y0, r.Y1, g.kh, g.sh, g.dh, g.pt, g.oh)
+	x0, x1 := windowRange(r.X0, r.X1, g.kw, g.sw, g.dw, g.pl, g.ow)
+	out := Rect{x0, y0, x1, y1}
+	if out.empty() {
+		return Rect{}
+	}
+	return out
+}
+
+// geometry computes the output geometry of node k from its inputs'.
+func (p *incPlan) geometry(k int, ins []*incGeo) incGeo {
+	st := &p.steps[k]
+	nd := p.g.nodes[k]
+	for i, in := range ins {
+		if st.spatial[i] && in.full {
+			return incGeo{full: true}
+		}
+	}
+	ys := p.shapes[nd.out[0]]
+	var chg []Rect
+	switch st.kind {
+	case incFull:
+		return incGeo{full: true}
+	case incConv, incPool:
+		src := ins[0]
+		chg = make([]Rect, len(src.chg))
+		for b, r := range src.chg {
+			chg[b] = st.windowChg(r)
+		}
+	case incPad:
+		src := ins[0]
+		chg = make([]Rect, len(src.chg))
+		for b, r := range src.chg {
+			if !r.empty() {
+				chg[b] = Rect{r.X0 + st.padL, r.Y0 + st.padT, r.X1 + st.padL, r.Y1 + st.padT}
+			}
+		}
+		gm := incGeo{chg: chg, p: src.p, q: src.q, oy: make([]int, len(chg)), ox: make([]int, len(chg))}
+		for b := range chg {
+			gm.oy[b], gm.ox[b] = src.oy[b]+st.padT, src.ox[b]+st.padL
+		}
+		return gm
+	case incPointwise:
+		for i, in := range ins {
+			if st.spatial[i] {
+				return *in
+			}
+		}
+	case incMulti, incConcat:
+		for i, in := range ins {
+			if !st.spatial[i] {
+				continue
+			}
+			if chg == nil {
+				chg = make([]Rect, len(in.chg))
+			}
+			for b, r := range in.chg {
+				chg[b] = chg[b].union(r)
+			}
+		}
+	}
+	return place(chg, ys[2], ys[3])
+}
+
+// Occlude evaluates the graph output for len(rects) copies of the image,
+// copy b having the pixels of rects[b] replaced by those of fill (same
+// shape as the image). It returns the output with a leading batch
+// dimension of len(rects).
+func (inc *Incremental) Occlude(ctx context.Context, fill *tensor.Tensor, rects []Rect) (*tensor.Tensor, error) {
+	p := inc.plan
+	xs := p.shapes[p.in]
+	if fill == nil || fill.DType != tensor.Float32 || !shapeEq(fill.Shape, xs) {
+		return nil, fmt.Errorf("engine: incremental: fill must have the input's shape %v, got %v", xs, fill)
+	}
+	if len(rects) == 0 {
+		return nil, fmt.Errorf("engine: incremental: no rectangles")
+	}
+	h, w := xs[2], xs[3]
+	chg := make([]Rect, len(rects))
+	for b, r := range rects {
+		chg[b] = Rect{max(r.X0, 0), max(r.Y0, 0), min(r.X1, w), min(r.Y1, h)}
+	}
+	vals := make([]*incVal, len(p.g.names))
+	x0 := &incVal{incGeo: place(chg, h, w)}
+	x0.t = tensor.New(len(rects), xs[1], x0.p, x0.q)
+	for b := range rects {
+		dst := x0.t.F32[b*xs[1]*x0.p*x0.q : (b+1)*xs[1]*x0.p*x0.q]
+		gatherPlane(inc.base[p.in].F32, xs[1], h, w, x0.oy[b], x0.ox[b], x0.p, x0.q, 0, dst)
+		// Overlay the fill inside the rectangle.
+		r := chg[b]
+		for c := 0; c < xs[1]; c++ {
+			for y := r.Y0; y < r.Y1; y++ {
+				row := dst[(c*x0.p+y-x0.oy[b])*x0.q:]
+				copy(row[r.X0-x0.ox[b]:r.X1-x0.ox[b]], fill.F32[(c*h+y)*w+r.X0:(c*h+y)*w+r.X1])
+			}
+		}
+	}
+	if x0.full {
+		x0.t = tensor.FromFloat32(x0.t.F32, len(rects), xs[1], h, w)
+	}
+	vals[p.in] = x0
+	nb := len(rects)
+	geos := make([]*incGeo, 0, 8)
+	for k, nd := range p.g.nodes {
+		if err := ctx.Err(); err != nil {
+			return nil, err
+		}
+		st := &p.steps[k]
+		geos = geos[:0]
+		reached := false
+		for i, v := range nd.in {
+			if v >= 0 && st.spatial[i] {
+				if vals[v] == nil {
+					vals[v] = &incVal{incGeo: incGeo{full: true}, t: inc.materialize(v, nil, nb)}
+				}
+				geos = append(geos, &vals[v].incGeo)
+				reached = true
+			} else {
+				geos = append(geos, nil)
+			}
+		}
+		var err error
+		if reached && st.kind != incFull {
+			gm := p.geometry(k, geos)
+			if gm.full && !geomFits(gm, p.shapes[nd.out[0]]) {
+				err = inc.runFull(k, vals, nb)
+			} else {
+				var out *incVal
+				if out, err = inc.runPatch(k, gm, vals, nb); err == nil {
+					vals[nd.out[0]] = out
+				}
+			}
+		} else {
+			err = inc.runFull(k, vals, nb)
+		}
+		if err != nil {
+			return nil, fmt.Errorf("engine: incremental: %s: %w", nd.label(), err)
+		}
+		for _, v := range nd.in {
+			if v >= 0 && p.g.lastUse[v] == k && v != p.out {
+				vals[v] = nil
+			}
+		}
+	}
+	o := vals[p.out]
+	if o == nil {
+		return nil, fmt.Errorf("engine: incremental: output %q not computed", p.g.names[p.out])
+	}
+	if o.full {
+		return o.t, nil
+	}
+	return inc.materialize(p.out, o, nb), nil
+}
+
+// geomFits reports whether a full-covering patch geometry came from a patch
+// computation (p×q equal to the map), so the patch code can produce it.
+func geomFits(gm incGeo, ys []int) bool {
+	return len(ys) == 4 && gm.p == ys[2] && gm.q == ys[3] && gm.oy != nil
+}
+
+// materialize returns value v in full for every window: the kept value
+// with the window's patch written over it.
+func (inc *Incremental) materialize(v int, s *incVal, nb int) *tensor.Tensor {
+	base := inc.base[v]
+	if base == nil {
+		base = inc.plan.g.consts[v]
+	}
+	if s != nil && s.full {
+		return s.t
+	}
+	shape := append([]int{nb}, base.Shape[1:]...)
+	t := tensor.New(shape...)
+	n := base.Len()
+	for b := 0; b < nb; b++ {
+		copy(t.F32[b*n:(b+1)*n], base.F32)
+	}
+	if s == nil {
+		return t
+	}
+	c, h, w := base.Shape[1], base.Shape[2], base.Shape[3]
+	for b := 0; b < nb; b++ {
+		dst := t.F32[b*n : (b+1)*n]
+		src := s.t.F32[b*c*s.p*s.q:]
+		for ch := 0; ch < c; ch++ {
+			for y := 0; y < s.p; y++ {
+				copy(dst[(ch*h+s.oy[b]+y)*w+s.ox[b]:][:s.q], src[(ch*s.p+y)*s.q:][:s.q])
+			}
+		}
+	}
+	return t
+}
+
+// runFull evaluates node k on the whole batch, materialising patched
+// inputs, and stores its outputs in vals.
+func (inc *Incremental) runFull(k int, vals []*incVal, nb int) error {
+	p := inc.plan
+	nd := p.g.nodes[k]
+	in := make([]*tensor.Tensor, len(nd.in))
+	for i, v := range nd.in {
+		switch {
+		case v < 0:
+		case p.g.consts[v] != nil:
+			in[i] = p.g.consts[v]
+		default:
+			s := vals[v]
+			if s == nil {
+				return fmt.Errorf("input %q not available", p.g.names[v])
+			}
+			if !s.full {
+				s = &incVal{incGeo: incGeo{full: true}, t: inc.materialize(v, s, nb)}
+				vals[v] = s
+			}
+			in[i] = s.t
+		}
+	}
+	out, err := safeForward(nd.op, in)
+	if err != nil {
+		return err
+	}
+	for i, v := range nd.out {
+		if v < 0 {
+			continue
+		}
+		if i >= len(out) || out[i] == nil {
+			return fmt.Errorf("output %d not produced", i)
+		}
+		vals[v] = &incVal{incGeo: incGeo{full: true}, t: out[i]}
+	}
+	return nil
+}
+
+// gatherPlane writes rows [y0, y0+ph) × cols [x0, x0+pw) of a C×H×W map
+// into dst (C×ph×pw), with fill outside the map.
+func gatherPlane(src []float32, c, h, w, y0, x0, ph, pw int, fill float32, dst []float32) {
+	xa, xb := max(x0, 0), min(x0+pw, w)
+	for ch := 0; ch < c; ch++ {
+		for i := 0; i < ph; i++ {
+			row := dst[(ch*ph+i)*pw : (ch*ph+i+1)*pw]
+			y := y0 + i
+			if y < 0 || y >= h || xa >= xb {
+				for j := range row {
+					row[j] = fill
+				}
+				continue
+			}
+			for j := 0; j < xa-x0; j++ {
+				row[j] = fill
+			}
+			copy(row[xa-x0:xb-x0], src[(ch*h+y)*w+xa:(ch*h+y)*w+xb])
+			for j := xb - x0; j < pw; j++ {
+				row[j] = fill
+			}
+		}
+	}
+}
+
+// gather writes value v of window b over rows [y0, y0+ph) × cols
+// [x0, x0+pw) into dst (C×ph×pw): the kept value, overlaid with the
+// window's patch, and fill outside the map.
+func (inc *Incremental) gather(v int, s *incVal, b, y0, x0, ph, pw int, fill float32, dst []float32) {
+	shp := inc.plan.shapes[v]
+	c, h, w := shp[1], shp[2], shp[3]
+	if s.full {
+		gatherPlane(s.t.F32[b*c*h*w:(b+1)*c*h*w], c, h, w, y0, x0, ph, pw, fill, dst)
+		return
+	}
+	gatherPlane(inc.base[v].F32, c, h, w, y0, x0, ph, pw, fill, dst)
+	// Overlay the patch where it meets the requested region.
+	ya, yb := max(y0, s.oy[b]), min(y0+ph, s.oy[b]+s.p)
+	xa, xb := max(x0, s.ox[b]), min(x0+pw, s.ox[b]+s.q)
+	if ya >= yb || xa >= xb {
+		return
+	}
+	pt := s.t.F32[b*c*s.p*s.q:]
+	for ch := 0; ch < c; ch++ {
+		for y := ya; y < yb; y++ {
+			copy(dst[(ch*ph+y-y0)*pw+xa-x0:][:xb-xa], pt[(ch*s.p+y-s.oy[b])*s.q+xa-s.ox[b]:][:xb-xa])
+		}
+	}
+}
+
+// runPatch computes node k's output patch for geometry gm.
+func (inc *Incremental) runPatch(k int, gm incGeo, vals []*incVal, nb int) (*incVal, error) {
+	p := inc.plan
+	st := &p.steps[k]
+	nd := p.g.nodes[k]
+	out := &incVal{incGeo: gm}
+	switch st.kind {
+	case incPad:
+		out.t = vals[nd.in[0]].t
+		return out, nil
+	case incPointwise:
+		in := make([]*tensor.Tensor, len(nd.in))
+		for i, v := range nd.in {
+			switch {
+			case v < 0:
+			case st.spatial[i]:
+				in[i] = vals[v].t
+			default:
+				in[i] = p.g.consts[v]
+			}
+		}
+		r, err := safeForward(nd.op, in)
+		if err != nil {
+			return nil, err
+		}
+		out.t = r[0]
+	case incMulti, incConcat:
+		in := make([]*tensor.Tensor, len(nd.in))
+		for i, v := range nd.in {
+			switch {
+			case v < 0:
+			case st.spatial[i]:
+				c := p.shapes[v][1]
+				t := tensor.New(nb, c, gm.p, gm.q)
+				for b := 0; b < nb; b++ {
+					inc.gather(v, vals[v], b, gm.oy[b], gm.ox[b], gm.p, gm.q, 0, t.F32[b*c*gm.p*gm.q:(b+1)*c*gm.p*gm.q])
+				}
+				in[i] = t
+			default:
+				in[i] = p.g.consts[v]
+			}
+		}
+		r, err := safeForward(nd.op, in)
+		if err != nil {
+			return nil, err
+		}
+		out.t = r[0]
+	case incConv, incPool:
+		v := nd.in[0]
+		c := p.shapes[v][1]
+		g := st.g
+		ih := (gm.p-1)*g.sh + (g.kh-1)*g.dh + 1
+		iw := (gm.q-1)*g.sw + (g.kw-1)*g.dw + 1
+		xt := tensor.New(nb, c, ih, iw)
+		parallelFor(nb, func(b int) {
+			inc.gather(v, vals[v], b, gm.oy[b]*g.sh-g.pt, gm.ox[b]*g.sw-g.pl, ih, iw, st.fill, xt.F32[b*c*ih*iw:(b+1)*c*ih*iw])
+		})
+		if st.kind == incPool {
+			r, err := safeForward(st.patchOp, []*tensor.Tensor{xt})
+			if err != nil {
+				return nil, err
+			}
+			out.t = r[0]
+		} else {
+			out.t = st.convPatch(xt, c, gm.p, gm.q)
+		}
+	default:
+		return nil, fmt.Errorf("no patch form")
+	}
+	want := []int{nb, p.shapes[nd.out[0]][1], gm.p, gm.q}
+	if !shapeEq(out.t.Shape, want) {
+		return nil, fmt.Errorf("patch output %v, want %v", out.t.Shape, want)
+	}
+	if gm.full {
+		out.t = tensor.FromFloat32(out.t.F32, want...)
+	}
+	return out, nil
+}
+
+// convPatch convolves a batch of gathered input patches x [B, C, IH, IW]
+// (padding already in place) into [B, M, P, Q]. All windows share one
+// matrix product per group: W_g [M_g × C_g·kh·kw] times the columns of
+// every window side by side, so small patches still give a wide GEMM.
+func (st *incStep) convPatch(x *tensor.Tensor, c, ph, pw int) *tensor.Tensor {
+	nb, ih, iw := x.Shape[0], x.Shape[2], x.Shape[3]
+	g := st.g
+	y := tensor.New(nb, st.m, ph, pw)
+	pq := ph * pw
+	mg := st.m / st.group
+	if st.cg == 1 && st.group == c {
+		// Depthwise: too little reuse for a matrix product.
+		khw := g.kh * g.kw
+		parallelFor(nb*st.m, func(i int) {
+			b, m := i/st.m, i%st.m
+			ch := m / mg
+			src := x.F32[(b*c+ch)*ih*iw : (b*c+ch+1)*ih*iw]
+			ker := st.w[m*khw : (m+1)*khw]
+			dst := y.F32[i*pq : (i+1)*pq]
+			var bias float32
+			if st.b != nil {
+				bias = st.b[m]
+			}
+			for oy := 0; oy < ph; oy++ {
+				for ox := 0; ox < pw; ox++ {
+					var acc float32
+					for ki := 0; ki < g.kh; ki++ {
+						row := src[(oy*g.sh+ki*g.dh)*iw+ox*g.sw:]
+						kr := ker[ki*g.kw : (ki+1)*g.kw]
+						for kj, kv := range kr {
+							acc += row[kj*g.dw] * kv
+						}
+					}
+					dst[oy*pw+ox] = acc + bias
+				}
+			}
+		})
+		return y
+	}
+	kk := st.cg * g.kh * g.kw
+	n := nb * pq
+	col := make([]float32, kk*n)
+	tmp := make([]float32, mg*n)
+	for gi := 0; gi < st.group; gi++ {
+		// col[r, b·pq + o] = x[b, gi·cg + ch, oy·sh + ki·dh, ox·sw + kj·dw]
+		parallelFor(kk, func(r int) {
+			ch, kidx := r/(g.kh*g.kw), r%(g.kh*g.kw)
+			ki, kj := kidx/g.kw, kidx%g.kw
+			dst := col[r*n : (r+1)*n]
+			for b := 0; b < nb; b++ {
+				plane := x.F32[(b*c+gi*st.cg+ch)*ih*iw:]
+				d := dst[b*pq : (b+1)*pq]
+				for oy := 0; oy < ph; oy++ {
+					srow := plane[(oy*g.sh+ki*g.dh)*iw+kj*g.dw:]
+					drow := d[oy*pw : (oy+1)*pw]
+					if g.sw == 1 {
+						copy(drow, srow[:pw])
+						continue
+					}
+					for ox := range drow {
+						drow[ox] = srow[ox*g.sw]
+					}
+				}
+			}
+		})
+		st.gemm.Sgemm(false, false, mg, n, kk, 1, st.w[gi*mg*kk:(gi+1)*mg*kk], kk, col, n, 0, tmp, n)
+		// tmp is [M_g, B·pq]; y is [B, M, pq].
+		for m := 0; m < mg; m++ {
+			var bias float32
+			if st.b != nil {
+				bias = st.b[gi*mg+m]
+			}
+			for b := 0; b < nb; b++ {
+				src := tmp[m*n+b*pq : m*n+(b+1)*pq]
+				dst := y.F32[(b*st.m+gi*mg+m)*pq : (b*st.m+gi*mg+m+1)*pq]
+				for i, v := range src {
+					dst[i] = v + bias
+				}
+			}
+		}
+	}
+	return y
+}
+
+// parallelFor runs f(0..n-1) over the available cores.
+func parallelFor(n int, f func(i int)) {
+	workers := min(runtime.GOMAXPROCS(0), n)
+	if workers <= 1 {
+		for i := 0; i < n; i++ {
+			f(i)
+		}
+		return
+	}
+	var wg sync.WaitGroup
+	var mu sync.Mutex
+	next := 0
+	for w := 0; w < workers; w++ {
+		wg.Add(1)
+		go func() {
+			defer wg.Done()
+			for {
+				mu.Lock()
+				i := next
+				next++
+				mu.Unlock()
+				if i >= n {
+					return
+				}
+				f(i)
+			}
+		}()
+	}
+	wg.Wait()
+}
+
+// propagate computes the geometry of every value for a batch of changed
+// input rectangles without computing any data. An entry is nil for values
+// the batch never reaches and for constants.
+func (p *incPlan) propagate(rects []Rect) []*incGeo {
+	xs := p.shapes[p.in]
+	chg := make([]Rect, len(rects))
+	for b, r := range rects {
+		chg[b] = Rect{max(r.X0, 0), max(r.Y0, 0), min(r.X1, xs[3]), min(r.Y1, xs[2])}
+	}
+	geos := make([]*incGeo, len(p.g.names))
+	g0 := place(chg, xs[2], xs[3])
+	geos[p.in] = &g0
+	for k, nd := range p.g.nodes {
+		st := &p.steps[k]
+		ins := make([]*incGeo, len(nd.in))
+		reached := false
+		for i, v := range nd.in {
+			if v >= 0 && st.spatial[i] {
+				if geos[v] == nil {
+					geos[v] = &incGeo{full: true}
+				}
+				ins[i] = geos[v]
+				reached = true
+			}
+		}
+		gm := incGeo{full: true}
+		if reached && st.kind != incFull {
+			if g := p.geometry(k, ins); !g.full || geomFits(g, p.shapes[nd.out[0]]) {
+				gm = g
+			}
+		}
+		for _, v := range nd.out {
+			if v >= 0 {
+				c := gm
+				geos[v] = &c
+			}
+		}
+	}
+	return geos
+}
+
+// MultiplyAdds counts the Conv, Gemm and MatMul multiply-adds of evaluating
+// rects in batches of batch windows incrementally, and of evaluating them
+// with full forward passes. Incremental counts include the positions a
+// batch recomputes because its patches share one size.
+func (inc *Incremental) MultiplyAdds(rects []Rect, batch int) (incremental, full int64) {
+	p := inc.plan
+	if batch <= 0 {
+		batch = 1
+	}
+	var perImage int64
+	for _, st := range p.steps {
+		perImage += st.fullMACs
+	}
+	full = perImage * int64(len(rects))
+	for s := 0; s < len(rects); s += batch {
+		part := rects[s:min(s+batch, len(rects))]
+		nb := int64(len(part))
+		geos := p.propagate(part)
+		for k, nd := range p.g.nodes {
+			st := &p.steps[k]
+			if st.fullMACs == 0 {
+				continue
+			}
+			gm := geos[nd.out[0]]
+			if gm.full || st.kind != incConv {
+				incremental += st.fullMACs * nb
+				continue
+			}
+			ys := p.shapes[nd.out[0]]
+			incremental += st.fullMACs / int64(ys[2]*ys[3]) * int64(gm.p*gm.q) * nb
+		}
+	}
+	return incremental, full
+}

@@ -1,0 +1,16 @@
+package engine
+
+import "heedmap/kernel"
+
+// This file is the only place the incremental evaluator reads operator
+// internals, so a change to an operator's fields breaks one small file.
+
+// convGEMM returns the matrix-product kernel a compiled Conv was built
+// with, so the incremental path multiplies with the same kernel as Run.
+func convGEMM(op Op) (kernel.GEMM, bool) {
+	c, ok := op.(*convOp)
+	if !ok || c.gemm == nil {
+		return nil, false
+	}
+	return c.gemm, true
+}

@@ -1,0 +1,424 @@
+package engine
+
+import (
+	"context"
+	"fmt"
+	"math"
+	"math/rand/v2"
+	"os"
+	"path/filepath"
+	"testing"
+
+	"heedmap/onnx"
+	"heedmap/tensor"
+)
+
+// The reference for incremental evaluation is brute force: the same graph
+// run in full (Graph.Run) on every occluded copy. The two differ only in
+// the order of float summation (the incremental path multiplies patch
+// columns in different GEMM blocks), so outputs must agree within
+// incTol·max(1, largest |output|); 1e-5 relative is the float32 summation
+// noise we expect for these depths, with headroom.
+const incTol = 2e-5
+
+// bruteForce runs x with each rect replaced by fill through g in full.
+func bruteForce(t testing.TB, g *Graph, input, output string, x, fill *tensor.Tensor, rects []Rect) *tensor.Tensor {
+	c, h, w := x.Shape[1], x.Shape[2], x.Shape[3]
+	n := c * h * w
+	xb := tensor.New(len(rects), c, h, w)
+	for b, r := range rects {
+		dst := xb.F32[b*n : (b+1)*n]
+		copy(dst, x.F32)
+		for k := 0; k < c; k++ {
+			for y := max(r.Y0, 0); y < min(r.Y1, h); y++ {
+				for xx := max(r.X0, 0); xx < min(r.X1, w); xx++ {
+					dst[(k*h+y)*w+xx] = fill.F32[(k*h+y)*w+xx]
+				}
+			}
+		}
+	}
+	p, err := g.Run(context.Background(), map[string]*tensor.Tensor{input: xb}, RunOptions{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	y, _ := p.Value(output)
+	return y
+}
+
+func compareOutputs(t *testing.T, what string, got, want *tensor.Tensor) {
+	t.Helper()
+	if !shapeEq(got.Shape, want.Shape) {
+		t.Fatalf("%s: shape %v, want %v", what, got.Shape, want.Shape)
+	}
+	var scale, worst float64 = 1, 0
+	for _, v := range want.F32 {
+		scale = math.Max(scale, math.Abs(float64(v)))
+	}
+	at := 0
+	for i := range want.F32 {
+		if d := math.Abs(float64(got.F32[i] - want.F32[i])); d > worst {
+			worst, at = d, i
+		}
+	}
+	t.Logf("%s: largest difference %.3g (relative %.3g) at %d", what, worst, worst/scale, at)
+	if worst > incTol*scale {
+		t.Errorf("%s: element %d = %v, brute force %v (tolerance %g·%g)", what, at, got.F32[at], want.F32[at], incTol, scale)
+	}
+}
+
+func randomTensor(seed uint64, shape ...int) *tensor.Tensor {
+	r := rand.New(rand.NewPCG(seed, 7))
+	t := tensor.New(shape...)
+	for i := range t.F32 {
+		t.F32[i] = float32(r.NormFloat64())
+	}
+	return t
+}
+
+// occlusionRects lists patch×patch windows at the given stride (plus one
+// flush with the far edge), as the occlusion package does.
+func occlusionRects(h, w, patch, stride int) []Rect {
+	origins := func(n int) []int {
+		var o []int
+		for x := 0; x+patch <= n; x += stride {
+			o = append(o, x)
+		}
+		if o[len(o)-1]+patch < n {
+			o = append(o, n-patch)
+		}
+		return o
+	}
+	var rs []Rect
+	for _, y := range origins(h) {
+		for _, x := range origins(w) {
+			rs = append(rs, Rect{x, y, x + patch, y + patch})
+		}
+	}
+	return rs
+}
+
+// TestIncrementalCompactNets: on the compact reference networks, the
+// incremental outputs equal brute-force full passes for every window.
+func TestIncrementalCompactNets(t *testing.T) {
+	for _, name := range []string{"resnet18", "mobilenet_v2", "efficientnet_b0", "densenet121"} {
+		t.Run(name, func(t *testing.T) {
+			dir := filepath.Join("..", "testdata", "nets", name)
+			g, err := Load(filepath.Join(dir, "model.onnx"))
+			if err != nil {
+				t.Fatal(err)
+			}
+			xb, _, err := onnx.LoadTensor(filepath.Join(dir, "input.pb"))
+			if err != nil {
+				t.Fatal(err)
+			}
+			c, h, w := xb.Shape[1], xb.Shape[2], xb.Shape[3]
+			x := tensor.FromFloat32(xb.F32[:c*h*w], 1, c, h, w)
+			fill := randomTensor(5, 1, c, h, w)
+			inc, err := NewIncremental(context.Background(), g, "input", "logits", x)
+			if err != nil {
+				t.Fatal(err)
+			}
+			for _, f := range inc.Fallbacks() {
+				t.Logf("full from %s", f)
+			}
+			// Patch 10, stride 9 on 64²: 7×7 windows, the last flush with
+			// the edge; plus windows hanging over the border (clipped).
+			rects := occlusionRects(h, w, 10, 9)
+			rects = append(rects, Rect{-3, -3, 4, 5}, Rect{w - 2, 30, w + 5, 33}, Rect{20, 20, 21, 21})
+			changed := false
+			for s := 0; s < len(rects); s += 13 { // odd batch sizes on purpose
+				part := rects[s:min(s+13, len(rects))]
+				got, err := inc.Occlude(context.Background(), fill, part)
+				if err != nil {
+					t.Fatal(err)
+				}
+				want := bruteForce(t, g, "input", "logits", x, fill, part)
+				compareOutputs(t, fmt.Sprintf("windows %d–%d", s, s+len(part)-1), got, want)
+				changed = changed || differs(want, inc.Base())
+			}
+			if !changed {
+				t.Error("no window changed the output: the comparison proves nothing")
+			}
+		})
+	}
+}
+
+// differs reports whether some row of batch differs from the single row
+// base by more than float noise.
+func differs(batch, base *tensor.Tensor) bool {
+	n := base.Len()
+	for i, v := range batch.F32 {
+		if math.Abs(float64(v-base.F32[i%n])) > 1e-3 {
+			return true
+		}
+	}
+	return false
+}
+
+// A small graph built by hand: two convolutions, batch norm, max pooling,
+// a skip connection with a depthwise branch, a channel concat, a constant
+// pad, average pooling and a classifier head.
+func handGraph(t testing.TB) *Graph {
+	r := rand.New(rand.NewPCG(11, 12))
+	init := map[string]*tensor.Tensor{}
+	var order []string
+	param := func(name string, shape ...int) string {
+		p := tensor.New(shape...)
+		for i := range p.F32 {
+			p.F32[i] = float32(r.NormFloat64() * 0.3)
+		}
+		init[name], order = p, append(order, name)
+		return name
+	}
+	ints := func(name string, v ...int64) *onnx.Attr { return &onnx.Attr{Name: name, Type: onnx.AttrInts, Ints: v} }
+	intA := func(name string, v int64) *onnx.Attr { return &onnx.Attr{Name: name, Type: onnx.AttrInt, Int: v} }
+	node := func(op string, ins []string, out string, attrs ...*onnx.Attr) *onnx.Node {
+		n := &onnx.Node{Name: out, OpType: op, Inputs: ins, Outputs: []string{out}, Attrs: map[string]*onnx.Attr{}}
+		for _, a := range attrs {
+			n.Attrs[a.Name] = a
+		}
+		return n
+	}
+	bnVar := param("bn_var", 6)
+	for i := range init[bnVar].F32 {
+		init[bnVar].F32[i] = 0.5 + float32(math.Abs(float64(init[bnVar].F32[i])))
+	}
+	pads := tensor.FromInt64([]int64{0, 0, 1, 0, 0, 0, 0, 1}, 8)
+	init["pads"], order = pads, append(order, "pads")
+	nodes := []*onnx.Node{
+		node("Conv", []string{"x", param("w1", 4, 3, 3, 3), param("b1", 4)}, "c1", ints("pads", 1, 1, 1, 1)),
+		node("Relu", []string{"c1"}, "r1"),
+		node("Conv", []string{"r1", param("w2", 6, 4, 3, 3)}, "c2", ints("pads", 1, 1, 1, 1), ints("strides", 2, 2)),
+		node("BatchNormalization", []string{"c2", param("bn_s", 6), param("bn_b", 6), param("bn_m", 6), bnVar}, "bn"),
+		node("MaxPool", []string{"bn"}, "mp", ints("kernel_shape", 3, 3), ints("strides", 2, 2), ints("pads", 1, 1, 1, 1)),
+		node("Conv", []string{"mp", param("w3", 6, 6, 1, 1)}, "pw"),
+		node("Conv", []string{"pw", param("w4", 6, 1, 3, 3), param("b4", 6)}, "dw", ints("pads", 2, 2, 2, 2), ints("dilations", 2, 2), intA("group", 6)),
+		node("Add", []string{"dw", "mp"}, "add"),
+		node("Clip", []string{"add", "", ""}, "clip"),
+		node("Concat", []string{"clip", "mp"}, "cat", intA("axis", 1)),
+		node("Pad", []string{"cat", "pads"}, "pad"),
+		node("AveragePool", []string{"pad"}, "ap", ints("kernel_shape", 2, 2), ints("strides", 1, 1), ints("pads", 0, 1, 0, 1), intA("count_include_pad", 1)),
+		node("GlobalAveragePool", []string{"ap"}, "gap"),
+		node("Flatten", []string{"gap"}, "flat"),
+		node("Gemm", []string{"flat", param("fc", 5, 12), param("fcb", 5)}, "y", intA("transB", 1)),
+	}
+	dims := func(d ...int64) []onnx.Dim {
+		out := make([]onnx.Dim, len(d))
+		for i, v := range d {
+			out[i] = onnx.Dim{Value: v}
+		}
+		out[0] = onnx.Dim{Param: "N"}
+		return out
+	}
+	m := &onnx.Model{Opsets: map[string]int64{"": 13}, Graph: &onnx.Graph{
+		Nodes:        nodes,
+		Inputs:       []onnx.ValueInfo{{Name: "x", DType: tensor.Float32, Shape: dims(1, 3, 20, 20)}},
+		Outputs:      []onnx.ValueInfo{{Name: "y", DType: tensor.Float32}},
+		Initializers: init, InitOrder: order,
+	}}
+	g, err := Compile(m)
+	if err != nil {
+		t.Fatal(err)
+	}
+	return g
+}
+
+// TestIncrementalHandGraph checks, on handGraph, changed regions worked out
+// by hand from the ONNX Conv/MaxPool output-position rule (output o reads
+// inputs o·s − pad + t·d, t < k), and exactness against brute force.
+func TestIncrementalHandGraph(t *testing.T) {
+	g := handGraph(t)
+	x := randomTensor(1, 1, 3, 20, 20)
+	fill := randomTensor(2, 1, 3, 20, 20)
+	inc, err := NewIncremental(context.Background(), g, "x", "y", x)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if fb := inc.Fallbacks(); len(fb) != 0 {
+		t.Errorf("unexpected full recomputation: %v", fb)
+	}
+	// Window rows and columns [8, 10).
+	geos := inc.plan.propagate([]Rect{{8, 8, 10, 10}})
+	want := map[string]Rect{
+		// 3×3, pad 1: rows 8−1 … 9+1.
+		"c1": {7, 7, 11, 11}, "r1": {7, 7, 11, 11},
+		// 3×3, stride 2, pad 1 on rows [7, 11): 2o+1 ≥ 7 and 2o−1 ≤ 10 → o ∈ [3, 5].
+		"c2": {3, 3, 6, 6}, "bn": {3, 3, 6, 6},
+		// 3×3, stride 2, pad 1 on [3, 6): 2o+1 ≥ 3 and 2o−1 ≤ 5 → o ∈ [1, 3].
+		"mp": {1, 1, 4, 4}, "pw": {1, 1, 4, 4},
+		// 3×3 dilated 2, pad 2 on [1, 4): o+2 ≥ 1 and o−2 ≤ 3 → o ∈ [0, 5) clipped to the 5×5 map.
+		"dw": {0, 0, 5, 5},
+	}
+	for name, r := range want {
+		gm := geos[g.index[name]]
+		if gm == nil || gm.chg == nil {
+			t.Errorf("%s: no patch geometry", name)
+			continue
+		}
+		if gm.chg[0] != r {
+			t.Errorf("%s: changed region %+v, want %+v", name, gm.chg[0], r)
+		}
+	}
+	// dw covers its whole 5×5 map, so everything after it is full.
+	for _, name := range []string{"add", "cat", "pad", "ap", "y"} {
+		if gm := geos[g.index[name]]; gm == nil || !gm.full {
+			t.Errorf("%s: want full recomputation", name)
+		}
+	}
+	// A window whose region stays partial through the concat and pad: a
+	// corner pixel.
+	geos = inc.plan.propagate([]Rect{{0, 0, 1, 1}})
+	// c1 [0,2), c2: 2o−1 ≤ 1 → o ≤ 1 → [0,2); mp: 2o−1 ≤ 1 → [0,2); dw:
+	// o−2 ≤ 1 → [0,4); add = union [0,4); cat = [0,4); pad shifts rows by 1
+	// → rows [1,5), cols [0,4).
+	for name, r := range map[string]Rect{"mp": {0, 0, 2, 2}, "dw": {0, 0, 4, 4}, "cat": {0, 0, 4, 4}, "pad": {0, 1, 4, 5}} {
+		if gm := geos[g.index[name]]; gm == nil || gm.full || gm.chg[0] != r {
+			t.Errorf("corner: %s: geometry %+v, want changed %+v", name, gm, r)
+		}
+	}
+	rects := occlusionRects(20, 20, 3, 2)
+	rects = append(rects, Rect{0, 0, 1, 1}, Rect{19, 19, 20, 20}, Rect{5, 0, 15, 20}, Rect{0, 0, 20, 20})
+	for s := 0; s < len(rects); s += 16 {
+		part := rects[s:min(s+16, len(rects))]
+		got, err := inc.Occlude(context.Background(), fill, part)
+		if err != nil {
+			t.Fatal(err)
+		}
+		want := bruteForce(t, g, "x", "y", x, fill, part)
+		compareOutputs(t, fmt.Sprintf("windows %d–", s), got, want)
+		if !differs(want, inc.Base()) {
+			t.Errorf("windows %d–: no window changed the output", s)
+		}
+	}
+	// Batch of one per window too (no shared patch size).
+	for _, r := range rects[:10] {
+		got, err := inc.Occlude(context.Background(), fill, []Rect{r})
+		if err != nil {
+			t.Fatal(err)
+		}
+		compareOutputs(t, fmt.Sprint(r), got, bruteForce(t, g, "x", "y", x, fill, []Rect{r}))
+	}
+}
+
+// TestIncrementalReceptiveField checks the changed-region arithmetic against
+// the standard receptive-field recursion for a stack of sliding windows
+// (common practice, e.g. Araujo, Norris & Sim, "Computing Receptive Fields
+// of Convolutional Neural Networks", Distill 2019):
+//
+//	r_out = r_in + (k − 1)·d·j_in,   j_out = j_in·s,   r_0 = j_0 = 1
+//
+// An input pixel p changes output o exactly when p lies in o's receptive
+// field, so, away from the borders, the number of single-pixel windows
+// whose changed region at layer L contains o must be r_L, and those pixels
+// must be contiguous.
+func TestIncrementalReceptiveField(t *testing.T) {
+	type layer struct {
+		op           string
+		k, s, d, pad int64
+	}
+	stack := []layer{{"Conv", 3, 1, 1, 1}, {"Conv", 3, 2, 1, 1}, {"MaxPool", 3, 2, 1, 1}, {"Conv", 5, 1, 2, 4}, {"Conv", 2, 2, 1, 0}, {"Conv", 3, 1, 3, 3}}
+	const h = 400
+	var nodes []*onnx.Node
+	init := map[string]*tensor.Tensor{}
+	prev := "x"
+	r, j := int64(1), int64(1)
+	for i, l := range stack {
+		out := fmt.Sprintf("v%d", i)
+		n := &onnx.Node{Name: out, OpType: l.op, Outputs: []string{out}, Attrs: map[string]*onnx.Attr{
+			"kernel_shape": {Name: "kernel_shape", Type: onnx.AttrInts, Ints: []int64{l.k, 1}},
+			"strides":      {Name: "strides", Type: onnx.AttrInts, Ints: []int64{l.s, 1}},
+			"dilations":    {Name: "dilations", Type: onnx.AttrInts, Ints: []int64{l.d, 1}},
+			"pads":         {Name: "pads", Type: onnx.AttrInts, Ints: []int64{l.pad, 0, l.pad, 0}},
+		}}
+		n.Inputs = []string{prev}
+		if l.op == "Conv" {
+			w := fmt.Sprintf("w%d", i)
+			init[w] = randomTensor(uint64(i), 1, 1, int(l.k), 1)
+			n.Inputs = append(n.Inputs, w)
+		}
+		nodes = append(nodes, n)
+		prev = out
+		r, j = r+(l.k-1)*l.d*j, j*l.s
+	}
+	m := &onnx.Model{Opsets: map[string]int64{"": 13}, Graph: &onnx.Graph{
+		Nodes:        nodes,
+		Inputs:       []onnx.ValueInfo{{Name: "x", DType: tensor.Float32, Shape: []onnx.Dim{{Value: 1}, {Value: 1}, {Value: h}, {Value: 2}}}},
+		Outputs:      []onnx.ValueInfo{{Name: prev, DType: tensor.Float32}},
+		Initializers: init,
+	}}
+	g, err := Compile(m)
+	if err != nil {
+		t.Fatal(err)
+	}
+	inc, err := NewIncremental(context.Background(), g, "x", prev, randomTensor(3, 1, 1, h, 2))
+	if err != nil {
+		t.Fatal(err)
+	}
+	oh := inc.plan.shapes[g.index[prev]][2]
+	o := oh / 2
+	first, count, last := -1, 0, -1
+	for p := 0; p < h; p++ {
+		gm := inc.plan.propagate([]Rect{{0, p, 1, p + 1}})[g.index[prev]]
+		if gm.full {
+			t.Fatalf("pixel %d: whole map changed", p)
+		}
+		if c := gm.chg[0]; c.Y0 <= o && o < c.Y1 {
+			if first < 0 {
+				first = p
+			}
+			if last >= 0 && p != last+1 {
+				t.Errorf("receptive field of output %d is not contiguous at %d", o, p)
+			}
+			last = p
+			count++
+		}
+	}
+	t.Logf("r = %d, j = %d; output %d of %d reads input rows [%d, %d]", r, j, o, oh, first, last)
+	if int64(count) != r {
+		t.Errorf("receptive field of output %d: %d input rows, recursion gives %d", o, count, r)
+	}
+}
+
+// TestIncrementalMultiplyAdds reports the multiply-adds of incremental
+// occlusion against full passes; with HEEDMAP_RESNET18 (and optionally
+// HEEDMAP_MOBILENETV2, HEEDMAP_EFFICIENTNETB0) pointing at full-size
+// exports it uses 224² inputs, patch 16, stride 8 (729 windows).
+func TestIncrementalMultiplyAdds(t *testing.T) {
+	type net struct{ name, path string }
+	nets := []net{}
+	for _, n := range []string{"resnet18", "mobilenet_v2", "efficientnet_b0", "densenet121"} {
+		nets = append(nets, net{n + " (compact, 64², patch 5, stride 2)", filepath.Join("..", "testdata", "nets", n, "model.onnx")})
+	}
+	for _, e := range [][2]string{{"HEEDMAP_RESNET18", "resnet18"}, {"HEEDMAP_MOBILENETV2", "mobilenet_v2"}, {"HEEDMAP_EFFICIENTNETB0", "efficientnet_b0"}} {
+		if p := os.Getenv(e[0]); p != "" {
+			nets = append(nets, net{e[1] + " (full size, 224², patch 16, stride 8)", p})
+		}
+	}
+	for _, n := range nets {
+		g, err := Load(n.path)
+		if err != nil {
+			t.Fatal(err)
+		}
+		in := g.Inputs()[0]
+		size := 64
+		patch, stride := 5, 2
+		if d := in.Shape[2].Value; d > 0 {
+			size = int(d)
+		}
+		if size == 224 {
+			patch, stride = 16, 8
+		}
+		inc, err := NewIncremental(context.Background(), g, in.Name, g.Outputs()[0].Name, randomTensor(4, 1, 3, size, size))
+		if err != nil {
+			t.Fatal(err)
+		}
+		rects := occlusionRects(size, size, patch, stride)
+		i1, full := inc.MultiplyAdds(rects, 1)
+		i16, _ := inc.MultiplyAdds(rects, 16)
+		t.Logf("%s: %d windows; full %.3g MAC; incremental %.3g MAC (%.2f× fewer) one window at a time, %.3g (%.2f× fewer) in batches of 16",
+			n.name, len(rects), float64(full), float64(i1), float64(full)/float64(i1), float64(i16), float64(full)/float64(i16))
+		if i1 > full || i1 > i16 {
+			t.Errorf("%s: incremental plan costs more than it should: %d (batch 1), %d (batch 16), full %d", n.name, i1, i16, full)
+		}
+	}
+}
