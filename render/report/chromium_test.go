@@ -21,7 +21,7 @@ func chromium(t *testing.T, extra ...string) (stdout, stderr string) {
 	t.Helper()
 	ctx, cancel := context.WithTimeout(context.Background(), 120*time.Second)
 	defer cancel()
-	args := []string{"--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
+	args := []string{"--headless", "--no-sandbox", "--disable-gpu", "--disable-dev-shm-usage", "--disable-quic", "--no-first-run",
 		"--disable-background-networking", "--disable-component-update", "--disable-sync",
 		"--user-data-dir=" + t.TempDir(), "--enable-logging=stderr", "--v=0"}
 	cmd := exec.CommandContext(ctx, chromiumPath, append(args, extra...)...)
@@ -75,8 +75,13 @@ func TestHTMLInChromium(t *testing.T) {
 	if got := strings.Count(dom, "<svg"); got != 3 {
 		t.Errorf("%d inline plots, want 3", got)
 	}
-	if strings.Contains(dom, "<script>alert") {
+	if strings.Contains(dom, "<script>alert") || strings.Count(dom, "<script") != 1 {
 		t.Error("hostile string became markup")
+	}
+	// The hostile id is on the page as text (the browser's DOM keeps it
+	// escaped in serialisation).
+	if !strings.Contains(dom, "&lt;script&gt;alert(1)&lt;/script&gt;") {
+		t.Error("the hostile image id is not shown as text")
 	}
 
 	// Negative control: with one panel deleted the page must notice.

@@ -25,7 +25,7 @@ type Column struct {
 //	image_id, image_file, true_class, pred_class, correctness, score,
 //	method, sign, inside_mass, rank_accuracy, pointing_hit,
 //	pointing_tolerance_px, peak_x, peak_y, peak_ties, band_mass, far_mass,
-//	band_width_px, lesion_px, hot_regions, hot_top_mass, hot_top_area_px,
+//	band_width_px, lesion_px, lesion_unseen_fraction, hot_regions, hot_top_mass, hot_top_area_px,
 //	hot_top_bbox, flagged, flag_reasons, undefined_reason,
 //	then artefact_<category>_mass for every category in the dataset,
 //	sorted by name.
@@ -49,6 +49,7 @@ var columns = []Column{
 	{"far_mass", "fraction 0–1", "relevance mass beyond the band; inside + band + far = 1"},
 	{"band_width_px", "model-input pixels", "band width: fraction (default 0.25) of the lesion's equivalent diameter 2·sqrt(area/π)"},
 	{"lesion_px", "model-input pixels", "lesion area seen by the model"},
+	{"lesion_unseen_fraction", "fraction 0–1", "share of the source mask's lesion pixels the model never saw (cropped away by the resize); empty when not measured"},
 	{"hot_regions", "count", "off-lesion hot regions: 8-connected components of the top q % (default 5 %) of relevance beyond the band"},
 	{"hot_top_mass", "fraction 0–1", "relevance mass of the largest-mass hot region"},
 	{"hot_top_area_px", "model-input pixels", "area of the largest-mass hot region"},
@@ -125,7 +126,7 @@ func WriteCSV(w io.Writer, r *Report) error {
 			row := []string{im.ID, im.File, im.TrueClass, im.PredClass, im.Correctness(), num(im.Score),
 				res.Method, string(sign), cell(res.InsideMass), cell(res.RankAccuracy), cell(res.PointingHit),
 				num(res.TolerancePx), strconv.Itoa(res.PeakX), strconv.Itoa(res.PeakY), strconv.Itoa(res.PeakTies),
-				cell(res.BandMass), cell(res.FarMass), num(res.BandWidthPx), strconv.Itoa(res.LesionPixels)}
+				cell(res.BandMass), cell(res.FarMass), num(res.BandWidthPx), strconv.Itoa(res.LesionPixels), cell(res.LesionUnseen)}
 			if res.HotThreshold.OK {
 				row = append(row, strconv.Itoa(len(res.HotRegions)))
 				if len(res.HotRegions) > 0 {

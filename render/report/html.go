@@ -34,6 +34,12 @@ var page = template.Must(template.New("report").Funcs(template.FuncMap{
 		}
 		return fmt.Sprintf("%.6g", v.V)
 	},
+	"pci": func(iv measure.Interval) string { // a proportion's interval in percent
+		if !iv.Lo.OK || !iv.Hi.OK {
+			return "—"
+		}
+		return fmt.Sprintf("%.1f – %.1f\u00a0%%", 100*iv.Lo.V, 100*iv.Hi.V)
+	},
 	"join": strings.Join,
 }).Parse(pageSource))
 
@@ -74,28 +80,32 @@ type tableRow struct {
 	Pointing                          measure.Value   // primary
 	WorstArt                          string
 	WorstArtMass                      measure.Value
+	Unseen                            measure.Value // primary method's lesion_unseen_fraction
 	Flagged                           bool
 	Link                              string
 }
 
 type pageData struct {
 	*Report
-	Primary     string
-	Methods     []string
-	Passed      int
-	Failed      int
-	Plots       []svgPlot
-	Gallery     []galleryItem
-	Rows        []tableRow
-	Columns     []Column
-	Statistics  []measure.StatisticDoc
-	Breakdowns  []measure.Breakdown
-	FlaggedN    int
-	TolNote     string
-	BandNote    string
-	HotNote     string
-	MaxGallery  int
-	GalleryMore int
+	Primary    string
+	Methods    []string
+	Passed     int
+	Failed     int
+	Plots      []svgPlot
+	Gallery    []galleryItem
+	Rows       []tableRow
+	Columns    []Column
+	Statistics []measure.StatisticDoc
+	Breakdowns []measure.Breakdown
+	// BreakdownGroups are the breakdowns by dimension, in the order true
+	// class, predicted class, correctness, artefact.
+	BreakdownGroups []breakdownGroup
+	FlaggedN        int
+	TolNote         string
+	BandNote        string
+	HotNote         string
+	MaxGallery      int
+	GalleryMore     int
 }
 
 // maxGallery bounds the gallery so a large dataset still gives a page a
@@ -121,6 +131,7 @@ func WriteHTML(w io.Writer, r *Report) error {
 	if r.Summary != nil {
 		d.Primary = r.Summary.Primary
 		d.Breakdowns = r.Summary.Breakdowns
+		d.BreakdownGroups = groupBreakdowns(r.Summary.Breakdowns)
 		d.FlaggedN = len(r.Summary.Flagged)
 		opt = r.Summary.Options
 	}
@@ -143,9 +154,11 @@ func WriteHTML(w io.Writer, r *Report) error {
 			}
 		}
 		row.Pointing = measure.Undef("not run")
+		row.Unseen = measure.Undef("not run")
 		row.WorstArtMass = measure.Undef("no artefact mask")
 		if res, ok := im.Result(d.Primary); ok {
 			row.Pointing = res.PointingHit
+			row.Unseen = res.LesionUnseen
 			row.Flagged, _ = measure.IsFlagged(res, opt)
 			if name, m := worstArtefact(res); name != "" {
 				row.WorstArt, row.WorstArtMass = name, measure.Num(m)
@@ -198,6 +211,40 @@ func WriteHTML(w io.Writer, r *Report) error {
 		d.Gallery = d.Gallery[:maxGallery]
 	}
 	return page.Execute(w, d)
+}
+
+type breakdownGroup struct {
+	Label string
+	Rows  []measure.Breakdown
+}
+
+// groupBreakdowns splits the breakdowns by dimension so that each gets its
+// own table, in a fixed order with unknown dimensions last.
+func groupBreakdowns(bs []measure.Breakdown) []breakdownGroup {
+	labels := map[string]string{"true_class": "true class", "pred_class": "predicted class", "correctness": "correctness", "artefact": "artefact category"}
+	order := []string{"true_class", "pred_class", "correctness", "artefact"}
+	var out []breakdownGroup
+	idx := map[string]int{}
+	for _, by := range order {
+		idx[by] = len(out)
+		out = append(out, breakdownGroup{Label: labels[by]})
+	}
+	for _, b := range bs {
+		i, ok := idx[b.By]
+		if !ok {
+			idx[b.By] = len(out)
+			i = len(out)
+			out = append(out, breakdownGroup{Label: b.By})
+		}
+		out[i].Rows = append(out[i].Rows, b)
+	}
+	kept := out[:0]
+	for _, g := range out {
+		if len(g.Rows) > 0 {
+			kept = append(kept, g)
+		}
+	}
+	return kept
 }
 
 // picture is the image shown for a record: its panel, else the primary

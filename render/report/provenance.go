@@ -9,6 +9,7 @@ import (
 	"os"
 	"runtime"
 	"runtime/debug"
+	"sort"
 	"strings"
 	"time"
 
@@ -25,7 +26,9 @@ import (
 //	cpu, cpus         CPU model from /proc/cpuinfo ("" when absent) and count
 //	start, end        wall-clock times of the run (RFC 3339)
 //	model             path, SHA-256 and size of the ONNX model
-//	images, masks     path, SHA-256 and size of every input file
+//	images, masks     path, SHA-256 and size of every input file; a mask
+//	                  entry's role says "lesion" or "artefact:<category>"
+//	                  (fill both with Report.HashInputs)
 //	config            the resolved configuration as the tool used it, and
 //	                  config_sha256, the SHA-256 of its canonical bytes
 //	seeds             every random seed by purpose (e.g. "smoothgrad",
@@ -56,6 +59,7 @@ type Provenance struct {
 // FileDigest identifies one input file.
 type FileDigest struct {
 	Path   string `json:"path"`
+	Role   string `json:"role,omitempty"` // masks: "lesion" or "artefact:<category>"
 	SHA256 string `json:"sha256"`
 	Bytes  int64  `json:"bytes"`
 }
@@ -125,6 +129,50 @@ func HashFile(path string) (FileDigest, error) {
 func HashBytes(b []byte) string {
 	s := sha256.Sum256(b)
 	return hex.EncodeToString(s[:])
+}
+
+// HashInputs fills Provenance.Images and Provenance.Masks with the SHA-256
+// of every image, lesion mask and artefact mask named in the records, in
+// record order, each file once. Call it while the inputs are where the run
+// read them; a file that cannot be read is an error naming it, since a
+// report that cannot say which bytes it measured cannot stand in a safety
+// case.
+func (r *Report) HashInputs() error {
+	seen := map[string]bool{}
+	var imgs, masks []FileDigest
+	add := func(list *[]FileDigest, path, role string) error {
+		if path == "" || seen[role+"\x00"+path] {
+			return nil
+		}
+		seen[role+"\x00"+path] = true
+		d, err := HashFile(path)
+		if err != nil {
+			return err
+		}
+		d.Role = role
+		*list = append(*list, d)
+		return nil
+	}
+	for _, im := range r.Images {
+		if err := add(&imgs, im.File, ""); err != nil {
+			return err
+		}
+		if err := add(&masks, im.MaskFile, "lesion"); err != nil {
+			return err
+		}
+		cats := make([]string, 0, len(im.ArtefactFiles))
+		for k := range im.ArtefactFiles {
+			cats = append(cats, k)
+		}
+		sort.Strings(cats)
+		for _, k := range cats {
+			if err := add(&masks, im.ArtefactFiles[k], "artefact:"+k); err != nil {
+				return err
+			}
+		}
+	}
+	r.Provenance.Images, r.Provenance.Masks = imgs, masks
+	return nil
 }
 
 // HashFiles hashes each path in order; the first failure is returned with

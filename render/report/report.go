@@ -55,10 +55,12 @@ type Report struct {
 // example "overlays/img001_occlusion.png", "panels/img001.png").
 type ImageRecord struct {
 	measure.Image
-	File     string            `json:"file"`
-	MaskFile string            `json:"mask_file,omitempty"`
-	Overlays map[string]string `json:"overlays,omitempty"` // method → relative PNG path
-	Panel    string            `json:"panel,omitempty"`
+	File     string `json:"file"`
+	MaskFile string `json:"mask_file,omitempty"`
+	// ArtefactFiles maps an artefact category to its mask file.
+	ArtefactFiles map[string]string `json:"artefact_files,omitempty"`
+	Overlays      map[string]string `json:"overlays,omitempty"` // method → relative PNG path
+	Panel         string            `json:"panel,omitempty"`
 }
 
 // Failure is an image that could not be measured.

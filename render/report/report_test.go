@@ -6,6 +6,7 @@ import (
 	"encoding/csv"
 	"encoding/json"
 	"errors"
+	"html"
 	"image"
 	"image/color"
 	"image/png"
@@ -21,7 +22,14 @@ import (
 	"heedmap/explain/measure"
 )
 
-const hostile = `<script>alert("x")</script>&"'`
+// User-supplied strings an attacker or a careless export could put in a
+// manifest: an image id that is markup, a class label with quotes and
+// ampersands, and an artefact category with markup and quotes.
+const (
+	hostile         = `<script>alert(1)</script>`
+	hostileLabel    = `naevus "atypical" & co's <b>bold</b>`
+	hostileArtefact = `pen "ink" & <i>dye</i>`
+)
 
 // syntheticReport builds a small report from invented data: 64×64 maps
 // with a round lesion, a Gaussian blob of relevance placed on or off it,
@@ -46,6 +54,9 @@ func syntheticReport(t testing.TB, dir string) *Report {
 			ink[p] = i%4 == 1 && p%n < 6
 		}
 		masks := measure.Masks{W: n, H: n, Lesion: lesion, Artefacts: map[string][]bool{"ruler": ruler, "ink": ink}}
+		if i%5 == 2 {
+			masks.Artefacts[hostileArtefact] = ruler
+		}
 		if i == 13 {
 			masks.Lesion = make([]bool, n*n) // an empty mask: undefined inside mass
 		}
@@ -57,8 +68,12 @@ func syntheticReport(t testing.TB, dir string) *Report {
 		if i == 5 {
 			id = hostile
 		}
+		classes := []string{"melanoma", "naevus"}
+		if i == 7 || i == 8 {
+			classes[1] = hostileLabel
+		}
 		rec := ImageRecord{
-			Image: measure.Image{ID: id, TrueClass: []string{"melanoma", "naevus"}[i%2], PredClass: []string{"melanoma", "naevus"}[(i/3)%2], Score: 0.5 + 0.035*float64(i)},
+			Image: measure.Image{ID: id, TrueClass: classes[i%2], PredClass: classes[(i/3)%2], Score: 0.5 + 0.035*float64(i)},
 			File:  "images/" + id + ".png",
 			Panel: "panels/" + id + ".png",
 		}
@@ -105,6 +120,7 @@ func syntheticReport(t testing.TB, dir string) *Report {
 	if err != nil {
 		t.Fatal(err)
 	}
+	vs[1].ID = hostileLabel
 	prov := NewProvenance(time.Date(2026, 1, 2, 3, 4, 5, 0, time.UTC))
 	prov.End = prov.Start.Add(95 * time.Second)
 	prov.Model = FileDigest{Path: "models/synthetic.onnx", SHA256: HashBytes([]byte("model")), Bytes: 5}
@@ -112,7 +128,7 @@ func syntheticReport(t testing.TB, dir string) *Report {
 	prov.Measure = measure.DefaultParams()
 	prov.ConfigSHA256 = HashBytes([]byte("{}"))
 	return &Report{
-		Title: "Synthetic rendering check", Provenance: prov, Images: recs, Summary: sum,
+		Title: "Synthetic rendering check " + hostileLabel, Provenance: prov, Images: recs, Summary: sum,
 		Failures:     []Failure{{File: "images/broken " + hostile + ".png", Stage: "decode", Reason: "unexpected EOF"}},
 		CriteriaFile: "accept.yaml", Verdicts: vs,
 	}
@@ -160,7 +176,8 @@ func TestCSV(t *testing.T) {
 			t.Errorf("column %d: header %q, doc %+v", i, head[i], c)
 		}
 	}
-	if got := strings.Join(head[len(docs)-1:], ","); got != "artefact_ink_mass,artefact_ruler_mass" {
+	// Category names are sorted and survive CSV quoting exactly.
+	if got := strings.Join(head[len(docs)-1:], "|"); got != "artefact_ink_mass|artefact_"+hostileArtefact+"_mass|artefact_ruler_mass" {
 		t.Errorf("artefact columns %q", got)
 	}
 	col := map[string]int{}
@@ -228,8 +245,26 @@ func TestHTMLEscapes(t *testing.T) {
 	if strings.Contains(s, `<script>alert`) {
 		t.Error("user-supplied string reached the page unescaped")
 	}
-	if !strings.Contains(s, "&lt;script&gt;alert") {
+	if !strings.Contains(s, "&lt;script&gt;alert(1)&lt;/script&gt;") {
 		t.Error("escaped form of the hostile ID missing")
+	}
+	// The page's own script is the only one, and no user string opened an
+	// element or an attribute.
+	if n := strings.Count(s, "<script"); n != 1 {
+		t.Errorf("%d script elements, want 1 (the sorting script)", n)
+	}
+	for _, raw := range []string{hostileLabel, hostileArtefact, "<b>bold", "<i>dye", `"atypical"`, `"ink"`, "& co", "javascript:"} {
+		if strings.Contains(s, raw) {
+			t.Errorf("raw %q reached the page", raw)
+		}
+	}
+	// ...yet every string is shown, escaped: in text, attributes, table
+	// cells, plot labels and the title.
+	plain := html.UnescapeString(s)
+	for _, shown := range []string{hostile, hostileLabel, hostileArtefact} {
+		if strings.Count(plain, shown) < 2 {
+			t.Errorf("%q is not shown on the page", shown)
+		}
 	}
 	for _, want := range []string{Caution, `id="image-table"`, "<svg", "Acceptance verdicts", "Arras", "Wilson", "Zhang"} {
 		if !strings.Contains(s, want) {
@@ -307,5 +342,41 @@ func TestProvenance(t *testing.T) {
 	}
 	if _, err := HashFile(f + "-missing"); err == nil {
 		t.Error("missing file hashed")
+	}
+}
+
+// HashInputs records every image, lesion mask and artefact mask once, with
+// its role, and refuses a file it cannot read. SHA-256("abc") is the FIPS
+// 180-2 Appendix B.1 value; SHA-256 of the empty string is FIPS 180-4's
+// well-known e3b0c442... (common practice).
+func TestHashInputs(t *testing.T) {
+	dir := t.TempDir()
+	write := func(name, body string) string {
+		p := filepath.Join(dir, name)
+		if err := os.WriteFile(p, []byte(body), 0o644); err != nil {
+			t.Fatal(err)
+		}
+		return p
+	}
+	a, e, m, ru := write("a.png", "abc"), write("e.png", ""), write("m.png", "abc"), write("r.png", "abc")
+	r := &Report{Images: []ImageRecord{
+		{File: a, MaskFile: m, ArtefactFiles: map[string]string{"ruler": ru}},
+		{File: e, MaskFile: m, ArtefactFiles: map[string]string{"ruler": ru, "ink": ""}},
+	}}
+	if err := r.HashInputs(); err != nil {
+		t.Fatal(err)
+	}
+	const abc = "ba7816bf8f01cfea414140de5dae2223b00361a396177a9cb410ff61f20015ad"
+	const empty = "e3b0c44298fc1c149afbf4c8996fb92427ae41e4649b934ca495991b7852b855"
+	p := r.Provenance
+	if len(p.Images) != 2 || p.Images[0].SHA256 != abc || p.Images[1].SHA256 != empty || p.Images[1].Bytes != 0 {
+		t.Errorf("images %+v", p.Images)
+	}
+	if len(p.Masks) != 2 || p.Masks[0].Role != "lesion" || p.Masks[1].Role != "artefact:ruler" || p.Masks[1].SHA256 != abc {
+		t.Errorf("masks %+v", p.Masks)
+	}
+	r.Images[1].MaskFile = filepath.Join(dir, "gone.png")
+	if err := r.HashInputs(); err == nil || !strings.Contains(err.Error(), "gone.png") {
+		t.Errorf("missing mask: %v", err)
 	}
 }
