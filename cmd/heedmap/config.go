@@ -8,6 +8,7 @@ import (
 	"fmt"
 	"io"
 	"os"
+	"path/filepath"
 	"sort"
 	"strconv"
 	"strings"
@@ -48,8 +49,18 @@ type Config struct {
 	Baseline string `yaml:"baseline"`
 	Steps    int    `yaml:"steps"`
 	Samples  int    `yaml:"samples"`
-	Layer    string `yaml:"layer,omitempty"`
-	Seed     uint64 `yaml:"seed"`
+	// RiseMasks overrides Samples for RISE, whose useful mask count is two
+	// orders of magnitude above SmoothGrad's sample count.
+	RiseMasks int    `yaml:"rise-masks,omitempty"`
+	Layer     string `yaml:"layer,omitempty"`
+	Seed      uint64 `yaml:"seed"`
+
+	// Report: title, the dataset summary's primary method and flag rule. They do
+	// not change per-image results and stay out of the record key.
+	Title        string  `yaml:"title,omitempty"`
+	Primary      string  `yaml:"primary,omitempty"`
+	FlagInside   float64 `yaml:"flag-inside"`
+	FlagArtefact string  `yaml:"flag-artefact"`
 
 	// Execution; these do not change results and stay out of the record key.
 	Workers int    `yaml:"workers"`
@@ -71,6 +82,9 @@ func defaultConfig() Config {
 		Fill:     "mean",
 		Baseline: "black",
 		Seed:     1,
+		// The summary's default flag rule (measure.DefaultSummaryOptions).
+		FlagInside:   0.5,
+		FlagArtefact: "0.2",
 	}
 }
 
@@ -154,7 +168,7 @@ func runOptions() []option {
 	addBool := func(group, name, usage string, set func(*Config, string) error, get func(*Config) string) {
 		opts = append(opts, option{name: name, usage: usage, group: group, set: set, get: get, boolean: true})
 	}
-	const io, pre, met, exe = "Input and output", "Preprocessing", "Methods", "Execution"
+	const io, pre, met, rep, exe = "Input and output", "Preprocessing", "Methods", "Report", "Execution"
 	s, g := str(func(c *Config) *string { return &c.Model })
 	add(io, "model", "M.onnx", "ONNX image classifier (required)", s, g)
 	s, g = str(func(c *Config) *string { return &c.Images })
@@ -256,6 +270,8 @@ func runOptions() []option {
 	add(met, "steps", "N", "integrated-gradients steps; 0 = the method's default (64)", s, g)
 	s, g = num(func(c *Config) *int { return &c.Samples }, 0)
 	add(met, "samples", "N", "SmoothGrad noise samples and RISE masks; 0 = the methods' defaults (25 and 2000)", s, g)
+	s, g = num(func(c *Config) *int { return &c.RiseMasks }, 0)
+	add(met, "rise-masks", "N", "RISE masks; 0 = --samples if set, else the method's default (2000)", s, g)
 	s, g = str(func(c *Config) *string { return &c.Layer })
 	add(met, "layer", "NAME", "Grad-CAM layer (tensor name); empty = last 4-D activation before global pooling", s, g)
 	add(met, "seed", "N", "seed for SmoothGrad noise and RISE masks", func(c *Config, v string) error {
@@ -264,6 +280,33 @@ func runOptions() []option {
 		return err
 	}, func(c *Config) string { return strconv.FormatUint(c.Seed, 10) })
 
+	s, g = str(func(c *Config) *string { return &c.Title })
+	add(rep, "title", "TEXT", "report title; empty = \"heedmap: \" and the model's file name", s, g)
+	add(rep, "primary", "METHOD", "method whose maps decide the flagged list and the gallery order; empty = the first of --methods", func(c *Config, v string) error {
+		if v != "" {
+			if err := oneOf(v, methodNames...); err != nil {
+				return err
+			}
+		}
+		c.Primary = v
+		return nil
+	}, func(c *Config) string { return c.Primary })
+	add(rep, "flag-inside", "X", "flag an image whose inside-lesion mass (primary method) is below X", func(c *Config, v string) error {
+		f, err := strconv.ParseFloat(strings.TrimSpace(v), 64)
+		if err != nil || f < 0 || f > 1 {
+			return fmt.Errorf("want a fraction between 0 and 1, got %q", v)
+		}
+		c.FlagInside = f
+		return nil
+	}, func(c *Config) string { return strconv.FormatFloat(c.FlagInside, 'g', -1, 64) })
+	add(rep, "flag-artefact", "LIST", "flag an image with more than this fraction of its evidence on one artefact category: X for every category, NAME=X for one, e.g. 0.2,ruler=0.06", func(c *Config, v string) error {
+		if _, _, err := parseArtefactRule(v); err != nil {
+			return err
+		}
+		c.FlagArtefact = v
+		return nil
+	}, func(c *Config) string { return c.FlagArtefact })
+
 	s, g = num(func(c *Config) *int { return &c.Workers }, 0)
 	add(exe, "workers", "N", "images processed at once; 0 = one per CPU core", s, g)
 	s, g = str(func(c *Config) *string { return &c.Shard })
@@ -271,6 +314,44 @@ func runOptions() []option {
 	s, g = flg(func(c *Config) *bool { return &c.Strict })
 	addBool(exe, "strict", "exit 1 if any image is invalid or fails", s, g)
 	return opts
+}
+
+// reportTitle is the report's title.
+func (c Config) reportTitle() string {
+	if c.Title != "" {
+		return c.Title
+	}
+	return "heedmap: " + filepath.Base(c.Model)
+}
+
+// parseArtefactRule reads --flag-artefact: comma-separated entries, a bare
+// fraction for every category and NAME=fraction for one; def is -1 when no
+// bare fraction was given.
+func parseArtefactRule(v string) (def float64, per map[string]float64, err error) {
+	def = -1
+	for _, part := range strings.Split(v, ",") {
+		part = strings.TrimSpace(part)
+		if part == "" {
+			continue
+		}
+		name, num, named := strings.Cut(part, "=")
+		if !named {
+			num = name
+		}
+		f, err := strconv.ParseFloat(strings.TrimSpace(num), 64)
+		if err != nil || f < 0 || f > 1 {
+			return 0, nil, fmt.Errorf("want X or NAME=X with X between 0 and 1, got %q", part)
+		}
+		if !named {
+			def = f
+			continue
+		}
+		if per == nil {
+			per = map[string]float64{}
+		}
+		per[strings.TrimSpace(name)] = f
+	}
+	return def, per, nil
 }
 
 // recorder is a flag.Value that remembers what was given, so flags can be
@@ -355,6 +436,7 @@ func fingerprint(c Config, model []byte) string {
 	k := c
 	k.Model, k.Images, k.Masks, k.MaskSuffix, k.Out, k.Criteria = "", "", "", "", "", ""
 	k.Workers, k.Shard, k.Strict = 0, "", false
+	k.Title, k.Primary, k.FlagInside, k.FlagArtefact = "", "", 0, ""
 	h := sha256.New()
 	ms := sha256.Sum256(model)
 	fmt.Fprintf(h, "model %x\n", ms)

@@ -247,18 +247,20 @@ func TestShardsThroughEnvAndMerge(t *testing.T) {
 }
 
 func TestDemoModelMatchesTestdata(t *testing.T) {
-	td, err := os.ReadFile("../../testdata/demo/shortcut.onnx")
-	if err != nil {
-		t.Skip("testdata/demo/shortcut.onnx not present")
-	}
-	if !bytes.Equal(td, demoModel) {
-		t.Fatal("cmd/heedmap/demo_shortcut.onnx differs from testdata/demo/shortcut.onnx; rerun testdata/demo/train_demo.py")
+	for _, m := range demoModels() {
+		td, err := os.ReadFile("../../testdata/demo/" + m.name + ".onnx")
+		if err != nil {
+			t.Skipf("testdata/demo/%s.onnx not present", m.name)
+		}
+		if len(m.onnx) == 0 || !bytes.Equal(td, m.onnx) {
+			t.Errorf("cmd/heedmap/demo_%s.onnx differs from testdata/demo/%s.onnx; copy it again (testdata/demo/train_demo.py)", m.name, m.name)
+		}
 	}
 }
 
 func TestInspectDemoModel(t *testing.T) {
 	p := filepath.Join(t.TempDir(), "m.onnx")
-	os.WriteFile(p, demoModel, 0o644)
+	os.WriteFile(p, demoShortcut, 0o644)
 	code, out, errText := runCLI(t, "inspect", p)
 	if code != 0 {
 		t.Fatalf("exit %d\n%s%s", code, out, errText)
@@ -279,11 +281,13 @@ func TestDemoWithTestWorker(t *testing.T) {
 	if code != 0 {
 		t.Fatalf("exit %d\n%s", code, errText)
 	}
-	rows, _ := os.ReadFile(filepath.Join(out, "metrics.csv"))
-	if n := strings.Count(string(rows), ",ok,"); n != 5 {
-		t.Errorf("%d ok rows, want 5:\n%s", n, rows)
+	for _, m := range []string{"shortcut", "clean"} {
+		rows, _ := os.ReadFile(filepath.Join(out, m, "metrics.csv"))
+		if n := strings.Count(string(rows), ",ok,"); n != 5 {
+			t.Errorf("%s: %d ok rows, want 5:\n%s", m, n, rows)
+		}
 	}
-	for _, f := range []string{"data/manifest.csv", "data/shortcut.onnx", "data/labels.txt", "config.yaml"} {
+	for _, f := range []string{"data/manifest.csv", "data/shortcut.onnx", "data/clean.onnx", "data/labels.txt", "criteria.yaml", "shortcut/config.yaml", "clean/config.yaml"} {
 		if _, err := os.Stat(filepath.Join(out, f)); err != nil {
 			t.Error(err)
 		}
@@ -300,7 +304,7 @@ func TestRunRealPipelineOnDemoModel(t *testing.T) {
 	}
 	model := filepath.Join(dir, "m.onnx")
 	labels := filepath.Join(dir, "labels.txt")
-	os.WriteFile(model, demoModel, 0o644)
+	os.WriteFile(model, demoShortcut, 0o644)
 	os.WriteFile(labels, []byte(demoLabels), 0o644)
 	out := filepath.Join(dir, "out")
 	args := []string{"run", "--model", model, "--images", filepath.Join(data, "manifest.csv"), "--out", out, "--labels", labels,
@@ -382,7 +386,7 @@ func BenchmarkDemoImage(b *testing.B) {
 		b.Fatal(err)
 	}
 	model := filepath.Join(dir, "m.onnx")
-	os.WriteFile(model, demoModel, 0o644)
+	os.WriteFile(model, demoShortcut, 0o644)
 	cfg := defaultConfig()
 	cfg.Model, cfg.Out = model, dir
 	cfg.Size, cfg.Mean, cfg.Std = 64, []float64{0.5, 0.5, 0.5}, []float64{0.25, 0.25, 0.25}
@@ -413,7 +417,7 @@ func TestKill9RealPipeline(t *testing.T) {
 		t.Fatal(err)
 	}
 	model := filepath.Join(dir, "m.onnx")
-	os.WriteFile(model, demoModel, 0o644)
+	os.WriteFile(model, demoShortcut, 0o644)
 	args := func(out string) []string {
 		return []string{"run", "--model", model, "--images", filepath.Join(data, "manifest.csv"), "--out", out,
 			"--config", "../../testdata/demo/demo.yaml", "--methods", "occlusion,integrated-gradients,grad-cam", "--workers", "2"}

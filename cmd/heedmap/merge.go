@@ -67,7 +67,7 @@ Exit codes:
 			fmt.Fprintf(stderr, "heedmap merge: %v\n", err)
 			return exitUsage
 		}
-		pass, err := writeReport(ctx, cfg, *out, time.Now())
+		_, pass, err := writeReport(ctx, cfg, *out, time.Now())
 		if err != nil {
 			fmt.Fprintf(stderr, "heedmap merge: report: %v\n", err)
 			return exitFailed

@@ -8,7 +8,6 @@ import (
 	"image/color"
 	"math"
 	"os"
-	"path/filepath"
 	"strconv"
 	"strings"
 	"time"
@@ -34,7 +33,7 @@ type pipeline struct {
 	// finish runs after a complete run (every planned image has a record):
 	// dataset summary, acceptance criteria, report. It reports whether every
 	// acceptance criterion passed.
-	finish func(ctx context.Context) (bool, error)
+	finish func(ctx context.Context) (*report.Report, bool, error)
 	table  string
 }
 
@@ -144,7 +143,11 @@ func newPipeline(cfg Config) (*pipeline, error) {
 			}
 			m = explain.GradCAM{Layer: layer}
 		case "rise":
-			m = explain.RISE{Masks: cfg.Samples, Seed: cfg.Seed}
+			n := cfg.Samples
+			if cfg.RiseMasks > 0 {
+				n = cfg.RiseMasks
+			}
+			m = explain.RISE{Masks: n, Seed: cfg.Seed}
 		default:
 			return nil, fmt.Errorf("unknown method %q", name)
 		}
@@ -154,7 +157,7 @@ func newPipeline(cfg Config) (*pipeline, error) {
 	return &pipeline{
 		worker: w,
 		table:  recordsTable,
-		finish: func(ctx context.Context) (bool, error) { return writeReport(ctx, cfg, cfg.Out, start) },
+		finish: func(ctx context.Context) (*report.Report, bool, error) { return writeReport(ctx, cfg, cfg.Out, start) },
 	}, nil
 }
 
@@ -283,7 +286,18 @@ func (w *attributionWorker) Process(ctx context.Context, it batch.Item, dst batc
 	d.Image = measure.Image{ID: it.ID, TrueClass: w.trueClass(it.Label), PredClass: w.className(pred)}
 	var views []render.MethodView
 	for _, m := range w.methods {
-		r, err := m.Attribute(ctx, w.net, in.Tensor, tg)
+		mt := tg
+		if m.Name() == "rise" && mt.Score == explain.Logit {
+			// RISE weights each mask by the class probability (Petsiuk,
+			// Das & Saenko, BMVC 2018). A logit can be negative for every
+			// mask, which makes the whole map negative and leaves no
+			// relevance to measure, so RISE always explains a probability.
+			mt.Score = explain.Softmax
+			if len(row) == 1 {
+				mt.Score = explain.Sigmoid
+			}
+		}
+		r, err := m.Attribute(ctx, w.net, in.Tensor, mt)
 		if err != nil {
 			return batch.Result{}, fmt.Errorf("%s: %s: %w", it.Image, m.Name(), err)
 		}
@@ -318,7 +332,7 @@ func (w *attributionWorker) Process(ctx context.Context, it batch.Item, dst batc
 		attr := render.Attribution{Values: values, Seen: seen, Signed: signed(r.Method), HotRegions: hotBoxes(pl, mr.HotRegions)}
 		met := renderMetrics(mr)
 		img, err := render.Overlay(render.Scene{Image: src.Image, Map: attr, Lesion: srcLesion, Artefacts: srcArts,
-			Caption: render.Caption{Method: r.Method, Target: res.Info["target"], ScoreKind: w.kind.String(), Score: r.Score, Metrics: met}})
+			Caption: render.Caption{Method: r.Method, Target: res.Info["target"], ScoreKind: r.Target.Score.String(), Score: r.Score, Metrics: met}})
 		if err != nil {
 			return batch.Result{}, fmt.Errorf("%s: %s: overlay: %w", it.Image, r.Method, err)
 		}
@@ -454,13 +468,42 @@ func renderMetrics(r measure.Result) render.Metrics {
 // writeReport builds report.json, report.html and metrics.csv (one row per
 // image × method) from the records of OUT's index. It returns whether every
 // acceptance criterion passed (true when there are none).
-func writeReport(ctx context.Context, cfg Config, out string, start time.Time) (bool, error) {
+func writeReport(ctx context.Context, cfg Config, out string, start time.Time) (*report.Report, bool, error) {
+	r, pass, err := buildReport(ctx, cfg, out, start)
+	if err != nil {
+		return nil, false, err
+	}
+	return r, pass, report.WriteAll(out, r)
+}
+
+// summaryOptions is the dataset summary's configuration: the default
+// bootstrap and intervals with the run's primary method and flag rule.
+func summaryOptions(cfg Config) (measure.SummaryOptions, error) {
+	o := measure.DefaultSummaryOptions()
+	o.Primary = cfg.Primary
+	o.InsideThreshold = cfg.FlagInside
+	def, per, err := parseArtefactRule(cfg.FlagArtefact)
+	if err != nil {
+		return o, fmt.Errorf("flag-artefact: %w", err)
+	}
+	if def >= 0 {
+		o.ArtefactThreshold = def
+	}
+	o.ArtefactThresholds = per
+	return o, nil
+}
+
+func buildReport(ctx context.Context, cfg Config, out string, start time.Time) (*report.Report, bool, error) {
 	idx, err := batch.ReadIndex(out)
 	if err != nil {
-		return false, err
+		return nil, false, err
+	}
+	opt, err := summaryOptions(cfg)
+	if err != nil {
+		return nil, false, err
 	}
 	var images []measure.Image
-	r := &report.Report{Title: "heedmap: " + filepath.Base(cfg.Model)}
+	r := &report.Report{Title: cfg.reportTitle()}
 	for _, rec := range batch.Records(out, idx) {
 		if rec.Status != batch.StatusOK {
 			r.Failures = append(r.Failures, report.Failure{File: rec.Image, Stage: "image", Reason: rec.Error})
@@ -476,20 +519,20 @@ func writeReport(ctx context.Context, cfg Config, out string, start time.Time) (
 	}
 	pass := true
 	if len(images) > 0 {
-		if r.Summary, err = measure.Summarize(ctx, images, measure.DefaultSummaryOptions()); err != nil {
-			return false, err
+		if r.Summary, err = measure.Summarize(ctx, images, opt); err != nil {
+			return nil, false, err
 		}
 		if cfg.Criteria != "" {
 			data, err := os.ReadFile(cfg.Criteria)
 			if err != nil {
-				return false, err
+				return nil, false, err
 			}
 			cs, err := measure.ParseCriteria(data, cfg.Criteria)
 			if err != nil {
-				return false, err
+				return nil, false, err
 			}
 			if r.Verdicts, err = measure.Evaluate(cs, r.Summary, cfg.Criteria); err != nil {
-				return false, err
+				return nil, false, err
 			}
 			r.CriteriaFile = cfg.Criteria
 			for _, v := range r.Verdicts {
@@ -501,17 +544,17 @@ func writeReport(ctx context.Context, cfg Config, out string, start time.Time) (
 	p.End = time.Now()
 	if cfg.Model != "" {
 		if p.Model, err = report.HashFile(cfg.Model); err != nil {
-			return false, err
+			return nil, false, err
 		}
 	}
 	p.Config = cfg
 	p.ConfigSHA256 = report.HashBytes(cfg.marshal())
 	p.Seeds["methods"] = cfg.Seed
-	p.Seeds["bootstrap"] = measure.DefaultSummaryOptions().Seed
+	p.Seeds["bootstrap"] = opt.Seed
 	p.Measure = measure.DefaultParams()
 	for _, m := range cfg.Methods {
-		p.Methods[m] = map[string]any{"patch": cfg.Patch, "stride": cfg.Stride, "fill": cfg.Fill, "baseline": cfg.Baseline, "steps": cfg.Steps, "samples": cfg.Samples, "layer": cfg.Layer, "seed": cfg.Seed}
+		p.Methods[m] = map[string]any{"patch": cfg.Patch, "stride": cfg.Stride, "fill": cfg.Fill, "baseline": cfg.Baseline, "steps": cfg.Steps, "samples": cfg.Samples, "rise-masks": cfg.RiseMasks, "layer": cfg.Layer, "seed": cfg.Seed}
 	}
 	r.Provenance = p
-	return pass, report.WriteAll(out, r)
+	return r, pass, nil
 }

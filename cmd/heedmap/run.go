@@ -15,6 +15,7 @@ import (
 	"time"
 
 	"heedmap/batch"
+	"heedmap/render/report"
 )
 
 const runHelpHead = `Usage: heedmap run --model M.onnx --images DIR|manifest.csv [--masks DIR] --out DIR [flags]
@@ -38,6 +39,25 @@ Examples:
   heedmap run --config run.yaml --out results/ --dry-run               # check inputs, show the plan
 `
 
+const runOutputHelp = `Output (in --out DIR):
+  report.html                        the report: verdicts, per-method summary with
+                                     95 % intervals, plots, worst-first gallery,
+                                     sortable table of every image, definitions
+  report.json                        the same, machine-readable (schema heedmap-report/1)
+  metrics.csv                        one row per image and method
+  overlays/<image-id>.<method>.png   the map over the image, lesion outline, artefacts
+  panels/<image-id>.png              1920x1080 slide: the image and every method
+  maps/<image-id>.<method>.npy       raw map on the model-input grid (--save-maps only)
+  images.csv                         one row per image: status, prediction, all measures
+  config.yaml                        the resolved configuration
+  records/ index.json summary.json   per-image records, used to resume and merge
+<image-id> is the image's id made safe as a file name: characters other
+than A-Z a-z 0-9 . _ - become _, and when anything changed, 8 hex digits of
+the id's SHA-256 are appended, so distinct ids keep distinct names and
+nothing is written outside DIR.
+
+`
+
 // runFlags are the flags of `run` that are not configuration.
 type runFlags struct {
 	config     string
@@ -50,7 +70,8 @@ func cmdRun(ctx context.Context, args []string, stdout, stderr io.Writer) int {
 	if done {
 		return code
 	}
-	return execute(ctx, cfg, rf, stdout, stderr)
+	code, _ = execute(ctx, cfg, rf, stdout, stderr)
+	return code
 }
 
 // parseRun resolves the configuration: defaults < YAML < flags.
@@ -67,6 +88,7 @@ func parseRun(args []string, stdout, stderr io.Writer) (Config, runFlags, int, b
 		fmt.Fprint(w, runHelpHead)
 		printOptions(w, opts, defaultConfig())
 		fmt.Fprintf(w, "\nOther:\n  %-28s %s\n  %-28s %s\n\n", "--config FILE", "YAML configuration; flags override it", "--dry-run", "validate everything, print the plan and problems, stop")
+		fmt.Fprint(w, runOutputHelp)
 		fmt.Fprint(w, "Sharding: with --shard I/N, or inside a Slurm job array, or a Kubernetes\nIndexed Job (set HEEDMAP_SHARD_COUNT), each process takes the images whose\nid hashes to its shard; write each shard to its own --out and combine them\nwith 'heedmap merge'.\n\n")
 		fmt.Fprint(w, exitCodesHelp)
 	}
@@ -129,11 +151,22 @@ func hashFile(path string) (string, error) {
 	return hex.EncodeToString(h.Sum(nil)), nil
 }
 
-func execute(ctx context.Context, cfg Config, rf runFlags, stdout, stderr io.Writer) int {
+// outcome is what a run left behind: the batch counts and, after a
+// complete run with the real pipeline, the report and whether every
+// acceptance criterion passed.
+type outcome struct {
+	Summary batch.Summary
+	Report  *report.Report
+	Pass    bool
+}
+
+// execute runs the batch described by cfg and returns the exit code.
+func execute(ctx context.Context, cfg Config, rf runFlags, stdout, stderr io.Writer) (int, outcome) {
+	var oc outcome
 	shard, source, err := batch.ResolveShard(cfg.Shard, os.Getenv)
 	if err != nil {
 		fmt.Fprintf(stderr, "heedmap run: %v\n", err)
-		return exitUsage
+		return exitUsage, oc
 	}
 	cfg.Shard = ""
 	if shard.Count > 1 {
@@ -143,7 +176,7 @@ func execute(ctx context.Context, cfg Config, rf runFlags, stdout, stderr io.Wri
 	if rf.testWorker == "" {
 		if modelSum, err = hashFile(cfg.Model); err != nil {
 			fmt.Fprintf(stderr, "heedmap run: model: %v\n", err)
-			return exitUsage
+			return exitUsage, oc
 		}
 	}
 	fp := fingerprint(cfg, []byte(modelSum))
@@ -153,13 +186,13 @@ func execute(ctx context.Context, cfg Config, rf runFlags, stdout, stderr io.Wri
 	}
 
 	var worker batch.Worker
-	var finish func(context.Context) (bool, error)
+	var finish func(context.Context) (*report.Report, bool, error)
 	table := ""
 	if rf.testWorker != "" {
 		d, err := time.ParseDuration(rf.testWorker)
 		if err != nil {
 			fmt.Fprintf(stderr, "heedmap run: --x-test-worker: %v\n", err)
-			return exitUsage
+			return exitUsage, oc
 		}
 		worker = testWorker{delay: d}
 	} else {
@@ -168,7 +201,7 @@ func execute(ctx context.Context, cfg Config, rf runFlags, stdout, stderr io.Wri
 		p, err := newPipeline(cfg)
 		if err != nil {
 			fmt.Fprintf(stderr, "heedmap run: %v\n", err)
-			return exitUsage
+			return exitUsage, oc
 		}
 		worker, finish, table = p.worker, p.finish, p.table
 	}
@@ -176,17 +209,17 @@ func execute(ctx context.Context, cfg Config, rf runFlags, stdout, stderr io.Wri
 	items, probs, err := batch.Discover(batch.Input{Images: cfg.Images, Masks: cfg.Masks, MaskSuffix: cfg.MaskSuffix})
 	if err != nil {
 		fmt.Fprintf(stderr, "heedmap run: %v\n", err)
-		return exitUsage
+		return exitUsage, oc
 	}
 	if len(items) == 0 {
 		fmt.Fprintf(stderr, "heedmap run: no images found in %s (PNG or JPEG)\n", cfg.Images)
 		batch.WriteProblems(stderr, probs, 20)
-		return exitUsage
+		return exitUsage, oc
 	}
 	plan, err := batch.Validate(ctx, items, probs, shard, fp, workers)
 	if err != nil {
 		fmt.Fprintf(stderr, "heedmap run: %v\n", err)
-		return exitInterrupted
+		return exitInterrupted, oc
 	}
 	batch.WriteProblems(stderr, plan.Problems, 20)
 	doneAlready := plan.Done(cfg.Out)
@@ -199,18 +232,18 @@ func execute(ctx context.Context, cfg Config, rf runFlags, stdout, stderr io.Wri
 	if rf.dryRun {
 		fmt.Fprintf(stdout, "dry run: nothing written. Resolved configuration:\n%s", cfg.marshal())
 		if cfg.Strict && len(plan.Invalid) > 0 {
-			return exitFailed
+			return exitFailed, oc
 		}
-		return exitOK
+		return exitOK, oc
 	}
 
 	if err := os.MkdirAll(cfg.Out, 0o755); err != nil {
 		fmt.Fprintf(stderr, "heedmap run: %v\n", err)
-		return exitUsage
+		return exitUsage, oc
 	}
 	if err := batch.WriteFileAtomic(filepath.Join(cfg.Out, "config.yaml"), cfg.marshal()); err != nil {
 		fmt.Fprintf(stderr, "heedmap run: %v\n", err)
-		return exitUsage
+		return exitUsage, oc
 	}
 	term := false
 	if f, ok := stderr.(*os.File); ok {
@@ -218,35 +251,37 @@ func execute(ctx context.Context, cfg Config, rf runFlags, stdout, stderr io.Wri
 	}
 	r := &batch.Runner{Out: cfg.Out, Worker: worker, Workers: workers, Progress: stderr, Terminal: term, Table: table}
 	sum, err := r.Run(ctx, plan)
+	oc.Summary = sum
 	fmt.Fprintf(stderr, "done: %d ok, %d failed (%d invalid), %d skipped as already done, %d pending; %s, %s\n",
 		sum.OK, sum.Failed, sum.Invalid, sum.Skipped, sum.Pending, sum.Elapsed, sum.Rate)
 	if err != nil {
 		if errors.Is(err, context.Canceled) || ctx.Err() != nil {
 			fmt.Fprintln(stderr, "interrupted: finished images are saved; run the same command again to resume")
-			return exitInterrupted
+			return exitInterrupted, oc
 		}
 		fmt.Fprintf(stderr, "heedmap run: %v\n", err)
-		return exitFailed
+		return exitFailed, oc
 	}
 	pass := true
 	if finish != nil && sum.Complete {
-		if pass, err = finish(ctx); err != nil {
+		if oc.Report, pass, err = finish(ctx); err != nil {
 			fmt.Fprintf(stderr, "heedmap run: report: %v\n", err)
-			return exitFailed
+			return exitFailed, oc
 		}
 		fmt.Fprintf(stdout, "report: %s\n", filepath.Join(cfg.Out, "report.html"))
 	}
-	fmt.Fprintf(stdout, "results in %s (metrics.csv, records/, items/)\n", cfg.Out)
+	oc.Pass = pass
+	fmt.Fprintf(stdout, "results in %s (see 'heedmap run --help', Output)\n", cfg.Out)
 	switch {
 	case sum.OK == 0:
-		return exitFailed
+		return exitFailed, oc
 	case cfg.Strict && sum.Failed > 0:
-		return exitFailed
+		return exitFailed, oc
 	case !pass:
 		fmt.Fprintln(stderr, "acceptance criteria: at least one FAILED (see report.html)")
-		return exitFailed
+		return exitFailed, oc
 	}
-	return exitOK
+	return exitOK, oc
 }
 
 func goInfo() string {
