@@ -1,0 +1,128 @@
+package occlusion
+
+import (
+	"fmt"
+	"math"
+	"os"
+	"path/filepath"
+	"testing"
+	"time"
+
+	"heedmap/engine"
+	"heedmap/explain"
+	"heedmap/explain/explaintest"
+	"heedmap/onnx"
+	"heedmap/tensor"
+)
+
+func loadNet(tb testing.TB, path string) (explain.Network, *tensor.Tensor) {
+	tb.Helper()
+	g, err := engine.Load(filepath.Join(path, "model.onnx"))
+	if err != nil {
+		tb.Fatal(err)
+	}
+	net, err := explain.FromGraph(g, explain.GraphOptions{})
+	if err != nil {
+		tb.Fatal(err)
+	}
+	xb, _, err := onnx.LoadTensor(filepath.Join(path, "input.pb"))
+	if err != nil {
+		tb.Fatal(err)
+	}
+	c, h, w := xb.Shape[1], xb.Shape[2], xb.Shape[3]
+	return net, tensor.FromFloat32(xb.F32[:c*h*w], 1, c, h, w)
+}
+
+// The incremental evaluator against brute force (FullForward) on the
+// compact reference networks: the maps must agree up to float summation
+// order, within 1e-5 of the map's largest magnitude (plus 1e-6 absolute
+// for maps near zero).
+func TestIncrementalMatchesFullForward(t *testing.T) {
+	for _, name := range []string{"resnet18", "mobilenet_v2", "efficientnet_b0", "densenet121"} {
+		t.Run(name, func(t *testing.T) {
+			net, x := loadNet(t, filepath.Join("..", "testdata", "nets", name))
+			var logged []string
+			// Patch 7, stride 5 on 64²: 12×12 windows plus the edge ones;
+			// image-mean fill so every window changes the input.
+			o := Occlusion{Patch: 7, Stride: 5, Fill: FillImageMean, BatchSize: 11}
+			full, err := o.Attribute(ctx, net, x, explain.Predicted(explain.Logit))
+			if err != nil {
+				t.Fatal(err)
+			}
+			o.Evaluator = Incremental{BatchSize: 11, Log: func(s string) { logged = append(logged, s) }}
+			inc, err := o.Attribute(ctx, net, x, explain.Predicted(explain.Logit))
+			if err != nil {
+				t.Fatal(err)
+			}
+			var scale, worst, energy float64
+			for i, v := range full.Map.Data {
+				scale = math.Max(scale, math.Abs(float64(v)))
+				worst = math.Max(worst, math.Abs(float64(inc.Map.Data[i]-v)))
+				energy += float64(v) * float64(v)
+			}
+			t.Logf("largest map value %.4g, largest difference %.3g; %d nodes recomputed in full", scale, worst, len(logged))
+			if energy == 0 {
+				t.Fatal("the occlusion map is zero: the comparison proves nothing")
+			}
+			if worst > 1e-5*scale+1e-6 {
+				t.Errorf("incremental map differs from brute force by %g (largest value %g)", worst, scale)
+			}
+		})
+	}
+}
+
+// A Network that is not a compiled graph is scored by FullForward: the
+// linear closed form of TestOcclusionLinear still holds.
+func TestIncrementalFallsBackForOtherNetworks(t *testing.T) {
+	net := explaintest.NewLinear(3, 9, 9, 2, 5)
+	x := explaintest.RandomInput(3, 9, 9, 6)
+	a, err := Occlusion{Patch: 3, Stride: 2}.Attribute(ctx, net, x, explain.Class(1, explain.Logit))
+	if err != nil {
+		t.Fatal(err)
+	}
+	b, err := Occlusion{Patch: 3, Stride: 2, Evaluator: Incremental{}}.Attribute(ctx, net, x, explain.Class(1, explain.Logit))
+	if err != nil {
+		t.Fatal(err)
+	}
+	for i := range a.Map.Data {
+		if a.Map.Data[i] != b.Map.Data[i] {
+			t.Fatalf("pixel %d: %v, FullForward %v", i, b.Map.Data[i], a.Map.Data[i])
+		}
+	}
+}
+
+// BenchmarkOcclusionEvaluators times a whole occlusion map with each
+// evaluator on the compact networks (64², patch 5, stride 2: 961 windows)
+// and, when HEEDMAP_RESNET18 names a full-size ResNet-18 export
+// (testdata/reference/export_nets.py --full), at 224², patch 16, stride 8
+// (729 windows). It reports windows per second.
+func BenchmarkOcclusionEvaluators(b *testing.B) {
+	type bnet struct{ name, dir string }
+	var nets []bnet
+	for _, n := range []string{"resnet18", "mobilenet_v2", "efficientnet_b0", "densenet121"} {
+		nets = append(nets, bnet{n, filepath.Join("..", "testdata", "nets", n)})
+	}
+	if p := os.Getenv("HEEDMAP_RESNET18"); p != "" {
+		nets = append(nets, bnet{"resnet18-224", filepath.Dir(p)})
+	}
+	for _, n := range nets {
+		net, x := loadNet(b, n.dir)
+		for _, ev := range []struct {
+			name string
+			e    Evaluator
+		}{{"full", FullForward{BatchSize: 16}}, {"incremental", Incremental{BatchSize: 16}}} {
+			b.Run(fmt.Sprintf("%s/%s", n.name, ev.name), func(b *testing.B) {
+				o := Occlusion{Fill: FillImageMean, Evaluator: ev.e}
+				p, s := o.Geometry(x.Shape[3], x.Shape[2])
+				wins := len(Windows(x.Shape[3], x.Shape[2], p, s))
+				start := time.Now()
+				for b.Loop() {
+					if _, err := o.Attribute(ctx, net, x, explain.Predicted(explain.Logit)); err != nil {
+						b.Fatal(err)
+					}
+				}
+				b.ReportMetric(float64(wins*b.N)/time.Since(start).Seconds(), "windows/s")
+			})
+		}
+	}
+}
