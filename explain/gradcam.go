@@ -17,22 +17,39 @@ import (
 //
 // The paper takes y^c before the softmax, so use the Logit score kind (the
 // default) to follow it; other kinds are allowed and say so in the result.
-// Layer names the activation (a 4-D [1, K, h, w] tensor); the runtime's
-// Graph.GradCAMLayer picks the last one before global pooling. L is
+// Layer names the activation (a 4-D [1, K, h, w] tensor). Empty Layer is
+// the automatic choice: the last 4-D activation before global pooling, asked
+// of a Network that implements LayerChooser (FromGraph's networks do,
+// through the runtime's Graph.GradCAMLayer). L is
 // upsampled to the input size bilinearly with the half-pixel ("align
 // corners = false") convention: output pixel centre (x + ½) samples the
 // h×w map at x·w/W + ½·w/W − ½, clamped at the borders, so the upsampled map
 // covers exactly the same extent as the layer's receptive-field grid
 // assumption. Coarse holds L at the layer's resolution.
 type GradCAM struct {
-	Layer string
+	Layer string // "" = automatic
+}
+
+// LayerChooser is implemented by networks that can name Grad-CAM's default
+// layer, the last 4-D activation before global pooling.
+type LayerChooser interface {
+	GradCAMLayer() (string, error)
 }
 
 func (GradCAM) Name() string { return "grad-cam" }
 
 func (g GradCAM) Attribute(ctx context.Context, net Network, x *tensor.Tensor, target Target) (*Result, error) {
-	if g.Layer == "" {
-		return nil, fmt.Errorf("explain: grad-cam needs a layer name")
+	auto := g.Layer == ""
+	if auto {
+		lc, ok := net.(LayerChooser)
+		if !ok {
+			return nil, fmt.Errorf("explain: grad-cam: this network cannot choose a layer; name one")
+		}
+		l, err := lc.GradCAMLayer()
+		if err != nil {
+			return nil, fmt.Errorf("explain: grad-cam: %w (name a layer)", err)
+		}
+		g.Layer = l
 	}
 	_, h, w, err := geometry(net, x)
 	if err != nil {
@@ -67,6 +84,10 @@ func (g GradCAM) Attribute(ctx context.Context, net Network, x *tensor.Tensor, t
 	r.Coarse = &coarse
 	r.Map = Upsample(coarse, w, h)
 	r.Signed = r.Map
+	r.param("layer", g.Layer)
+	r.param("layer_choice", map[bool]string{true: "automatic", false: "given"}[auto])
+	r.param("layer_size", fmt.Sprintf("%dx%d", lw, lh))
+	r.param("upsampling", "bilinear, half-pixel centres")
 	if t.Score != Logit {
 		r.Warnings = append(r.Warnings, fmt.Sprintf("grad-cam: explaining the %s score; the method is defined on the pre-softmax logit", t.Score))
 	}

@@ -30,6 +30,8 @@ func (Gradient) Attribute(ctx context.Context, net Network, x *tensor.Tensor, ta
 	r.Map = maxAbs(g, c, h, w)
 	r.Signed = channelSum(g, c, h, w)
 	r.Channels = toTensor(g, c, h, w)
+	r.param("map", "max over channels of |gradient|")
+	r.param("space", "model input")
 	return r, nil
 }
 
@@ -57,6 +59,8 @@ func (GradientTimesInput) Attribute(ctx context.Context, net Network, x *tensor.
 	r.Map = channelSum(g, c, h, w)
 	r.Signed = r.Map
 	r.Channels = toTensor(g, c, h, w)
+	r.param("map", "sum over channels of x ⊙ gradient")
+	r.param("space", "model input")
 	return r, nil
 }
 

@@ -74,6 +74,9 @@ func FromGraph(g *engine.Graph, opts GraphOptions) (Network, error) {
 
 func (n *graphNet) InputShape() []int { return append([]int(nil), n.shape...) }
 
+// GradCAMLayer implements LayerChooser through the runtime.
+func (n *graphNet) GradCAMLayer() (string, error) { return n.g.GradCAMLayer() }
+
 func (n *graphNet) feed(x *tensor.Tensor) (map[string]*tensor.Tensor, error) {
 	if len(x.Shape) != 4 {
 		return nil, fmt.Errorf("explain: input %v is not NCHW", x)

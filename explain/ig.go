@@ -111,6 +111,23 @@ func (ig IntegratedGradients) BaselineInput(x *tensor.Tensor) (*tensor.Tensor, e
 	return b, nil
 }
 
+// params records the resolved settings.
+func (ig IntegratedGradients) params(r *Result, steps, w int) {
+	r.param("steps", steps)
+	r.param("quadrature", ig.Quadrature)
+	r.param("baseline", ig.Baseline)
+	switch ig.Baseline {
+	case BaselineBlur:
+		s := ig.BlurSigma
+		if s <= 0 {
+			s = float64(w) / 16
+		}
+		r.param("blur_sigma_px", s)
+	case BaselineNoise:
+		r.param("seed", ig.Seed)
+	}
+}
+
 func (ig IntegratedGradients) Attribute(ctx context.Context, net Network, x *tensor.Tensor, target Target) (*Result, error) {
 	c, h, w, err := geometry(net, x)
 	if err != nil {
@@ -171,6 +188,7 @@ func (ig IntegratedGradients) Attribute(ctx context.Context, net Network, x *ten
 	r.Map = channelSum(acc, c, h, w)
 	r.Signed = r.Map
 	r.Channels = toTensor(acc, c, h, w)
+	ig.params(r, steps, w)
 	if r.Gap > 0.05 {
 		r.Warnings = append(r.Warnings, fmt.Sprintf("integrated gradients: completeness gap %.1f%% with %d steps; consider more steps", 100*r.Gap, steps))
 	}

@@ -4,6 +4,7 @@ import (
 	"context"
 	"fmt"
 	"math"
+	"strconv"
 
 	"heedmap/tensor"
 )
@@ -42,11 +43,50 @@ type Result struct {
 	Coarse *Map
 	// Warnings are conditions a user should be told about.
 	Warnings []string
+	// Params are the settings the method used, defaults resolved, in a
+	// fixed order, so that every output can state them (the target and
+	// score kind are in Target). Settings that cannot change the map, such
+	// as the batch size, are left out.
+	Params []Param
+}
+
+// Param is one named setting of a method, formatted for a report.
+type Param struct{ Name, Value string }
+
+// Param returns the value of the named setting and whether it is present.
+func (r *Result) Param(name string) (string, bool) {
+	for _, p := range r.Params {
+		if p.Name == name {
+			return p.Value, true
+		}
+	}
+	return "", false
+}
+
+func (r *Result) param(name string, v any) {
+	var s string
+	switch v := v.(type) {
+	case float64:
+		s = strconv.FormatFloat(v, 'g', -1, 64)
+	case float32:
+		s = strconv.FormatFloat(float64(v), 'g', -1, 32)
+	default:
+		s = fmt.Sprint(v)
+	}
+	r.Params = append(r.Params, Param{name, s})
 }
 
 func newResult(name string, t Target, score float64) *Result {
 	return &Result{Method: name, Target: t, Score: score, Baseline: math.NaN(), Gap: math.NaN()}
 }
+
+// NewResult returns a Result for a method implemented outside this package
+// (e.g. occlusion), with Baseline and Gap NaN.
+func NewResult(method string, t Target, score float64) *Result { return newResult(method, t, score) }
+
+// AddParam records a setting on r (see Result.Params); floats are written
+// in their shortest exact form.
+func (r *Result) AddParam(name string, v any) { r.param(name, v) }
 
 // geometry validates x against the network and returns C, H, W.
 func geometry(net Network, x *tensor.Tensor) (c, h, w int, err error) {

@@ -134,5 +134,9 @@ func (r RISE) Attribute(ctx context.Context, net Network, x *tensor.Tensor, targ
 		res.Map.Data[q] = float32(v / (float64(n) * p))
 	}
 	res.Signed = res.Map
+	res.param("masks", n)
+	res.param("grid", s)
+	res.param("p", p)
+	res.param("seed", r.Seed)
 	return res, nil
 }

@@ -79,6 +79,10 @@ func (s SmoothGrad) Attribute(ctx context.Context, net Network, x *tensor.Tensor
 	mean := make([]float64, size)
 	mapAcc := make([]float64, h*w)
 	r := newResult(s.Name(), t, score)
+	r.param("samples", n)
+	r.param("sigma_fraction", frac)
+	r.param("sigma", sigma)
+	r.param("seed", s.Seed)
 	if s.OverIG != nil {
 		xk := tensor.New(x.Shape...)
 		for k := 0; k < n; k++ {
@@ -94,6 +98,16 @@ func (s SmoothGrad) Attribute(ctx context.Context, net Network, x *tensor.Tensor
 		r.Map = channelSum(mean, c, h, w)
 		r.Signed = r.Map
 		r.Channels = toTensor(mean, c, h, w)
+		r.param("over", "integrated-gradients")
+		steps := s.OverIG.Steps
+		if steps == 0 {
+			steps = 64
+		}
+		sub := &Result{}
+		s.OverIG.params(sub, steps, w)
+		for _, p := range sub.Params {
+			r.param("ig_"+p.Name, p.Value)
+		}
 		return r, nil
 	}
 	err = gradients(ctx, net, n, []int{c, h, w}, s.BatchSize, noisy, t, "", func(_ int, _, grad, _, _ []float32) error {
@@ -123,5 +137,6 @@ func (s SmoothGrad) Attribute(ctx context.Context, net Network, x *tensor.Tensor
 	}
 	r.Signed = channelSum(mean, c, h, w)
 	r.Channels = toTensor(mean, c, h, w)
+	r.param("over", "gradient")
 	return r, nil
 }

@@ -230,9 +230,28 @@ func (o Occlusion) Attribute(ctx context.Context, net explain.Network, x *tensor
 	for i := range sum {
 		m.Data[i] = float32(sum[i] / float64(cnt[i]))
 	}
-	r := &explain.Result{Method: "occlusion", Target: t, Map: m, Signed: m, Score: base, Baseline: math.NaN(), Gap: math.NaN()}
+	r := explain.NewResult("occlusion", t, base)
+	r.Map, r.Signed = m, m
 	if msg := FillWarning(o.Fill, o.Norm); msg != "" {
 		r.Warnings = append(r.Warnings, msg)
+	}
+	r.AddParam("patch", patch)
+	r.AddParam("stride", stride)
+	r.AddParam("windows", len(wins))
+	r.AddParam("fill", o.Fill)
+	switch o.Fill {
+	case FillColor:
+		r.AddParam("color", fmt.Sprintf("%g,%g,%g", o.Color[0], o.Color[1], o.Color[2]))
+	case FillBlur:
+		s := o.BlurSigma
+		if s <= 0 {
+			s = float64(patch) / 2
+		}
+		r.AddParam("blur_sigma_px", s)
+	case FillModelZero:
+		if !o.Norm.Normalized() {
+			r.AddParam("fill_colour", "black (no mean/std normalisation declared)")
+		}
 	}
 	return r, nil
 }
