@@ -22,7 +22,8 @@ const Caution = "Research and quality-assurance tool, not a diagnostic device; r
 
 // Report is everything the three files are written from.
 //
-// report.json fields (JSON names):
+// report.json fields (JSON names; SCHEMA.md documents every field with
+// units, and TestSchemaDocumented keeps it complete):
 //
 //	schema       "heedmap-report/1"
 //	caution      the caution text above
