@@ -11,17 +11,17 @@ import (
 	"heedmap/tensor"
 )
 
-// resnet18ForBench loads the network the ResNet-18 benchmarks run: the
-// full-size export named by HEEDMAP_RESNET18 (a model.onnx made by
-// testdata/reference/export_nets.py --full), else the compact committed
-// variant in testdata/nets/resnet18.
-func resnet18ForBench(b *testing.B) (*Graph, string) {
-	path := os.Getenv("HEEDMAP_RESNET18")
+// netForBench loads the network a whole-model benchmark runs: the
+// full-size export named by the environment variable env (a model.onnx
+// made by testdata/reference/export_nets.py --full), else the compact
+// committed variant in testdata/nets/<dir>.
+func netForBench(b *testing.B, env, dir string) (*Graph, string) {
+	path := os.Getenv(env)
 	if path == "" {
-		path = filepath.Join("..", "testdata", "nets", "resnet18", "model.onnx")
+		path = filepath.Join("..", "testdata", "nets", dir, "model.onnx")
 	}
 	if _, err := os.Stat(path); err != nil {
-		b.Skipf("no ResNet-18 export at %s (set HEEDMAP_RESNET18 to a full-size model.onnx): %v", path, err)
+		b.Skipf("no %s export at %s (set %s to a full-size model.onnx): %v", dir, path, env, err)
 	}
 	g, err := Load(path)
 	if err != nil {
@@ -51,16 +51,21 @@ func benchInput(b *testing.B, g *Graph, batch int) (string, *tensor.Tensor) {
 	return in.Name, x
 }
 
-func BenchmarkResNet18Forward(b *testing.B) {
-	g, path := resnet18ForBench(b)
+// benchForward reports img/s and allocations per forward pass.
+func benchForward(b *testing.B, g *Graph, path string) {
 	for _, batch := range []int{1, 16} {
 		b.Run(fmt.Sprintf("batch=%d", batch), func(b *testing.B) {
 			name, x := benchInput(b, g, batch)
 			b.Logf("%s, input %v", path, x.Shape)
 			ctx := context.Background()
+			in := map[string]*tensor.Tensor{name: x}
+			if _, err := g.Run(ctx, in, RunOptions{}); err != nil { // warm caches and pools
+				b.Fatal(err)
+			}
+			b.ReportAllocs()
 			b.ResetTimer()
 			for i := 0; i < b.N; i++ {
-				if _, err := g.Run(ctx, map[string]*tensor.Tensor{name: x}, RunOptions{}); err != nil {
+				if _, err := g.Run(ctx, in, RunOptions{}); err != nil {
 					b.Fatal(err)
 				}
 			}
@@ -69,17 +74,18 @@ func BenchmarkResNet18Forward(b *testing.B) {
 	}
 }
 
-func BenchmarkResNet18ForwardBackward(b *testing.B) {
-	g, path := resnet18ForBench(b)
+// benchForwardBackward reports img/s and allocations per forward pass plus
+// the input gradient of the first logit.
+func benchForwardBackward(b *testing.B, g *Graph, path string) {
 	out := g.Outputs()[0].Name
 	for _, batch := range []int{1, 16} {
 		b.Run(fmt.Sprintf("batch=%d", batch), func(b *testing.B) {
 			name, x := benchInput(b, g, batch)
 			b.Logf("%s, input %v", path, x.Shape)
 			ctx := context.Background()
-			b.ResetTimer()
-			for i := 0; i < b.N; i++ {
-				p, err := g.Run(ctx, map[string]*tensor.Tensor{name: x}, RunOptions{Backward: true})
+			in := map[string]*tensor.Tensor{name: x}
+			step := func() {
+				p, err := g.Run(ctx, in, RunOptions{Backward: true})
 				if err != nil {
 					b.Fatal(err)
 				}
@@ -92,9 +98,37 @@ func BenchmarkResNet18ForwardBackward(b *testing.B) {
 					b.Fatal(err)
 				}
 			}
+			step() // warm caches and pools
+			b.ReportAllocs()
+			b.ResetTimer()
+			for i := 0; i < b.N; i++ {
+				step()
+			}
 			b.ReportMetric(float64(batch*b.N)/b.Elapsed().Seconds(), "img/s")
 		})
 	}
+}
+
+func BenchmarkResNet18Forward(b *testing.B) {
+	g, path := netForBench(b, "HEEDMAP_RESNET18", "resnet18")
+	benchForward(b, g, path)
+}
+
+func BenchmarkResNet18ForwardBackward(b *testing.B) {
+	g, path := netForBench(b, "HEEDMAP_RESNET18", "resnet18")
+	benchForwardBackward(b, g, path)
+}
+
+// The MobileNetV2 benchmarks exercise the depthwise and Clip (ReLU6) path;
+// set HEEDMAP_MOBILENETV2 to a full-size export.
+func BenchmarkMobileNetV2Forward(b *testing.B) {
+	g, path := netForBench(b, "HEEDMAP_MOBILENETV2", "mobilenet_v2")
+	benchForward(b, g, path)
+}
+
+func BenchmarkMobileNetV2ForwardBackward(b *testing.B) {
+	g, path := netForBench(b, "HEEDMAP_MOBILENETV2", "mobilenet_v2")
+	benchForwardBackward(b, g, path)
 }
 
 // BenchmarkConv3x3 measures one ResNet-style 3×3 convolution (64→64
