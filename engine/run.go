@@ -29,6 +29,16 @@ type Pass struct {
 	backward bool
 
 	peakLive int // largest number of simultaneously held activations
+	// liveBytes and peakBytes measure the same in bytes of tensor data
+	// (node outputs only; inputs and constants are not the plan's to free).
+	liveBytes, peakBytes int64
+}
+
+func dataBytes(t *tensor.Tensor) int64 {
+	if t == nil {
+		return 0
+	}
+	return 4*int64(len(t.F32)) + 8*int64(len(t.I64))
 }
 
 // Run executes the graph on inputs (keyed by graph input name). It checks
@@ -115,10 +125,16 @@ func (g *Graph) Run(ctx context.Context, inputs map[string]*tensor.Tensor, opt R
 			}
 			set(v, out[i])
 			live++
+			p.liveBytes += dataBytes(out[i])
+		}
+		// High-water mark while the node's inputs and outputs coexist.
+		if p.liveBytes > p.peakBytes {
+			p.peakBytes = p.liveBytes
 		}
 		// Free what this node was the last reader of, and outputs nobody reads.
 		for _, v := range nd.in {
 			if v >= 0 && g.lastUse[v] == k && g.producer[v] >= 0 && !keep[v] && !g.isOutput[v] && p.vals[v] != nil {
+				p.liveBytes -= dataBytes(p.vals[v])
 				p.vals[v] = nil
 				live--
 			}
@@ -126,8 +142,10 @@ func (g *Graph) Run(ctx context.Context, inputs map[string]*tensor.Tensor, opt R
 		if live > p.peakLive {
 			p.peakLive = live
 		}
+
 		for _, v := range nd.out {
 			if v >= 0 && g.lastUse[v] < 0 && !keep[v] && !g.isOutput[v] {
+				p.liveBytes -= dataBytes(p.vals[v])
 				p.vals[v] = nil
 				live--
 			}
