@@ -6,6 +6,7 @@ import (
 	"fmt"
 	"math"
 	"os"
+	"strconv"
 	"strings"
 
 	"heedmap/tensor"
@@ -99,8 +100,10 @@ func Group(labels []string, name string, members []string, kind ScoreKind) (Targ
 	return t, nil
 }
 
-// ReadLabels reads a labels file: one class name per line, in logit order;
-// blank lines at the end are ignored.
+// ReadLabels reads a labels file: one class name per line, in logit order,
+// surrounding spaces and CR line ends trimmed, a leading UTF-8 byte-order
+// mark dropped; blank lines at the end are ignored. A name that appears
+// twice is an error, since a target by name would be ambiguous.
 func ReadLabels(path string) ([]string, error) {
 	b, err := os.ReadFile(path)
 	if err != nil {
@@ -109,13 +112,29 @@ func ReadLabels(path string) ([]string, error) {
 	var out []string
 	sc := bufio.NewScanner(bytes.NewReader(b))
 	for sc.Scan() {
-		out = append(out, strings.TrimSpace(sc.Text()))
+		line := sc.Text()
+		if len(out) == 0 {
+			// A UTF-8 byte-order mark, as some editors write, is not part
+			// of the first class name.
+			line = strings.TrimPrefix(line, "\ufeff")
+		}
+		out = append(out, strings.TrimSpace(line))
+	}
+	if err := sc.Err(); err != nil {
+		return nil, fmt.Errorf("explain: labels %s: %w", path, err)
 	}
 	for len(out) > 0 && out[len(out)-1] == "" {
 		out = out[:len(out)-1]
 	}
 	if len(out) == 0 {
 		return nil, fmt.Errorf("explain: labels file %s is empty", path)
+	}
+	seen := map[string]int{}
+	for i, l := range out {
+		if j, ok := seen[l]; ok && l != "" {
+			return nil, fmt.Errorf("explain: labels %s: %q is on lines %d and %d", path, l, j+1, i+1)
+		}
+		seen[l] = i
 	}
 	return out, nil
 }
@@ -235,4 +254,42 @@ func logitsShape(l *tensor.Tensor) (n, k int, err error) {
 		return 0, 0, fmt.Errorf("explain: logits must be a float [N, K] tensor, got %v", l)
 	}
 	return l.Shape[0], l.Shape[1], nil
+}
+
+// ParseTarget reads a target specification as a user writes it:
+//
+//	"" or "predicted"       the class the model predicts
+//	"3"                     class index 3 (named from labels when given)
+//	"melanoma"              the class with that label
+//	"malignant=melanoma+carcinoma"
+//	                        a named group (see Group; kind must be softmax
+//	                        or sigmoid)
+//
+// A label that is itself a number is reached by name only when it is not a
+// valid index; put such labels in a group of one to be explicit.
+func ParseTarget(spec string, labels []string, kind ScoreKind) (Target, error) {
+	spec = strings.TrimSpace(spec)
+	if spec == "" || spec == "predicted" {
+		return Predicted(kind), nil
+	}
+	if name, members, ok := strings.Cut(spec, "="); ok {
+		var ms []string
+		for _, m := range strings.Split(members, "+") {
+			if m = strings.TrimSpace(m); m != "" {
+				ms = append(ms, m)
+			}
+		}
+		return Group(labels, strings.TrimSpace(name), ms, kind)
+	}
+	if i, err := strconv.Atoi(spec); err == nil && i >= 0 && (len(labels) == 0 || i < len(labels)) {
+		t := Class(i, kind)
+		if i < len(labels) {
+			t.Name = labels[i]
+		}
+		return t, nil
+	}
+	if len(labels) == 0 {
+		return Target{}, fmt.Errorf("explain: target %q: not a class index, and no labels file to look the name up in", spec)
+	}
+	return ClassByName(labels, spec, kind)
 }
