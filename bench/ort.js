@@ -1,0 +1,129 @@
+// ONNX Runtime reference run for heedmap's side-by-side benchmark.
+//
+// Usage: node ort.js SPEC.json   (written by bench/cmd/heedbench)
+// Prints one JSON object on stdout: per-model forward timings and, when the
+// spec asks for it, the timing of an occlusion map computed with ordinary
+// batched forward passes (the map itself is written as raw little-endian
+// float32 so the Go driver can compare it with heedmap's).
+//
+// Every session uses intraOpNumThreads = spec.threads (2) and sequential
+// execution, all graph optimisations on: ONNX Runtime's usual CPU setting.
+'use strict';
+
+const fs = require('fs');
+const path = require('path');
+const ort = require(path.join(__dirname, 'node', 'node_modules', 'onnxruntime-node'));
+
+function readF32(file) {
+  const b = fs.readFileSync(file);
+  return new Float32Array(b.buffer, b.byteOffset, b.byteLength / 4);
+}
+
+function seconds(t0) {
+  return Number(process.hrtime.bigint() - t0) / 1e9;
+}
+
+async function session(model, threads) {
+  return ort.InferenceSession.create(model, {
+    intraOpNumThreads: threads,
+    interOpNumThreads: 1,
+    executionMode: 'sequential',
+    graphOptimizationLevel: 'all',
+  });
+}
+
+function batchOf(img, n, shape) {
+  const data = new Float32Array(n * img.length);
+  for (let i = 0; i < n; i++) data.set(img, i * img.length);
+  return new ort.Tensor('float32', data, [n, ...shape]);
+}
+
+// Window origins along an axis of n pixels: 0, s, 2s, ... while the patch
+// fits, plus one flush with the far edge if the stride does not land there.
+function origins(n, p, s) {
+  if (p >= n) return [0];
+  const o = [];
+  for (let x = 0; x + p <= n; x += s) o.push(x);
+  if (o[o.length - 1] + p < n) o.push(n - p);
+  return o;
+}
+
+async function occlusion(spec, img, shape) {
+  const [c, h, w] = shape;
+  const occ = spec.occlusion;
+  const sess = await session(occ.model, spec.threads);
+  const input = sess.inputNames[0], output = sess.outputNames[0];
+  const wins = [];
+  for (const y of origins(h, occ.patch, occ.stride)) {
+    for (const x of origins(w, occ.patch, occ.stride)) {
+      wins.push({ x, y, w: Math.min(occ.patch, w), h: Math.min(occ.patch, h) });
+    }
+  }
+  const size = c * h * w;
+  const score = (out, i) => out.data[i * out.dims[1] + occ.class];
+  // Warm-up at the batch size used below (allocations, kernel selection).
+  await sess.run({ [input]: batchOf(img, occ.batch, shape) });
+
+  const t0 = process.hrtime.bigint();
+  const base = score((await sess.run({ [input]: batchOf(img, 1, shape) }))[output], 0);
+  const scores = new Float64Array(wins.length);
+  for (let start = 0; start < wins.length; start += occ.batch) {
+    const m = Math.min(occ.batch, wins.length - start);
+    const data = new Float32Array(m * size);
+    for (let j = 0; j < m; j++) {
+      const dst = data.subarray(j * size, (j + 1) * size);
+      dst.set(img);
+      const win = wins[start + j];
+      for (let k = 0; k < c; k++) {
+        for (let y = win.y; y < win.y + win.h; y++) {
+          const row = k * h * w + y * w;
+          dst.fill(0, row + win.x, row + win.x + win.w); // model-space zero
+        }
+      }
+    }
+    const out = (await sess.run({ [input]: new ort.Tensor('float32', data, [m, ...shape]) }))[output];
+    for (let j = 0; j < m; j++) scores[start + j] = score(out, j);
+  }
+  // Map: mean over the windows covering each pixel of (base - occluded).
+  const sum = new Float64Array(h * w), cnt = new Uint32Array(h * w);
+  wins.forEach((win, i) => {
+    const d = base - scores[i];
+    for (let y = win.y; y < win.y + win.h; y++) {
+      for (let x = win.x; x < win.x + win.w; x++) {
+        sum[y * w + x] += d;
+        cnt[y * w + x]++;
+      }
+    }
+  });
+  const map = new Float32Array(h * w);
+  for (let i = 0; i < map.length; i++) map[i] = sum[i] / cnt[i];
+  const secs = seconds(t0);
+  fs.writeFileSync(occ.out, Buffer.from(map.buffer));
+  return { model: occ.model, windows: wins.length, batch: occ.batch, seconds: secs, base };
+}
+
+async function main() {
+  const spec = JSON.parse(fs.readFileSync(process.argv[2], 'utf8'));
+  const img = readF32(spec.image);
+  const shape = spec.shape; // [C, H, W]
+  const result = { ort_version: require(path.join(__dirname, 'node', 'node_modules', 'onnxruntime-node', 'package.json')).version, runs: [] };
+  for (const job of spec.jobs) {
+    const sess = await session(job.model, spec.threads);
+    const input = sess.inputNames[0], output = sess.outputNames[0];
+    const feed = { [input]: batchOf(img, job.batch, shape) };
+    let logits;
+    for (let i = 0; i < job.warmup; i++) logits = (await sess.run(feed))[output];
+    const t0 = process.hrtime.bigint();
+    for (let i = 0; i < job.iters; i++) await sess.run(feed);
+    const secs = seconds(t0);
+    result.runs.push({ name: job.name, batch: job.batch, iters: job.iters, seconds: secs, logits: Array.from(logits.data.slice(0, logits.dims[1])) });
+    if (sess.release) await sess.release();
+  }
+  if (spec.occlusion) result.occlusion = await occlusion(spec, img, shape);
+  process.stdout.write(JSON.stringify(result) + '\n');
+}
+
+main().catch((e) => {
+  console.error('ort.js:', e && e.stack ? e.stack : e);
+  process.exit(1);
+});
