@@ -70,6 +70,20 @@ type incPlan struct {
 	shapes    [][]int
 	steps     []incStep // parallel to g.nodes
 	fallbacks []string
+	// scratch recycles the gathered-input, column and product buffers
+	// (*[]float32) of patch convolutions: allocating them fresh cost as
+	// much in zeroing as the copies that fill them.
+	scratch sync.Pool
+}
+
+// buf returns n floats of arbitrary contents from the scratch pool.
+func (p *incPlan) buf(n int) *[]float32 {
+	if b, ok := p.scratch.Get().(*[]float32); ok && cap(*b) >= n {
+		*b = (*b)[:n]
+		return b
+	}
+	b := make([]float32, n)
+	return &b
 }
 
 type incKind int
@@ -810,7 +824,9 @@ func (inc *Incremental) runPatch(k int, gm incGeo, vals []*incVal, nb int) (*inc
 		g := st.g
 		ih := (gm.p-1)*g.sh + (g.kh-1)*g.dh + 1
 		iw := (gm.q-1)*g.sw + (g.kw-1)*g.dw + 1
-		xt := tensor.New(nb, c, ih, iw)
+		xb := p.buf(nb * c * ih * iw)
+		defer p.scratch.Put(xb)
+		xt := tensor.FromFloat32(*xb, nb, c, ih, iw)
 		parallelFor(nb, func(b int) {
 			inc.gather(v, vals[v], b, gm.oy[b]*g.sh-g.pt, gm.ox[b]*g.sw-g.pl, ih, iw, st.fill, xt.F32[b*c*ih*iw:(b+1)*c*ih*iw])
 		})
@@ -821,7 +837,7 @@ func (inc *Incremental) runPatch(k int, gm incGeo, vals []*incVal, nb int) (*inc
 			}
 			out.t = r[0]
 		} else {
-			out.t = st.convPatch(xt, c, gm.p, gm.q)
+			out.t = st.convPatch(p, xt, c, gm.p, gm.q)
 		}
 	default:
 		return nil, fmt.Errorf("no patch form")
@@ -840,7 +856,7 @@ func (inc *Incremental) runPatch(k int, gm incGeo, vals []*incVal, nb int) (*inc
 // (padding already in place) into [B, M, P, Q]. All windows share one
 // matrix product per group: W_g [M_g × C_g·kh·kw] times the columns of
 // every window side by side, so small patches still give a wide GEMM.
-func (st *incStep) convPatch(x *tensor.Tensor, c, ph, pw int) *tensor.Tensor {
+func (st *incStep) convPatch(p *incPlan, x *tensor.Tensor, c, ph, pw int) *tensor.Tensor {
 	nb, ih, iw := x.Shape[0], x.Shape[2], x.Shape[3]
 	g := st.g
 	y := tensor.New(nb, st.m, ph, pw)
@@ -877,8 +893,10 @@ func (st *incStep) convPatch(x *tensor.Tensor, c, ph, pw int) *tensor.Tensor {
 	}
 	kk := st.cg * g.kh * g.kw
 	n := nb * pq
-	col := make([]float32, kk*n)
-	tmp := make([]float32, mg*n)
+	colb, tmpb := p.buf(kk*n), p.buf(mg*n)
+	defer p.scratch.Put(colb)
+	defer p.scratch.Put(tmpb)
+	col, tmp := *colb, *tmpb
 	for gi := 0; gi < st.group; gi++ {
 		// col[r, b·pq + o] = x[b, gi·cg + ch, oy·sh + ki·dh, ox·sw + kj·dw]
 		parallelFor(kk, func(r int) {
@@ -891,10 +909,11 @@ func (st *incStep) convPatch(x *tensor.Tensor, c, ph, pw int) *tensor.Tensor {
 				for oy := 0; oy < ph; oy++ {
 					srow := plane[(oy*g.sh+ki*g.dh)*iw+kj*g.dw:]
 					drow := d[oy*pw : (oy+1)*pw]
-					if g.sw == 1 {
+					if g.sw == 1 && pw > 16 {
 						copy(drow, srow[:pw])
 						continue
 					}
+					// Short rows: a loop beats a memmove call.
 					for ox := range drow {
 						drow[ox] = srow[ox*g.sw]
 					}
