@@ -14,9 +14,15 @@ import (
 )
 
 // benchNet loads the compact ResNet-18 of testdata/nets (64×64 input, random
-// weights) through the runtime.
+// weights) through the runtime, or the network directory named by
+// HEEDMAP_BENCH_NET (same layout: model.onnx, input.pb, meta.json), e.g. the
+// full-size ResNet-18 at 224×224 written by
+// testdata/reference/export_nets.py --full --out DIR resnet18.
 func benchNet(b *testing.B) (explain.Network, *tensor.Tensor, string) {
 	dir := "../testdata/nets/resnet18"
+	if d := os.Getenv("HEEDMAP_BENCH_NET"); d != "" {
+		dir = d
+	}
 	raw, err := os.ReadFile(filepath.Join(dir, "meta.json"))
 	if err != nil {
 		b.Skip("no testdata/nets/resnet18")
@@ -42,9 +48,12 @@ func benchNet(b *testing.B) (explain.Network, *tensor.Tensor, string) {
 }
 
 // BenchmarkMethods reports images per minute for each method with its
-// default settings on the compact ResNet-18 (64×64). Run with
+// default settings on the compact ResNet-18 (64×64), or the network in
+// HEEDMAP_BENCH_NET. Run with
 //
 //	go test -run '^$' -bench Methods -benchtime 1x ./explain
+//
+// The bench notes (bench/METHODS.md) hold the measured table.
 func BenchmarkMethods(b *testing.B) {
 	net, x, layer := benchNet(b)
 	methods := []explain.Method{
@@ -64,6 +73,7 @@ func BenchmarkMethods(b *testing.B) {
 				}
 			}
 			b.ReportMetric(float64(b.N)/b.Elapsed().Minutes(), "img/min")
+			b.ReportMetric(b.Elapsed().Seconds()/float64(b.N), "s/img")
 		})
 	}
 }
