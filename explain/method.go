@@ -28,7 +28,9 @@ type Result struct {
 	Map Map
 	// Signed is the signed channel sum for methods with per-channel
 	// attributions (equal to Map for all but the gradient family); for
-	// Grad-CAM and RISE it equals Map.
+	// Grad-CAM, RISE and occlusion it equals Map. Signed is the method
+	// output as the tool defines it for every method (float32, model-input
+	// space, signed, summed over channels): the map to save as NPY.
 	Signed Map
 	// Channels holds per-channel attributions [1, C, H, W] where the method
 	// has them, else nil.
