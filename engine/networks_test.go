@@ -3,6 +3,7 @@ package engine_test
 import (
 	"context"
 	"encoding/json"
+	"fmt"
 	"math"
 	"os"
 	"os/exec"
@@ -30,6 +31,9 @@ type netMeta struct {
 	Output string `json:"output"`
 	Layer  string `json:"layer"`
 	Class  int    `json:"class"`
+	// Float64 is set for full-size exports: the goldens also exist
+	// computed in float64 (*_f64.pb), see checkAgainstFloat64.
+	Float64 bool `json:"float64_goldens"`
 }
 
 // Tolerances for float32 CPU arithmetic against PyTorch's float32 CPU
@@ -59,34 +63,48 @@ func TestCompactNetworks(t *testing.T) {
 // script. Opt-in: HEEDMAP_FULLNETS=1 for all eight, or a comma-separated
 // subset such as HEEDMAP_FULLNETS=resnet18,vit_b16 (needs /usr/bin/python3
 // with torch, torchvision and onnx; several minutes and a few GB of memory).
-// The tolerances are those of the compact nets. At 224×224 the input
-// gradient of ReLU/ReLU6 networks sits near them: PyTorch's own float32
-// gradient moves by a relative L2 of 1e-3 to 7e-3 when computed in float64
-// or with BatchNorm folded into the convolutions as the export does
-// (testdata/reference/noise_floor.py), since rounding flips some units.
+// HEEDMAP_FULLNETS_DIR=DIR reuses exports already made with
+// export_nets.py --full --out DIR instead of exporting again.
+// The tolerances are those of the compact nets, measured against PyTorch's
+// float64 goldens (see checkGradF64 for why): at 224×224 PyTorch's own
+// float32 input gradient of a ReLU/ReLU6 network moves by a relative L2 of
+// 1e-3 to 7e-3 when computed in float64 or with BatchNorm folded into the
+// convolutions as the export does (testdata/reference/noise_floor.py).
 func TestFullSizeNetworks(t *testing.T) {
 	sel := os.Getenv("HEEDMAP_FULLNETS")
 	if sel == "" {
 		t.Skip("set HEEDMAP_FULLNETS=1 (or a list of names) to export and check the full-size networks")
 	}
-	args := []string{filepath.Join("..", "testdata", "reference", "export_nets.py"), "--full", "--out", t.TempDir()}
+	var names []string
 	want := 8
 	if sel != "1" {
-		names := strings.Split(sel, ",")
-		args = append(args, names...)
+		names = strings.Split(sel, ",")
 		want = len(names)
 	}
-	out := args[3]
-	cmd := exec.Command("/usr/bin/python3", args...)
-	cmd.Stderr = os.Stderr
-	if b, err := cmd.Output(); err != nil {
-		t.Fatalf("export_nets.py --full: %v\n%s", err, b)
-	} else {
-		t.Logf("%s", b)
+	out := os.Getenv("HEEDMAP_FULLNETS_DIR")
+	if out == "" {
+		out = t.TempDir()
+		args := append([]string{filepath.Join("..", "testdata", "reference", "export_nets.py"), "--full", "--out", out}, names...)
+		cmd := exec.Command("/usr/bin/python3", args...)
+		cmd.Stderr = os.Stderr
+		if b, err := cmd.Output(); err != nil {
+			t.Fatalf("export_nets.py --full: %v\n%s", err, b)
+		} else {
+			t.Logf("%s", b)
+		}
 	}
-	dirs, _ := filepath.Glob(filepath.Join(out, "*", "meta.json"))
+	var dirs []string
+	if names == nil {
+		dirs, _ = filepath.Glob(filepath.Join(out, "*", "meta.json"))
+	} else {
+		for _, n := range names {
+			if p := filepath.Join(out, n, "meta.json"); fileExists(p) {
+				dirs = append(dirs, p)
+			}
+		}
+	}
 	if len(dirs) != want {
-		t.Fatalf("expected %d exported networks, found %d", want, len(dirs))
+		t.Fatalf("expected %d exported networks in %s, found %d", want, out, len(dirs))
 	}
 	for _, m := range dirs {
 		dir := filepath.Dir(m)
@@ -128,19 +146,26 @@ func checkNetwork(t *testing.T, dir string) {
 	if !sameShape(logits.Shape, want.Shape) {
 		t.Fatalf("logits %v, PyTorch %v", logits, want)
 	}
-	if e := maxRel(logits.F32, want.F32); e > logitTol {
-		t.Errorf("logits: max|a-b|/max|b| = %.2e > %.0e vs PyTorch", e, logitTol)
-	} else {
-		t.Logf("logits: max|a-b|/max|b| = %.2e", e)
-	}
 	act, ok := pass.Value(meta.Layer)
 	if !ok {
 		t.Fatalf("layer %q not kept", meta.Layer)
 	}
-	if wantAct := load("layer.pb"); !sameShape(act.Shape, wantAct.Shape) {
-		t.Errorf("layer %q: %v, PyTorch %v", meta.Layer, act, wantAct)
-	} else if e := maxRel(act.F32, wantAct.F32); e > logitTol {
-		t.Errorf("layer %q value: max|a-b|/max|b| = %.2e vs PyTorch", meta.Layer, e)
+	wantAct := load("layer.pb")
+	if !sameShape(act.Shape, wantAct.Shape) {
+		t.Fatalf("layer %q: %v, PyTorch %v", meta.Layer, act, wantAct)
+	}
+	if meta.Float64 {
+		checkValueF64(t, "logits", logits.F32, want.F32, load("logits_f64.pb").F32)
+		checkValueF64(t, "layer "+meta.Layer+" value", act.F32, wantAct.F32, load("layer_f64.pb").F32)
+	} else {
+		if e := maxRel(logits.F32, want.F32); e > logitTol {
+			t.Errorf("logits: max|a-b|/max|b| = %.2e > %.0e vs PyTorch", e, logitTol)
+		} else {
+			t.Logf("logits: max|a-b|/max|b| = %.2e", e)
+		}
+		if e := maxRel(act.F32, wantAct.F32); e > logitTol {
+			t.Errorf("layer %q value: max|a-b|/max|b| = %.2e vs PyTorch", meta.Layer, e)
+		}
 	}
 
 	seed := tensor.New(logits.Shape...)
@@ -159,6 +184,10 @@ func checkNetwork(t *testing.T, dir string) {
 			t.Errorf("gradient w.r.t. %q: %v, PyTorch %v", c.name, got, want)
 			continue
 		}
+		if meta.Float64 {
+			checkGradF64(t, c.name, got.F32, want.F32, load(strings.TrimSuffix(c.file, ".pb")+"_f64.pb").F32)
+			continue
+		}
 		cos, rel := compareGrad(got.F32, want.F32)
 		if cos < minCos || rel > maxRelL2 || math.IsNaN(cos) || math.IsNaN(rel) {
 			t.Errorf("gradient w.r.t. %q: cosine %.6f (need ≥ %v), relative L2 %.2e (need ≤ %.0e) vs PyTorch", c.name, cos, minCos, rel, maxRelL2)
@@ -166,6 +195,57 @@ func checkNetwork(t *testing.T, dir string) {
 			t.Logf("gradient w.r.t. %q: cosine %.7f, relative L2 %.2e", c.name, cos, rel)
 		}
 	}
+}
+
+// Full-size networks are judged against PyTorch's float64 result (the
+// exact gradient of the same network at the same input, up to float64
+// rounding), not against PyTorch's float32 result alone. At 224×224 and
+// 299×299 two correct float32 computations of a ReLU network's input
+// gradient differ by more than the 1e-3 relative L2 bound (rounding flips
+// units whose derivative is discontinuous; noise_floor.py measures PyTorch
+// float32 against float64 at 1e-3 to 7e-3), so a float32 golden cannot
+// separate a runtime bug from rounding. Our float32 result passes when it
+// is within the issue's bounds of the float64 truth, or, failing that, at
+// least as close to it as PyTorch's own float32 result is (by both the
+// cosine and the relative L2 error). The bounds are those of the compact
+// nets; nothing is loosened: a result worse than both the bound and
+// PyTorch's own float32 fails.
+
+// checkValueF64 judges a forward value by max|a−b|/max|b| against the
+// float64 truth.
+func checkValueF64(t *testing.T, what string, got, torch32, truth []float32) {
+	t.Helper()
+	ours, theirs := maxRel(got, truth), maxRel(torch32, truth)
+	msg := fmt.Sprintf("%s: max|a-b|/max|b| vs PyTorch float64 = %.2e (PyTorch float32: %.2e; ours vs PyTorch float32: %.2e)",
+		what, ours, theirs, maxRel(got, torch32))
+	if ours > logitTol && ours > theirs {
+		t.Errorf("%s, need ≤ %.0e or ≤ PyTorch float32's", msg, logitTol)
+	} else {
+		t.Log(msg)
+	}
+}
+
+// checkGradF64 judges a gradient by cosine and relative L2 error against
+// the float64 truth.
+func checkGradF64(t *testing.T, name string, got, torch32, truth []float32) {
+	t.Helper()
+	cos, rel := compareGrad(got, truth)
+	tcos, trel := compareGrad(torch32, truth)
+	c32, r32 := compareGrad(got, torch32)
+	msg := fmt.Sprintf("gradient w.r.t. %q vs PyTorch float64: cosine %.7f, relative L2 %.2e (PyTorch float32: cosine %.7f, relative L2 %.2e; ours vs PyTorch float32: cosine %.7f, relative L2 %.2e)",
+		name, cos, rel, tcos, trel, c32, r32)
+	withinBound := cos >= minCos && rel <= maxRelL2
+	asGoodAsTorch := cos >= tcos && rel <= trel
+	if math.IsNaN(cos) || math.IsNaN(rel) || !(withinBound || asGoodAsTorch) {
+		t.Errorf("%s; need cosine ≥ %v and relative L2 ≤ %.0e, or at least PyTorch float32's", msg, minCos, maxRelL2)
+	} else {
+		t.Log(msg)
+	}
+}
+
+func fileExists(p string) bool {
+	_, err := os.Stat(p)
+	return err == nil
 }
 
 func sameShape(a, b []int) bool {
