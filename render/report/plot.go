@@ -230,6 +230,22 @@ func artefactPlot(r *Report) svgPlot {
 		step = 0.2
 	}
 	left, right, top, bottom := 150.0, 1160.0, 70.0, 500.0
+	// Legend first: entries wrap onto further rows rather than run past
+	// the right edge (seven methods do not fit on one row), and the plot
+	// moves down by the extra rows.
+	type entry struct{ x, y float64 }
+	var legend []entry
+	lx, ly := left, 20.0
+	for _, m := range methods {
+		w := 60 + float64(len([]rune(m)))*11
+		if lx > left && lx+w-24 > right {
+			lx, ly = left, ly+34
+		}
+		legend = append(legend, entry{lx, ly})
+		lx += w
+	}
+	extra := ly - 20
+	top, bottom, p.H = top+extra, bottom+extra, p.H+extra
 	sy := p.yAxis(left, bottom, top, right, 0, hi, step, "mean mass on artefact (fraction)")
 	groupW := (right - left) / float64(len(cats))
 	barW := math.Min(60, groupW*0.8/float64(len(methods)))
@@ -251,12 +267,10 @@ func artefactPlot(r *Report) svgPlot {
 	}
 	y := sy(r.Summary.Options.ArtefactThreshold)
 	p.Lines = append(p.Lines, svgLine{left, y, right, y, "#b91c1c", 3, "10 6"})
-	// Legend.
-	lx := left
 	for mi, m := range methods {
-		p.Rects = append(p.Rects, svgRect{lx, 20, 24, 24, palette[mi%len(palette)], m})
-		p.Texts = append(p.Texts, svgText{X: lx + 32, Y: 40, Text: m, Anchor: "start", Size: tickSz, Fill: ink})
-		lx += 60 + float64(len([]rune(m)))*11
+		e := legend[mi]
+		p.Rects = append(p.Rects, svgRect{e.x, e.y, 24, 24, palette[mi%len(palette)], m})
+		p.Texts = append(p.Texts, svgText{X: e.x + 32, Y: e.y + 20, Text: m, Anchor: "start", Size: tickSz, Fill: ink})
 	}
 	p.Texts = append(p.Texts, svgText{X: (left + right) / 2, Y: bottom + 76, Text: "artefact category", Anchor: "middle", Size: labelSz, Bold: true, Fill: ink})
 	return p
