@@ -40,6 +40,15 @@ var page = template.Must(template.New("report").Funcs(template.FuncMap{
 		}
 		return fmt.Sprintf("%.1f – %.1f\u00a0%%", 100*iv.Lo.V, 100*iv.Hi.V)
 	},
+	"rule": func(c string) string { // criteria compare ">=" or "<=", shown as ≥ / ≤
+		switch c {
+		case ">=":
+			return "≥"
+		case "<=":
+			return "≤"
+		}
+		return c
+	},
 	"join": strings.Join,
 }).Parse(pageSource))
 
