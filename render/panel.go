@@ -257,7 +257,7 @@ func Panel(c Case) (*image.RGBA, error) {
 			dc.DrawStringAnchored(fitText(dc, name, cw), float64(tile.Min.X), float64(tile.Min.Y)+tileHeadH/2, 0, 0.35)
 			dc.SetFontFace(text)
 			dc.SetColor(mutedColour)
-			dc.DrawStringAnchored(fitText(dc, "colour scale "+scales[i], cw), float64(tile.Max.X), float64(tile.Min.Y)+tileHeadH+tileScaleH/2-6, 1, 0.35)
+			dc.DrawStringAnchored(fitText(dc, scales[i], cw), float64(tile.Max.X), float64(tile.Min.Y)+tileHeadH+tileScaleH/2-6, 1, 0.35)
 		}
 
 		r := image.Rect(tile.Min.X, tile.Min.Y+plan.headH, tile.Min.X+plan.picW, tile.Min.Y+plan.headH+plan.picH)
