@@ -301,6 +301,9 @@ func offLesionText(m Metrics) string {
 	if math.IsNaN(m.OffLesion) {
 		return "n/a"
 	}
+	if m.OffLesion == 0 && m.OffLesionBox == 0 {
+		return "none"
+	}
 	s := percent(m.OffLesion) + " of mass"
 	if m.OffLesionBox > 0 {
 		s += fmt.Sprintf(" (box %d)", m.OffLesionBox)

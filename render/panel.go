@@ -442,6 +442,9 @@ func offLesionShort(m Metrics) string {
 	if math.IsNaN(m.OffLesion) {
 		return "n/a"
 	}
+	if m.OffLesion == 0 && m.OffLesionBox == 0 {
+		return "none"
+	}
 	s := percent(m.OffLesion)
 	if m.OffLesionBox > 0 {
 		s += fmt.Sprintf(" \u00b7 box %d", m.OffLesionBox)

@@ -532,3 +532,20 @@ func absDiff(a, b uint8) int {
 	}
 	return int(b - a)
 }
+
+// "n/a" (not computed) and "none" (computed, no off-lesion hot region) are
+// different statements and must read differently.
+func TestOffLesionWording(t *testing.T) {
+	m := NoMetrics()
+	if offLesionText(m) != "n/a" || offLesionShort(m) != "n/a" {
+		t.Errorf("not computed: %q %q", offLesionText(m), offLesionShort(m))
+	}
+	m.OffLesion = 0
+	if offLesionText(m) != "none" || offLesionShort(m) != "none" {
+		t.Errorf("no region: %q %q", offLesionText(m), offLesionShort(m))
+	}
+	m.OffLesion, m.OffLesionBox = 0.046, 1
+	if got := offLesionShort(m); got != "4.6 % \u00b7 box 1" {
+		t.Errorf("region: %q", got)
+	}
+}

@@ -60,7 +60,9 @@ type Metrics struct {
 	Pointing     Pointing
 	// OffLesion is the share of positive attribution in the largest
 	// connected region outside the lesion; OffLesionBox is that region's
-	// hot-region number (1-based), 0 if it is not boxed.
+	// hot-region number (1-based), 0 if it is not boxed. NaN means not
+	// computed ("n/a"); 0 with no box means the map has no off-lesion hot
+	// region ("none").
 	OffLesion    float64
 	OffLesionBox int
 }
