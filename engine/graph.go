@@ -46,6 +46,8 @@ type Graph struct {
 	// varying[v] reports whether v depends on a graph input; values that do
 	// not were folded into constants and never need gradients.
 	varying []bool
+	// arena recycles activation buffers across nodes and Runs (arena.go).
+	arena *arena
 }
 
 type node struct {
@@ -127,7 +129,8 @@ func Compile(m *onnx.Model, opts ...Option) (*Graph, error) {
 
 	// Build every supported node, collecting all problems before failing.
 	var unsupported, rejected []string
-	env := &Env{GEMM: cfg.gemm, Opset: opset}
+	g.arena = newArena()
+	env := &Env{GEMM: cfg.gemm, Opset: opset, arena: g.arena}
 	built := make([]Op, len(order))
 	for k, n := range order {
 		if n.Domain != "" && n.Domain != "ai.onnx" {

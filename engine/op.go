@@ -29,6 +29,8 @@ type Differentiable interface {
 type Env struct {
 	GEMM  kernel.GEMM
 	Opset int64
+	// arena, when set, supplies reusable output buffers (see arena.go).
+	arena *arena
 }
 
 // Builder compiles one node, validating its attributes.

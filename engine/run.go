@@ -135,6 +135,7 @@ func (g *Graph) Run(ctx context.Context, inputs map[string]*tensor.Tensor, opt R
 		for _, v := range nd.in {
 			if v >= 0 && g.lastUse[v] == k && g.producer[v] >= 0 && !keep[v] && !g.isOutput[v] && p.vals[v] != nil {
 				p.liveBytes -= dataBytes(p.vals[v])
+				g.recycle(p, v)
 				p.vals[v] = nil
 				live--
 			}
@@ -146,6 +147,7 @@ func (g *Graph) Run(ctx context.Context, inputs map[string]*tensor.Tensor, opt R
 		for _, v := range nd.out {
 			if v >= 0 && g.lastUse[v] < 0 && !keep[v] && !g.isOutput[v] {
 				p.liveBytes -= dataBytes(p.vals[v])
+				g.recycle(p, v)
 				p.vals[v] = nil
 				live--
 			}
