@@ -26,6 +26,10 @@ type convOp struct {
 	// largest temporaries of a forward pass and zeroing fresh ones cost as
 	// much as the im2col itself.
 	cols sync.Pool
+	// plans caches the im2col/depthwise plan per input size, made once
+	// and reused by every later call of that size.
+	plans planCache
+	arena *arena // output buffers; nil allocates
 }
 
 // colBuf returns a buffer of n floats from the pool; its contents are
@@ -54,7 +58,7 @@ func buildConv(n *onnx.Node, env *Env) (Op, error) {
 	if len(n.Inputs) < 2 {
 		return nil, fmt.Errorf("Conv needs X and W, got %d inputs", len(n.Inputs))
 	}
-	return &convOp{win: w, group: int(g), gemm: env.GEMM}, nil
+	return &convOp{win: w, group: int(g), gemm: env.GEMM, arena: env.arena}, nil
 }
 
 // convShape is the resolved problem for given X and W.
@@ -120,10 +124,17 @@ func (op *convOp) Forward(in []*tensor.Tensor) ([]*tensor.Tensor, error) {
 		b = in[2].F32
 	}
 	g := s.g
-	y := tensor.New(g.outShape(s.n, s.m, s.spatial)...)
+	// Every element of y is written below (GEMM with beta 0, or the
+	// depthwise loops), so a recycled, unzeroed buffer is fine.
+	y := op.arena.tensor(g.outShape(s.n, s.m, s.spatial)...)
 	ihw, ohw := g.ih*g.iw, g.oh*g.ow
+	plan, perr := op.plans.plan(g)
 	if s.depthwise() {
-		depthwiseForward(x.F32, w.F32, y.F32, s)
+		if perr != nil {
+			depthwiseForward(x.F32, w.F32, y.F32, s)
+		} else if err := planDepthwise(plan, x.F32, w.F32, y.F32, s); err != nil {
+			return nil, err
+		}
 	} else {
 		kk := s.cg * g.kh * g.kw
 		var col []float32
@@ -137,7 +148,11 @@ func (op *convOp) Forward(in []*tensor.Tensor) ([]*tensor.Tensor, error) {
 				xg := x.F32[(n*s.c+gi*s.cg)*ihw : (n*s.c+(gi+1)*s.cg)*ihw]
 				src := xg
 				if col != nil {
-					im2col(xg, s.cg, g, col)
+					if perr != nil {
+						im2col(xg, s.cg, g, col)
+					} else if err := planIm2col(plan, xg, s.cg, g, col); err != nil {
+						return nil, err
+					}
 					src = col
 				}
 				yg := y.F32[(n*s.m+gi*s.mg)*ohw : (n*s.m+(gi+1)*s.mg)*ohw]
@@ -196,8 +211,22 @@ func (op *convOp) BackwardFor(in, out, gradOut []*tensor.Tensor, need []bool) ([
 	if needW {
 		dw = tensor.New(w.Shape...)
 	}
+	plan, perr := op.plans.plan(g)
 	if s.depthwise() {
-		depthwiseBackward(x.F32, w.F32, dy.F32, dx, dw, s)
+		if perr != nil {
+			depthwiseBackward(x.F32, w.F32, dy.F32, dx, dw, s)
+		} else {
+			var dxs, dws []float32
+			if dx != nil {
+				dxs = dx.F32
+			}
+			if dw != nil {
+				dws = dw.F32
+			}
+			if err := planDepthwiseBackward(plan, x.F32, w.F32, dy.F32, dxs, dws, s); err != nil {
+				return nil, err
+			}
+		}
 	} else if needX || needW {
 		kk := s.cg * g.kh * g.kw
 		pw := s.pointwise()
@@ -216,7 +245,11 @@ func (op *convOp) BackwardFor(in, out, gradOut []*tensor.Tensor, need []bool) ([
 					xg := x.F32[off : off+s.cg*ihw]
 					src := xg
 					if !pw {
-						im2col(xg, s.cg, g, col)
+						if perr != nil {
+							im2col(xg, s.cg, g, col)
+						} else if err := planIm2col(plan, xg, s.cg, g, col); err != nil {
+							return nil, err
+						}
 						src = col
 					}
 					// dW_g += dY_g · colᵀ
@@ -233,7 +266,11 @@ func (op *convOp) BackwardFor(in, out, gradOut []*tensor.Tensor, need []bool) ([
 					op.gemm.Sgemm(true, false, kk, ohw, s.mg, 1, wg, kk, dyg, ohw, 0, dxg, ohw)
 				} else {
 					op.gemm.Sgemm(true, false, kk, ohw, s.mg, 1, wg, kk, dyg, ohw, 0, dcol, ohw)
-					col2im(dcol, s.cg, g, dxg)
+					if perr != nil {
+						col2im(dcol, s.cg, g, dxg)
+					} else if err := planCol2im(plan, dcol, s.cg, g, dxg); err != nil {
+						return nil, err
+					}
 				}
 			}
 		}

@@ -15,6 +15,10 @@ import "fmt"
 // row (unit-stride rows are contiguous loops the compiler keeps free of
 // bounds checks), using the plan's precomputed valid ranges for padding.
 func (p *Im2colPlan) Depthwise(dst, src, w []float32, multiplier int) error {
+	return p.DepthwiseRange(dst, src, w, multiplier, 0, p.g.C*multiplier)
+}
+
+func (p *Im2colPlan) checkDepthwise(dst, src, w []float32, multiplier, m0, m1 int, needSrc bool) error {
 	g := p.g
 	if multiplier <= 0 {
 		return fmt.Errorf("kernel: depthwise multiplier %d must be positive", multiplier)
@@ -23,14 +27,29 @@ func (p *Im2colPlan) Depthwise(dst, src, w []float32, multiplier int) error {
 	ohw := p.oh * p.ow
 	taps := g.KH * g.KW
 	switch {
-	case len(src) < g.C*g.H*g.W:
+	case m0 < 0 || m1 > m || m0 > m1:
+		return fmt.Errorf("kernel: depthwise channel range [%d, %d) outside [0, %d)", m0, m1, m)
+	case needSrc && len(src) < g.C*g.H*g.W:
 		return fmt.Errorf("kernel: depthwise input has %d values, want %d (%d×%d×%d)", len(src), g.C*g.H*g.W, g.C, g.H, g.W)
 	case len(w) < m*taps:
 		return fmt.Errorf("kernel: depthwise weights have %d values, want %d (%d×%d×%d)", len(w), m*taps, m, g.KH, g.KW)
 	case len(dst) < m*ohw:
 		return fmt.Errorf("kernel: depthwise output has %d values, want %d (%d×%d×%d)", len(dst), m*ohw, m, p.oh, p.ow)
 	}
-	for mo := 0; mo < m; mo++ {
+	return nil
+}
+
+// DepthwiseRange is Depthwise restricted to output channels [m0, m1), so
+// callers can split the channels over goroutines; the other output
+// channels are not touched.
+func (p *Im2colPlan) DepthwiseRange(dst, src, w []float32, multiplier, m0, m1 int) error {
+	if err := p.checkDepthwise(dst, src, w, multiplier, m0, m1, true); err != nil {
+		return err
+	}
+	g := p.g
+	ohw := p.oh * p.ow
+	taps := g.KH * g.KW
+	for mo := m0; mo < m1; mo++ {
 		plane := src[(mo/multiplier)*g.H*g.W : (mo/multiplier+1)*g.H*g.W]
 		out := dst[mo*ohw : (mo+1)*ohw]
 		clear(out)
@@ -59,6 +78,90 @@ func (p *Im2colPlan) Depthwise(dst, src, w []float32, multiplier int) error {
 						o[j] += wv * in[iw]
 						iw += g.StrideW
 					}
+				}
+			}
+		}
+	}
+	return nil
+}
+
+// DepthwiseBackward accumulates the gradients of a depthwise convolution
+// for input channels [c0, c1) (and their output channels): dsrc += the
+// input gradient and dw += the filter gradient, given the output gradient
+// dy. Either of dsrc and dw may be nil to skip it; src is read only for
+// dw. It is the adjoint of
+// DepthwiseRange tap by tap: every forward row update o += w·in becomes
+// din += w·dout and dw += dout·in over the same valid ranges, so the
+// padding logic is shared with the forward pass.
+func (p *Im2colPlan) DepthwiseBackward(dsrc, dw, dy, src, w []float32, multiplier, c0, c1 int) error {
+	if c0 < 0 || c1 > p.g.C || c0 > c1 {
+		return fmt.Errorf("kernel: depthwise backward channel range [%d, %d) outside [0, %d)", c0, c1, p.g.C)
+	}
+	if err := p.checkDepthwise(dy, src, w, multiplier, c0*multiplier, c1*multiplier, dw != nil); err != nil {
+		return err
+	}
+	g := p.g
+	ohw := p.oh * p.ow
+	taps := g.KH * g.KW
+	if dsrc != nil && len(dsrc) < g.C*g.H*g.W {
+		return fmt.Errorf("kernel: depthwise input gradient has %d values, want %d", len(dsrc), g.C*g.H*g.W)
+	}
+	if dw != nil && len(dw) < g.C*multiplier*taps {
+		return fmt.Errorf("kernel: depthwise filter gradient has %d values, want %d", len(dw), g.C*multiplier*taps)
+	}
+	for mo := c0 * multiplier; mo < c1*multiplier; mo++ {
+		ch := mo / multiplier
+		gy := dy[mo*ohw : (mo+1)*ohw]
+		filt := w[mo*taps : (mo+1)*taps]
+		var plane, dplane, dfilt []float32
+		if dw != nil {
+			plane = src[ch*g.H*g.W : (ch+1)*g.H*g.W]
+			dfilt = dw[mo*taps : (mo+1)*taps]
+		}
+		if dsrc != nil {
+			dplane = dsrc[ch*g.H*g.W : (ch+1)*g.H*g.W]
+		}
+		for kh := 0; kh < g.KH; kh++ {
+			for kw := 0; kw < g.KW; kw++ {
+				wv := filt[kh*g.KW+kw]
+				owLo, owHi := p.owLo[kw], p.owHi[kw]
+				if owLo == owHi {
+					continue
+				}
+				var acc float32
+				for oh := p.ohLo[kh]; oh < p.ohHi[kh]; oh++ {
+					ih := oh*g.StrideH - g.PadTop + kh*g.DilationH
+					iw0 := owLo*g.StrideW - g.PadLeft + kw*g.DilationW
+					o := gy[oh*p.ow+owLo : oh*p.ow+owHi]
+					if g.StrideW == 1 {
+						if dplane != nil {
+							d := dplane[ih*g.W+iw0 : ih*g.W+iw0+len(o)]
+							for j, v := range o {
+								d[j] += wv * v
+							}
+						}
+						if plane != nil {
+							in := plane[ih*g.W+iw0 : ih*g.W+iw0+len(o)]
+							for j, v := range o {
+								acc += v * in[j]
+							}
+						}
+						continue
+					}
+					iw := iw0
+					row := ih * g.W
+					for _, v := range o {
+						if dplane != nil {
+							dplane[row+iw] += wv * v
+						}
+						if plane != nil {
+							acc += v * plane[row+iw]
+						}
+						iw += g.StrideW
+					}
+				}
+				if dfilt != nil {
+					dfilt[kh*g.KW+kw] += acc
 				}
 			}
 		}

@@ -1,0 +1,150 @@
+package engine
+
+import (
+	"fmt"
+	"sync"
+
+	"heedmap/kernel"
+)
+
+// planKey identifies the spatial input size a convolution node was planned
+// for; kernel, strides, pads and dilations are fixed per node.
+type planKey struct{ h, w int }
+
+// planCache holds one single-channel kernel.Im2colPlan per input size
+// seen by a node. A plan for one channel serves every channel and group
+// (they share the geometry), so channels can be split over goroutines
+// without a plan per split. Plans are read-only once made, so a cache is
+// safe for concurrent Runs.
+type planCache struct {
+	m sync.Map // planKey → *kernel.Im2colPlan
+}
+
+// plan returns the single-channel plan for g, making it on first use. It
+// fails when the kernel package's output size disagrees with the node's
+// resolved geometry (it cannot for explicit pads, but the check keeps a
+// silent mismatch impossible).
+func (c *planCache) plan(g geom2) (*kernel.Im2colPlan, error) {
+	key := planKey{g.ih, g.iw}
+	if p, ok := c.m.Load(key); ok {
+		return p.(*kernel.Im2colPlan), nil
+	}
+	p, err := kernel.NewIm2col(kernel.Conv2D{
+		C: 1, H: g.ih, W: g.iw, KH: g.kh, KW: g.kw,
+		StrideH: g.sh, StrideW: g.sw, DilationH: g.dh, DilationW: g.dw,
+		PadTop: g.pt, PadLeft: g.pl, PadBottom: g.pb, PadRight: g.pr,
+	})
+	if err != nil {
+		return nil, err
+	}
+	if oh, ow := p.Out(); oh != g.oh || ow != g.ow {
+		return nil, fmt.Errorf("im2col plan output %dx%d, node geometry %dx%d", oh, ow, g.oh, g.ow)
+	}
+	c.m.Store(key, p)
+	return p, nil
+}
+
+// planIm2col writes the column matrix of the c-channel image x into col,
+// splitting channels over goroutines.
+func planIm2col(p *kernel.Im2colPlan, x []float32, c int, g geom2, col []float32) error {
+	ihw, ohw, kk := g.ih*g.iw, g.oh*g.ow, g.kh*g.kw
+	var firstErr error
+	var mu sync.Mutex
+	splitWork(c, c*kk*ohw, func(c0, c1 int) {
+		for ch := c0; ch < c1; ch++ {
+			if err := p.Im2col(col[ch*kk*ohw:(ch+1)*kk*ohw], x[ch*ihw:(ch+1)*ihw]); err != nil {
+				mu.Lock()
+				firstErr = err
+				mu.Unlock()
+				return
+			}
+		}
+	})
+	return firstErr
+}
+
+// planCol2im adds the column gradients col back onto the c-channel image
+// dx (the adjoint of planIm2col), splitting channels over goroutines; each
+// goroutine owns the planes it writes.
+func planCol2im(p *kernel.Im2colPlan, col []float32, c int, g geom2, dx []float32) error {
+	ihw, ohw, kk := g.ih*g.iw, g.oh*g.ow, g.kh*g.kw
+	var firstErr error
+	var mu sync.Mutex
+	splitWork(c, c*kk*ohw, func(c0, c1 int) {
+		for ch := c0; ch < c1; ch++ {
+			if err := p.Col2im(dx[ch*ihw:(ch+1)*ihw], col[ch*kk*ohw:(ch+1)*kk*ohw]); err != nil {
+				mu.Lock()
+				firstErr = err
+				mu.Unlock()
+				return
+			}
+		}
+	})
+	return firstErr
+}
+
+// planDepthwise computes a depthwise convolution through the kernel
+// package's row-wise loops, splitting (image, channel) planes over
+// goroutines.
+func planDepthwise(p *kernel.Im2colPlan, x, w, y []float32, s convShape) error {
+	g := s.g
+	ihw, ohw, khw := g.ih*g.iw, g.oh*g.ow, g.kh*g.kw
+	planes := s.n * s.c
+	var firstErr error
+	var mu sync.Mutex
+	splitWork(planes, planes*s.mg*ohw*khw, func(p0, p1 int) {
+		for pl := p0; pl < p1; pl++ {
+			n, ch := pl/s.c, pl%s.c
+			m0 := ch * s.mg
+			err := p.DepthwiseRange(
+				y[(n*s.m+m0)*ohw:(n*s.m+m0+s.mg)*ohw],
+				x[(n*s.c+ch)*ihw:(n*s.c+ch+1)*ihw],
+				w[m0*khw:(m0+s.mg)*khw], s.mg, 0, s.mg)
+			if err != nil {
+				mu.Lock()
+				firstErr = err
+				mu.Unlock()
+				return
+			}
+		}
+	})
+	return firstErr
+}
+
+// planDepthwiseBackward accumulates dx and dw (either may be nil) for the
+// depthwise path. Work is split by input channel so each goroutine owns
+// the dx planes and dw rows it writes; images are summed inside.
+func planDepthwiseBackward(p *kernel.Im2colPlan, x, w, dy, dx, dw []float32, s convShape) error {
+	g := s.g
+	ihw, ohw, khw := g.ih*g.iw, g.oh*g.ow, g.kh*g.kw
+	var firstErr error
+	var mu sync.Mutex
+	splitWork(s.c, s.n*s.m*ohw*khw, func(c0, c1 int) {
+		for ch := c0; ch < c1; ch++ {
+			m0 := ch * s.mg
+			var dwc []float32
+			if dw != nil {
+				dwc = dw[m0*khw : (m0+s.mg)*khw]
+			}
+			for n := 0; n < s.n; n++ {
+				var dxc, xc []float32
+				if dx != nil {
+					dxc = dx[(n*s.c+ch)*ihw : (n*s.c+ch+1)*ihw]
+				}
+				if dw != nil { // x is not retained when only dx is wanted
+					xc = x[(n*s.c+ch)*ihw : (n*s.c+ch+1)*ihw]
+				}
+				err := p.DepthwiseBackward(dxc, dwc,
+					dy[(n*s.m+m0)*ohw:(n*s.m+m0+s.mg)*ohw],
+					xc, w[m0*khw:(m0+s.mg)*khw], s.mg, 0, 1)
+				if err != nil {
+					mu.Lock()
+					firstErr = err
+					mu.Unlock()
+					return
+				}
+			}
+		}
+	})
+	return firstErr
+}

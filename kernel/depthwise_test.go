@@ -1,0 +1,71 @@
+package kernel_test
+
+import (
+	"math"
+	"math/rand/v2"
+	"testing"
+
+	"heedmap/kernel"
+)
+
+// TestDepthwiseBackwardIsAdjoint checks DepthwiseBackward against the
+// definition of the adjoint: the convolution y = x ⊛ w is linear in x and
+// in w, so for any dy, ⟨y, dy⟩ = ⟨x, dx⟩ = ⟨w, dw⟩ where dx and dw are the
+// adjoint maps applied to dy. The forward side is checked against the
+// ONNX Conv definition by TestDepthwiseMatchesDirectConv.
+func TestDepthwiseBackwardIsAdjoint(t *testing.T) {
+	r := rand.New(rand.NewPCG(21, 22))
+	for i, tc := range []struct {
+		c, h, w, mult int
+		g             kernel.Conv2D
+	}{
+		{4, 9, 9, 1, kernel.Conv2D{KH: 3, KW: 3, PadTop: 1, PadLeft: 1, PadBottom: 1, PadRight: 1}},
+		{3, 12, 11, 3, kernel.Conv2D{KH: 3, KW: 3, StrideH: 2, StrideW: 2, PadTop: 1, PadLeft: 1, PadBottom: 1, PadRight: 1}},
+		{2, 10, 13, 2, kernel.Conv2D{KH: 5, KW: 3, StrideW: 3, DilationH: 2, PadTop: 3, PadLeft: 0, PadBottom: 1, PadRight: 2}},
+		{1, 3, 3, 1, kernel.Conv2D{KH: 5, KW: 5, PadTop: 2, PadLeft: 2, PadBottom: 2, PadRight: 2}},
+	} {
+		g := tc.g
+		g.C, g.H, g.W = tc.c, tc.h, tc.w
+		p, err := kernel.NewIm2col(g)
+		if err != nil {
+			t.Fatal(err)
+		}
+		g = p.Geometry()
+		oh, ow := p.Out()
+		m := tc.c * tc.mult
+		x := randSlice(r, tc.c*tc.h*tc.w)
+		w := randSlice(r, m*g.KH*g.KW)
+		dy := randSlice(r, m*oh*ow)
+		y := make([]float32, m*oh*ow)
+		if err := p.Depthwise(y, x, w, tc.mult); err != nil {
+			t.Fatal(err)
+		}
+		dx := make([]float32, len(x))
+		dw := make([]float32, len(w))
+		// Two halves of the channels, to exercise the range arguments.
+		for _, rg := range [][2]int{{0, tc.c / 2}, {tc.c / 2, tc.c}} {
+			if err := p.DepthwiseBackward(dx, dw, dy, x, w, tc.mult, rg[0], rg[1]); err != nil {
+				t.Fatal(err)
+			}
+		}
+		dot := func(a, b []float32) float64 {
+			var s float64
+			for j := range a {
+				s += float64(a[j]) * float64(b[j])
+			}
+			return s
+		}
+		yy, xx, ww := dot(y, dy), dot(x, dx), dot(w, dw)
+		if math.Abs(yy-xx) > 1e-4*(1+math.Abs(yy)) || math.Abs(yy-ww) > 1e-4*(1+math.Abs(yy)) {
+			t.Fatalf("case %d: <y,dy>=%g <x,dx>=%g <w,dw>=%g", i, yy, xx, ww)
+		}
+		// Only dx: x is not read.
+		dx2 := make([]float32, len(x))
+		if err := p.DepthwiseBackward(dx2, nil, dy, nil, w, tc.mult, 0, tc.c); err != nil {
+			t.Fatal(err)
+		}
+		if err := closeTo(dx2, dx, 1e-6, 1e-6); err != nil {
+			t.Fatalf("case %d, dx only: %v", i, err)
+		}
+	}
+}
