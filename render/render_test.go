@@ -2,6 +2,7 @@ package render
 
 import (
 	"flag"
+	"fmt"
 	"image"
 	"image/color"
 	"image/png"
@@ -547,5 +548,43 @@ func TestOffLesionWording(t *testing.T) {
 	m.OffLesion, m.OffLesionBox = 0.046, 1
 	if got := offLesionShort(m); got != "4.6 % \u00b7 box 1" {
 		t.Errorf("region: %q", got)
+	}
+}
+
+// A category looks the same on every image of a report, whatever other
+// categories the image carries, and the seven usual categories plus
+// user-named ones never share a look within an image.
+func TestArtefactStylesStable(t *testing.T) {
+	img := image.NewRGBA(image.Rect(0, 0, 4, 4))
+	mk := func(names ...string) map[string]artefactLayer {
+		arts := map[string][]bool{}
+		for _, n := range names {
+			arts[n] = make([]bool, 16)
+		}
+		b, err := newBase(img, nil, arts)
+		if err != nil {
+			t.Fatal(err)
+		}
+		out := map[string]artefactLayer{}
+		for _, a := range b.artefacts {
+			out[a.name] = a
+		}
+		return out
+	}
+	look := func(a artefactLayer) string { return fmt.Sprint(a.ink, a.dash) }
+	one := mk("ruler")
+	many := mk("bubbles", "dark_corners", "gel border", "hair", "ink", "patches", "ruler", "pen mark", "sticker")
+	if look(one["ruler"]) != look(many["ruler"]) {
+		t.Errorf("ruler looks different alone (%s) and with others (%s)", look(one["ruler"]), look(many["ruler"]))
+	}
+	if a, b := mk("sticker", "hair")["sticker"], mk("sticker")["sticker"]; look(a) != look(b) {
+		t.Errorf("a user category's look depends on the others: %s vs %s", look(a), look(b))
+	}
+	seen := map[string]string{}
+	for name, a := range many {
+		if other, dup := seen[look(a)]; dup {
+			t.Errorf("%q and %q share a look %s", name, other, look(a))
+		}
+		seen[look(a)] = name
 	}
 }

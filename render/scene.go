@@ -2,11 +2,14 @@ package render
 
 import (
 	"fmt"
+	"hash/fnv"
 	"image"
 	"image/color"
 	"image/draw"
 	"math"
 	"sort"
+	"strings"
+	"unicode"
 
 	"github.com/disintegration/imaging"
 	"github.com/fogleman/gg"
@@ -137,6 +140,51 @@ type artefactLayer struct {
 	contours [][]image.Point
 }
 
+// knownArtefactSlots fixes the look of the usual categories (Bissoto et
+// al., CVPR Workshops 2020, list rulers, ink markings, hair, dark corners,
+// gel bubbles, gel borders and patches), so that a category looks the same
+// on every overlay and panel of a report whatever else the image carries.
+var knownArtefactSlots = map[string]int{
+	"ruler": 0, "rulers": 0, "scalebar": 0,
+	"ink": 1, "inkmarking": 1, "inkmarkings": 1, "marker": 1,
+	"hair":       2,
+	"darkcorner": 3, "darkcorners": 3, "vignette": 3,
+	"bubble": 4, "bubbles": 4, "gelbubble": 4, "gelbubbles": 4,
+	"gelborder": 5, "gelborders": 5,
+	"patch": 6, "patches": 6,
+}
+
+// artefactSlots is the number of distinct ink × dash looks: slot s takes
+// ink s mod 5 and dash (s mod 5 + s div 5) mod 5, so the 25 slots are 25
+// different pairs.
+const artefactSlots = 25
+
+// artefactSlot picks a category's look: its fixed slot when the name is a
+// usual one, else a slot from a hash of the name (stable across images),
+// moving to the next free slot when another category of this image holds
+// it. Two categories of one image never share a look unless an image has
+// more than 25 categories.
+func artefactSlot(name string, taken map[int]bool) int {
+	key := strings.Map(func(r rune) rune {
+		switch r {
+		case ' ', '-', '_', '.':
+			return -1
+		}
+		return unicode.ToLower(r)
+	}, name)
+	slot, ok := knownArtefactSlots[key]
+	if !ok {
+		h := fnv.New32a()
+		h.Write([]byte(key))
+		slot = int(h.Sum32() % artefactSlots)
+	}
+	for i := 0; i < artefactSlots && taken[slot]; i++ {
+		slot = (slot + 1) % artefactSlots
+	}
+	taken[slot] = true
+	return slot
+}
+
 func newBase(img image.Image, lesion []bool, artefacts map[string][]bool) (*base, error) {
 	if img == nil {
 		return nil, fmt.Errorf("render: nil image")
@@ -159,16 +207,18 @@ func newBase(img image.Image, lesion []bool, artefacts map[string][]bool) (*base
 	for k := range artefacts {
 		names = append(names, k)
 	}
-	sort.Strings(names) // stable styles: the same category gets the same look
-	for i, name := range names {
+	sort.Strings(names)
+	taken := map[int]bool{}
+	for _, name := range names {
 		m := artefacts[name]
 		if len(m) != w*h {
 			return nil, fmt.Errorf("render: artefact mask %q has %d pixels, image is %d×%d", name, len(m), w, h)
 		}
+		slot := artefactSlot(name, taken)
 		bs.artefacts = append(bs.artefacts, artefactLayer{
 			name:     name,
-			ink:      artefactInks[i%len(artefactInks)],
-			dash:     artefactDashes[i%len(artefactDashes)],
+			ink:      artefactInks[slot%len(artefactInks)],
+			dash:     artefactDashes[(slot%len(artefactInks)+slot/len(artefactInks))%len(artefactDashes)],
 			mask:     m,
 			contours: contours(m, w, h),
 		})
