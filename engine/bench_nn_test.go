@@ -6,6 +6,7 @@ import (
 	"math/rand"
 	"os"
 	"path/filepath"
+	"syscall"
 	"testing"
 
 	"heedmap/tensor"
@@ -51,6 +52,17 @@ func benchInput(b *testing.B, g *Graph, batch int) (string, *tensor.Tensor) {
 	return in.Name, x
 }
 
+// cpuSeconds is the user+system CPU time this process has used. On a
+// shared machine wall-clock img/s swings with other load, while CPU time
+// per image (cpu-ms/img) measures the work itself.
+func cpuSeconds() float64 {
+	var ru syscall.Rusage
+	if err := syscall.Getrusage(syscall.RUSAGE_SELF, &ru); err != nil {
+		return 0
+	}
+	return float64(ru.Utime.Nano()+ru.Stime.Nano()) / 1e9
+}
+
 // benchForward reports img/s and allocations per forward pass.
 func benchForward(b *testing.B, g *Graph, path string) {
 	for _, batch := range []int{1, 16} {
@@ -64,12 +76,14 @@ func benchForward(b *testing.B, g *Graph, path string) {
 			}
 			b.ReportAllocs()
 			b.ResetTimer()
+			cpu0 := cpuSeconds()
 			for i := 0; i < b.N; i++ {
 				if _, err := g.Run(ctx, in, RunOptions{}); err != nil {
 					b.Fatal(err)
 				}
 			}
 			b.ReportMetric(float64(batch*b.N)/b.Elapsed().Seconds(), "img/s")
+			b.ReportMetric((cpuSeconds()-cpu0)*1e3/float64(batch*b.N), "cpu-ms/img")
 		})
 	}
 }
@@ -101,10 +115,12 @@ func benchForwardBackward(b *testing.B, g *Graph, path string) {
 			step() // warm caches and pools
 			b.ReportAllocs()
 			b.ResetTimer()
+			cpu0 := cpuSeconds()
 			for i := 0; i < b.N; i++ {
 				step()
 			}
 			b.ReportMetric(float64(batch*b.N)/b.Elapsed().Seconds(), "img/s")
+			b.ReportMetric((cpuSeconds()-cpu0)*1e3/float64(batch*b.N), "cpu-ms/img")
 		})
 	}
 }

@@ -1,0 +1,86 @@
+package engine
+
+import (
+	"context"
+	"encoding/json"
+	"math"
+	"os"
+	"path/filepath"
+	"testing"
+
+	"heedmap/onnx"
+	"heedmap/tensor"
+)
+
+// TestArenaReuseKeepsResults runs the committed compact networks several
+// times through one Graph, interleaving a different input, so later passes
+// run on buffers recycled from earlier ones. Every pass on the reference
+// input must reproduce PyTorch's logits (testdata/nets/*/logits.pb, made by
+// testdata/reference/export_nets.py) and the first pass bit for bit, and
+// the arena must actually have been used.
+func TestArenaReuseKeepsResults(t *testing.T) {
+	for _, name := range []string{"resnet18", "mobilenet_v2"} {
+		t.Run(name, func(t *testing.T) {
+			dir := filepath.Join("..", "testdata", "nets", name)
+			b, err := os.ReadFile(filepath.Join(dir, "meta.json"))
+			if err != nil {
+				t.Skip(err)
+			}
+			var meta struct{ Input, Output string }
+			if err := json.Unmarshal(b, &meta); err != nil {
+				t.Fatal(err)
+			}
+			x, _, err := onnx.LoadTensor(filepath.Join(dir, "input.pb"))
+			if err != nil {
+				t.Fatal(err)
+			}
+			want, _, err := onnx.LoadTensor(filepath.Join(dir, "logits.pb"))
+			if err != nil {
+				t.Fatal(err)
+			}
+			g, err := Load(filepath.Join(dir, "model.onnx"))
+			if err != nil {
+				t.Fatal(err)
+			}
+			other := x.Clone()
+			for i := range other.F32 {
+				other.F32[i] = -0.5 * other.F32[i]
+			}
+			ctx := context.Background()
+			var first []float32
+			for pass := 0; pass < 3; pass++ {
+				for _, in := range []*tensor.Tensor{x, other} {
+					p, err := g.Run(ctx, map[string]*tensor.Tensor{meta.Input: in}, RunOptions{})
+					if err != nil {
+						t.Fatal(err)
+					}
+					if in != x {
+						continue
+					}
+					y, _ := p.Value(meta.Output)
+					var num, den float64
+					for i := range want.F32 {
+						num = math.Max(num, math.Abs(float64(y.F32[i])-float64(want.F32[i])))
+						den = math.Max(den, math.Abs(float64(want.F32[i])))
+					}
+					// 1e-4: the float32 tolerance networks_test.go uses (common practice).
+					if num/den > 1e-4 {
+						t.Fatalf("pass %d: logits differ from PyTorch by %.2e (relative)", pass, num/den)
+					}
+					if first == nil {
+						first = append([]float32(nil), y.F32...)
+						continue
+					}
+					for i := range first {
+						if y.F32[i] != first[i] {
+							t.Fatalf("pass %d: logit %d is %v, first pass %v", pass, i, y.F32[i], first[i])
+						}
+					}
+				}
+			}
+			if g.arena.reused() == 0 {
+				t.Fatal("no buffer was reused")
+			}
+		})
+	}
+}
