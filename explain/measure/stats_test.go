@@ -4,6 +4,7 @@ import (
 	"math"
 	"math/rand/v2"
 	"os"
+	"sort"
 	"testing"
 )
 
@@ -128,3 +129,40 @@ func TestBootstrapCoverage(t *testing.T) {
 		t.Errorf("coverage %.3f outside [0.92, 0.97]", c)
 	}
 }
+
+// The percentile interval estimates quantiles of the ideal bootstrap
+// distribution, the one with B → ∞ (Efron & Tibshirani 1993, ch. 6 and
+// 13). For n = 5 that distribution is known exactly by enumerating all 5⁵
+// = 3125 equally likely ordered resamples, so the Monte Carlo interval can
+// be checked against it without any reference to our resampler: with
+// B = 20 000 the Monte Carlo error of a 2.5 % quantile here is about 0.003,
+// and the tolerance is 0.02. An off-by-one in the index draw or a wrong
+// quantile level moves the ends by more than that.
+func TestBootstrapMatchesIdealBootstrap(t *testing.T) {
+	x := []float64{0.05, 0.2, 0.35, 0.8, 0.95}
+	for _, st := range []struct {
+		name string
+		f    Statistic
+	}{{"mean", Mean}, {"median", Median}} {
+		var ideal []float64
+		buf := make([]float64, 5)
+		for code := 0; code < 3125; code++ {
+			c := code
+			for i := range buf {
+				buf[i] = x[c%5]
+				c /= 5
+			}
+			ideal = append(ideal, st.f(buf))
+		}
+		sort.Float64s(ideal)
+		wantLo, wantHi := quantile(ideal, 0.025), quantile(ideal, 0.975)
+		lo, hi, err := Bootstrap(x, st.f, BootstrapConfig{Resamples: 20000, Level: 0.95, Seed1: 3, Seed2: 4})
+		if err != nil {
+			t.Fatal(err)
+		}
+		if math.Abs(lo-wantLo) > 0.02 || math.Abs(hi-wantHi) > 0.02 {
+			t.Errorf("%s: Monte Carlo %.4f–%.4f, ideal bootstrap %.4f–%.4f", st.name, lo, hi, wantLo, wantHi)
+		}
+	}
+}
+
