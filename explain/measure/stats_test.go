@@ -165,4 +165,3 @@ func TestBootstrapMatchesIdealBootstrap(t *testing.T) {
 		}
 	}
 }
-
