@@ -48,6 +48,8 @@ type Graph struct {
 	varying []bool
 	// arena recycles activation buffers across nodes and Runs (arena.go).
 	arena *arena
+	// fusion lists the Conv→activation pairs Run may fuse (fuse.go).
+	fusion *fusionPlan
 }
 
 type node struct {
@@ -239,6 +241,7 @@ func Compile(m *onnx.Model, opts ...Option) (*Graph, error) {
 			}
 		}
 	}
+	g.fusion = planFusion(g)
 	return g, nil
 }
 

@@ -112,7 +112,7 @@ func (g *Graph) Run(ctx context.Context, inputs map[string]*tensor.Tensor, opt R
 			}
 			in = append(in, p.vals[v])
 		}
-		out, err := safeForward(nd.op, in)
+		out, err := safeForward(g.fusedOp(k, keep), in)
 		if err != nil {
 			return nil, fmt.Errorf("engine: %s: %w", nd.label(), err)
 		}
