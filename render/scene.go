@@ -146,8 +146,9 @@ type artefactLayer struct {
 // on every overlay and panel of a report whatever else the image carries.
 var knownArtefactSlots = map[string]int{
 	"ruler": 0, "rulers": 0, "scalebar": 0,
-	"ink": 1, "inkmarking": 1, "inkmarkings": 1, "marker": 1,
-	"hair":       2,
+	// Ink markings are usually purple or blue: lime contrasts best.
+	"ink": 2, "inkmarking": 2, "inkmarkings": 2, "marker": 2,
+	"hair":       1,
 	"darkcorner": 3, "darkcorners": 3, "vignette": 3,
 	"bubble": 4, "bubbles": 4, "gelbubble": 4, "gelbubbles": 4,
 	"gelborder": 5, "gelborders": 5,
