@@ -16,8 +16,10 @@ import (
 // activation kept, and each batch of windows recomputes, layer by layer,
 // only the region its windows can reach, switching to full recomputation
 // where that region covers the map. Scores equal FullForward's up to float
-// summation order. Networks not backed by a compiled graph (FromGraph), or
-// taking channels-last input, are scored by FullForward.
+// summation order. Networks not backed by a compiled graph (FromGraph),
+// taking channels-last input, with more than one input or with a fixed
+// batch size are scored by FullForward. It is the default evaluator: exact
+// on every test and faster on every network measured (DEVELOPERS.md).
 type Incremental struct {
 	// BatchSize is the number of windows evaluated together; 0 = 16.
 	BatchSize int
@@ -28,7 +30,7 @@ type Incremental struct {
 
 func (e Incremental) Scores(ctx context.Context, net explain.Network, x, fill *tensor.Tensor, windows []Window, target explain.Target) ([]float64, error) {
 	g, input, output, ok := explain.GraphOf(net)
-	if !ok {
+	if !ok || len(g.Inputs()) != 1 {
 		return FullForward{BatchSize: e.BatchSize}.Scores(ctx, net, x, fill, windows, target)
 	}
 	if n := net.InputShape()[0]; n > 0 {

@@ -86,7 +86,7 @@ type Occlusion struct {
 	BlurSigma     float64               // FillBlur, pixels; 0 = Patch/2
 	Norm          explain.Normalization // the model's preprocessing
 	BatchSize     int                   // FullForward batch; default 16
-	Evaluator     Evaluator             // nil = FullForward
+	Evaluator     Evaluator             // nil = Incremental (exact; FullForward for non-graph networks)
 }
 
 func (Occlusion) Name() string { return "occlusion" }
@@ -206,7 +206,7 @@ func (o Occlusion) Attribute(ctx context.Context, net explain.Network, x *tensor
 	wins := Windows(w, h, patch, stride)
 	ev := o.Evaluator
 	if ev == nil {
-		ev = FullForward{BatchSize: o.BatchSize}
+		ev = Incremental{BatchSize: o.BatchSize}
 	}
 	scores, err := ev.Scores(ctx, net, x, fill, wins, t)
 	if err != nil {
