@@ -23,7 +23,11 @@ func chromium(t *testing.T, extra ...string) (stdout, stderr string) {
 	defer cancel()
 	args := []string{"--headless", "--no-sandbox", "--disable-gpu", "--disable-dev-shm-usage", "--disable-quic", "--no-first-run",
 		"--disable-background-networking", "--disable-component-update", "--disable-sync",
-		"--user-data-dir=" + t.TempDir(), "--enable-logging=stderr", "--v=0"}
+		"--user-data-dir=" + t.TempDir(), "--enable-logging=stderr", "--v=0",
+		// Let the page's load handler finish before the DOM is dumped or
+		// the screenshot taken, however slow the machine: virtual time
+		// advances only when the page is idle.
+		"--virtual-time-budget=10000"}
 	cmd := exec.CommandContext(ctx, chromiumPath, append(args, extra...)...)
 	var o, e bytes.Buffer
 	cmd.Stdout, cmd.Stderr = &o, &e
