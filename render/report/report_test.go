@@ -380,3 +380,16 @@ func TestHashInputs(t *testing.T) {
 		t.Errorf("missing mask: %v", err)
 	}
 }
+
+// Per-category flag thresholds are part of the flag rule the reader sees.
+func TestHTMLShowsPerCategoryThresholds(t *testing.T) {
+	r := syntheticReport(t, "")
+	r.Summary.Options.ArtefactThresholds = map[string]float64{"ruler": 0.06}
+	var b bytes.Buffer
+	if err := WriteHTML(&b, r); err != nil {
+		t.Fatal(err)
+	}
+	if !strings.Contains(b.String(), "ruler: more than 0.06") {
+		t.Error("per-category threshold missing from the flag rule")
+	}
+}
