@@ -389,7 +389,7 @@ func TestHTMLShowsPerCategoryThresholds(t *testing.T) {
 	if err := WriteHTML(&b, r); err != nil {
 		t.Fatal(err)
 	}
-	if !strings.Contains(b.String(), "ruler: more than 0.06") {
+	if !strings.Contains(b.String(), "0.06 on ruler") {
 		t.Error("per-category threshold missing from the flag rule")
 	}
 }
