@@ -5,6 +5,7 @@ import (
 	"golang.org/x/image/font"
 	"golang.org/x/image/font/gofont/gobold"
 	"golang.org/x/image/font/gofont/goregular"
+	"golang.org/x/image/math/fixed"
 )
 
 // The Go fonts are embedded in golang.org/x/image, so rendering needs no
@@ -29,5 +30,29 @@ func face(bold bool, px float64) font.Face {
 	if bold {
 		f = fontBold
 	}
-	return truetype.NewFace(f, &truetype.Options{Size: px, DPI: 72, Hinting: font.HintingFull})
+	return &advanceCache{Face: truetype.NewFace(f, &truetype.Options{Size: px, DPI: 72, Hinting: font.HintingFull}), adv: map[rune]advance{}}
+}
+
+// advanceCache remembers glyph advances. truetype's face caches rendered
+// glyphs but runs the hinter again for every GlyphAdvance, and layout
+// measures the same short strings many times while fitting captions and
+// tiles: measuring was about 5 % of the demo's per-image CPU time. Like the
+// face it wraps, it is for one goroutine.
+type advanceCache struct {
+	font.Face
+	adv map[rune]advance
+}
+
+type advance struct {
+	a  fixed.Int26_6
+	ok bool
+}
+
+func (c *advanceCache) GlyphAdvance(r rune) (fixed.Int26_6, bool) {
+	if v, hit := c.adv[r]; hit {
+		return v.a, v.ok
+	}
+	a, ok := c.Face.GlyphAdvance(r)
+	c.adv[r] = advance{a, ok}
+	return a, ok
 }
