@@ -319,7 +319,7 @@ func fmtCI(iv measure.Interval) string {
 	if !iv.Lo.OK || !iv.Hi.OK {
 		return "undefined"
 	}
-	return fmt.Sprintf("%.3f-%.3f", iv.Lo.V, iv.Hi.V)
+	return fmt.Sprintf("%.3f–%.3f", iv.Lo.V, iv.Hi.V)
 }
 
 // writeDemoTable prints model, verdict, flagged rate and median inside mass.
@@ -339,14 +339,14 @@ var demoIndex = template.Must(template.New("index").Parse(`<!DOCTYPE html>
 <style>
 html { font-size: 22px; } body { font-family: "DejaVu Sans", "Liberation Sans", Arial, sans-serif; margin: 1.5rem auto; max-width: 1400px; padding: 0 1.5rem; color: #111; line-height: 1.45; }
 h1 { color: #0f2a5c; } table { border-collapse: collapse; margin: 1rem 0; } th, td { border: 1px solid #9ca3af; padding: .4rem .7rem; text-align: left; }
-th { background: #e8edf6; } .PASS, .FAIL { color: #fff; font-weight: bold; padding: .1em .5em; border-radius: .3em; } .PASS { background: #0b6b2e; } .FAIL { background: #b00020; }
+th { background: #e8edf6; } td.n { white-space: nowrap; font-variant-numeric: tabular-nums; } .PASS, .FAIL { color: #fff; font-weight: bold; padding: .1em .5em; border-radius: .3em; } .PASS { background: #0b6b2e; } .FAIL { background: #b00020; }
 .note { background: #fff1b8; border: 3px solid #7a5b00; padding: .6rem 1rem; font-weight: bold; }
 </style></head><body>
 <h1>heedmap demo: a shortcut model and a clean model</h1>
 <p class="note">Invented scenario: {{.N}} synthetic, dermoscopy-like scenes drawn by heedmap itself; no real images, no patient data. Research and quality-assurance tool, not a diagnostic device.</p>
 <p>Both classifiers were trained on synthetic scenes; the shortcut model where a ruler co-occurred with the malignant-like class, the clean model where it did not. Each is explained on the same scenes with all seven methods and judged against the same <a href="criteria.yaml">acceptance criteria</a> (thresholds from the scenes' geometry: lesions cover {{printf "%.1f" .Lesion}} % of a scene, rulers {{printf "%.1f" .Ruler}} %).</p>
 <table><thead><tr><th>Model</th><th>Trained</th><th>Verdict</th><th>Criteria met</th><th>Flagged ({{.Primary}})</th><th>Flagged for the ruler</th><th>Median inside mass ({{.Primary}}) [95 % CI]</th><th>Report</th></tr></thead><tbody>
-{{range .Rows}}<tr><td><strong>{{.Model}}</strong></td><td>{{.About}}</td><td><span class="{{.Verdict}}">{{.Verdict}}</span></td><td>{{.Met}} of {{.Criteria}}</td><td>{{.FlaggedText}}</td><td>{{.Ruler}}</td><td>{{.MedianText}}</td><td><a href="{{.Link}}">{{.Link}}</a></td></tr>
+{{range .Rows}}<tr><td><strong>{{.Model}}</strong></td><td>{{.About}}</td><td><span class="{{.Verdict}}">{{.Verdict}}</span></td><td>{{.Met}} of {{.Criteria}}</td><td class="n">{{.FlaggedText}}</td><td class="n">{{.Ruler}}</td><td class="n">{{.MedianText}}</td><td><a href="{{.Link}}">{{.Link}}</a></td></tr>
 {{end}}</tbody></table>
 <p>The shortcut model failing its criteria is the expected outcome: its evidence sits on the ruler, not on the lesion.</p>
 </body></html>
