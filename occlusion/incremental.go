@@ -54,9 +54,17 @@ func (e Incremental) Scores(ctx context.Context, net explain.Network, x, fill *t
 	for i, w := range windows {
 		rects[i] = engine.Rect{X0: w.X, Y0: w.Y, X1: w.X + w.W, Y1: w.Y + w.H}
 	}
-	out := make([]float64, 0, len(windows))
-	for s := 0; s < len(rects); s += bs {
-		part := rects[s:min(s+bs, len(rects))]
+	// Batches of windows with equal patch sizes (border windows together)
+	// pad fewer patches; scores are written back in window order.
+	order := inc.Order(rects)
+	out := make([]float64, len(windows))
+	part := make([]engine.Rect, 0, bs)
+	for s := 0; s < len(order); s += bs {
+		idx := order[s:min(s+bs, len(order))]
+		part = part[:0]
+		for _, i := range idx {
+			part = append(part, rects[i])
+		}
 		y, err := inc.Occlude(ctx, fill, part)
 		if err != nil {
 			return nil, fmt.Errorf("occlusion: %w", err)
@@ -71,7 +79,9 @@ func (e Incremental) Scores(ctx context.Context, net explain.Network, x, fill *t
 		if len(sc) < len(part) {
 			return nil, fmt.Errorf("occlusion: %d scores for %d windows", len(sc), len(part))
 		}
-		out = append(out, sc[:len(part)]...)
+		for j, i := range idx {
+			out[i] = sc[j]
+		}
 	}
 	return out, nil
 }
