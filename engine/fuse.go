@@ -35,28 +35,10 @@ type fusedConvAct struct {
 }
 
 func (f *fusedConvAct) Forward(in []*tensor.Tensor) ([]*tensor.Tensor, error) {
-	out, err := f.conv.Forward(in)
-	if err != nil {
-		return nil, err
-	}
-	y := out[0].F32
 	if f.relu {
-		splitWork(len(y), len(y), func(i0, i1 int) {
-			d := y[i0:i1]
-			for i, v := range d {
-				d[i] = max(v, 0) // as Relu's forward kernel
-			}
-		})
-	} else {
-		l, h := f.lo, f.hi
-		splitWork(len(y), len(y), func(i0, i1 int) {
-			d := y[i0:i1]
-			for i, v := range d {
-				d[i] = min(h, max(l, v)) // as Clip's forward
-			}
-		})
+		return f.conv.forward(in, actRelu, 0, 0)
 	}
-	return out, nil
+	return f.conv.forward(in, actClip, f.lo, f.hi)
 }
 
 // passOp returns its first input: the fused tail's output is the head's

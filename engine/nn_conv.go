@@ -30,6 +30,11 @@ type convOp struct {
 	// and reused by every later call of that size.
 	plans planCache
 	arena *arena // output buffers; nil allocates
+	// gemm1 is a single-threaded instance of the same packed GEMM, for
+	// the slab-parallel path (nn_conv_slab.go); nil when gemm is not a
+	// *kernel.Packed.
+	gemm1    kernel.GEMM
+	slabBufs sync.Pool
 }
 
 // colBuf returns a buffer of n floats from the pool; its contents are
@@ -58,7 +63,13 @@ func buildConv(n *onnx.Node, env *Env) (Op, error) {
 	if len(n.Inputs) < 2 {
 		return nil, fmt.Errorf("Conv needs X and W, got %d inputs", len(n.Inputs))
 	}
-	return &convOp{win: w, group: int(g), gemm: env.GEMM, arena: env.arena}, nil
+	op := &convOp{win: w, group: int(g), gemm: env.GEMM, arena: env.arena}
+	if p, ok := env.GEMM.(*kernel.Packed); ok {
+		if p1, err := kernel.New(kernel.Options{ISA: p.ISA(), Threads: 1}); err == nil {
+			op.gemm1 = p1
+		}
+	}
+	return op, nil
 }
 
 // convShape is the resolved problem for given X and W.
@@ -102,6 +113,13 @@ func (s convShape) pointwise() bool {
 }
 
 func (op *convOp) Forward(in []*tensor.Tensor) ([]*tensor.Tensor, error) {
+	return op.forward(in, actNone, 0, 0)
+}
+
+// forward computes the convolution followed by the activation act (fused
+// Relu or Clip to [lo, hi], see fuse.go); the bias and the activation are
+// applied per slab while it is in cache when the slab path runs.
+func (op *convOp) forward(in []*tensor.Tensor, act actKind, lo, hi float32) ([]*tensor.Tensor, error) {
 	x, w := in[0], in[1]
 	if err := wantFloat(x, "X", 3); err != nil {
 		return nil, err
@@ -129,6 +147,8 @@ func (op *convOp) Forward(in []*tensor.Tensor) ([]*tensor.Tensor, error) {
 	y := op.arena.tensor(g.outShape(s.n, s.m, s.spatial)...)
 	ihw, ohw := g.ih*g.iw, g.oh*g.ow
 	plan, perr := op.plans.plan(g)
+	ep := &epilogue{bias: b, act: act, lo: lo, hi: hi}
+	epDone := false
 	if s.depthwise() {
 		if perr != nil {
 			depthwiseForward(x.F32, w.F32, y.F32, s)
@@ -137,8 +157,9 @@ func (op *convOp) Forward(in []*tensor.Tensor) ([]*tensor.Tensor, error) {
 		}
 	} else {
 		kk := s.cg * g.kh * g.kw
+		slabs := !s.pointwise() && perr == nil && op.useSlabs(kk, ohw)
 		var col []float32
-		if !s.pointwise() {
+		if !s.pointwise() && !slabs {
 			buf := op.colBuf(kk * ohw)
 			defer op.cols.Put(buf)
 			col = *buf
@@ -146,6 +167,14 @@ func (op *convOp) Forward(in []*tensor.Tensor) ([]*tensor.Tensor, error) {
 		for n := 0; n < s.n; n++ {
 			for gi := 0; gi < op.group; gi++ {
 				xg := x.F32[(n*s.c+gi*s.cg)*ihw : (n*s.c+(gi+1)*s.cg)*ihw]
+				yg := y.F32[(n*s.m+gi*s.mg)*ohw : (n*s.m+(gi+1)*s.mg)*ohw]
+				wg := w.F32[gi*s.mg*kk : (gi+1)*s.mg*kk]
+				if slabs {
+					if err := op.slabForward(plan, xg, s.cg, g, wg, s.mg, kk, yg, ep, gi*s.mg); err != nil {
+						return nil, err
+					}
+					continue
+				}
 				src := xg
 				if col != nil {
 					if perr != nil {
@@ -155,22 +184,20 @@ func (op *convOp) Forward(in []*tensor.Tensor) ([]*tensor.Tensor, error) {
 					}
 					src = col
 				}
-				yg := y.F32[(n*s.m+gi*s.mg)*ohw : (n*s.m+(gi+1)*s.mg)*ohw]
-				wg := w.F32[gi*s.mg*kk : (gi+1)*s.mg*kk]
 				op.gemm.Sgemm(false, false, s.mg, ohw, kk, 1, wg, kk, src, ohw, 0, yg, ohw)
 			}
 		}
+		epDone = slabs
 	}
-	if b != nil {
-		for n := 0; n < s.n; n++ {
-			for m := 0; m < s.m; m++ {
-				row := y.F32[(n*s.m+m)*ohw : (n*s.m+m+1)*ohw]
-				bv := b[m]
-				for i := range row {
-					row[i] += bv
-				}
+	if !epDone && (b != nil || act != actNone) {
+		// One pass over the output for bias and activation, split by
+		// output plane.
+		splitWork(s.n*s.m, s.n*s.m*ohw, func(p0, p1 int) {
+			for p := p0; p < p1; p++ {
+				n, m := p/s.m, p%s.m
+				ep.apply(y.F32[n*s.m*ohw:(n+1)*s.m*ohw], ohw, m, m+1, 0, ohw)
 			}
-		}
+		})
 	}
 	return []*tensor.Tensor{y}, nil
 }

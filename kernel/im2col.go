@@ -218,3 +218,68 @@ func Im2col(dst, src []float32, g Conv2D) error {
 	}
 	return p.Im2col(dst, src)
 }
+
+// Im2colCols writes columns [j0, j1) of the column matrix (output
+// positions j0 … j1−1 in (oh, ow) order) into dst as a K×(j1−j0)
+// row-major block. Lowering a convolution one such slab at a time lets
+// the slab stay in cache between the copy and the matrix product, and lets
+// slabs run on different cores, instead of writing and re-reading the
+// whole K×OH·OW matrix through memory.
+func (p *Im2colPlan) Im2colCols(dst, src []float32, j0, j1 int) error {
+	rows, cols := p.Shape()
+	if j0 < 0 || j1 > cols || j0 > j1 {
+		return fmt.Errorf("kernel: im2col columns [%d, %d) outside [0, %d)", j0, j1, cols)
+	}
+	w := j1 - j0
+	if len(dst) < rows*w {
+		return fmt.Errorf("kernel: im2col column block has %d values, want %d (%d×%d)", len(dst), rows*w, rows, w)
+	}
+	g := p.g
+	if n := g.C * g.H * g.W; len(src) < n {
+		return fmt.Errorf("kernel: im2col image has %d values, want %d (%d×%d×%d)", len(src), n, g.C, g.H, g.W)
+	}
+	row := 0
+	for c := 0; c < g.C; c++ {
+		plane := src[c*g.H*g.W : (c+1)*g.H*g.W]
+		for kh := 0; kh < g.KH; kh++ {
+			for kw := 0; kw < g.KW; kw++ {
+				d := dst[row*w : (row+1)*w]
+				row++
+				ohLo, ohHi := p.ohLo[kh], p.ohHi[kh]
+				owLo, owHi := p.owLo[kw], p.owHi[kw]
+				for j := j0; j < j1; {
+					oh, ow0 := j/p.ow, j%p.ow
+					end := min(j1, (oh+1)*p.ow)
+					ow1 := ow0 + end - j
+					seg := d[j-j0 : end-j0]
+					j = end
+					if oh < ohLo || oh >= ohHi {
+						clear(seg)
+						continue
+					}
+					lo := min(max(owLo, ow0), ow1)
+					hi := max(min(owHi, ow1), lo)
+					clear(seg[:lo-ow0])
+					clear(seg[hi-ow0:])
+					if lo == hi {
+						continue
+					}
+					ih := oh*g.StrideH - g.PadTop + kh*g.DilationH
+					iw0 := lo*g.StrideW - g.PadLeft + kw*g.DilationW
+					out := seg[lo-ow0 : hi-ow0]
+					in := plane[ih*g.W:]
+					if g.StrideW == 1 {
+						copy(out, in[iw0:iw0+len(out)])
+						continue
+					}
+					iw := iw0
+					for k := range out {
+						out[k] = in[iw]
+						iw += g.StrideW
+					}
+				}
+			}
+		}
+	}
+	return nil
+}

@@ -401,3 +401,48 @@ func TestDepthwiseMatchesDirectConv(t *testing.T) {
 		t.Error("multiplier 0 accepted")
 	}
 }
+
+// TestIm2colColsMatchesIm2col checks every column slab against the
+// corresponding columns of the whole column matrix (which
+// TestIm2colMatchesDirectConv checks against the ONNX Conv definition).
+func TestIm2colColsMatchesIm2col(t *testing.T) {
+	for i, g := range []kernel.Conv2D{
+		{C: 3, H: 9, W: 9, KH: 3, KW: 3, PadTop: 1, PadLeft: 1, PadBottom: 1, PadRight: 1},
+		{C: 2, H: 12, W: 11, KH: 3, KW: 3, StrideH: 2, StrideW: 2, PadTop: 1, PadLeft: 1, PadBottom: 1, PadRight: 1},
+		{C: 2, H: 10, W: 13, KH: 5, KW: 3, StrideW: 3, DilationH: 2, PadTop: 3, PadBottom: 1, PadRight: 2},
+		{C: 3, H: 15, W: 15, KH: 7, KW: 7, StrideH: 2, StrideW: 2, PadTop: 3, PadLeft: 3, PadBottom: 3, PadRight: 3},
+		{C: 4, H: 6, W: 6, KH: 1, KW: 1, StrideH: 2, StrideW: 2},
+	} {
+		p, err := kernel.NewIm2col(g)
+		if err != nil {
+			t.Fatal(err)
+		}
+		rows, cols := p.Shape()
+		r := rand.New(rand.NewPCG(uint64(i), 7))
+		src := randSlice(r, g.C*g.H*g.W)
+		full := make([]float32, rows*cols)
+		if err := p.Im2col(full, src); err != nil {
+			t.Fatal(err)
+		}
+		for _, width := range []int{1, 5, 32, cols} {
+			for j0 := 0; j0 < cols; j0 += width {
+				j1 := min(j0+width, cols)
+				w := j1 - j0
+				got := make([]float32, rows*w)
+				for k := range got {
+					got[k] = float32(math.NaN()) // every entry must be written
+				}
+				if err := p.Im2colCols(got, src, j0, j1); err != nil {
+					t.Fatal(err)
+				}
+				for rr := 0; rr < rows; rr++ {
+					for c := 0; c < w; c++ {
+						if got[rr*w+c] != full[rr*cols+j0+c] {
+							t.Fatalf("case %d, cols [%d,%d): row %d col %d = %v, want %v", i, j0, j1, rr, j0+c, got[rr*w+c], full[rr*cols+j0+c])
+						}
+					}
+				}
+			}
+		}
+	}
+}
