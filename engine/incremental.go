@@ -909,11 +909,18 @@ func (st *incStep) convPatch(p *incPlan, x *tensor.Tensor, c, ph, pw int) *tenso
 				for oy := 0; oy < ph; oy++ {
 					srow := plane[(oy*g.sh+ki*g.dh)*iw+kj*g.dw:]
 					drow := d[oy*pw : (oy+1)*pw]
-					if g.sw == 1 && pw > 16 {
-						copy(drow, srow[:pw])
+					if g.sw == 1 {
+						src := srow[:len(drow)]
+						if pw > 16 {
+							copy(drow, src)
+							continue
+						}
+						// Short rows: a loop beats a memmove call.
+						for ox := range drow {
+							drow[ox] = src[ox]
+						}
 						continue
 					}
-					// Short rows: a loop beats a memmove call.
 					for ox := range drow {
 						drow[ox] = srow[ox*g.sw]
 					}
