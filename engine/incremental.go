@@ -215,7 +215,7 @@ var pointwiseOps = map[string]bool{
 	"HardSwish": true, "Elu": true, "Selu": true, "Softplus": true, "Identity": true, "Dropout": true,
 	"BatchNormalization": true, "Neg": true, "Abs": true, "Exp": true, "Erf": true, "Sqrt": true,
 	"Add": true, "Sub": true, "Mul": true, "Div": true, "Pow": true, "Max": true, "Min": true,
-	"PRelu": true, "Sum": true, "Mish": true, "Gelu": true,
+	"PRelu": true, "Sum": true, "Mean": true, "Celu": true, "ThresholdedRelu": true, "Shrink": true,
 }
 
 // analyse decides, for every node, how a patch passes through it.

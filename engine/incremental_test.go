@@ -7,6 +7,7 @@ import (
 	"math/rand/v2"
 	"os"
 	"path/filepath"
+	"strings"
 	"testing"
 
 	"heedmap/onnx"
@@ -500,4 +501,109 @@ func bruteForceInput(x, fill *tensor.Tensor, r Rect) *tensor.Tensor {
 		}
 	}
 	return out
+}
+
+// Rebase reuses the plan for another image and gives that image's results;
+// concurrent Occlude calls on one Incremental agree with sequential ones;
+// a cancelled context stops the evaluation.
+func TestIncrementalRebaseConcurrentCancel(t *testing.T) {
+	g := handGraph(t)
+	x1, x2 := randomTensor(31, 1, 3, 20, 20), randomTensor(32, 1, 3, 20, 20)
+	fill := randomTensor(33, 1, 3, 20, 20)
+	inc1, err := NewIncremental(context.Background(), g, "x", "y", x1)
+	if err != nil {
+		t.Fatal(err)
+	}
+	inc2, err := inc1.Rebase(context.Background(), x2)
+	if err != nil {
+		t.Fatal(err)
+	}
+	rects := occlusionRects(20, 20, 4, 3)
+	got, err := inc2.Occlude(context.Background(), fill, rects)
+	if err != nil {
+		t.Fatal(err)
+	}
+	compareOutputs(t, "rebased", got, bruteForce(t, g, "x", "y", x2, fill, rects))
+	if _, err := inc1.Rebase(context.Background(), randomTensor(1, 1, 3, 21, 20)); err == nil {
+		t.Error("rebase to another shape: no error")
+	}
+
+	want, err := inc1.Occlude(context.Background(), fill, rects)
+	if err != nil {
+		t.Fatal(err)
+	}
+	errs := make(chan error, 4)
+	for range 4 {
+		go func() {
+			y, err := inc1.Occlude(context.Background(), fill, rects)
+			if err == nil {
+				for i := range y.F32 {
+					if y.F32[i] != want.F32[i] {
+						err = fmt.Errorf("concurrent result differs at %d", i)
+						break
+					}
+				}
+			}
+			errs <- err
+		}()
+	}
+	for range 4 {
+		if err := <-errs; err != nil {
+			t.Error(err)
+		}
+	}
+
+	ctx, cancel := context.WithCancel(context.Background())
+	cancel()
+	if _, err := inc1.Occlude(ctx, fill, rects); err == nil {
+		t.Error("cancelled context: no error")
+	}
+	if _, err := inc1.Occlude(context.Background(), randomTensor(1, 1, 3, 5, 5), rects); err == nil {
+		t.Error("fill of the wrong shape: no error")
+	}
+}
+
+// An operator with no patch form in the spatial part (Softmax along the
+// width mixes a whole row, so a patch rule would be wrong) is recomputed
+// in full from that node, reported once, and the result stays exact.
+func TestIncrementalFallback(t *testing.T) {
+	attr := func(name string, v ...int64) *onnx.Attr { return &onnx.Attr{Name: name, Type: onnx.AttrInts, Ints: v} }
+	m := &onnx.Model{Opsets: map[string]int64{"": 13}, Graph: &onnx.Graph{
+		Nodes: []*onnx.Node{
+			{Name: "c1", OpType: "Conv", Inputs: []string{"x", "w1"}, Outputs: []string{"c1"}, Attrs: map[string]*onnx.Attr{"pads": attr("pads", 1, 1, 1, 1)}},
+			{Name: "sm", OpType: "Softmax", Inputs: []string{"c1"}, Outputs: []string{"sm"}, Attrs: map[string]*onnx.Attr{"axis": {Name: "axis", Type: onnx.AttrInt, Int: -1}}},
+			{Name: "c2", OpType: "Conv", Inputs: []string{"sm", "w2"}, Outputs: []string{"c2"}, Attrs: map[string]*onnx.Attr{"pads": attr("pads", 1, 1, 1, 1)}},
+			{Name: "gap", OpType: "GlobalAveragePool", Inputs: []string{"c2"}, Outputs: []string{"gap"}, Attrs: map[string]*onnx.Attr{}},
+			{Name: "y", OpType: "Flatten", Inputs: []string{"gap"}, Outputs: []string{"y"}, Attrs: map[string]*onnx.Attr{}},
+		},
+		Inputs:       []onnx.ValueInfo{{Name: "x", DType: tensor.Float32, Shape: []onnx.Dim{{Param: "N"}, {Value: 2}, {Value: 12}, {Value: 12}}}},
+		Outputs:      []onnx.ValueInfo{{Name: "y", DType: tensor.Float32}},
+		Initializers: map[string]*tensor.Tensor{"w1": randomTensor(41, 4, 2, 3, 3), "w2": randomTensor(42, 3, 4, 3, 3)},
+	}}
+	g, err := Compile(m)
+	if err != nil {
+		t.Fatal(err)
+	}
+	x, fill := randomTensor(43, 1, 2, 12, 12), randomTensor(44, 1, 2, 12, 12)
+	inc, err := NewIncremental(context.Background(), g, "x", "y", x)
+	if err != nil {
+		t.Fatal(err)
+	}
+	fb := inc.Fallbacks()
+	if len(fb) != 1 || !strings.Contains(fb[0], "Softmax") {
+		t.Errorf("fallbacks %q, want the Softmax node", fb)
+	}
+	rects := occlusionRects(12, 12, 3, 2)
+	got, err := inc.Occlude(context.Background(), fill, rects)
+	if err != nil {
+		t.Fatal(err)
+	}
+	want := bruteForce(t, g, "x", "y", x, fill, rects)
+	compareOutputs(t, "softmax graph", got, want)
+	if !differs(want, inc.Base()) {
+		t.Error("no window changed the output")
+	}
+	if gm := inc.plan.propagate(rects[:1])[g.index["sm"]]; gm == nil || !gm.full {
+		t.Error("Softmax output not recomputed in full")
+	}
 }
