@@ -363,6 +363,34 @@ func TestRunRealPipelineOnDemoModel(t *testing.T) {
 	if _, err := os.Stat(filepath.Join(merged, "report.html")); err != nil {
 		t.Error(err)
 	}
+	// Every picture the merged report links to was copied from its shard.
+	var rep struct {
+		Images []struct {
+			Overlays map[string]string `json:"overlays"`
+			Panel    string            `json:"panel"`
+		} `json:"images"`
+	}
+	repData, _ := os.ReadFile(filepath.Join(merged, "report.json"))
+	if err := json.Unmarshal(repData, &rep); err != nil || len(rep.Images) != 3 {
+		t.Fatalf("merged report.json: %d images, %v", len(rep.Images), err)
+	}
+	for _, im := range rep.Images {
+		files := []string{im.Panel}
+		for _, f := range im.Overlays {
+			files = append(files, f)
+		}
+		if len(files) != 3 {
+			t.Errorf("merged report lists %v", files)
+		}
+		for _, f := range files {
+			if !strings.HasPrefix(f, "overlays/") && !strings.HasPrefix(f, "panels/") {
+				t.Errorf("picture path %q is outside overlays/ and panels/", f)
+			}
+			if _, err := os.Stat(filepath.Join(merged, filepath.FromSlash(f))); err != nil {
+				t.Error(err)
+			}
+		}
+	}
 	// An acceptance criterion no map can meet (pointing accuracy above 1)
 	// makes the run exit 1 after writing the report; one every map meets
 	// (at least 0) keeps exit 0.

@@ -52,9 +52,10 @@ const runOutputHelp = `Output (in --out DIR):
   config.yaml                        the resolved configuration
   records/ index.json summary.json   per-image records, used to resume and merge
 <image-id> is the image's id made safe as a file name: characters other
-than A-Z a-z 0-9 . _ - become _, and when anything changed, 8 hex digits of
-the id's SHA-256 are appended, so distinct ids keep distinct names and
-nothing is written outside DIR.
+than A-Z a-z 0-9 . _ - become _, leading dots are dropped and long ids cut
+to 80 characters; when anything changed, 8 hex digits of the id's SHA-256
+are appended, so distinct ids keep distinct names and nothing is written
+outside DIR.
 
 `
 
