@@ -53,7 +53,7 @@ type Report struct {
 
 // ImageRecord is one image's measurements plus where its files are.
 // Paths in Overlays and Panel are relative to the report directory (for
-// example "overlays/img001_occlusion.png", "panels/img001.png").
+// example "overlays/img001.occlusion.png", "panels/img001.png").
 type ImageRecord struct {
 	measure.Image
 	File     string `json:"file"`
