@@ -31,7 +31,7 @@ func TestDefaultsReported(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	want(r, "patch", "16", "stride", "8", "windows", "729", "fill", "mean", "fill_colour", "black (no mean/std normalisation declared)")
+	want(r, "patch", "16", "stride", "8", "windows", "729", "fill", "mean", "fill_note", "black (no mean/std normalisation declared)")
 
 	small := explaintest.NewMLP(3, 8, 8, 8, 3, 3)
 	xs := explaintest.RandomInput(3, 8, 8, 4)

@@ -250,7 +250,7 @@ func (o Occlusion) Attribute(ctx context.Context, net explain.Network, x *tensor
 		r.AddParam("blur_sigma_px", s)
 	case FillModelZero:
 		if !o.Norm.Normalized() {
-			r.AddParam("fill_colour", "black (no mean/std normalisation declared)")
+			r.AddParam("fill_note", "black (no mean/std normalisation declared)")
 		}
 	}
 	return r, nil
