@@ -66,6 +66,25 @@ func TestGradCAMTorchGoldens(t *testing.T) {
 	if len(dirs) == 0 {
 		t.Fatal("no Grad-CAM goldens: run testdata/reference/gradcam_golden.py")
 	}
+	gradCAMGoldens(t, dirs)
+}
+
+// The same check on full-size networks (e.g. ResNet-18 at 224×224 with a
+// 7×7 layer), opt-in: HEEDMAP_FULL_NETS=DIR where DIR was written by
+// export_nets.py --full --out DIR and gradcam_golden.py --full DIR.
+func TestGradCAMTorchGoldensFull(t *testing.T) {
+	root := os.Getenv("HEEDMAP_FULL_NETS")
+	if root == "" {
+		t.Skip("set HEEDMAP_FULL_NETS to a directory of full-size exports with Grad-CAM goldens")
+	}
+	dirs, _ := filepath.Glob(filepath.Join(root, "*", "gradcam.json"))
+	if len(dirs) == 0 {
+		t.Fatalf("no */gradcam.json under %s", root)
+	}
+	gradCAMGoldens(t, dirs)
+}
+
+func gradCAMGoldens(t *testing.T, dirs []string) {
 	for _, gj := range dirs {
 		dir := filepath.Dir(gj)
 		t.Run(filepath.Base(dir), func(t *testing.T) {

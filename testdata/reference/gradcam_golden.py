@@ -30,8 +30,11 @@ For each net it writes, beside the net (image 0 of input.pb):
                                            before the ReLU)
   testdata/nets/<name>/gradcam.json        {"class": c, "classes": K}
 
-Run from the repository root (a few seconds on 2 cores):
-    /usr/bin/python3 testdata/reference/gradcam_golden.py
+Run from the repository root (a minute or two on 2 cores):
+    /usr/bin/python3 testdata/reference/gradcam_golden.py [NET ...]
+For the full-size networks written by export_nets.py --full --out DIR (not
+committed; explain's opt-in test reads them from HEEDMAP_FULL_NETS=DIR):
+    /usr/bin/python3 testdata/reference/gradcam_golden.py --full DIR [NET ...]
 Debian python3-torch 1.13, python3-torchvision 0.14, python3-onnx 1.12.
 """
 import json
@@ -86,12 +89,12 @@ def load_pb(path):
     return numpy_helper.to_array(t)
 
 
-def rebuild(name):
+def rebuild(name, full=False):
     names = list(ex.NETS)
     seed = 1000 + names.index(name)  # as export_nets.main
     torch.manual_seed(seed)
     gen = torch.Generator().manual_seed(seed)
-    model, size, _ = ex.NETS[name][0]()
+    model, size, _ = ex.NETS[name][1 if full else 0]()
     ex.randomise(model, size, gen)
     return model.eval(), size
 
@@ -120,12 +123,17 @@ def grad_cam(model, module, x, cls):
 
 def main():
     torch.set_num_threads(2)
-    names = sys.argv[1:] or list(HOOKS)
+    args, full, nets_dir = sys.argv[1:], False, NETS_DIR
+    if args[:1] == ["--full"]:
+        if len(args) < 2:
+            raise SystemExit("--full needs the directory export_nets.py --full wrote")
+        full, nets_dir, args = True, args[1], args[2:]
+    names = args or list(HOOKS)
     for name in names:
-        d = os.path.join(NETS_DIR, name)
+        d = os.path.join(nets_dir, name)
         with open(os.path.join(d, "meta.json")) as f:
             meta = json.load(f)
-        model, size = rebuild(name)
+        model, size = rebuild(name, full)
         x_all = torch.from_numpy(load_pb(os.path.join(d, "input.pb")).copy())
         want = load_pb(os.path.join(d, "logits.pb"))
         with torch.no_grad():
