@@ -35,6 +35,9 @@ type convOp struct {
 	// *kernel.Packed.
 	gemm1    kernel.GEMM
 	slabBufs sync.Pool
+	// tplans caches the plans of the transposed convolutions that give
+	// the input gradient (nn_conv_slab.go).
+	tplans planCache
 }
 
 // colBuf returns a buffer of n floats from the pool; its contents are
@@ -288,6 +291,12 @@ func (op *convOp) BackwardFor(in, out, gradOut []*tensor.Tensor, need []bool) ([
 				}
 				dxg := dx.F32[off : off+s.cg*ihw]
 				wg := w.F32[gi*s.mg*kk : (gi+1)*s.mg*kk]
+				if tg, ok := transposedGeom(g); ok && !pw && op.useSlabs(s.mg*g.kh*g.kw, ihw) {
+					if err := op.slabBackwardX(tg, wg, s.cg, s.mg, dyg, dxg); err != nil {
+						return nil, err
+					}
+					continue
+				}
 				// dcol = W_gᵀ · dY_g, scattered back onto dX.
 				if pw {
 					op.gemm.Sgemm(true, false, kk, ohw, s.mg, 1, wg, kk, dyg, ohw, 0, dxg, ohw)

@@ -133,3 +133,53 @@ func poolBuf(p *sync.Pool, n int) *[]float32 {
 	b := make([]float32, n)
 	return &b
 }
+
+// transposedGeom returns the geometry of the input gradient of a
+// unit-stride, undilated convolution written as a convolution of dY: with
+// the filters flipped in space and the channel axes swapped, dX is dY
+// convolved with pads k−1−p on each side (the "full" correlation), whose
+// output size is exactly the input's. ok is false when the convolution is
+// strided or dilated, or a pad exceeds k−1.
+func transposedGeom(g geom2) (t geom2, ok bool) {
+	if g.sh != 1 || g.sw != 1 || g.dh != 1 || g.dw != 1 {
+		return t, false
+	}
+	t = geom2{
+		ih: g.oh, iw: g.ow, kh: g.kh, kw: g.kw, sh: 1, sw: 1, dh: 1, dw: 1,
+		pt: g.kh - 1 - g.pt, pl: g.kw - 1 - g.pl, pb: g.kh - 1 - g.pb, pr: g.kw - 1 - g.pr,
+		oh: g.ih, ow: g.iw,
+	}
+	if t.pt < 0 || t.pl < 0 || t.pb < 0 || t.pr < 0 || t.ih+t.pt+t.pb-t.kh+1 != t.oh || t.iw+t.pl+t.pr-t.kw+1 != t.ow {
+		return t, false
+	}
+	return t, true
+}
+
+// slabBackwardX computes one image and group's input gradient dxg
+// (cg×ih·iw, overwritten) of a unit-stride convolution as the slab-parallel
+// forward convolution of dyg (mg×oh·ow) with the flipped, channel-swapped
+// filters, instead of the K×N matrix Wᵀ·dY followed by a col2im scatter:
+// the same multiply-adds, without the column matrix going through memory,
+// and with both cores on every layer.
+func (op *convOp) slabBackwardX(tg geom2, wg []float32, cg, mg int, dyg, dxg []float32) error {
+	plan, err := op.tplans.plan(tg)
+	if err != nil {
+		return err
+	}
+	khw := tg.kh * tg.kw
+	kk := mg * khw
+	wf := poolBuf(&op.slabBufs, cg*kk)
+	defer op.slabBufs.Put(wf)
+	f := *wf
+	// Wf[c][m][ki][kj] = W[m][c][kh−1−ki][kw−1−kj]
+	for m := 0; m < mg; m++ {
+		for c := 0; c < cg; c++ {
+			src := wg[(m*cg+c)*khw : (m*cg+c+1)*khw]
+			dst := f[(c*mg+m)*khw : (c*mg+m+1)*khw]
+			for t, v := range src {
+				dst[khw-1-t] = v
+			}
+		}
+	}
+	return op.slabForward(plan, dyg, mg, tg, f, cg, kk, dxg, nil, 0)
+}

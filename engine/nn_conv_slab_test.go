@@ -73,3 +73,66 @@ func TestConvSlabPathMatchesReference(t *testing.T) {
 		}
 	}
 }
+
+// TestConvTransposedBackwardMatchesReference checks the input gradient of
+// unit-stride convolutions large enough for the transposed slab path
+// against the adjoint identity ⟨conv(x), dy⟩ = ⟨x, dx⟩ (without bias the
+// convolution is linear in x) and against the operator built on
+// kernel.Naive, which takes the Wᵀ·dY + col2im path.
+func TestConvTransposedBackwardMatchesReference(t *testing.T) {
+	rng := rand.New(rand.NewSource(4))
+	for i, tc := range []struct {
+		c, h, w, m, k, pad, group int
+	}{
+		{5, 37, 41, 16, 3, 1, 1},
+		{6, 33, 40, 8, 3, 1, 2},
+		{4, 30, 30, 6, 5, 2, 1},
+		{3, 32, 32, 4, 3, 0, 1},
+	} {
+		x := nnRand(rng, 2, tc.c, tc.h, tc.w)
+		wt := nnRand(rng, tc.m, tc.c/tc.group, tc.k, tc.k)
+		node := nnNode("c", "Conv", []string{"x", "w"}, []string{"y"},
+			nnInts("pads", int64(tc.pad), int64(tc.pad), int64(tc.pad), int64(tc.pad)),
+			&onnx.Attr{Name: "group", Type: onnx.AttrInt, Int: int64(tc.group)})
+		fast, err := buildConv(node, &Env{GEMM: defaultGEMM(), Opset: 13})
+		if err != nil {
+			t.Fatal(err)
+		}
+		ref, err := buildConv(node, &Env{GEMM: kernel.Naive{}, Opset: 13})
+		if err != nil {
+			t.Fatal(err)
+		}
+		fc := fast.(*convOp)
+		s, _ := fc.shape(x, wt)
+		if _, ok := transposedGeom(s.g); !ok || !fc.useSlabs(s.mg*tc.k*tc.k, tc.h*tc.w) {
+			t.Fatalf("case %d: transposed path not taken", i)
+		}
+		in := []*tensor.Tensor{x, wt}
+		y, err := ref.Forward(in)
+		if err != nil {
+			t.Fatal(err)
+		}
+		dy := nnRand(rng, y[0].Shape...)
+		got, err := fc.BackwardFor(in, y, []*tensor.Tensor{dy}, []bool{true, false})
+		if err != nil {
+			t.Fatal(err)
+		}
+		want, err := ref.(*convOp).BackwardFor(in, y, []*tensor.Tensor{dy}, []bool{true, false})
+		if err != nil {
+			t.Fatal(err)
+		}
+		var yy, xx float64
+		for j, v := range y[0].F32 {
+			yy += float64(v) * float64(dy.F32[j])
+		}
+		for j, v := range got[0].F32 {
+			xx += float64(v) * float64(x.F32[j])
+			if d := math.Abs(float64(v - want[0].F32[j])); d > 1e-4*(1+math.Abs(float64(want[0].F32[j]))) {
+				t.Fatalf("case %d: dx[%d] = %v, reference %v", i, j, v, want[0].F32[j])
+			}
+		}
+		if math.Abs(yy-xx) > 1e-4*(1+math.Abs(yy)) {
+			t.Fatalf("case %d: <conv(x),dy> = %g but <x,dx> = %g", i, yy, xx)
+		}
+	}
+}
