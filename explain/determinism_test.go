@@ -43,6 +43,7 @@ func TestMethodsByteIdentical(t *testing.T) {
 			explain.IntegratedGradients{Steps: 24, BatchSize: batch},
 			explain.IntegratedGradients{Steps: 10, Baseline: explain.BaselineNoise, Seed: 7, BatchSize: batch},
 			explain.SmoothGrad{Samples: 10, Seed: 3, BatchSize: batch},
+			explain.SmoothGrad{Samples: 2, Seed: 3, BatchSize: batch, OverIG: &explain.IntegratedGradients{Steps: 6, BatchSize: batch}},
 			explain.GradCAM{Layer: meta.Layer},
 			explain.RISE{Masks: 40, Seed: 5, BatchSize: batch},
 			occlusion.Occlusion{Patch: 16, Stride: 12, BatchSize: batch},
