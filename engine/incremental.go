@@ -196,9 +196,9 @@ func (p *incPlan) isSpatial(v int) bool {
 	return v >= 0 && p.g.varying[v] && len(s) == 4 && s[0] == 1 && s[2]*s[3] > 1
 }
 
-// constAcrossSpace reports whether a constant of shape s broadcast against
+// incConstAcrossSpace reports whether a constant of shape s broadcast against
 // a [1, C, H, W] map is the same at every position and batch entry.
-func constAcrossSpace(s []int) bool {
+func incConstAcrossSpace(s []int) bool {
 	if len(s) > 4 {
 		return false
 	}
@@ -210,7 +210,7 @@ func constAcrossSpace(s []int) bool {
 	return a[0] == 1 && a[2] == 1 && a[3] == 1
 }
 
-var pointwiseOps = map[string]bool{
+var incPointwiseOps = map[string]bool{
 	"Relu": true, "Clip": true, "Sigmoid": true, "Tanh": true, "LeakyRelu": true, "HardSigmoid": true,
 	"HardSwish": true, "Elu": true, "Selu": true, "Softplus": true, "Identity": true, "Dropout": true,
 	"BatchNormalization": true, "Neg": true, "Abs": true, "Exp": true, "Erf": true, "Sqrt": true,
@@ -369,13 +369,13 @@ func (p *incPlan) classify(nd *node, st *incStep, nSpatial int) (incKind, string
 		st.padT, st.padL = int(pads[2]), int(pads[3])
 		return incPad, ""
 	}
-	if !pointwiseOps[src.OpType] {
+	if !incPointwiseOps[src.OpType] {
 		return incFull, "no patch form for " + src.OpType
 	}
 	for i, v := range nd.in {
 		// BatchNormalization's constants are per channel by definition;
 		// the other operators broadcast theirs numpy-style.
-		if v >= 0 && !st.spatial[i] && src.OpType != "BatchNormalization" && !constAcrossSpace(p.shapes[v]) {
+		if v >= 0 && !st.spatial[i] && src.OpType != "BatchNormalization" && !incConstAcrossSpace(p.shapes[v]) {
 			return incFull, "a constant input varies across space"
 		}
 		if st.spatial[i] && !shapeEq(p.shapes[v], ys) {
@@ -446,9 +446,9 @@ type incVal struct {
 	t *tensor.Tensor
 }
 
-// place fixes a batch's patch size as the largest changed rectangle and
+// incPlace fixes a batch's patch size as the largest changed rectangle and
 // slides each patch inside the h×w map.
-func place(chg []Rect, h, w int) incGeo {
+func incPlace(chg []Rect, h, w int) incGeo {
 	gm := incGeo{chg: chg, oy: make([]int, len(chg)), ox: make([]int, len(chg)), p: 1, q: 1}
 	for _, r := range chg {
 		if !r.empty() {
@@ -467,10 +467,10 @@ func place(chg []Rect, h, w int) incGeo {
 	return gm
 }
 
-// windowRange maps changed input positions [a, b) along one axis to the
+// incWindowRange maps changed input positions [a, b) along one axis to the
 // output positions whose window reads one of them: output o reads
 // o·s − pad + t·d for t in [0, k).
-func windowRange(a, b, k, s, d, pad, n int) (lo, hi int) {
+func incWindowRange(a, b, k, s, d, pad, n int) (lo, hi int) {
 	if a >= b {
 		return 0, 0
 	}
@@ -490,8 +490,8 @@ func incFloorDiv(a, b int) int {
 
 func (st *incStep) windowChg(r Rect) Rect {
 	g := st.g
-	y0, y1 := windowRange(r.Y0, r.Y1, g.kh, g.sh, g.dh, g.pt, g.oh)
-	x0, x1 := windowRange(r.X0, r.X1, g.kw, g.sw, g.dw, g.pl, g.ow)
+	y0, y1 := incWindowRange(r.Y0, r.Y1, g.kh, g.sh, g.dh, g.pt, g.oh)
+	x0, x1 := incWindowRange(r.X0, r.X1, g.kw, g.sw, g.dw, g.pl, g.ow)
 	out := Rect{x0, y0, x1, y1}
 	if out.empty() {
 		return Rect{}
@@ -551,7 +551,7 @@ func (p *incPlan) geometry(k int, ins []*incGeo) incGeo {
 			}
 		}
 	}
-	return place(chg, ys[2], ys[3])
+	return incPlace(chg, ys[2], ys[3])
 }
 
 // Occlude evaluates the graph output for len(rects) copies of the image,
@@ -573,11 +573,11 @@ func (inc *Incremental) Occlude(ctx context.Context, fill *tensor.Tensor, rects 
 		chg[b] = Rect{max(r.X0, 0), max(r.Y0, 0), min(r.X1, w), min(r.Y1, h)}
 	}
 	vals := make([]*incVal, len(p.g.names))
-	x0 := &incVal{incGeo: place(chg, h, w)}
+	x0 := &incVal{incGeo: incPlace(chg, h, w)}
 	x0.t = tensor.New(len(rects), xs[1], x0.p, x0.q)
 	for b := range rects {
 		dst := x0.t.F32[b*xs[1]*x0.p*x0.q : (b+1)*xs[1]*x0.p*x0.q]
-		gatherPlane(inc.base[p.in].F32, xs[1], h, w, x0.oy[b], x0.ox[b], x0.p, x0.q, 0, dst)
+		incGatherPlane(inc.base[p.in].F32, xs[1], h, w, x0.oy[b], x0.ox[b], x0.p, x0.q, 0, dst)
 		// Overlay the fill inside the rectangle.
 		r := chg[b]
 		for c := 0; c < xs[1]; c++ {
@@ -614,7 +614,7 @@ func (inc *Incremental) Occlude(ctx context.Context, fill *tensor.Tensor, rects 
 		var err error
 		if reached && st.kind != incFull {
 			gm := p.geometry(k, geos)
-			if gm.full && !geomFits(gm, p.shapes[nd.out[0]]) {
+			if gm.full && !incGeomFits(gm, p.shapes[nd.out[0]]) {
 				err = inc.runFull(k, vals, nb)
 			} else {
 				var out *incVal
@@ -644,9 +644,9 @@ func (inc *Incremental) Occlude(ctx context.Context, fill *tensor.Tensor, rects 
 	return inc.materialize(p.out, o, nb), nil
 }
 
-// geomFits reports whether a full-covering patch geometry came from a patch
+// incGeomFits reports whether a full-covering patch geometry came from a patch
 // computation (p×q equal to the map), so the patch code can produce it.
-func geomFits(gm incGeo, ys []int) bool {
+func incGeomFits(gm incGeo, ys []int) bool {
 	return len(ys) == 4 && gm.p == ys[2] && gm.q == ys[3] && gm.oy != nil
 }
 
@@ -721,9 +721,9 @@ func (inc *Incremental) runFull(k int, vals []*incVal, nb int) error {
 	return nil
 }
 
-// gatherPlane writes rows [y0, y0+ph) × cols [x0, x0+pw) of a C×H×W map
+// incGatherPlane writes rows [y0, y0+ph) × cols [x0, x0+pw) of a C×H×W map
 // into dst (C×ph×pw), with fill outside the map.
-func gatherPlane(src []float32, c, h, w, y0, x0, ph, pw int, fill float32, dst []float32) {
+func incGatherPlane(src []float32, c, h, w, y0, x0, ph, pw int, fill float32, dst []float32) {
 	xa, xb := max(x0, 0), min(x0+pw, w)
 	for ch := 0; ch < c; ch++ {
 		for i := 0; i < ph; i++ {
@@ -753,10 +753,10 @@ func (inc *Incremental) gather(v int, s *incVal, b, y0, x0, ph, pw int, fill flo
 	shp := inc.plan.shapes[v]
 	c, h, w := shp[1], shp[2], shp[3]
 	if s.full {
-		gatherPlane(s.t.F32[b*c*h*w:(b+1)*c*h*w], c, h, w, y0, x0, ph, pw, fill, dst)
+		incGatherPlane(s.t.F32[b*c*h*w:(b+1)*c*h*w], c, h, w, y0, x0, ph, pw, fill, dst)
 		return
 	}
-	gatherPlane(inc.base[v].F32, c, h, w, y0, x0, ph, pw, fill, dst)
+	incGatherPlane(inc.base[v].F32, c, h, w, y0, x0, ph, pw, fill, dst)
 	// Overlay the patch where it meets the requested region.
 	ya, yb := max(y0, s.oy[b]), min(y0+ph, s.oy[b]+s.p)
 	xa, xb := max(x0, s.ox[b]), min(x0+pw, s.ox[b]+s.q)
@@ -827,7 +827,7 @@ func (inc *Incremental) runPatch(k int, gm incGeo, vals []*incVal, nb int) (*inc
 		xb := p.buf(nb * c * ih * iw)
 		defer p.scratch.Put(xb)
 		xt := tensor.FromFloat32(*xb, nb, c, ih, iw)
-		parallelFor(nb, func(b int) {
+		incParallel(nb, func(b int) {
 			inc.gather(v, vals[v], b, gm.oy[b]*g.sh-g.pt, gm.ox[b]*g.sw-g.pl, ih, iw, st.fill, xt.F32[b*c*ih*iw:(b+1)*c*ih*iw])
 		})
 		if st.kind == incPool {
@@ -865,7 +865,7 @@ func (st *incStep) convPatch(p *incPlan, x *tensor.Tensor, c, ph, pw int) *tenso
 	if st.cg == 1 && st.group == c {
 		// Depthwise: too little reuse for a matrix product.
 		khw := g.kh * g.kw
-		parallelFor(nb*st.m, func(i int) {
+		incParallel(nb*st.m, func(i int) {
 			b, m := i/st.m, i%st.m
 			ch := m / mg
 			src := x.F32[(b*c+ch)*ih*iw : (b*c+ch+1)*ih*iw]
@@ -899,7 +899,7 @@ func (st *incStep) convPatch(p *incPlan, x *tensor.Tensor, c, ph, pw int) *tenso
 	col, tmp := *colb, *tmpb
 	for gi := 0; gi < st.group; gi++ {
 		// col[r, b·pq + o] = x[b, gi·cg + ch, oy·sh + ki·dh, ox·sw + kj·dw]
-		parallelFor(kk, func(r int) {
+		incParallel(kk, func(r int) {
 			ch, kidx := r/(g.kh*g.kw), r%(g.kh*g.kw)
 			ki, kj := kidx/g.kw, kidx%g.kw
 			dst := col[r*n : (r+1)*n]
@@ -946,8 +946,8 @@ func (st *incStep) convPatch(p *incPlan, x *tensor.Tensor, c, ph, pw int) *tenso
 	return y
 }
 
-// parallelFor runs f(0..n-1) over the available cores.
-func parallelFor(n int, f func(i int)) {
+// incParallel runs f(0..n-1) over the available cores.
+func incParallel(n int, f func(i int)) {
 	workers := min(runtime.GOMAXPROCS(0), n)
 	if workers <= 1 {
 		for i := 0; i < n; i++ {
@@ -987,7 +987,7 @@ func (p *incPlan) propagate(rects []Rect) []*incGeo {
 		chg[b] = Rect{max(r.X0, 0), max(r.Y0, 0), min(r.X1, xs[3]), min(r.Y1, xs[2])}
 	}
 	geos := make([]*incGeo, len(p.g.names))
-	g0 := place(chg, xs[2], xs[3])
+	g0 := incPlace(chg, xs[2], xs[3])
 	geos[p.in] = &g0
 	for k, nd := range p.g.nodes {
 		st := &p.steps[k]
@@ -1004,7 +1004,7 @@ func (p *incPlan) propagate(rects []Rect) []*incGeo {
 		}
 		gm := incGeo{full: true}
 		if reached && st.kind != incFull {
-			if g := p.geometry(k, ins); !g.full || geomFits(g, p.shapes[nd.out[0]]) {
+			if g := p.geometry(k, ins); !g.full || incGeomFits(g, p.shapes[nd.out[0]]) {
 				gm = g
 			}
 		}

@@ -22,8 +22,8 @@ import (
 // noise we expect for these depths, with headroom.
 const incTol = 2e-5
 
-// bruteForce runs x with each rect replaced by fill through g in full.
-func bruteForce(t testing.TB, g *Graph, input, output string, x, fill *tensor.Tensor, rects []Rect) *tensor.Tensor {
+// incBruteForce runs x with each rect replaced by fill through g in full.
+func incBruteForce(t testing.TB, g *Graph, input, output string, x, fill *tensor.Tensor, rects []Rect) *tensor.Tensor {
 	c, h, w := x.Shape[1], x.Shape[2], x.Shape[3]
 	n := c * h * w
 	xb := tensor.New(len(rects), c, h, w)
@@ -46,7 +46,7 @@ func bruteForce(t testing.TB, g *Graph, input, output string, x, fill *tensor.Te
 	return y
 }
 
-func compareOutputs(t *testing.T, what string, got, want *tensor.Tensor) {
+func incCompare(t *testing.T, what string, got, want *tensor.Tensor) {
 	t.Helper()
 	if !shapeEq(got.Shape, want.Shape) {
 		t.Fatalf("%s: shape %v, want %v", what, got.Shape, want.Shape)
@@ -67,7 +67,7 @@ func compareOutputs(t *testing.T, what string, got, want *tensor.Tensor) {
 	}
 }
 
-func randomTensor(seed uint64, shape ...int) *tensor.Tensor {
+func incRandom(seed uint64, shape ...int) *tensor.Tensor {
 	r := rand.New(rand.NewPCG(seed, 7))
 	t := tensor.New(shape...)
 	for i := range t.F32 {
@@ -76,9 +76,9 @@ func randomTensor(seed uint64, shape ...int) *tensor.Tensor {
 	return t
 }
 
-// occlusionRects lists patch×patch windows at the given stride (plus one
+// incWindows lists patch×patch windows at the given stride (plus one
 // flush with the far edge), as the occlusion package does.
-func occlusionRects(h, w, patch, stride int) []Rect {
+func incWindows(h, w, patch, stride int) []Rect {
 	origins := func(n int) []int {
 		var o []int
 		for x := 0; x+patch <= n; x += stride {
@@ -114,7 +114,7 @@ func TestIncrementalCompactNets(t *testing.T) {
 			}
 			c, h, w := xb.Shape[1], xb.Shape[2], xb.Shape[3]
 			x := tensor.FromFloat32(xb.F32[:c*h*w], 1, c, h, w)
-			fill := randomTensor(5, 1, c, h, w)
+			fill := incRandom(5, 1, c, h, w)
 			inc, err := NewIncremental(context.Background(), g, "input", "logits", x)
 			if err != nil {
 				t.Fatal(err)
@@ -124,7 +124,7 @@ func TestIncrementalCompactNets(t *testing.T) {
 			}
 			// Patch 10, stride 9 on 64²: 7×7 windows, the last flush with
 			// the edge; plus windows hanging over the border (clipped).
-			rects := occlusionRects(h, w, 10, 9)
+			rects := incWindows(h, w, 10, 9)
 			rects = append(rects, Rect{-3, -3, 4, 5}, Rect{w - 2, 30, w + 5, 33}, Rect{20, 20, 21, 21})
 			changed := false
 			for s := 0; s < len(rects); s += 13 { // odd batch sizes on purpose
@@ -133,9 +133,9 @@ func TestIncrementalCompactNets(t *testing.T) {
 				if err != nil {
 					t.Fatal(err)
 				}
-				want := bruteForce(t, g, "input", "logits", x, fill, part)
-				compareOutputs(t, fmt.Sprintf("windows %d–%d", s, s+len(part)-1), got, want)
-				changed = changed || differs(want, inc.Base())
+				want := incBruteForce(t, g, "input", "logits", x, fill, part)
+				incCompare(t, fmt.Sprintf("windows %d–%d", s, s+len(part)-1), got, want)
+				changed = changed || incDiffers(want, inc.Base())
 			}
 			if !changed {
 				t.Error("no window changed the output: the comparison proves nothing")
@@ -144,9 +144,9 @@ func TestIncrementalCompactNets(t *testing.T) {
 	}
 }
 
-// differs reports whether some row of batch differs from the single row
+// incDiffers reports whether some row of batch incDiffers from the single row
 // base by more than float noise.
-func differs(batch, base *tensor.Tensor) bool {
+func incDiffers(batch, base *tensor.Tensor) bool {
 	n := base.Len()
 	for i, v := range batch.F32 {
 		if math.Abs(float64(v-base.F32[i%n])) > 1e-3 {
@@ -156,10 +156,10 @@ func differs(batch, base *tensor.Tensor) bool {
 	return false
 }
 
-// A small graph built by hand: two convolutions, batch norm, max pooling,
+// incHandGraph is a small graph built by hand: two convolutions, batch norm, max pooling,
 // a skip connection with a depthwise branch, a channel concat, a constant
 // pad, average pooling and a classifier head.
-func handGraph(t testing.TB) *Graph {
+func incHandGraph(t testing.TB) *Graph {
 	r := rand.New(rand.NewPCG(11, 12))
 	init := map[string]*tensor.Tensor{}
 	var order []string
@@ -224,13 +224,13 @@ func handGraph(t testing.TB) *Graph {
 	return g
 }
 
-// TestIncrementalHandGraph checks, on handGraph, changed regions worked out
+// TestIncrementalHandGraph checks, on incHandGraph, changed regions worked out
 // by hand from the ONNX Conv/MaxPool output-position rule (output o reads
 // inputs o·s − pad + t·d, t < k), and exactness against brute force.
 func TestIncrementalHandGraph(t *testing.T) {
-	g := handGraph(t)
-	x := randomTensor(1, 1, 3, 20, 20)
-	fill := randomTensor(2, 1, 3, 20, 20)
+	g := incHandGraph(t)
+	x := incRandom(1, 1, 3, 20, 20)
+	fill := incRandom(2, 1, 3, 20, 20)
 	inc, err := NewIncremental(context.Background(), g, "x", "y", x)
 	if err != nil {
 		t.Fatal(err)
@@ -277,7 +277,7 @@ func TestIncrementalHandGraph(t *testing.T) {
 			t.Errorf("corner: %s: geometry %+v, want changed %+v", name, gm, r)
 		}
 	}
-	rects := occlusionRects(20, 20, 3, 2)
+	rects := incWindows(20, 20, 3, 2)
 	rects = append(rects, Rect{0, 0, 1, 1}, Rect{19, 19, 20, 20}, Rect{5, 0, 15, 20}, Rect{0, 0, 20, 20})
 	for s := 0; s < len(rects); s += 16 {
 		part := rects[s:min(s+16, len(rects))]
@@ -285,9 +285,9 @@ func TestIncrementalHandGraph(t *testing.T) {
 		if err != nil {
 			t.Fatal(err)
 		}
-		want := bruteForce(t, g, "x", "y", x, fill, part)
-		compareOutputs(t, fmt.Sprintf("windows %d–", s), got, want)
-		if !differs(want, inc.Base()) {
+		want := incBruteForce(t, g, "x", "y", x, fill, part)
+		incCompare(t, fmt.Sprintf("windows %d–", s), got, want)
+		if !incDiffers(want, inc.Base()) {
 			t.Errorf("windows %d–: no window changed the output", s)
 		}
 	}
@@ -297,7 +297,7 @@ func TestIncrementalHandGraph(t *testing.T) {
 		if err != nil {
 			t.Fatal(err)
 		}
-		compareOutputs(t, fmt.Sprint(r), got, bruteForce(t, g, "x", "y", x, fill, []Rect{r}))
+		incCompare(t, fmt.Sprint(r), got, incBruteForce(t, g, "x", "y", x, fill, []Rect{r}))
 	}
 }
 
@@ -334,7 +334,7 @@ func TestIncrementalReceptiveField(t *testing.T) {
 		n.Inputs = []string{prev}
 		if l.op == "Conv" {
 			w := fmt.Sprintf("w%d", i)
-			init[w] = randomTensor(uint64(i), 1, 1, int(l.k), 1)
+			init[w] = incRandom(uint64(i), 1, 1, int(l.k), 1)
 			n.Inputs = append(n.Inputs, w)
 		}
 		nodes = append(nodes, n)
@@ -351,7 +351,7 @@ func TestIncrementalReceptiveField(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	inc, err := NewIncremental(context.Background(), g, "x", prev, randomTensor(3, 1, 1, h, 2))
+	inc, err := NewIncremental(context.Background(), g, "x", prev, incRandom(3, 1, 1, h, 2))
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -409,11 +409,11 @@ func TestIncrementalMultiplyAdds(t *testing.T) {
 		if size == 224 {
 			patch, stride = 16, 8
 		}
-		inc, err := NewIncremental(context.Background(), g, in.Name, g.Outputs()[0].Name, randomTensor(4, 1, 3, size, size))
+		inc, err := NewIncremental(context.Background(), g, in.Name, g.Outputs()[0].Name, incRandom(4, 1, 3, size, size))
 		if err != nil {
 			t.Fatal(err)
 		}
-		rects := occlusionRects(size, size, patch, stride)
+		rects := incWindows(size, size, patch, stride)
 		i1, full := inc.MultiplyAdds(rects, 1)
 		i16, _ := inc.MultiplyAdds(rects, 16)
 		o16 := inc.orderedCost(rects, inc.Order(rects), 16)
@@ -427,7 +427,7 @@ func TestIncrementalMultiplyAdds(t *testing.T) {
 
 // TestIncrementalRegionsAreSound runs occluded images through the compact
 // networks in full, keeping every activation, and checks that every
-// position of every spatial value that differs from the unoccluded pass
+// position of every spatial value that incDiffers from the unoccluded pass
 // lies inside the changed rectangle the plan predicts: an independent,
 // layer-by-layer check of the region arithmetic on real architectures. It
 // also reports how tight the prediction is (the share of predicted
@@ -439,15 +439,15 @@ func TestIncrementalRegionsAreSound(t *testing.T) {
 		if err != nil {
 			t.Fatal(err)
 		}
-		x := randomTensor(21, 1, 3, 64, 64)
-		fill := randomTensor(22, 1, 3, 64, 64)
+		x := incRandom(21, 1, 3, 64, 64)
+		fill := incRandom(22, 1, 3, 64, 64)
 		inc, err := NewIncremental(context.Background(), g, "input", "logits", x)
 		if err != nil {
 			t.Fatal(err)
 		}
 		var predicted, changed int
 		for _, r := range []Rect{{20, 24, 25, 29}, {0, 0, 5, 5}, {59, 40, 64, 45}} {
-			occ := bruteForceInput(x, fill, r)
+			occ := incOccluded(x, fill, r)
 			vals, _, err := g.runKeepAll(context.Background(), "input", occ)
 			if err != nil {
 				t.Fatal(err)
@@ -490,7 +490,7 @@ func TestIncrementalRegionsAreSound(t *testing.T) {
 	}
 }
 
-func bruteForceInput(x, fill *tensor.Tensor, r Rect) *tensor.Tensor {
+func incOccluded(x, fill *tensor.Tensor, r Rect) *tensor.Tensor {
 	out := x.Clone()
 	c, h, w := x.Shape[1], x.Shape[2], x.Shape[3]
 	for k := 0; k < c; k++ {
@@ -507,9 +507,9 @@ func bruteForceInput(x, fill *tensor.Tensor, r Rect) *tensor.Tensor {
 // concurrent Occlude calls on one Incremental agree with sequential ones;
 // a cancelled context stops the evaluation.
 func TestIncrementalRebaseConcurrentCancel(t *testing.T) {
-	g := handGraph(t)
-	x1, x2 := randomTensor(31, 1, 3, 20, 20), randomTensor(32, 1, 3, 20, 20)
-	fill := randomTensor(33, 1, 3, 20, 20)
+	g := incHandGraph(t)
+	x1, x2 := incRandom(31, 1, 3, 20, 20), incRandom(32, 1, 3, 20, 20)
+	fill := incRandom(33, 1, 3, 20, 20)
 	inc1, err := NewIncremental(context.Background(), g, "x", "y", x1)
 	if err != nil {
 		t.Fatal(err)
@@ -518,13 +518,13 @@ func TestIncrementalRebaseConcurrentCancel(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	rects := occlusionRects(20, 20, 4, 3)
+	rects := incWindows(20, 20, 4, 3)
 	got, err := inc2.Occlude(context.Background(), fill, rects)
 	if err != nil {
 		t.Fatal(err)
 	}
-	compareOutputs(t, "rebased", got, bruteForce(t, g, "x", "y", x2, fill, rects))
-	if _, err := inc1.Rebase(context.Background(), randomTensor(1, 1, 3, 21, 20)); err == nil {
+	incCompare(t, "rebased", got, incBruteForce(t, g, "x", "y", x2, fill, rects))
+	if _, err := inc1.Rebase(context.Background(), incRandom(1, 1, 3, 21, 20)); err == nil {
 		t.Error("rebase to another shape: no error")
 	}
 
@@ -539,7 +539,7 @@ func TestIncrementalRebaseConcurrentCancel(t *testing.T) {
 			if err == nil {
 				for i := range y.F32 {
 					if y.F32[i] != want.F32[i] {
-						err = fmt.Errorf("concurrent result differs at %d", i)
+						err = fmt.Errorf("concurrent result incDiffers at %d", i)
 						break
 					}
 				}
@@ -558,7 +558,7 @@ func TestIncrementalRebaseConcurrentCancel(t *testing.T) {
 	if _, err := inc1.Occlude(ctx, fill, rects); err == nil {
 		t.Error("cancelled context: no error")
 	}
-	if _, err := inc1.Occlude(context.Background(), randomTensor(1, 1, 3, 5, 5), rects); err == nil {
+	if _, err := inc1.Occlude(context.Background(), incRandom(1, 1, 3, 5, 5), rects); err == nil {
 		t.Error("fill of the wrong shape: no error")
 	}
 }
@@ -578,13 +578,13 @@ func TestIncrementalFallback(t *testing.T) {
 		},
 		Inputs:       []onnx.ValueInfo{{Name: "x", DType: tensor.Float32, Shape: []onnx.Dim{{Param: "N"}, {Value: 2}, {Value: 12}, {Value: 12}}}},
 		Outputs:      []onnx.ValueInfo{{Name: "y", DType: tensor.Float32}},
-		Initializers: map[string]*tensor.Tensor{"w1": randomTensor(41, 4, 2, 3, 3), "w2": randomTensor(42, 3, 4, 3, 3)},
+		Initializers: map[string]*tensor.Tensor{"w1": incRandom(41, 4, 2, 3, 3), "w2": incRandom(42, 3, 4, 3, 3)},
 	}}
 	g, err := Compile(m)
 	if err != nil {
 		t.Fatal(err)
 	}
-	x, fill := randomTensor(43, 1, 2, 12, 12), randomTensor(44, 1, 2, 12, 12)
+	x, fill := incRandom(43, 1, 2, 12, 12), incRandom(44, 1, 2, 12, 12)
 	inc, err := NewIncremental(context.Background(), g, "x", "y", x)
 	if err != nil {
 		t.Fatal(err)
@@ -593,14 +593,14 @@ func TestIncrementalFallback(t *testing.T) {
 	if len(fb) != 1 || !strings.Contains(fb[0], "Softmax") {
 		t.Errorf("fallbacks %q, want the Softmax node", fb)
 	}
-	rects := occlusionRects(12, 12, 3, 2)
+	rects := incWindows(12, 12, 3, 2)
 	got, err := inc.Occlude(context.Background(), fill, rects)
 	if err != nil {
 		t.Fatal(err)
 	}
-	want := bruteForce(t, g, "x", "y", x, fill, rects)
-	compareOutputs(t, "softmax graph", got, want)
-	if !differs(want, inc.Base()) {
+	want := incBruteForce(t, g, "x", "y", x, fill, rects)
+	incCompare(t, "softmax graph", got, want)
+	if !incDiffers(want, inc.Base()) {
 		t.Error("no window changed the output")
 	}
 	if gm := inc.plan.propagate(rects[:1])[g.index["sm"]]; gm == nil || !gm.full {
