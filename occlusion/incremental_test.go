@@ -102,17 +102,20 @@ func cpuSeconds() float64 {
 
 // BenchmarkOcclusionEvaluators times a whole occlusion map with each
 // evaluator on the compact networks (64², patch 5, stride 2: 961 windows)
-// and, when HEEDMAP_RESNET18 names a full-size ResNet-18 export
-// (testdata/reference/export_nets.py --full), at 224², patch 16, stride 8
-// (729 windows). It reports windows per second.
+// and, when HEEDMAP_RESNET18 (HEEDMAP_MOBILENETV2, HEEDMAP_EFFICIENTNETB0)
+// names a full-size export's model.onnx (testdata/reference/export_nets.py
+// --full), at 224², patch 16, stride 8 (729 windows). It reports windows
+// per second and CPU seconds per map.
 func BenchmarkOcclusionEvaluators(b *testing.B) {
 	type bnet struct{ name, dir string }
 	var nets []bnet
 	for _, n := range []string{"resnet18", "mobilenet_v2", "efficientnet_b0", "densenet121"} {
 		nets = append(nets, bnet{n, filepath.Join("..", "testdata", "nets", n)})
 	}
-	if p := os.Getenv("HEEDMAP_RESNET18"); p != "" {
-		nets = append(nets, bnet{"resnet18-224", filepath.Dir(p)})
+	for _, e := range [][2]string{{"HEEDMAP_RESNET18", "resnet18-224"}, {"HEEDMAP_MOBILENETV2", "mobilenet_v2-224"}, {"HEEDMAP_EFFICIENTNETB0", "efficientnet_b0-224"}} {
+		if p := os.Getenv(e[0]); p != "" {
+			nets = append(nets, bnet{e[1], filepath.Dir(p)})
+		}
 	}
 	for _, n := range nets {
 		net, x := loadNet(b, n.dir)
