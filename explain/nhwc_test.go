@@ -25,32 +25,7 @@ func TestNHWCModel(t *testing.T) {
 	lin := explaintest.NewLinear(c, h, w, k, 101) // reused only for its random weights
 	W := tensor.FromFloat32(append([]float32(nil), lin.W...), k, d)
 	B := tensor.FromFloat32(append([]float32(nil), lin.B...), k)
-	f32 := func(name string, dims ...int64) onnx.ValueInfo {
-		vi := onnx.ValueInfo{Name: name, ElemType: 1, DType: tensor.Float32}
-		for _, v := range dims {
-			vi.Shape = append(vi.Shape, onnx.Dim{Value: v})
-		}
-		return vi
-	}
-	in := f32("img", -1, h, w, c)
-	in.Shape[0] = onnx.Dim{Value: -1, Param: "batch"}
-	out := f32("logits", -1, k)
-	out.Shape[0] = onnx.Dim{Value: -1, Param: "batch"}
-	m := &onnx.Model{IRVersion: 7, Opsets: map[string]int64{"": 13}, Graph: &onnx.Graph{
-		Name: "nhwc-linear",
-		Nodes: []*onnx.Node{
-			{Name: "flat", OpType: "Flatten", Inputs: []string{"img"}, Outputs: []string{"f"}, Attrs: map[string]*onnx.Attr{"axis": {Name: "axis", Type: onnx.AttrInt, Int: 1}}},
-			{Name: "fc", OpType: "Gemm", Inputs: []string{"f", "W", "B"}, Outputs: []string{"logits"}, Attrs: map[string]*onnx.Attr{"transB": {Name: "transB", Type: onnx.AttrInt, Int: 1}}},
-		},
-		Inputs:       []onnx.ValueInfo{in, f32("W", k, int64(d)), f32("B", k)},
-		Outputs:      []onnx.ValueInfo{out},
-		Initializers: map[string]*tensor.Tensor{"W": W, "B": B},
-		InitOrder:    []string{"W", "B"},
-	}}
-	g, err := engine.Compile(m)
-	if err != nil {
-		t.Fatal(err)
-	}
+	g := gemmGraph(t, []int64{h, w, c}, W, B)
 	var shape []int
 	for _, dd := range g.Inputs()[0].Shape {
 		shape = append(shape, int(dd.Value))
@@ -98,4 +73,38 @@ func TestNHWCModel(t *testing.T) {
 			}
 		}
 	}
+}
+
+// gemmGraph compiles the ONNX model Flatten(axis 1) → Gemm(transB = 1) with
+// weights W [K, D] and bias B [K] on an input "img" of shape [batch, dims...].
+func gemmGraph(t *testing.T, dims []int64, W, B *tensor.Tensor) *engine.Graph {
+	t.Helper()
+	k, d := int64(W.Shape[0]), int64(W.Shape[1])
+	f32 := func(name string, dims ...int64) onnx.ValueInfo {
+		vi := onnx.ValueInfo{Name: name, ElemType: 1, DType: tensor.Float32}
+		for _, v := range dims {
+			vi.Shape = append(vi.Shape, onnx.Dim{Value: v})
+		}
+		return vi
+	}
+	in := f32("img", append([]int64{-1}, dims...)...)
+	in.Shape[0] = onnx.Dim{Value: -1, Param: "batch"}
+	out := f32("logits", -1, k)
+	out.Shape[0] = onnx.Dim{Value: -1, Param: "batch"}
+	m := &onnx.Model{IRVersion: 7, Opsets: map[string]int64{"": 13}, Graph: &onnx.Graph{
+		Name: "flatten-gemm",
+		Nodes: []*onnx.Node{
+			{Name: "flat", OpType: "Flatten", Inputs: []string{"img"}, Outputs: []string{"f"}, Attrs: map[string]*onnx.Attr{"axis": {Name: "axis", Type: onnx.AttrInt, Int: 1}}},
+			{Name: "fc", OpType: "Gemm", Inputs: []string{"f", "W", "B"}, Outputs: []string{"logits"}, Attrs: map[string]*onnx.Attr{"transB": {Name: "transB", Type: onnx.AttrInt, Int: 1}}},
+		},
+		Inputs:       []onnx.ValueInfo{in, f32("W", k, d), f32("B", k)},
+		Outputs:      []onnx.ValueInfo{out},
+		Initializers: map[string]*tensor.Tensor{"W": W, "B": B},
+		InitOrder:    []string{"W", "B"},
+	}}
+	g, err := engine.Compile(m)
+	if err != nil {
+		t.Fatal(err)
+	}
+	return g
 }
