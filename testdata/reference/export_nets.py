@@ -30,8 +30,9 @@ ConvNeXt layer scale are randomised too.
 Rerun (from the repository root; takes about a minute on 2 cores):
     /usr/bin/python3 testdata/reference/export_nets.py
 Full-size torchvision architectures (random weights, 224x224 / 299x299;
-hundreds of MB, never committed) for the opt-in test, with the goldens
-also computed in float64 (*_f64.pb, see float64_goldens):
+hundreds of MB, never committed) for the opt-in test, with goldens of the
+exported graph in float64 and float32 (*_f64.pb, *_g32.pb; see
+float64_goldens):
     /usr/bin/python3 testdata/reference/export_nets.py --full --out DIR [NAME...]
 Versions used for the committed files: Debian python3-torch 1.13,
 python3-torchvision 0.14, python3-onnx 1.12 (printed into meta.json).
@@ -307,29 +308,88 @@ def onnx_layer_name(graph, name, pool_ops=("GlobalAveragePool", "ReduceMean")):
     raise SystemExit(f"{name}: no global pooling node found")
 
 
-def float64_goldens(model, capture, x, d):
-    """Full-size only: the same goldens computed in float64 (model.double(),
-    the same input rounded from float32 exactly), written as DOUBLE
-    TensorProtos *_f64.pb.
+def _scope_to_module(node_name):
+    """Module path of an ONNX node named by torch.onnx's scopes, e.g.
+    /features/features.1/conv/conv.0/conv.0.0/Conv -> features.1.conv.0.0
+    (each scope component is an attribute name, or the previous component
+    plus '.' and the child's name)."""
+    comps = node_name.strip("/").split("/")[:-1]
+    full, prev = comps[0], comps[0]
+    for c in comps[1:]:
+        full += c[len(prev):] if c.startswith(prev + ".") else "." + c
+        prev = c
+    return full
 
-    Why: at 224x224 and above PyTorch's own float32 input gradient is not
-    reproducible to the 1e-3 relative L2 the runtime is held to:
-    noise_floor.py measures torch float32 vs torch float64 at 1e-3 to 7e-3
-    for ReLU networks (rounding flips some ReLU/max-pool units, whose
-    derivatives are discontinuous). A float32 golden therefore cannot tell
-    a runtime bug from rounding. The float64 result is the closest thing to
-    the exact gradient of this network at this input; engine/networks_test.go
-    measures our float32 result against it and against PyTorch's float32
-    result alike, so the comparison has an outside truth instead of a
-    second noisy float32 computation."""
-    m64 = copy.deepcopy(model).double()
-    x64 = x.detach().double().requires_grad_(True)
-    logits, act = capture(m64, x64)
-    gx, ga = torch.autograd.grad(logits[:, CLASS_INDEX].sum(), [x64, act])
-    tensor_pb(logits.detach().numpy(), "logits", os.path.join(d, "logits_f64.pb"))
-    tensor_pb(gx.numpy(), "grad_input", os.path.join(d, "grad_input_f64.pb"))
-    tensor_pb(act.detach().numpy(), "layer", os.path.join(d, "layer_f64.pb"))
-    tensor_pb(ga.numpy(), "grad_layer", os.path.join(d, "grad_layer_f64.pb"))
+
+def graph_model(model, onnx_path):
+    """A copy of model that computes exactly the exported graph: every Conv
+    gets the exported (BatchNorm-folded, float32) weight and bias, and every
+    BatchNorm the export folded away becomes an identity. Checked: each ONNX
+    Conv maps to one Conv2d of the same shape, and no BatchNorm is both
+    folded and kept."""
+    m = copy.deepcopy(model)
+    mods = dict(m.named_modules())
+    g = onnx.load(onnx_path).graph
+    inits = {t.name: numpy_helper.to_array(t) for t in g.initializer}
+    for n in g.node:  # the export shares equal initializers through Identity
+        if n.op_type == "Identity" and n.input[0] in inits:
+            inits[n.output[0]] = inits[n.input[0]]
+    kept_bn = set()
+    convs = 0
+    for n in g.node:
+        if n.op_type == "BatchNormalization":
+            kept_bn.add(_scope_to_module(n.name))
+        if n.op_type != "Conv":
+            continue
+        path = _scope_to_module(n.name)
+        conv = mods.get(path)
+        if not isinstance(conv, nn.Conv2d):
+            raise SystemExit(f"graph_model: ONNX node {n.name} maps to {path!r}, not a Conv2d")
+        w = torch.from_numpy(inits[n.input[1]].copy())
+        if w.shape != conv.weight.shape:
+            raise SystemExit(f"graph_model: {n.name} weight {tuple(w.shape)} vs {path} {tuple(conv.weight.shape)}")
+        conv.weight = nn.Parameter(w)
+        if len(n.input) > 2 and n.input[2]:
+            conv.bias = nn.Parameter(torch.from_numpy(inits[n.input[2]].copy()))
+        convs += 1
+    if convs != sum(isinstance(x, nn.Conv2d) for x in mods.values()):
+        raise SystemExit("graph_model: not every Conv2d has an ONNX Conv node")
+    for path, mod in list(m.named_modules()):
+        if isinstance(mod, nn.BatchNorm2d) and path not in kept_bn:
+            parent = m.get_submodule(path.rsplit(".", 1)[0]) if "." in path else m
+            setattr(parent, path.rsplit(".", 1)[-1], nn.Identity())
+    return m.eval()
+
+
+def float64_goldens(model, capture, x, d, onnx_path):
+    """Full-size only: reference results for the exported graph's own
+    function, written beside the float32 goldens:
+
+      *_f64.pb   the exported graph computed in float64 (graph_model(...)
+                 .double(); the float32 weights and input are exact in
+                 float64), i.e. the exact result of the function heedmap
+                 evaluates, up to float64 rounding;
+      *_g32.pb   PyTorch float32 computing the same exported graph.
+
+    Why: at 224x224 and above a float32 input gradient of a ReLU network is
+    not reproducible to the 1e-3 relative L2 the runtime is held to: rounding
+    flips ReLU/max-pool units, whose derivatives are discontinuous
+    (noise_floor.py: PyTorch float32 vs float64 differ by 1e-3 to 7e-3, and
+    so do PyTorch float32 with and without the export's BatchNorm folding).
+    A float32 golden of the unfolded model cannot tell a runtime bug from
+    rounding. engine/networks_test.go judges our float32 result against the
+    float64 truth, and compares its distance with PyTorch float32's on the
+    same graph."""
+    gm = graph_model(model, onnx_path)
+    for suffix, m, xx in (("f64", copy.deepcopy(gm).double(), x.detach().double()),
+                          ("g32", gm, x.detach().clone())):
+        xx.requires_grad_(True)
+        logits, act = capture(m, xx)
+        gx, ga = torch.autograd.grad(logits[:, CLASS_INDEX].sum(), [xx, act])
+        tensor_pb(logits.detach().numpy(), "logits", os.path.join(d, f"logits_{suffix}.pb"))
+        tensor_pb(gx.numpy(), "grad_input", os.path.join(d, f"grad_input_{suffix}.pb"))
+        tensor_pb(act.detach().numpy(), "layer", os.path.join(d, f"layer_{suffix}.pb"))
+        tensor_pb(ga.numpy(), "grad_layer", os.path.join(d, f"grad_layer_{suffix}.pb"))
 
 
 def export(name, builder, outdir, seed, full=False):
@@ -380,7 +440,7 @@ def export(name, builder, outdir, seed, full=False):
     tensor_pb(act.detach().numpy(), layer, os.path.join(d, "layer.pb"))
     tensor_pb(ga.numpy(), "grad_layer", os.path.join(d, "grad_layer.pb"))
     if full:
-        float64_goldens(model, capture, x, d)
+        float64_goldens(model, capture, x, d, path)
     meta = {
         "name": name,
         "input": "input",
