@@ -577,7 +577,7 @@ func (inc *Incremental) Occlude(ctx context.Context, fill *tensor.Tensor, rects 
 	x0.t = tensor.New(len(rects), xs[1], x0.p, x0.q)
 	for b := range rects {
 		dst := x0.t.F32[b*xs[1]*x0.p*x0.q : (b+1)*xs[1]*x0.p*x0.q]
-		incGatherPlane(inc.base[p.in].F32, xs[1], h, w, x0.oy[b], x0.ox[b], x0.p, x0.q, 0, dst)
+		incGatherPlane(inc.base[p.in].F32, xs[1], h, w, x0.oy[b], x0.ox[b], x0.p, x0.q, 0, dst, x0.p*x0.q)
 		// Overlay the fill inside the rectangle.
 		r := chg[b]
 		for c := 0; c < xs[1]; c++ {
@@ -722,12 +722,12 @@ func (inc *Incremental) runFull(k int, vals []*incVal, nb int) error {
 }
 
 // incGatherPlane writes rows [y0, y0+ph) × cols [x0, x0+pw) of a C×H×W map
-// into dst (C×ph×pw), with fill outside the map.
-func incGatherPlane(src []float32, c, h, w, y0, x0, ph, pw int, fill float32, dst []float32) {
+// into dst (C blocks of ph×pw, cs floats apart), with fill outside the map.
+func incGatherPlane(src []float32, c, h, w, y0, x0, ph, pw int, fill float32, dst []float32, cs int) {
 	xa, xb := max(x0, 0), min(x0+pw, w)
 	for ch := 0; ch < c; ch++ {
 		for i := 0; i < ph; i++ {
-			row := dst[(ch*ph+i)*pw : (ch*ph+i+1)*pw]
+			row := dst[ch*cs+i*pw : ch*cs+(i+1)*pw]
 			y := y0 + i
 			if y < 0 || y >= h || xa >= xb {
 				for j := range row {
@@ -747,16 +747,16 @@ func incGatherPlane(src []float32, c, h, w, y0, x0, ph, pw int, fill float32, ds
 }
 
 // gather writes value v of window b over rows [y0, y0+ph) × cols
-// [x0, x0+pw) into dst (C×ph×pw): the kept value, overlaid with the
-// window's patch, and fill outside the map.
-func (inc *Incremental) gather(v int, s *incVal, b, y0, x0, ph, pw int, fill float32, dst []float32) {
+// [x0, x0+pw) into dst (C blocks of ph×pw, cs floats apart): the kept
+// value, overlaid with the window's patch, and fill outside the map.
+func (inc *Incremental) gather(v int, s *incVal, b, y0, x0, ph, pw int, fill float32, dst []float32, cs int) {
 	shp := inc.plan.shapes[v]
 	c, h, w := shp[1], shp[2], shp[3]
 	if s.full {
-		incGatherPlane(s.t.F32[b*c*h*w:(b+1)*c*h*w], c, h, w, y0, x0, ph, pw, fill, dst)
+		incGatherPlane(s.t.F32[b*c*h*w:(b+1)*c*h*w], c, h, w, y0, x0, ph, pw, fill, dst, cs)
 		return
 	}
-	incGatherPlane(inc.base[v].F32, c, h, w, y0, x0, ph, pw, fill, dst)
+	incGatherPlane(inc.base[v].F32, c, h, w, y0, x0, ph, pw, fill, dst, cs)
 	// Overlay the patch where it meets the requested region.
 	ya, yb := max(y0, s.oy[b]), min(y0+ph, s.oy[b]+s.p)
 	xa, xb := max(x0, s.ox[b]), min(x0+pw, s.ox[b]+s.q)
@@ -766,7 +766,7 @@ func (inc *Incremental) gather(v int, s *incVal, b, y0, x0, ph, pw int, fill flo
 	pt := s.t.F32[b*c*s.p*s.q:]
 	for ch := 0; ch < c; ch++ {
 		for y := ya; y < yb; y++ {
-			copy(dst[(ch*ph+y-y0)*pw+xa-x0:][:xb-xa], pt[(ch*s.p+y-s.oy[b])*s.q+xa-s.ox[b]:][:xb-xa])
+			copy(dst[ch*cs+(y-y0)*pw+xa-x0:][:xb-xa], pt[(ch*s.p+y-s.oy[b])*s.q+xa-s.ox[b]:][:xb-xa])
 		}
 	}
 }
@@ -806,7 +806,7 @@ func (inc *Incremental) runPatch(k int, gm incGeo, vals []*incVal, nb int) (*inc
 				c := p.shapes[v][1]
 				t := tensor.New(nb, c, gm.p, gm.q)
 				for b := 0; b < nb; b++ {
-					inc.gather(v, vals[v], b, gm.oy[b], gm.ox[b], gm.p, gm.q, 0, t.F32[b*c*gm.p*gm.q:(b+1)*c*gm.p*gm.q])
+					inc.gather(v, vals[v], b, gm.oy[b], gm.ox[b], gm.p, gm.q, 0, t.F32[b*c*gm.p*gm.q:(b+1)*c*gm.p*gm.q], gm.p*gm.q)
 				}
 				in[i] = t
 			default:
@@ -824,11 +824,24 @@ func (inc *Incremental) runPatch(k int, gm incGeo, vals []*incVal, nb int) (*inc
 		g := st.g
 		ih := (gm.p-1)*g.sh + (g.kh-1)*g.dh + 1
 		iw := (gm.q-1)*g.sw + (g.kw-1)*g.dw + 1
+		if st.kind == incConv && st.group == 1 && g.kh == 1 && g.kw == 1 && g.sh == 1 && g.sw == 1 {
+			// A pointwise convolution's columns are its input patch with
+			// channels outermost: gather straight into that layout and
+			// skip im2col.
+			pq := gm.p * gm.q
+			cb := p.buf(c * nb * pq)
+			defer p.scratch.Put(cb)
+			incParallel(nb, func(b int) {
+				inc.gather(v, vals[v], b, gm.oy[b]-g.pt, gm.ox[b]-g.pl, gm.p, gm.q, 0, (*cb)[b*pq:], nb*pq)
+			})
+			out.t = st.convCols(p, *cb, nb, gm.p, gm.q)
+			break
+		}
 		xb := p.buf(nb * c * ih * iw)
 		defer p.scratch.Put(xb)
 		xt := tensor.FromFloat32(*xb, nb, c, ih, iw)
 		incParallel(nb, func(b int) {
-			inc.gather(v, vals[v], b, gm.oy[b]*g.sh-g.pt, gm.ox[b]*g.sw-g.pl, ih, iw, st.fill, xt.F32[b*c*ih*iw:(b+1)*c*ih*iw])
+			inc.gather(v, vals[v], b, gm.oy[b]*g.sh-g.pt, gm.ox[b]*g.sw-g.pl, ih, iw, st.fill, xt.F32[b*c*ih*iw:(b+1)*c*ih*iw], ih*iw)
 		})
 		if st.kind == incPool {
 			r, err := safeForward(st.patchOp, []*tensor.Tensor{xt})
@@ -928,22 +941,42 @@ func (st *incStep) convPatch(p *incPlan, x *tensor.Tensor, c, ph, pw int) *tenso
 			}
 		})
 		st.gemm.Sgemm(false, false, mg, n, kk, 1, st.w[gi*mg*kk:(gi+1)*mg*kk], kk, col, n, 0, tmp, n)
-		// tmp is [M_g, B·pq]; y is [B, M, pq].
-		for m := 0; m < mg; m++ {
-			var bias float32
-			if st.b != nil {
-				bias = st.b[gi*mg+m]
-			}
-			for b := 0; b < nb; b++ {
-				src := tmp[m*n+b*pq : m*n+(b+1)*pq]
-				dst := y.F32[(b*st.m+gi*mg+m)*pq : (b*st.m+gi*mg+m+1)*pq]
-				for i, v := range src {
-					dst[i] = v + bias
-				}
+		st.scatter(tmp, y.F32, gi, mg, nb, pq)
+	}
+	return y
+}
+
+// convCols multiplies the weights of a one-group convolution by ready
+// columns [C·kh·kw, B·P·Q] into [B, M, P, Q].
+func (st *incStep) convCols(p *incPlan, col []float32, nb, ph, pw int) *tensor.Tensor {
+	pq := ph * pw
+	n := nb * pq
+	kk := len(st.w) / st.m
+	y := tensor.New(nb, st.m, ph, pw)
+	tmpb := p.buf(st.m * n)
+	defer p.scratch.Put(tmpb)
+	st.gemm.Sgemm(false, false, st.m, n, kk, 1, st.w, kk, col[:kk*n], n, 0, *tmpb, n)
+	st.scatter(*tmpb, y.F32, 0, st.m, nb, pq)
+	return y
+}
+
+// scatter adds the bias to the product tmp [M_g, B·pq] of group gi and
+// writes it to y [B, M, pq].
+func (st *incStep) scatter(tmp, y []float32, gi, mg, nb, pq int) {
+	n := nb * pq
+	for m := 0; m < mg; m++ {
+		var bias float32
+		if st.b != nil {
+			bias = st.b[gi*mg+m]
+		}
+		for b := 0; b < nb; b++ {
+			src := tmp[m*n+b*pq : m*n+(b+1)*pq]
+			dst := y[(b*st.m+gi*mg+m)*pq : (b*st.m+gi*mg+m+1)*pq]
+			for i, v := range src {
+				dst[i] = v + bias
 			}
 		}
 	}
-	return y
 }
 
 // incParallel runs f(0..n-1) over the available cores.
