@@ -120,3 +120,52 @@ func TestLinearGemmOnRuntime(t *testing.T) {
 		t.Error("SmoothGrad with σ = 0 differs from the gradient")
 	}
 }
+
+// A model whose graph ends in Softmax: GraphOptions.Output may name the
+// inner pre-softmax tensor, and the methods then see the logits (gradient of
+// the logit = weight row, exactly), not probabilities.
+func TestInnerLogitsOutput(t *testing.T) {
+	const c, h, w, k = 1, 3, 4, 3
+	lin := explaintest.NewLinear(c, h, w, k, 121)
+	W := tensor.FromFloat32(append([]float32(nil), lin.W...), k, c*h*w)
+	B := tensor.FromFloat32(append([]float32(nil), lin.B...), k)
+	g := gemmGraph(t, []int64{c, h, w}, W, B, true)
+	x := explaintest.RandomInput(c, h, w, 122)
+	probs, err := explain.FromGraph(g, explain.GraphOptions{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	p, _ := explain.Logits(ctx, probs, x)
+	var sum float64
+	for _, v := range p {
+		sum += float64(v)
+	}
+	if math.Abs(sum-1) > 1e-6 {
+		t.Fatalf("default output is not the softmax: sums to %v", sum)
+	}
+	net, err := explain.FromGraph(g, explain.GraphOptions{Output: "logits"})
+	if err != nil {
+		t.Fatal(err)
+	}
+	r, err := explain.Gradient{}.Attribute(ctx, net, x, explain.Class(1, explain.Logit))
+	if err != nil {
+		t.Fatal(err)
+	}
+	if !bytes.Equal(f32bytes(r.Channels.F32), f32bytes(W.F32[c*h*w:2*c*h*w])) {
+		t.Error("gradient of the inner logit is not the weight row")
+	}
+	l, _ := explain.Logits(ctx, net, x)
+	for j := range l {
+		if math.Abs(math.Exp(float64(l[j]))/expSum(l)-float64(p[j])) > 1e-6 {
+			t.Errorf("softmax of inner logits %v ≠ graph output %v", l, p)
+		}
+	}
+}
+
+func expSum(v []float32) float64 {
+	var s float64
+	for _, x := range v {
+		s += math.Exp(float64(x))
+	}
+	return s
+}

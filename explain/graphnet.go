@@ -14,6 +14,10 @@ type GraphOptions struct {
 	// non-initializer input.
 	Input string
 	// Output is the logits output's name; "" = the graph's first output.
+	// It may name an inner value: for a model whose graph ends in Softmax
+	// (or Sigmoid), name the tensor that feeds it, so that the Logit score
+	// and Grad-CAM's pre-softmax score mean what their definitions say and
+	// the Softmax/Sigmoid score kinds are not applied twice.
 	Output string
 	// NHWC says the model takes channels-last input. The methods always work
 	// in NCHW (Network's contract); the adapter transposes on the way in and
@@ -27,6 +31,7 @@ type graphNet struct {
 	input, output string
 	shape         []int // NCHW, -1 for dynamic
 	nhwc          bool
+	keep          []string // the output, when it is an inner value
 }
 
 // FromGraph wraps a compiled graph as a Network. The output must hold one
@@ -69,6 +74,15 @@ func FromGraph(g *engine.Graph, opts GraphOptions) (Network, error) {
 		}
 		n.output = outs[0].Name
 	}
+	inner := true
+	for _, vi := range outs {
+		if vi.Name == n.output {
+			inner = false
+		}
+	}
+	if inner {
+		n.keep = []string{n.output}
+	}
 	return n, nil
 }
 
@@ -104,7 +118,7 @@ func (n *graphNet) Forward(ctx context.Context, x *tensor.Tensor) (*tensor.Tenso
 	if err != nil {
 		return nil, err
 	}
-	p, err := n.g.Run(ctx, in, engine.RunOptions{})
+	p, err := n.g.Run(ctx, in, engine.RunOptions{Keep: n.keep})
 	if err != nil {
 		return nil, err
 	}
@@ -117,10 +131,10 @@ func (n *graphNet) Gradient(ctx context.Context, x *tensor.Tensor, seed func(*te
 	if err != nil {
 		return nil, err
 	}
-	opt := engine.RunOptions{Backward: true}
+	opt := engine.RunOptions{Backward: true, Keep: n.keep}
 	wrt := []string{n.input}
 	if layer != "" {
-		opt.Keep = []string{layer}
+		opt.Keep = append(append([]string(nil), n.keep...), layer)
 		wrt = append(wrt, layer)
 	}
 	p, err := n.g.Run(ctx, in, opt)

@@ -76,8 +76,10 @@ func TestNHWCModel(t *testing.T) {
 }
 
 // gemmGraph compiles the ONNX model Flatten(axis 1) → Gemm(transB = 1) with
-// weights W [K, D] and bias B [K] on an input "img" of shape [batch, dims...].
-func gemmGraph(t *testing.T, dims []int64, W, B *tensor.Tensor) *engine.Graph {
+// weights W [K, D] and bias B [K] on an input "img" of shape [batch, dims...];
+// the Gemm output is "logits". With softmax, a Softmax node follows and the
+// graph's only output is its "probs".
+func gemmGraph(t *testing.T, dims []int64, W, B *tensor.Tensor, softmax ...bool) *engine.Graph {
 	t.Helper()
 	k, d := int64(W.Shape[0]), int64(W.Shape[1])
 	f32 := func(name string, dims ...int64) onnx.ValueInfo {
@@ -102,6 +104,12 @@ func gemmGraph(t *testing.T, dims []int64, W, B *tensor.Tensor) *engine.Graph {
 		Initializers: map[string]*tensor.Tensor{"W": W, "B": B},
 		InitOrder:    []string{"W", "B"},
 	}}
+	if len(softmax) > 0 && softmax[0] {
+		m.Graph.Nodes = append(m.Graph.Nodes, &onnx.Node{Name: "sm", OpType: "Softmax", Inputs: []string{"logits"}, Outputs: []string{"probs"},
+			Attrs: map[string]*onnx.Attr{"axis": {Name: "axis", Type: onnx.AttrInt, Int: 1}}})
+		out.Name = "probs"
+		m.Graph.Outputs = []onnx.ValueInfo{out}
+	}
 	g, err := engine.Compile(m)
 	if err != nil {
 		t.Fatal(err)
