@@ -150,7 +150,7 @@ func plan(t testing.TB, in Input, shard Shard) *Plan {
 	if err != nil {
 		t.Fatal(err)
 	}
-	p, err := Validate(context.Background(), items, probs, shard, "fp-test", 2)
+	p, err := Validate(context.Background(), items, probs, shard, "fp-test", Checks{Workers: 2})
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -198,8 +198,41 @@ func TestDiscoverFolderPairsMasksBySuffix(t *testing.T) {
 			t.Errorf("%s paired with %q", it.ID, it.Mask)
 		}
 	}
-	if len(probs) != 1 || !probs[0].Warning || !strings.Contains(probs[0].Reason, "no mask") {
-		t.Errorf("problems %v, want one missing-mask warning", probs)
+	if len(probs) != 0 {
+		t.Errorf("problems %v, want none (a missing mask is the item's own error)", probs)
+	}
+	for _, it := range items {
+		if (it.ID == "lonely") != strings.Contains(it.Problem, "lonely.png: missing mask: no lonely_seg.png") {
+			t.Errorf("%s: problem %q", it.ID, it.Problem)
+		}
+	}
+}
+
+// Artefact masks in DIR/CATEGORY/STEM.png pair with images like lesion
+// masks; a category folder without the image's file means "absent".
+func TestDiscoverArtefactFolders(t *testing.T) {
+	dir := t.TempDir()
+	in := folderSet(t, dir, 3)
+	in.Artefacts = filepath.Join(dir, "arts")
+	writeMask(t, filepath.Join(in.Artefacts, "ruler", "img001_seg.png"), 12, 10)
+	writeMask(t, filepath.Join(in.Artefacts, "ink", "img002_seg.png"), 12, 10)
+	items, _, err := Discover(in)
+	if err != nil {
+		t.Fatal(err)
+	}
+	want := map[string]map[string]string{
+		"img000": {"ruler": "", "ink": ""},
+		"img001": {"ruler": filepath.Join(in.Artefacts, "ruler", "img001_seg.png"), "ink": ""},
+		"img002": {"ruler": "", "ink": filepath.Join(in.Artefacts, "ink", "img002_seg.png")},
+	}
+	for _, it := range items {
+		if fmt.Sprint(it.Artefacts) != fmt.Sprint(want[it.ID]) {
+			t.Errorf("%s: artefacts %v, want %v", it.ID, it.Artefacts, want[it.ID])
+		}
+	}
+	in.Artefacts = filepath.Join(dir, "images") // no category folders
+	if _, _, err := Discover(in); err == nil || !strings.Contains(err.Error(), "no category subfolders") {
+		t.Errorf("artefacts folder without categories: %v", err)
 	}
 }
 
@@ -247,15 +280,26 @@ func TestBadInputsRecorded(t *testing.T) {
 	writeImg(t, filepath.Join(imgs, "wrongmask.png"), 12, 10, 4)
 	writeMask(t, filepath.Join(in.Masks, "wrongmask_seg.png"), 5, 5)
 	writeImg(t, filepath.Join(imgs, "will-fail.png"), 12, 10, 5)
+	writeMask(t, filepath.Join(in.Masks, "will-fail_seg.png"), 12, 10)
 	writeImg(t, filepath.Join(imgs, "will-panic.png"), 12, 10, 6)
+	writeMask(t, filepath.Join(in.Masks, "will-panic_seg.png"), 12, 10)
+	writeImg(t, filepath.Join(imgs, "nomask.png"), 12, 10, 7)
+	// An artefact mask of the wrong size is an error naming the file.
+	in.Artefacts = filepath.Join(dir, "arts")
+	writeImg(t, filepath.Join(imgs, "badruler.png"), 12, 10, 8)
+	writeMask(t, filepath.Join(in.Masks, "badruler_seg.png"), 12, 10)
+	writeMask(t, filepath.Join(in.Artefacts, "ruler", "badruler_seg.png"), 6, 5)
+	// A folder named like a mask cannot be read as one.
+	writeImg(t, filepath.Join(imgs, "dirmask.png"), 12, 10, 9)
+	os.MkdirAll(filepath.Join(in.Masks, "dirmask_seg.png"), 0o755)
 	p := plan(t, in, Shard{})
-	if len(p.Invalid) != 2 {
-		t.Fatalf("invalid %v, want corrupt and wrongmask", p.Invalid)
+	if len(p.Invalid) != 5 {
+		t.Fatalf("invalid %v, want corrupt, wrongmask, nomask, badruler, dirmask", p.Invalid)
 	}
 	out := filepath.Join(dir, "out")
 	s := run(t, out, p, &meanWorker{})
-	if s.OK != 3 || s.Failed != 4 || !s.Complete {
-		t.Fatalf("summary %+v, want 3 ok, 4 failed", s)
+	if s.OK != 3 || s.Failed != 7 || !s.Complete {
+		t.Fatalf("summary %+v, want 3 ok, 7 failed", s)
 	}
 	rows := string(readFile(t, filepath.Join(out, "metrics.csv")))
 	for id, want := range map[string]string{
@@ -263,6 +307,9 @@ func TestBadInputsRecorded(t *testing.T) {
 		"wrongmask":  "is 5×5 but image",
 		"will-fail":  "will-fail.png: deliberate failure",
 		"will-panic": "will-panic.png: internal error",
+		"nomask":     "nomask.png: missing mask: no nomask_seg.png",
+		"badruler":   "artifact:ruler " + filepath.Join(in.Artefacts, "ruler", "badruler_seg.png") + " is 6×5 but image",
+		"dirmask":    "missing mask",
 	} {
 		found := false
 		for _, line := range strings.Split(rows, "\n") {
@@ -310,7 +357,7 @@ func TestResumeSkipsFinishedWork(t *testing.T) {
 	}
 	// A different fingerprint (model or config) redoes everything.
 	items, probs, _ := Discover(in)
-	p, _ := Validate(context.Background(), items, probs, Shard{}, "other-model", 1)
+	p, _ := Validate(context.Background(), items, probs, Shard{}, "other-model", Checks{Workers: 1})
 	w4 := &meanWorker{}
 	run(t, out, p, w4)
 	if w4.calls.Load() != 6 {
@@ -356,6 +403,7 @@ func TestShardsPartitionAndMergeEqualsSingleRun(t *testing.T) {
 	dir := t.TempDir()
 	in := folderSet(t, dir, 20)
 	writeImg(t, filepath.Join(in.Images, "x-fail.png"), 12, 10, 3)
+	writeMask(t, filepath.Join(in.Masks, "x-fail_seg.png"), 12, 10)
 	single := filepath.Join(dir, "single")
 	run(t, single, plan(t, in, Shard{}), &meanWorker{})
 	os.WriteFile(filepath.Join(single, "config.yaml"), []byte("a: 1\n"), 0o644)
@@ -407,7 +455,7 @@ func TestShardsPartitionAndMergeEqualsSingleRun(t *testing.T) {
 	}
 	other := filepath.Join(dir, "other")
 	items, probs, _ := Discover(in)
-	p, _ := Validate(context.Background(), items, probs, Shard{2, n}, "other-model", 1)
+	p, _ := Validate(context.Background(), items, probs, Shard{2, n}, "other-model", Checks{Workers: 1})
 	run(t, other, p, &meanWorker{})
 	if _, err := Merge(filepath.Join(dir, "bad"), []string{shardDirs[0], shardDirs[1], other}, MergeOptions{}); err == nil {
 		t.Error("merge of shards with different fingerprints accepted")

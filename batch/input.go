@@ -41,6 +41,10 @@ type Item struct {
 	// Artefacts maps an artefact name to its mask path; "" means the
 	// manifest says the artefact is absent.
 	Artefacts map[string]string
+	// Problem is set when listing already shows the item cannot be
+	// processed (its mask is missing); Validate turns it into the item's
+	// error record.
+	Problem string
 	// Key is filled in by Validate.
 	Key string
 }
@@ -67,6 +71,12 @@ type Input struct {
 	// Ignored for manifests, which name their masks.
 	Masks      string
 	MaskSuffix string
+	// Artefacts is a folder of artefact masks for folder input, one
+	// subfolder per category: Artefacts/CATEGORY/STEM.png where STEM is
+	// the image stem plus MaskSuffix, like the lesion masks. An image with
+	// no file in a category's folder does not show that artefact.
+	// Manifests name their artefact masks in artifact:NAME columns.
+	Artefacts string
 }
 
 // Discover lists the items of in, sorted by id, and the problems found
@@ -93,6 +103,9 @@ func Discover(in Input) ([]Item, []Problem, error) {
 		if in.Masks != "" {
 			probs = append(probs, Problem{File: in.Masks, Reason: "masks folder ignored: the manifest names the masks", Warning: true})
 		}
+		if in.Artefacts != "" {
+			probs = append(probs, Problem{File: in.Artefacts, Reason: "artefacts folder ignored: the manifest names artefact masks in artifact:NAME columns", Warning: true})
+		}
 		return items, probs, nil
 	}
 	ents, err := os.ReadDir(in.Images)
@@ -104,6 +117,27 @@ func Discover(in Input) ([]Item, []Problem, error) {
 		masks, err = maskIndex(in.Masks, in.MaskSuffix)
 		if err != nil {
 			return nil, nil, err
+		}
+	}
+	var arts map[string]map[string]string // category → stem → path
+	if in.Artefacts != "" {
+		cats, err := os.ReadDir(in.Artefacts)
+		if err != nil {
+			return nil, nil, fmt.Errorf("artefacts: %w", err)
+		}
+		arts = map[string]map[string]string{}
+		for _, c := range cats {
+			if !c.IsDir() {
+				continue
+			}
+			m, err := maskIndex(filepath.Join(in.Artefacts, c.Name()), in.MaskSuffix)
+			if err != nil {
+				return nil, nil, fmt.Errorf("artefacts: %w", err)
+			}
+			arts[c.Name()] = m
+		}
+		if len(arts) == 0 {
+			return nil, nil, fmt.Errorf("artefacts: %s has no category subfolders (want %s/CATEGORY/STEM.png)", in.Artefacts, in.Artefacts)
 		}
 	}
 	var items []Item
@@ -125,7 +159,13 @@ func Discover(in Input) ([]Item, []Problem, error) {
 			if m, ok := masks[id]; ok {
 				it.Mask = m
 			} else {
-				probs = append(probs, Problem{ID: id, File: path, Reason: fmt.Sprintf("no mask %s%s.* in %s: mask measures skipped", id, in.MaskSuffix, in.Masks), Warning: true})
+				it.Problem = fmt.Sprintf("%s: missing mask: no %s%s.png/.jpg in %s", path, id, in.MaskSuffix, in.Masks)
+			}
+		}
+		if arts != nil {
+			it.Artefacts = map[string]string{}
+			for cat, m := range arts {
+				it.Artefacts[cat] = m[id] // "" when the image does not show it
 			}
 		}
 		items = append(items, it)
@@ -227,6 +267,11 @@ func ReadManifest(r io.Reader, dir string) ([]Item, []Problem, error) {
 		it := Item{ID: id, Image: resolve(get(row, "image")), Mask: resolve(get(row, "mask")), Label: get(row, "label")}
 		if it.Image == "" {
 			probs = append(probs, Problem{ID: id, Reason: fmt.Sprintf("line %d: empty image path", line)})
+		}
+		if _, hasMasks := col["mask"]; hasMasks && it.Mask == "" && it.Image != "" {
+			// A manifest with a mask column promises a mask per image; a
+			// blank one is a missing mask, not an image without a lesion.
+			it.Problem = fmt.Sprintf("%s: missing mask: the manifest's mask column is empty on line %d", it.Image, line)
 		}
 		if len(arts) > 0 {
 			it.Artefacts = map[string]string{}

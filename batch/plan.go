@@ -139,12 +139,24 @@ type Invalid struct {
 	Reason string
 }
 
+// Checks are the validation settings that depend on the run.
+type Checks struct {
+	// Workers is the number of goroutines hashing files (at least 1).
+	Workers int
+	// ResizeMasks accepts lesion and artefact masks of another size than
+	// their image (the worker resamples them); otherwise a size mismatch
+	// makes the item invalid.
+	ResizeMasks bool
+}
+
 // Validate checks every item of the shard before any heavy work: files
-// exist and decode as images (header only), masks match their image's size.
-// It hashes file contents into each item's key; hashing streams files and
-// runs on up to workers goroutines. fingerprint identifies the model and
-// the resolved configuration and enters every key.
-func Validate(ctx context.Context, items []Item, probs []Problem, shard Shard, fingerprint string, workers int) (*Plan, error) {
+// exist and decode as images (header only), a mask that was expected is
+// present, lesion and artefact masks match their image's size (unless
+// c.ResizeMasks). It hashes file contents into each item's key; hashing
+// streams files and runs on up to c.Workers goroutines. fingerprint
+// identifies the model and the resolved configuration and enters every key.
+func Validate(ctx context.Context, items []Item, probs []Problem, shard Shard, fingerprint string, c Checks) (*Plan, error) {
+	workers := c.Workers
 	p := &Plan{Fingerprint: fingerprint, Shard: shard, Problems: append([]Problem(nil), probs...), Discovered: len(items)}
 	var mine []Item
 	for _, it := range items {
@@ -168,7 +180,7 @@ func Validate(ctx context.Context, items []Item, probs []Problem, shard Shard, f
 		go func() {
 			defer wg.Done()
 			for i := range idx {
-				k, reason, warn := check(mine[i], fingerprint)
+				k, reason, warn := check(mine[i], fingerprint, c.ResizeMasks)
 				out[i] = res{k, reason, warn}
 			}
 		}()
@@ -204,7 +216,7 @@ feed:
 }
 
 // check validates one item and computes its key; reason is "" when valid.
-func check(it Item, fingerprint string) (key, reason string, warn []Problem) {
+func check(it Item, fingerprint string, resizeMasks bool) (key, reason string, warn []Problem) {
 	if it.Image == "" {
 		return "", "no image path", nil
 	}
@@ -213,6 +225,9 @@ func check(it Item, fingerprint string) (key, reason string, warn []Problem) {
 	w, hgt, err := hashImage(h, it.Image)
 	if err != nil {
 		return "", err.Error(), nil
+	}
+	if it.Problem != "" {
+		return "", it.Problem, nil
 	}
 	part := func(kind, path string) string {
 		fmt.Fprintf(h, "%s\x00", kind)
@@ -223,8 +238,8 @@ func check(it Item, fingerprint string) (key, reason string, warn []Problem) {
 		if err != nil {
 			return kind + " " + err.Error()
 		}
-		if mw != w || mh != hgt {
-			return fmt.Sprintf("%s %s is %d×%d but image %s is %d×%d", kind, path, mw, mh, it.Image, w, hgt)
+		if (mw != w || mh != hgt) && !resizeMasks {
+			return fmt.Sprintf("%s %s is %d×%d but image %s is %d×%d (--mask-resize allows resampling)", kind, path, mw, mh, it.Image, w, hgt)
 		}
 		return ""
 	}
@@ -237,13 +252,14 @@ func check(it Item, fingerprint string) (key, reason string, warn []Problem) {
 	}
 	sort.Strings(names)
 	for _, n := range names {
-		// A broken artefact mask only loses that artefact's measure.
+		// An unreadable or misfitting artefact mask is an error, not a
+		// silently missing measure: the report would otherwise understate
+		// the evidence on that artefact for this image.
 		if r := part("artifact:"+n, it.Artefacts[n]); r != "" {
-			warn = append(warn, Problem{ID: it.ID, File: it.Artefacts[n], Reason: r + ": artefact measure skipped", Warning: true})
-			fmt.Fprintf(h, "invalid\x00")
+			return "", r, nil
 		}
 	}
-	return hex.EncodeToString(h.Sum(nil)), "", warn
+	return hex.EncodeToString(h.Sum(nil)), "", nil
 }
 
 // hashImage streams a file into h and decodes its header.

@@ -7,6 +7,7 @@ import (
 	"flag"
 	"fmt"
 	"io"
+	"math"
 	"os"
 	"path/filepath"
 	"sort"
@@ -27,6 +28,8 @@ type Config struct {
 	Images     string   `yaml:"images"`
 	Masks      string   `yaml:"masks,omitempty"`
 	MaskSuffix string   `yaml:"mask-suffix,omitempty"`
+	Artefacts  string   `yaml:"artefacts,omitempty"`
+	MaskResize bool     `yaml:"mask-resize"`
 	Out        string   `yaml:"out"`
 	Methods    []string `yaml:"methods,flow"`
 	Target     string   `yaml:"target"`
@@ -41,6 +44,8 @@ type Config struct {
 	Mean     []float64 `yaml:"mean,flow,omitempty"`
 	Std      []float64 `yaml:"std,flow,omitempty"`
 	Channels string    `yaml:"channels"`
+	// MaxMegapixels is the memory cap (reduce.go states the rule).
+	MaxMegapixels float64 `yaml:"max-megapixels"`
 
 	// Method parameters.
 	Patch    int    `yaml:"patch"`
@@ -82,6 +87,8 @@ func defaultConfig() Config {
 		Fill:     "mean",
 		Baseline: "black",
 		Seed:     1,
+		// The memory cap's default (reduce.go).
+		MaxMegapixels: defaultMegapixels,
 		// The summary's default flag rule (measure.DefaultSummaryOptions).
 		FlagInside:   0.5,
 		FlagArtefact: "0.2",
@@ -177,6 +184,10 @@ func runOptions() []option {
 	add(io, "masks", "DIR", "folder of lesion masks paired with images by file stem (folder input only)", s, g)
 	s, g = str(func(c *Config) *string { return &c.MaskSuffix })
 	add(io, "mask-suffix", "S", "mask file stem = image stem + S, e.g. _segmentation", s, g)
+	s, g = str(func(c *Config) *string { return &c.Artefacts })
+	add(io, "artefacts", "DIR", "folder of artefact masks, DIR/CATEGORY/STEM.png with STEM as for --masks; no file = artefact absent (folder input; manifests use artifact:NAME columns)", s, g)
+	s, g = flg(func(c *Config) *bool { return &c.MaskResize })
+	addBool(io, "mask-resize", "resample masks of another size than their image by nearest neighbour; otherwise a size mismatch is that image's error", s, g)
 	s, g = str(func(c *Config) *string { return &c.Out })
 	add(io, "out", "DIR", "output folder (required); reruns resume in it", s, g)
 	add(io, "methods", "LIST", "comma-separated: "+strings.Join(methodNames, ","), func(c *Config, v string) error {
@@ -237,6 +248,14 @@ func runOptions() []option {
 		c.Std = f
 		return err
 	}, func(c *Config) string { return joinFloats(c.Std) })
+	add(pre, "max-megapixels", "MP", "memory cap: a larger picture is reduced by the smallest whole factor k that fits, each pixel the mean of a k×k block, and masks follow by nearest neighbour; above 4× the cap the image is an error; 0 = no cap", func(c *Config, v string) error {
+		f, err := strconv.ParseFloat(strings.TrimSpace(v), 64)
+		if err != nil || f < 0 || math.IsInf(f, 0) || math.IsNaN(f) {
+			return fmt.Errorf("want megapixels >= 0, got %q", v)
+		}
+		c.MaxMegapixels = f
+		return nil
+	}, func(c *Config) string { return strconv.FormatFloat(c.MaxMegapixels, 'g', -1, 64) })
 	add(pre, "channels", "rgb|bgr", "channel order the model expects", func(c *Config, v string) error {
 		if err := oneOf(v, "rgb", "bgr"); err != nil {
 			return err
@@ -434,7 +453,7 @@ func (c Config) marshal() []byte {
 // enters every record key, so changing any of these redoes the work.
 func fingerprint(c Config, model []byte) string {
 	k := c
-	k.Model, k.Images, k.Masks, k.MaskSuffix, k.Out, k.Criteria = "", "", "", "", "", ""
+	k.Model, k.Images, k.Masks, k.MaskSuffix, k.Out, k.Criteria, k.Artefacts = "", "", "", "", "", "", ""
 	k.Workers, k.Shard, k.Strict = 0, "", false
 	k.Title, k.Primary, k.FlagInside, k.FlagArtefact = "", "", 0, ""
 	h := sha256.New()

@@ -92,7 +92,7 @@ func dataset(t *testing.T, dir string, n int) string {
 	f, _ := os.OpenFile(filepath.Join(dir, "manifest.csv"), os.O_APPEND|os.O_WRONLY, 0)
 	fmt.Fprintln(f, "broken,images/broken.png,,0,,,,,")
 	fmt.Fprintln(f, "will-fail,images/syn00000.png,masks/syn00000.png,1,,,,,")
-	fmt.Fprintln(f, "../../escape,images/syn00001.png,,1,,,,,")
+	fmt.Fprintln(f, "../../escape,images/syn00001.png,masks/syn00001.png,1,,,,,")
 	f.Close()
 	return filepath.Join(dir, "manifest.csv")
 }

@@ -5,9 +5,9 @@ import (
 	"encoding/json"
 	"fmt"
 	"image"
-	"image/color"
 	"math"
 	"os"
+	"sort"
 	"strconv"
 	"strings"
 	"time"
@@ -56,6 +56,13 @@ type detail struct {
 	Image    measure.Image     `json:"image"`
 	Overlays map[string]string `json:"overlays,omitempty"`
 	Panel    string            `json:"panel,omitempty"`
+	// Artefacts maps a category to the artefact mask read for it.
+	Artefacts map[string]string `json:"artefact_files,omitempty"`
+	// Inputs are the SHA-256 digests of the image and every mask, taken by
+	// the worker that read them: a merge may run where the shards' paths
+	// do not exist, and the report must still say which bytes were
+	// measured.
+	Inputs []report.FileDigest `json:"inputs,omitempty"`
 }
 
 func newPipeline(cfg Config) (*pipeline, error) {
@@ -193,21 +200,70 @@ func (w *attributionWorker) className(i int) string {
 	return strconv.Itoa(i)
 }
 
-// loadMask reads a mask image as booleans (luminance ≥ 50 %) on its own grid.
+// loadMask reads a mask file by measure.MaskFromImage's rule, on its own grid.
 func loadMask(path string) ([]bool, int, int, error) {
 	img, err := decodeFile(path)
 	if err != nil {
 		return nil, 0, 0, fmt.Errorf("mask %w", err)
 	}
-	b := img.Bounds()
-	m := make([]bool, b.Dx()*b.Dy())
-	for y := b.Min.Y; y < b.Max.Y; y++ {
-		for x := b.Min.X; x < b.Max.X; x++ {
-			g := color.GrayModel.Convert(img.At(x, y)).(color.Gray)
-			m[(y-b.Min.Y)*b.Dx()+x-b.Min.X] = g.Y >= 128
+	return measure.MaskFromImage(img, path)
+}
+
+// fitMask reads a mask that belongs to an upright picture of uw×uh pixels
+// and returns it on the W×H grid the worker uses (smaller than uw×uh when
+// the picture was reduced for the memory cap). A size mismatch with the
+// picture is an error naming the file unless --mask-resize; the reduction
+// itself always carries the mask along by the same nearest-neighbour rule.
+func (w *attributionWorker) fitMask(path string, uw, uh, W, H int) ([]bool, error) {
+	m, mw, mh, err := loadMask(path)
+	if err != nil {
+		return nil, err
+	}
+	if m, err = measure.FitMask(m, mw, mh, uw, uh, w.cfg.MaskResize, path); err != nil {
+		return nil, err
+	}
+	return measure.FitMask(m, uw, uh, W, H, true, path)
+}
+
+// inputDigests hashes the image and every mask an item names.
+func inputDigests(it batch.Item) ([]report.FileDigest, error) {
+	var out []report.FileDigest
+	add := func(path, role string) error {
+		if path == "" {
+			return nil
+		}
+		d, err := report.HashFile(path)
+		d.Role = role
+		out = append(out, d)
+		return err
+	}
+	if err := add(it.Image, ""); err != nil {
+		return nil, err
+	}
+	if err := add(it.Mask, "lesion"); err != nil {
+		return nil, err
+	}
+	cats := make([]string, 0, len(it.Artefacts))
+	for c := range it.Artefacts {
+		cats = append(cats, c)
+	}
+	sort.Strings(cats)
+	for _, c := range cats {
+		if err := add(it.Artefacts[c], "artefact:"+c); err != nil {
+			return nil, err
 		}
 	}
-	return m, b.Dx(), b.Dy(), nil
+	return out, nil
+}
+
+// finite reports the first non-finite value of x (index, value, false).
+func finite(x []float32) (int, float32, bool) {
+	for i, v := range x {
+		if math.IsNaN(float64(v)) || math.IsInf(float64(v), 0) {
+			return i, v, false
+		}
+	}
+	return 0, 0, true
 }
 
 func count(m []bool) int {
@@ -221,14 +277,45 @@ func count(m []bool) int {
 }
 
 func (w *attributionWorker) Process(ctx context.Context, it batch.Item, dst batch.Dest) (batch.Result, error) {
-	in, src, err := w.pp.Load(ctx, it.Image)
+	src, uw, uh, reduced, err := w.loadSource(it.Image)
 	if err != nil {
 		return batch.Result{}, err
+	}
+	// Masks before the model: a bad mask costs no model time.
+	sb := src.Image.Bounds()
+	srcLesion := make([]bool, sb.Dx()*sb.Dy())
+	if it.Mask != "" {
+		if srcLesion, err = w.fitMask(it.Mask, uw, uh, sb.Dx(), sb.Dy()); err != nil {
+			return batch.Result{}, err
+		}
+		if count(srcLesion) == 0 {
+			return batch.Result{}, fmt.Errorf("mask %s is empty (no lesion pixel): every lesion measure of %s would be undefined", it.Mask, it.Image)
+		}
+	}
+	srcArts := map[string][]bool{}
+	for name, p := range it.Artefacts {
+		if p == "" {
+			continue // the image does not show this artefact
+		}
+		if srcArts[name], err = w.fitMask(p, uw, uh, sb.Dx(), sb.Dy()); err != nil {
+			return batch.Result{}, err
+		}
+	}
+	digests, err := inputDigests(it)
+	if err != nil {
+		return batch.Result{}, err
+	}
+	in, err := w.pp.Apply(ctx, src.Image)
+	if err != nil {
+		return batch.Result{}, fmt.Errorf("%s: %w", it.Image, err)
 	}
 	pl := in.Placement
 	logits, err := w.net.Forward(ctx, in.Tensor)
 	if err != nil {
 		return batch.Result{}, fmt.Errorf("%s: model: %w", it.Image, err)
+	}
+	if i, v, ok := finite(logits.F32); !ok {
+		return batch.Result{}, fmt.Errorf("%s: model output %d is %v (not finite); no attribution computed", it.Image, i, v)
 	}
 	tg, err := w.target(it)
 	if err != nil {
@@ -243,37 +330,23 @@ func (w *attributionWorker) Process(ctx context.Context, it batch.Item, dst batc
 	}
 	probs := softmax(row)
 
-	// Masks on the source grid (for overlays) and in model space (for measures).
-	sb := src.Image.Bounds()
-	srcLesion := make([]bool, sb.Dx()*sb.Dy())
-	if it.Mask != "" {
-		m, mw, mh, err := loadMask(it.Mask)
-		if err != nil {
-			return batch.Result{}, err
-		}
-		if mw != sb.Dx() || mh != sb.Dy() {
-			return batch.Result{}, fmt.Errorf("mask %s is %d×%d but the upright image %s is %d×%d", it.Mask, mw, mh, it.Image, sb.Dx(), sb.Dy())
-		}
-		srcLesion = m
-	}
+	// Masks in model space (for measures); the source-grid ones draw overlays.
 	lesion, err := pl.MaskToModel(srcLesion, sb.Dx(), sb.Dy())
 	if err != nil {
 		return batch.Result{}, err
 	}
 	masks := measure.Masks{W: pl.W, H: pl.H, Lesion: lesion, Seen: seenMask(pl), Artefacts: map[string][]bool{}, SourceLesionPixels: count(srcLesion)}
-	srcArts := map[string][]bool{}
-	for name, p := range it.Artefacts {
-		if p == "" {
-			continue
+	if it.Mask != "" {
+		f, err := pl.UnseenFraction(srcLesion, sb.Dx(), sb.Dy())
+		if err != nil {
+			return batch.Result{}, fmt.Errorf("%s: %w", it.Mask, err)
 		}
-		m, mw, mh, err := loadMask(p)
-		if err != nil || mw != sb.Dx() || mh != sb.Dy() {
-			continue // validation already warned; the artefact measure is skipped
-		}
-		if masks.Artefacts[name], err = pl.MaskToModel(m, mw, mh); err != nil {
+		masks.LesionUnseen = measure.Num(f)
+	}
+	for name, m := range srcArts {
+		if masks.Artefacts[name], err = pl.MaskToModel(m, sb.Dx(), sb.Dy()); err != nil {
 			return batch.Result{}, err
 		}
-		srcArts[name] = m
 	}
 	plan, err := measure.NewPlan(masks, w.params)
 	if err != nil {
@@ -282,7 +355,18 @@ func (w *attributionWorker) Process(ctx context.Context, it batch.Item, dst batc
 
 	res := batch.Result{Metrics: map[string]float64{}, Info: map[string]string{}}
 	res.Info["predicted"] = w.className(pred)
-	d := detail{Overlays: map[string]string{}}
+	if reduced != "" {
+		res.Info["reduced"] = reduced
+	}
+	d := detail{Overlays: map[string]string{}, Inputs: digests}
+	for name, p := range it.Artefacts {
+		if p != "" {
+			if d.Artefacts == nil {
+				d.Artefacts = map[string]string{}
+			}
+			d.Artefacts[name] = p
+		}
+	}
 	d.Image = measure.Image{ID: it.ID, TrueClass: w.trueClass(it.Label), PredClass: w.className(pred)}
 	var views []render.MethodView
 	for _, m := range w.methods {
@@ -300,6 +384,9 @@ func (w *attributionWorker) Process(ctx context.Context, it batch.Item, dst batc
 		r, err := m.Attribute(ctx, w.net, in.Tensor, mt)
 		if err != nil {
 			return batch.Result{}, fmt.Errorf("%s: %s: %w", it.Image, m.Name(), err)
+		}
+		if i, v, ok := finite(r.Map.Data); !ok {
+			return batch.Result{}, fmt.Errorf("%s: %s: map value %d is %v (not finite)", it.Image, m.Name(), i, v)
 		}
 		if len(r.Target.Classes) == 1 {
 			res.Info["target"] = w.className(r.Target.Classes[0])
@@ -461,6 +548,8 @@ func renderMetrics(r measure.Result) render.Metrics {
 	}
 	if len(r.HotRegions) > 0 {
 		m.OffLesion, m.OffLesionBox = r.HotRegions[0].Mass, 1
+	} else if r.HotThreshold.OK {
+		m.OffLesion = 0 // measured, and no hot region lies off the lesion
 	}
 	return m
 }
@@ -503,6 +592,7 @@ func buildReport(ctx context.Context, cfg Config, out string, start time.Time) (
 		return nil, false, err
 	}
 	var images []measure.Image
+	var details []detail
 	r := &report.Report{Title: cfg.reportTitle()}
 	for _, rec := range batch.Records(out, idx) {
 		if rec.Status != batch.StatusOK {
@@ -515,7 +605,8 @@ func buildReport(ctx context.Context, cfg Config, out string, start time.Time) (
 			continue
 		}
 		images = append(images, d.Image)
-		r.Images = append(r.Images, report.ImageRecord{Image: d.Image, File: rec.Image, MaskFile: rec.Mask, Overlays: d.Overlays, Panel: d.Panel})
+		r.Images = append(r.Images, report.ImageRecord{Image: d.Image, File: rec.Image, MaskFile: rec.Mask, ArtefactFiles: d.Artefacts, Overlays: d.Overlays, Panel: d.Panel})
+		details = append(details, d)
 	}
 	pass := true
 	if len(images) > 0 {
@@ -556,5 +647,36 @@ func buildReport(ctx context.Context, cfg Config, out string, start time.Time) (
 		p.Methods[m] = map[string]any{"patch": cfg.Patch, "stride": cfg.Stride, "fill": cfg.Fill, "baseline": cfg.Baseline, "steps": cfg.Steps, "samples": cfg.Samples, "rise-masks": cfg.RiseMasks, "layer": cfg.Layer, "seed": cfg.Seed}
 	}
 	r.Provenance = p
+	if err := inputProvenance(r, details); err != nil {
+		return nil, false, err
+	}
 	return r, pass, nil
+}
+
+// inputProvenance fills the report's image and mask digests from the
+// digests the workers stored in the records, which hold wherever the report
+// is built (a merge may not see the shards' input paths). Records written
+// before workers stored digests are hashed now from their paths.
+func inputProvenance(r *report.Report, details []detail) error {
+	seen := map[string]bool{}
+	var imgs, masks []report.FileDigest
+	for _, d := range details {
+		if len(d.Inputs) == 0 {
+			return r.HashInputs()
+		}
+		for _, f := range d.Inputs {
+			k := f.Role + "\x00" + f.Path
+			if seen[k] {
+				continue
+			}
+			seen[k] = true
+			if f.Role == "" {
+				imgs = append(imgs, f)
+			} else {
+				masks = append(masks, f)
+			}
+		}
+	}
+	r.Provenance.Images, r.Provenance.Masks = imgs, masks
+	return nil
 }

@@ -207,7 +207,7 @@ func execute(ctx context.Context, cfg Config, rf runFlags, stdout, stderr io.Wri
 		worker, finish, table = p.worker, p.finish, p.table
 	}
 
-	items, probs, err := batch.Discover(batch.Input{Images: cfg.Images, Masks: cfg.Masks, MaskSuffix: cfg.MaskSuffix})
+	items, probs, err := batch.Discover(batch.Input{Images: cfg.Images, Masks: cfg.Masks, MaskSuffix: cfg.MaskSuffix, Artefacts: cfg.Artefacts})
 	if err != nil {
 		fmt.Fprintf(stderr, "heedmap run: %v\n", err)
 		return exitUsage, oc
@@ -217,7 +217,7 @@ func execute(ctx context.Context, cfg Config, rf runFlags, stdout, stderr io.Wri
 		batch.WriteProblems(stderr, probs, 20)
 		return exitUsage, oc
 	}
-	plan, err := batch.Validate(ctx, items, probs, shard, fp, workers)
+	plan, err := batch.Validate(ctx, items, probs, shard, fp, batch.Checks{Workers: workers, ResizeMasks: cfg.MaskResize})
 	if err != nil {
 		fmt.Fprintf(stderr, "heedmap run: %v\n", err)
 		return exitInterrupted, oc
