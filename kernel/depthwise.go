@@ -54,6 +54,10 @@ func (p *Im2colPlan) DepthwiseRange(dst, src, w []float32, multiplier, m0, m1 in
 		out := dst[mo*ohw : (mo+1)*ohw]
 		clear(out)
 		filt := w[mo*taps : (mo+1)*taps]
+		if g.KW == 3 {
+			p.depthwiseRow3(out, plane, filt)
+			continue
+		}
 		for kh := 0; kh < g.KH; kh++ {
 			for kw := 0; kw < g.KW; kw++ {
 				wv := filt[kh*g.KW+kw]
@@ -167,4 +171,54 @@ func (p *Im2colPlan) DepthwiseBackward(dsrc, dw, dy, src, w []float32, multiplie
 		}
 	}
 	return nil
+}
+
+// depthwiseRow3 is the forward loop for three-tap-wide filters (3×3, the
+// depthwise shape of MobileNet-style networks): on the output columns
+// where all three taps of a filter row fall inside the image, the three
+// products are summed before the output is updated, so each output value
+// is loaded and stored once per filter row instead of once per tap. The
+// few border columns take the tap-by-tap path.
+func (p *Im2colPlan) depthwiseRow3(out, plane, filt []float32) {
+	g := p.g
+	a := max(p.owLo[0], p.owLo[1], p.owLo[2])
+	b := min(p.owHi[0], p.owHi[1], p.owHi[2])
+	if a > b {
+		a, b = 0, 0 // no common interior: every column takes the tap path
+	}
+	sw, dw := g.StrideW, g.DilationW
+	for kh := 0; kh < g.KH; kh++ {
+		w0, w1, w2 := filt[kh*3], filt[kh*3+1], filt[kh*3+2]
+		for oh := p.ohLo[kh]; oh < p.ohHi[kh]; oh++ {
+			ih := oh*g.StrideH - g.PadTop + kh*g.DilationH
+			row := plane[ih*g.W : (ih+1)*g.W]
+			o := out[oh*p.ow : (oh+1)*p.ow]
+			for kw := 0; kw < 3; kw++ {
+				wv := filt[kh*3+kw]
+				for _, r := range [2][2]int{{p.owLo[kw], min(a, p.owHi[kw])}, {max(b, p.owLo[kw]), p.owHi[kw]}} {
+					iw := r[0]*sw - g.PadLeft + kw*dw
+					for ow := r[0]; ow < r[1]; ow++ {
+						o[ow] += wv * row[iw]
+						iw += sw
+					}
+				}
+			}
+			if a == b {
+				continue
+			}
+			iw := a*sw - g.PadLeft
+			if sw == 1 && dw == 1 {
+				oi := o[a:b]
+				in := row[iw : iw+len(oi)+2]
+				for j := range oi {
+					oi[j] += w0*in[j] + w1*in[j+1] + w2*in[j+2]
+				}
+				continue
+			}
+			for ow := a; ow < b; ow++ {
+				o[ow] += w0*row[iw] + w1*row[iw+dw] + w2*row[iw+2*dw]
+				iw += sw
+			}
+		}
+	}
 }
