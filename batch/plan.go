@@ -269,6 +269,15 @@ func hashImage(h io.Writer, path string) (w, hgt int, err error) {
 		return 0, 0, fmt.Errorf("%s: %w", path, unwrapPathErr(err))
 	}
 	defer f.Close()
+	if st, err := f.Stat(); err != nil {
+		return 0, 0, fmt.Errorf("%s: %w", path, unwrapPathErr(err))
+	} else if !st.Mode().IsRegular() {
+		kind := "is not a regular file"
+		if st.IsDir() {
+			kind = "is a directory"
+		}
+		return 0, 0, fmt.Errorf("%s: %s, not an image file", path, kind)
+	}
 	cfg, format, err := image.DecodeConfig(f)
 	if err != nil {
 		return 0, 0, fmt.Errorf("%s: not a readable PNG or JPEG image (%v)", path, err)
