@@ -67,7 +67,7 @@ func TestBadInputsRealPipeline(t *testing.T) {
 	img1 := filepath.Join(data, "images", "syn00001.png")
 	full, _ := os.ReadFile(img1)
 	os.WriteFile(filepath.Join(data, "truncated.png"), full[:len(full)/2], 0o644) // header intact, pixels cut
-	os.Mkdir(filepath.Join(data, "folder.png"), 0o755)                             // a path that cannot be read as a file
+	os.Mkdir(filepath.Join(data, "folder.png"), 0o755)                            // a path that cannot be read as a file
 	writeGray(t, filepath.Join(data, "empty_mask.png"), 64, 64, 0)
 	writeGray(t, filepath.Join(data, "small_ruler.png"), 32, 32, 255)
 	writeGray(t, filepath.Join(data, "small_mask.png"), 32, 32, 255)
