@@ -159,10 +159,11 @@ def main():
         accs = [accuracy(net, *data[t]) for t in ("test_aligned", "test_flipped", "test_none")]
         rows.append((name, accs))
         ops = export(net, os.path.join(a.out, name + ".onnx"))
-        if name == "shortcut" and a.out == HERE:
-            # `heedmap demo` embeds a copy (go:embed cannot reach testdata/).
+        if a.out == HERE:
+            # `heedmap demo` embeds both models (go:embed cannot reach
+            # testdata/); TestDemoModelMatchesTestdata fails if they drift.
             shutil.copyfile(os.path.join(a.out, name + ".onnx"),
-                            os.path.join(ROOT, "cmd", "heedmap", "demo_shortcut.onnx"))
+                            os.path.join(ROOT, "cmd", "heedmap", "demo_%s.onnx" % name))
         nparam = sum(p.numel() for p in net.parameters())
         print("%s: %d parameters, ops %s" % (name, nparam, ",".join(ops)))
     print("\naccuracy on 400 test scenes (same lesions, ruler placement varies)")
