@@ -70,7 +70,10 @@ type Config struct {
 	// Execution; these do not change results and stay out of the record key.
 	Workers int    `yaml:"workers"`
 	Shard   string `yaml:"shard,omitempty"`
-	Strict  bool   `yaml:"strict"`
+	// ShardCount gives the shard count when the index comes from the
+	// environment (a Kubernetes Indexed Job's JOB_COMPLETION_INDEX).
+	ShardCount int  `yaml:"shard-count,omitempty"`
+	Strict     bool `yaml:"strict"`
 }
 
 // defaultConfig holds the stated defaults. Patch/stride 0 mean "chosen
@@ -330,6 +333,8 @@ func runOptions() []option {
 	add(exe, "workers", "N", "images processed at once; 0 = one per CPU core", s, g)
 	s, g = str(func(c *Config) *string { return &c.Shard })
 	add(exe, "shard", "I/N", "process shard I of N (0-based); default from SLURM_ARRAY_TASK_ID/COUNT or JOB_COMPLETION_INDEX with HEEDMAP_SHARD_COUNT", s, g)
+	s, g = num(func(c *Config) *int { return &c.ShardCount }, 0)
+	add(exe, "shard-count", "N", "shard count for a Kubernetes Indexed Job (index from JOB_COMPLETION_INDEX); overrides HEEDMAP_SHARD_COUNT", s, g)
 	s, g = flg(func(c *Config) *bool { return &c.Strict })
 	addBool(exe, "strict", "exit 1 if any image is invalid or fails", s, g)
 	return opts
@@ -454,7 +459,7 @@ func (c Config) marshal() []byte {
 func fingerprint(c Config, model []byte) string {
 	k := c
 	k.Model, k.Images, k.Masks, k.MaskSuffix, k.Out, k.Criteria, k.Artefacts = "", "", "", "", "", "", ""
-	k.Workers, k.Shard, k.Strict = 0, "", false
+	k.Workers, k.Shard, k.ShardCount, k.Strict = 0, "", 0, false
 	k.Title, k.Primary, k.FlagInside, k.FlagArtefact = "", "", 0, ""
 	h := sha256.New()
 	ms := sha256.Sum256(model)

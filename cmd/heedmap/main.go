@@ -60,7 +60,7 @@ func main() {
 		default:
 		}
 		stop()
-		fmt.Fprintln(os.Stderr, "\nstopping after the images in progress (Ctrl-C again to quit at once)")
+		fmt.Fprintln(os.Stderr, "\nstopping: finished images are kept, those in progress are redone on the next run (Ctrl-C again to quit at once)")
 	}()
 	code := dispatch(ctx, os.Args[1:], os.Stdout, os.Stderr)
 	close(finished)

@@ -12,11 +12,13 @@ import (
 	"path/filepath"
 	"regexp"
 	"strings"
+	"sync"
 	"syscall"
 	"testing"
 	"time"
 
 	"heedmap/batch"
+	"heedmap/explain/measure"
 	"heedmap/synth"
 )
 
@@ -203,7 +205,8 @@ func TestKill9AndResume(t *testing.T) {
 	}
 }
 
-// Three shards (one via --shard, two via Slurm and Kubernetes variables)
+// Three shards (one via --shard, one via Slurm variables, one via a
+// Kubernetes index with --shard-count)
 // merged give the single run's metrics.csv.
 func TestShardsThroughEnvAndMerge(t *testing.T) {
 	if testing.Short() {
@@ -219,14 +222,17 @@ func TestShardsThroughEnvAndMerge(t *testing.T) {
 	envs := [][]string{
 		nil,
 		{"SLURM_ARRAY_TASK_ID=1", "SLURM_ARRAY_TASK_COUNT=3"},
-		{"JOB_COMPLETION_INDEX=2", "HEEDMAP_SHARD_COUNT=3"},
+		{"JOB_COMPLETION_INDEX=2"}, // count from --shard-count (HEEDMAP_SHARD_COUNT: batch.TestResolveShard)
 	}
 	var shards []string
 	for i, env := range envs {
 		d := filepath.Join(dir, fmt.Sprintf("shard-%d", i))
 		a := []string{"run", "--x-test-worker", "0s", "--images", man, "--out", d}
-		if env == nil {
+		switch i {
+		case 0:
 			a = append(a, "--shard", "0/3")
+		case 2:
+			a = append(a, "--shard-count", "3")
 		}
 		cmd := exec.Command(bin, a...)
 		cmd.Env = append(os.Environ(), env...)
@@ -468,7 +474,7 @@ func BenchmarkDemoImage(b *testing.B) {
 // The kill -9 test with the real pipeline (slow: HEEDMAP_LONG=1).
 func TestKill9RealPipeline(t *testing.T) {
 	if os.Getenv("HEEDMAP_LONG") == "" {
-		t.Skip("set HEEDMAP_LONG=1 (runs the demo model on 8 images three times)")
+		t.Skip("set HEEDMAP_LONG=1 (runs the demo model on 8 images up to five times)")
 	}
 	bin := buildBinary(t)
 	dir := t.TempDir()
@@ -487,7 +493,7 @@ func TestKill9RealPipeline(t *testing.T) {
 		t.Fatalf("%v\n%s", err, b)
 	}
 	out := filepath.Join(dir, "out")
-	for _, at := range []int{1, 4} {
+	for _, at := range []int{0, 1, 4} { // 0: during model load and validation
 		cmd := exec.Command(bin, args(out)...)
 		cmd.Start()
 		deadline := time.Now().Add(120 * time.Second)
@@ -520,14 +526,7 @@ func TestKill9RealPipeline(t *testing.T) {
 // fails and flags images for the ruler, the clean one passes and flags
 // none for it. The exit status is 0 in both cases.
 func TestDemoVerdicts(t *testing.T) {
-	if testing.Short() {
-		t.Skip("runs the full demo (about a minute of CPU)")
-	}
-	out := filepath.Join(t.TempDir(), "demo")
-	code, stdout, stderr := runCLI(t, "demo", "--out", out)
-	if code != exitOK {
-		t.Fatalf("exit %d\n%s\n%s", code, stdout, stderr)
-	}
+	out, stdout := sharedDemo(t)
 	type report struct {
 		Title    string `json:"title"`
 		Verdicts []struct {
@@ -594,6 +593,114 @@ func TestDemoVerdicts(t *testing.T) {
 	for _, f := range []string{"index.html", "criteria.yaml"} {
 		if _, err := os.Stat(filepath.Join(out, f)); err != nil {
 			t.Error(err)
+		}
+	}
+}
+
+// The shipped demo runs once per test binary (about a minute of CPU) and
+// every test that checks its output shares that run.
+var demoRun struct {
+	sync.Once
+	dir, stdout, stderr string
+	code                int
+	err                 error
+}
+
+func TestMain(m *testing.M) {
+	code := m.Run()
+	if demoRun.dir != "" {
+		os.RemoveAll(demoRun.dir)
+	}
+	os.Exit(code)
+}
+
+// sharedDemo returns the output folder and stdout of `heedmap demo` with its
+// defaults, running it on first use; it skips under -short.
+func sharedDemo(t *testing.T) (string, string) {
+	t.Helper()
+	if testing.Short() {
+		t.Skip("runs the full demo (about a minute of CPU)")
+	}
+	demoRun.Do(func() {
+		if demoRun.dir, demoRun.err = os.MkdirTemp("", "heedmap-demo-test-"); demoRun.err != nil {
+			return
+		}
+		var o, e bytes.Buffer
+		demoRun.code = dispatch(context.Background(), []string{"demo", "--out", filepath.Join(demoRun.dir, "demo")}, &o, &e)
+		demoRun.stdout, demoRun.stderr = o.String(), e.String()
+	})
+	if demoRun.err != nil {
+		t.Fatal(demoRun.err)
+	}
+	if demoRun.code != exitOK {
+		t.Fatalf("demo: exit %d\n%s\n%s", demoRun.code, demoRun.stdout, demoRun.stderr)
+	}
+	return filepath.Join(demoRun.dir, "demo"), demoRun.stdout
+}
+
+// The demo's reports carry what the report needs beyond the measures: the
+// SHA-256 of every scene and mask it measured (checked against the files),
+// each image's artefact mask files, and the unseen share of each lesion,
+// which is 0 for every scene because the demo stretches the whole picture
+// onto the model input (nothing is cropped).
+func TestDemoReportInputs(t *testing.T) {
+	out, _ := sharedDemo(t)
+	man, err := os.ReadFile(filepath.Join(out, "data", "manifest.csv"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	// Count the files the manifest names: one image and one lesion mask per
+	// row, plus each non-empty artefact cell.
+	lines := strings.Split(strings.TrimSpace(string(man)), "\n")[1:]
+	wantMasks := 0
+	for _, l := range lines {
+		for _, cell := range strings.Split(l, ",")[2:] {
+			if strings.HasSuffix(cell, ".png") {
+				wantMasks++
+			}
+		}
+	}
+	for _, model := range []string{"shortcut", "clean"} {
+		var r struct {
+			Provenance struct {
+				Images, Masks []struct{ Path, Role, SHA256 string }
+			}
+			Images []struct {
+				ID            string            `json:"id"`
+				ArtefactFiles map[string]string `json:"artefact_files"`
+				Results       []struct {
+					Unseen measure.Value `json:"lesion_unseen_fraction"`
+				} `json:"results"`
+			}
+		}
+		data, err := os.ReadFile(filepath.Join(out, model, "report.json"))
+		if err != nil {
+			t.Fatal(err)
+		}
+		if err := json.Unmarshal(data, &r); err != nil {
+			t.Fatal(err)
+		}
+		if len(r.Provenance.Images) != len(lines) || len(r.Provenance.Masks) != wantMasks {
+			t.Errorf("%s: %d image and %d mask digests, want %d and %d", model, len(r.Provenance.Images), len(r.Provenance.Masks), len(lines), wantMasks)
+		}
+		for _, d := range append(r.Provenance.Images, r.Provenance.Masks...) {
+			b, err := os.ReadFile(d.Path)
+			sum := sha256.Sum256(b)
+			if err != nil || hex.EncodeToString(sum[:]) != d.SHA256 {
+				t.Errorf("%s: %s digest does not match (%v)", model, d.Path, err)
+			}
+		}
+		arts := 0
+		for _, im := range r.Images {
+			arts += len(im.ArtefactFiles)
+			for _, res := range im.Results {
+				if v, ok := res.Unseen.Float(); !ok || v != 0 {
+					t.Errorf("%s %s: lesion unseen %+v, want 0 (stretch)", model, im.ID, res.Unseen)
+				}
+			}
+		}
+		if arts != wantMasks-len(lines) {
+			t.Errorf("%s: %d artefact files in the image records, want %d", model, arts, wantMasks-len(lines))
 		}
 	}
 }

@@ -11,6 +11,7 @@ import (
 	"path/filepath"
 	"runtime"
 	"runtime/debug"
+	"strconv"
 	"strings"
 	"time"
 
@@ -90,7 +91,7 @@ func parseRun(args []string, stdout, stderr io.Writer) (Config, runFlags, int, b
 		printOptions(w, opts, defaultConfig())
 		fmt.Fprintf(w, "\nOther:\n  %-28s %s\n  %-28s %s\n\n", "--config FILE", "YAML configuration; flags override it", "--dry-run", "validate everything, print the plan and problems, stop")
 		fmt.Fprint(w, runOutputHelp)
-		fmt.Fprint(w, "Sharding: with --shard I/N, or inside a Slurm job array, or a Kubernetes\nIndexed Job (set HEEDMAP_SHARD_COUNT), each process takes the images whose\nid hashes to its shard; write each shard to its own --out and combine them\nwith 'heedmap merge'.\n\n")
+		fmt.Fprint(w, "Sharding: with --shard I/N, inside a Slurm job array (SLURM_ARRAY_TASK_ID/COUNT),\nor in a Kubernetes Indexed Job (JOB_COMPLETION_INDEX with --shard-count N or\nHEEDMAP_SHARD_COUNT), each process takes the images whose id hashes to its\nshard; write each shard to its own --out and combine them with 'heedmap merge'.\nExamples: docs/slurm.sbatch, docs/kubernetes.yaml.\n\n")
 		fmt.Fprint(w, exitCodesHelp)
 	}
 	if code, stop := parse(fs, args, help, stdout, stderr); stop {
@@ -164,12 +165,21 @@ type outcome struct {
 // execute runs the batch described by cfg and returns the exit code.
 func execute(ctx context.Context, cfg Config, rf runFlags, stdout, stderr io.Writer) (int, outcome) {
 	var oc outcome
-	shard, source, err := batch.ResolveShard(cfg.Shard, os.Getenv)
+	getenv := os.Getenv
+	if cfg.ShardCount > 0 {
+		getenv = func(k string) string {
+			if k == "HEEDMAP_SHARD_COUNT" {
+				return strconv.Itoa(cfg.ShardCount)
+			}
+			return os.Getenv(k)
+		}
+	}
+	shard, source, err := batch.ResolveShard(cfg.Shard, getenv)
 	if err != nil {
 		fmt.Fprintf(stderr, "heedmap run: %v\n", err)
 		return exitUsage, oc
 	}
-	cfg.Shard = ""
+	cfg.Shard, cfg.ShardCount = "", 0
 	if shard.Count > 1 {
 		cfg.Shard = shard.String()
 	}
@@ -223,6 +233,9 @@ func execute(ctx context.Context, cfg Config, rf runFlags, stdout, stderr io.Wri
 		return exitInterrupted, oc
 	}
 	batch.WriteProblems(stderr, plan.Problems, 20)
+	if len(plan.Problems) == 0 {
+		fmt.Fprintln(stderr, "input check: no problems found")
+	}
 	doneAlready := plan.Done(cfg.Out)
 	shardText := "all images"
 	if shard.Count > 1 {
