@@ -18,13 +18,24 @@ import (
 // where that region covers the map. Scores equal FullForward's up to float
 // summation order. Networks not backed by a compiled graph (FromGraph),
 // taking channels-last input, with more than one input or with a fixed
-// batch size are scored by FullForward. It is the default evaluator: exact
-// on every test and faster on every network measured (DEVELOPERS.md).
+// batch size are scored by FullForward, and so are networks where the plan
+// saves too little (MinSaving). It is the default evaluator: exact on every
+// test, and with MinSaving not slower on any network measured
+// (DEVELOPERS.md).
 type Incremental struct {
 	// BatchSize is the number of windows evaluated together; 0 = 16.
 	BatchSize int
+	// MinSaving is the least ratio of full-pass to incremental
+	// multiply-adds (counted from the plan before any work) for which the
+	// incremental path is used; below it FullForward is faster, because
+	// the part of the graph the incremental path recomputes in full runs
+	// without the runtime's buffer reuse and operator fusion. 0 = 1.25;
+	// negative = always incremental. Squeeze-and-excitation networks
+	// (EfficientNet-B0: 1.04×) fall below it: every SE block rescales
+	// whole maps by a global average, so patches end at the first one.
+	MinSaving float64
 	// Log receives, once per call, the nodes recomputed in full because
-	// they have no patch form; nil discards them.
+	// they have no patch form and the path chosen; nil discards them.
 	Log func(msg string)
 }
 
@@ -57,14 +68,30 @@ func (e Incremental) Scores(ctx context.Context, net explain.Network, x, fill *t
 	// Batches of windows with equal patch sizes (border windows together)
 	// pad fewer patches; scores are written back in window order.
 	order := inc.Order(rects)
+	sorted := make([]engine.Rect, len(rects))
+	for i, j := range order {
+		sorted[i] = rects[j]
+	}
+	incMACs, fullMACs := inc.MultiplyAdds(sorted, bs)
+	saving := float64(fullMACs) / float64(max(incMACs, 1))
+	minSaving := e.MinSaving
+	if minSaving == 0 {
+		minSaving = 1.25
+	}
+	if saving < minSaving {
+		if e.Log != nil {
+			e.Log(fmt.Sprintf("occlusion: incremental inference would save only %.2f× of the multiply-adds; using full forward passes", saving))
+		}
+		return FullForward{BatchSize: e.BatchSize}.Scores(ctx, net, x, fill, windows, target)
+	}
+	if e.Log != nil {
+		e.Log(fmt.Sprintf("occlusion: incremental inference: %.2f× fewer multiply-adds than full passes", saving))
+	}
 	out := make([]float64, len(windows))
 	part := make([]engine.Rect, 0, bs)
 	for s := 0; s < len(order); s += bs {
 		idx := order[s:min(s+bs, len(order))]
-		part = part[:0]
-		for _, i := range idx {
-			part = append(part, rects[i])
-		}
+		part = append(part[:0], sorted[s:s+len(idx)]...)
 		y, err := inc.Occlude(ctx, fill, part)
 		if err != nil {
 			return nil, fmt.Errorf("occlusion: %w", err)

@@ -5,6 +5,7 @@ import (
 	"math"
 	"os"
 	"path/filepath"
+	"strings"
 	"syscall"
 	"testing"
 	"time"
@@ -50,7 +51,9 @@ func TestIncrementalMatchesFullForward(t *testing.T) {
 			if err != nil {
 				t.Fatal(err)
 			}
-			o.Evaluator = Incremental{BatchSize: 11, Log: func(s string) { logged = append(logged, s) }}
+			// MinSaving −1 forces the incremental path even where it saves
+			// too little to be chosen by default.
+			o.Evaluator = Incremental{BatchSize: 11, MinSaving: -1, Log: func(s string) { logged = append(logged, s) }}
 			inc, err := o.Attribute(ctx, net, x, explain.Predicted(explain.Logit))
 			if err != nil {
 				t.Fatal(err)
@@ -61,7 +64,7 @@ func TestIncrementalMatchesFullForward(t *testing.T) {
 				worst = math.Max(worst, math.Abs(float64(inc.Map.Data[i]-v)))
 				energy += float64(v) * float64(v)
 			}
-			t.Logf("largest map value %.4g, largest difference %.3g; %d nodes recomputed in full", scale, worst, len(logged))
+			t.Logf("largest map value %.4g, largest difference %.3g; %d log lines, last %q", scale, worst, len(logged), logged[len(logged)-1])
 			if energy == 0 {
 				t.Fatal("the occlusion map is zero: the comparison proves nothing")
 			}
@@ -69,6 +72,28 @@ func TestIncrementalMatchesFullForward(t *testing.T) {
 				t.Errorf("incremental map differs from brute force by %g (largest value %g)", worst, scale)
 			}
 		})
+	}
+}
+
+// The default choice of path: ResNet-18's plan saves 2× of the
+// multiply-adds and is used; EfficientNet-B0's squeeze-and-excitation
+// blocks leave 1.13× (compact net), below MinSaving, so full passes are
+// used. The map is the same either way.
+func TestIncrementalChoosesPath(t *testing.T) {
+	for _, c := range []struct {
+		name        string
+		incremental bool
+	}{{"resnet18", true}, {"efficientnet_b0", false}} {
+		net, x := loadNet(t, filepath.Join("..", "testdata", "nets", c.name))
+		var logged []string
+		o := Occlusion{Patch: 16, Stride: 8, Evaluator: Incremental{Log: func(s string) { logged = append(logged, s) }}}
+		if _, err := o.Attribute(ctx, net, x, explain.Predicted(explain.Logit)); err != nil {
+			t.Fatal(err)
+		}
+		last := logged[len(logged)-1]
+		if got := !strings.Contains(last, "using full forward passes"); got != c.incremental {
+			t.Errorf("%s: %q", c.name, last)
+		}
 	}
 }
 
