@@ -31,6 +31,8 @@ type Pass struct {
 	peakLive int // largest number of simultaneously held activations
 	// liveBytes and peakBytes measure the same in bytes of tensor data
 	// (node outputs only; inputs and constants are not the plan's to free).
+	// A view op's output that shares its input's data (Identity, Reshape)
+	// is counted again, so these are upper bounds.
 	liveBytes, peakBytes int64
 }
 
