@@ -26,13 +26,21 @@ sys.path.insert(0, os.path.join(HERE, "..", "testdata", "reference"))
 import export_nets  # noqa: E402
 
 
-def build(name):
-    # Mirrors export_nets.main/export: seed 1000 + position in NETS.
+def build(name, cache):
+    # Mirrors export_nets.main/export: seed 1000 + position in NETS. The
+    # randomised weights are cached in the run's scratch directory because
+    # re-estimating BatchNorm statistics is slow on a busy machine.
     seed = 1000 + list(export_nets.NETS).index(name)
     torch.manual_seed(seed)
     gen = torch.Generator().manual_seed(seed)
     model, size, _ = export_nets.NETS[name][1]()
-    export_nets.randomise(model, size, gen)
+    path = os.path.join(cache, name + "_torch_weights.pt") if cache else ""
+    if path and os.path.exists(path):
+        model.load_state_dict(torch.load(path))
+    else:
+        export_nets.randomise(model, size, gen)
+        if path:
+            torch.save(model.state_dict(), path)
     model.eval()
     for p in model.parameters():
         p.requires_grad_(False)
@@ -51,7 +59,7 @@ def main():
     for job in spec["jobs"]:
         name = job["name"]
         if name not in models:
-            models[name] = build(name)
+            models[name] = build(name, spec.get("cache", ""))
         model = models[name]
         x = img.repeat(job["batch"], 1, 1, 1)
         if job["backward"]:
