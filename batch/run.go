@@ -299,6 +299,7 @@ func Finish(out string, idx Index, table string) (Summary, error) {
 		} else {
 			s.Failed++
 		}
+		rec.Detail = nil // not in the table; keeps memory at a row per image
 		recs = append(recs, rec)
 	}
 	s.Complete = s.Pending == 0

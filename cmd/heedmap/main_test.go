@@ -394,6 +394,24 @@ func TestRunRealPipelineOnDemoModel(t *testing.T) {
 			t.Errorf("merged %s differs from the single run:\n%s\n---\n%s", f, b, a)
 		}
 	}
+	// report.json too, timing and the output folder's name aside.
+	norm := func(dir string) string {
+		var m map[string]any
+		b, _ := os.ReadFile(filepath.Join(dir, "report.json"))
+		if err := json.Unmarshal(b, &m); err != nil {
+			t.Fatal(err)
+		}
+		p := m["provenance"].(map[string]any)
+		delete(p, "start")
+		delete(p, "end")
+		delete(p, "config_sha256")
+		p["config"].(map[string]any)["Out"] = nil
+		n, _ := json.MarshalIndent(m, "", " ")
+		return string(n)
+	}
+	if a, b := norm(out), norm(merged); a != b {
+		t.Errorf("merged report.json differs from the single run beyond timing:\n%s", firstDiff(a, b))
+	}
 	if _, err := os.Stat(filepath.Join(merged, "report.html")); err != nil {
 		t.Error(err)
 	}
@@ -703,4 +721,15 @@ func TestDemoReportInputs(t *testing.T) {
 			t.Errorf("%s: %d artefact files in the image records, want %d", model, arts, wantMasks-len(lines))
 		}
 	}
+}
+
+// firstDiff shows where two texts part.
+func firstDiff(a, b string) string {
+	al, bl := strings.Split(a, "\n"), strings.Split(b, "\n")
+	for i := 0; i < min(len(al), len(bl)); i++ {
+		if al[i] != bl[i] {
+			return fmt.Sprintf("line %d:\n  %s\n  %s", i+1, al[i], bl[i])
+		}
+	}
+	return fmt.Sprintf("lengths %d and %d lines", len(al), len(bl))
 }

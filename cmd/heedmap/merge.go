@@ -67,6 +67,13 @@ Exit codes:
 			fmt.Fprintf(stderr, "heedmap merge: %v\n", err)
 			return exitUsage
 		}
+		// The first shard's configuration, made the merged result's own: it
+		// names this folder and no shard, as a single run's would.
+		cfg.Out, cfg.Shard, cfg.ShardCount = *out, "", 0
+		if err := batch.WriteFileAtomic(filepath.Join(*out, "config.yaml"), cfg.marshal()); err != nil {
+			fmt.Fprintf(stderr, "heedmap merge: %v\n", err)
+			return exitFailed
+		}
 		_, pass, err := writeReport(ctx, cfg, *out, time.Now())
 		if err != nil {
 			fmt.Fprintf(stderr, "heedmap merge: report: %v\n", err)
