@@ -210,9 +210,12 @@ func (p *Im2colPlan) depthwiseRow3(out, plane, filt []float32) {
 			if sw == 1 && dw == 1 {
 				oi := o[a:b]
 				in := row[iw : iw+len(oi)+2]
-				for j := range oi {
-					oi[j] += w0*in[j] + w1*in[j+1] + w2*in[j+2]
+				if p.portable {
+					row3Go(oi, in, w0, w1, w2)
+					continue
 				}
+				done := row3SIMD(oi, in, w0, w1, w2)
+				row3Go(oi[done:], in[done:], w0, w1, w2)
 				continue
 			}
 			for ow := a; ow < b; ow++ {
@@ -220,5 +223,14 @@ func (p *Im2colPlan) depthwiseRow3(out, plane, filt []float32) {
 				iw += sw
 			}
 		}
+	}
+}
+
+// row3Go is the portable unit-stride three-tap row loop; in holds
+// len(o)+2 values.
+func row3Go(o, in []float32, w0, w1, w2 float32) {
+	in = in[:len(o)+2]
+	for j := range o {
+		o[j] += w0*in[j] + w1*in[j+1] + w2*in[j+2]
 	}
 }

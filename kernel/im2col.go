@@ -34,6 +34,17 @@ type Im2colPlan struct {
 	// image; likewise per kernel row kh for output rows.
 	owLo, owHi []int
 	ohLo, ohHi []int
+	// portable makes Depthwise use only the pure-Go loops (see
+	// PortableLoops).
+	portable bool
+}
+
+// PortableLoops returns a copy of the plan whose depthwise loops use no
+// SIMD assembly, so tests can check the pure-Go path on any CPU.
+func (p *Im2colPlan) PortableLoops() *Im2colPlan {
+	q := *p
+	q.portable = true
+	return &q
 }
 
 // NewIm2col validates g and precomputes the plan.

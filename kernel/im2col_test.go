@@ -371,6 +371,7 @@ func TestDepthwiseMatchesDirectConv(t *testing.T) {
 		{2, 9, 14, 1, kernel.Conv2D{KH: 3, KW: 3, StrideW: 2, DilationW: 2, PadTop: 1, PadLeft: 2, PadBottom: 1, PadRight: 2}},
 		{2, 4, 2, 2, kernel.Conv2D{KH: 3, KW: 3, PadTop: 1, PadLeft: 1, PadBottom: 1, PadRight: 1}},
 		{3, 7, 8, 1, kernel.Conv2D{KH: 1, KW: 3, PadLeft: 1, PadRight: 1}},
+		{2, 5, 57, 1, kernel.Conv2D{KH: 3, KW: 3, PadTop: 1, PadLeft: 1, PadBottom: 1, PadRight: 1}},
 	} {
 		g := tc.g
 		g.C, g.H, g.W = tc.c, tc.h, tc.w
@@ -387,12 +388,16 @@ func TestDepthwiseMatchesDirectConv(t *testing.T) {
 		for j := range got {
 			got[j] = float32(math.NaN()) // dst is overwritten, not accumulated
 		}
-		if err := p.Depthwise(got, x, w, tc.mult); err != nil {
-			t.Fatal(err)
-		}
 		want := directConv(x, 1, tc.c, tc.h, tc.w, w, m, tc.c, g, oh, ow)
-		if err := closeTo(got, want, 1e-5, 1e-5); err != nil {
-			t.Fatalf("case %d: %v", i, err)
+		// The plan as used (SIMD rows where the CPU has them) and the
+		// pure-Go loops.
+		for _, pp := range []*kernel.Im2colPlan{p, p.PortableLoops()} {
+			if err := pp.Depthwise(got, x, w, tc.mult); err != nil {
+				t.Fatal(err)
+			}
+			if err := closeTo(got, want, 1e-5, 1e-5); err != nil {
+				t.Fatalf("case %d: %v", i, err)
+			}
 		}
 	}
 	p, _ := kernel.NewIm2col(kernel.Conv2D{C: 2, H: 4, W: 4, KH: 3, KW: 3})

@@ -1204,6 +1204,60 @@ sgemm6x16AVX2Direct_overwrite:
 	VZEROUPPER
 	RET
 
+// func dwRow3AVX512(n int, o *float32, in *float32, w0 float32, w1 float32, w2 float32)
+// Requires: AVX, AVX512F
+TEXT ·dwRow3AVX512(SB), NOSPLIT, $0-36
+	MOVQ         n+0(FP), AX
+	MOVQ         o+8(FP), CX
+	MOVQ         in+16(FP), DX
+	VBROADCASTSS w0+24(FP), Z0
+	VBROADCASTSS w1+28(FP), Z1
+	VBROADCASTSS w2+32(FP), Z2
+
+dwRow3AVX512_loop:
+	CMPQ        AX, $0x10
+	JL          dwRow3AVX512_done
+	VMOVUPS     (CX), Z3
+	VFMADD231PS (DX), Z0, Z3
+	VFMADD231PS 4(DX), Z1, Z3
+	VFMADD231PS 8(DX), Z2, Z3
+	VMOVUPS     Z3, (CX)
+	ADDQ        $0x00000040, CX
+	ADDQ        $0x00000040, DX
+	SUBQ        $0x10, AX
+	JMP         dwRow3AVX512_loop
+
+dwRow3AVX512_done:
+	VZEROUPPER
+	RET
+
+// func dwRow3AVX2(n int, o *float32, in *float32, w0 float32, w1 float32, w2 float32)
+// Requires: AVX, FMA3
+TEXT ·dwRow3AVX2(SB), NOSPLIT, $0-36
+	MOVQ         n+0(FP), AX
+	MOVQ         o+8(FP), CX
+	MOVQ         in+16(FP), DX
+	VBROADCASTSS w0+24(FP), Y0
+	VBROADCASTSS w1+28(FP), Y1
+	VBROADCASTSS w2+32(FP), Y2
+
+dwRow3AVX2_loop:
+	CMPQ        AX, $0x08
+	JL          dwRow3AVX2_done
+	VMOVUPS     (CX), Y3
+	VFMADD231PS (DX), Y0, Y3
+	VFMADD231PS 4(DX), Y1, Y3
+	VFMADD231PS 8(DX), Y2, Y3
+	VMOVUPS     Y3, (CX)
+	ADDQ        $0x00000020, CX
+	ADDQ        $0x00000020, DX
+	SUBQ        $0x08, AX
+	JMP         dwRow3AVX2_loop
+
+dwRow3AVX2_done:
+	VZEROUPPER
+	RET
+
 // func fmaPeakAVX512(n int)
 // Requires: AVX, AVX512F
 TEXT ·fmaPeakAVX512(SB), NOSPLIT, $0-8

@@ -22,6 +22,16 @@ func sgemm6x16AVX2(k int, a *float32, b *float32, c *float32, ldc int, alpha flo
 //go:noescape
 func sgemm6x16AVX2Direct(k int, a *float32, lda int, b *float32, c *float32, ldc int, alpha float32, beta float32, load int)
 
+// dwRow3AVX512 adds w0·in[j]+w1·in[j+1]+w2·in[j+2] onto o[j] for j < n rounded down to 16.
+//
+//go:noescape
+func dwRow3AVX512(n int, o *float32, in *float32, w0 float32, w1 float32, w2 float32)
+
+// dwRow3AVX2 adds w0·in[j]+w1·in[j+1]+w2·in[j+2] onto o[j] for j < n rounded down to 8.
+//
+//go:noescape
+func dwRow3AVX2(n int, o *float32, in *float32, w0 float32, w1 float32, w2 float32)
+
 // fmaPeakAVX512 runs n iterations of 24 independent FMAs on registers only.
 func fmaPeakAVX512(n int)
 
