@@ -199,3 +199,49 @@ func TestRenderMetricsOffLesion(t *testing.T) {
 		t.Errorf("one region: %+v", hot)
 	}
 }
+
+// The share of the lesion the model never saw, against the geometry of a
+// centre crop: a 96×64 picture cropped to 64×64 loses 16 columns on each
+// side, and a lesion mask covering columns 0–31 loses columns 0–15, half of
+// its pixels.
+func TestLesionUnseenUnderCrop(t *testing.T) {
+	dir := t.TempDir()
+	pic := image.NewRGBA(image.Rect(0, 0, 96, 64))
+	for i := range pic.Pix {
+		pic.Pix[i] = uint8(60 + i%97)
+	}
+	var b bytes.Buffer
+	png.Encode(&b, pic)
+	os.WriteFile(filepath.Join(dir, "wide.png"), b.Bytes(), 0o644)
+	mask := image.NewGray(image.Rect(0, 0, 96, 64))
+	for y := 0; y < 64; y++ {
+		for x := 0; x < 32; x++ {
+			mask.Pix[y*96+x] = 255
+		}
+	}
+	b.Reset()
+	png.Encode(&b, mask)
+	os.WriteFile(filepath.Join(dir, "wide_mask.png"), b.Bytes(), 0o644)
+	os.WriteFile(filepath.Join(dir, "m.csv"), []byte("id,image,mask\nwide,wide.png,wide_mask.png\n"), 0o644)
+	model := filepath.Join(dir, "m.onnx")
+	os.WriteFile(model, demoShortcut, 0o644)
+	out := filepath.Join(dir, "out")
+	if code, _, e := runCLI(t, "run", "--model", model, "--config", "../../testdata/demo/demo.yaml", "--methods", "grad-cam",
+		"--resize", "crop", "--images", filepath.Join(dir, "m.csv"), "--out", out); code != exitOK {
+		t.Fatalf("exit %d\n%s", code, e)
+	}
+	var r struct {
+		Images []struct {
+			Results []struct {
+				Unseen measure.Value `json:"lesion_unseen_fraction"`
+			} `json:"results"`
+		} `json:"images"`
+	}
+	data, _ := os.ReadFile(filepath.Join(out, "report.json"))
+	if err := json.Unmarshal(data, &r); err != nil || len(r.Images) != 1 || len(r.Images[0].Results) != 1 {
+		t.Fatalf("report.json: %v", err)
+	}
+	if v, ok := r.Images[0].Results[0].Unseen.Float(); !ok || v != 0.5 {
+		t.Errorf("lesion unseen %+v, want 0.5", r.Images[0].Results[0].Unseen)
+	}
+}
