@@ -296,6 +296,17 @@ func (p *incPlan) classify(nd *node, st *incStep, nSpatial int) (incKind, string
 		if len(nd.in) > 2 && nd.in[2] >= 0 {
 			st.b = g.consts[nd.in[2]].F32
 		}
+		if st.cg == 1 && st.group == xs[1] {
+			// Depthwise: no matrix product to batch, so run the runtime's
+			// own kernel on the gathered patches; it then computes every
+			// position exactly as the unoccluded pass did, whatever the
+			// batch.
+			op, err := p.unpadded(src, src.Inputs, gemm)
+			if err != nil {
+				return incFull, err.Error()
+			}
+			st.patchOp = op
+		}
 		return incConv, ""
 	case "MaxPool", "AveragePool":
 		if len(nd.out) > 1 {
@@ -320,15 +331,7 @@ func (p *incPlan) classify(nd *node, st *incStep, nSpatial int) (incKind, string
 		}
 		// The same operator without padding, applied to a gathered patch
 		// whose out-of-map positions hold the fill value.
-		clone := &onnx.Node{Name: src.Name, OpType: src.OpType, Inputs: src.Inputs[:1], Outputs: src.Outputs[:1], Attrs: map[string]*onnx.Attr{}}
-		for name, a := range src.Attrs {
-			clone.Attrs[name] = a
-		}
-		delete(clone.Attrs, "pads")
-		delete(clone.Attrs, "auto_pad")
-		delete(clone.Attrs, "ceil_mode")
-		b, _ := lookup(src.OpType)
-		op, err := b(clone, &Env{GEMM: st.gemm, Opset: p.opset()})
+		op, err := p.unpadded(src, src.Inputs[:1], st.gemm)
 		if err != nil {
 			return incFull, err.Error()
 		}
@@ -386,6 +389,24 @@ func (p *incPlan) classify(nd *node, st *incStep, nSpatial int) (incKind, string
 		return incPointwise, ""
 	}
 	return incMulti, ""
+}
+
+// unpadded builds a copy of a window operator without padding (pads,
+// auto_pad, ceil_mode removed), to run on gathered patches whose borders
+// already hold the padding value.
+func (p *incPlan) unpadded(src *onnx.Node, inputs []string, gemm kernel.GEMM) (Op, error) {
+	clone := &onnx.Node{Name: src.Name, OpType: src.OpType, Inputs: inputs, Outputs: src.Outputs[:1], Attrs: map[string]*onnx.Attr{}}
+	for name, a := range src.Attrs {
+		clone.Attrs[name] = a
+	}
+	delete(clone.Attrs, "pads")
+	delete(clone.Attrs, "auto_pad")
+	delete(clone.Attrs, "ceil_mode")
+	b, ok := lookup(src.OpType)
+	if !ok {
+		return nil, fmt.Errorf("no operator %s", src.OpType)
+	}
+	return b(clone, &Env{GEMM: gemm, Opset: p.opset()})
 }
 
 func (p *incPlan) opset() int64 {
@@ -843,8 +864,15 @@ func (inc *Incremental) runPatch(k int, gm incGeo, vals []*incVal, nb int) (*inc
 		incParallel(nb, func(b int) {
 			inc.gather(v, vals[v], b, gm.oy[b]*g.sh-g.pt, gm.ox[b]*g.sw-g.pl, ih, iw, st.fill, xt.F32[b*c*ih*iw:(b+1)*c*ih*iw], ih*iw)
 		})
-		if st.kind == incPool {
-			r, err := safeForward(st.patchOp, []*tensor.Tensor{xt})
+		if st.patchOp != nil {
+			in := []*tensor.Tensor{xt}
+			if st.kind == incConv {
+				in = append(in, p.g.consts[nd.in[1]])
+				if len(nd.in) > 2 && nd.in[2] >= 0 {
+					in = append(in, p.g.consts[nd.in[2]])
+				}
+			}
+			r, err := safeForward(st.patchOp, in)
 			if err != nil {
 				return nil, err
 			}
