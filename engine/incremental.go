@@ -484,7 +484,6 @@ func incPlace(chg []Rect, h, w int) incGeo {
 		gm.oy[b] = max(0, min(r.Y0, h-gm.p))
 		gm.ox[b] = max(0, min(r.X0, w-gm.q))
 	}
-	gm.full = gm.p == h && gm.q == w
 	return gm
 }
 
@@ -608,9 +607,6 @@ func (inc *Incremental) Occlude(ctx context.Context, fill *tensor.Tensor, rects 
 			}
 		}
 	}
-	if x0.full {
-		x0.t = tensor.FromFloat32(x0.t.F32, len(rects), xs[1], h, w)
-	}
 	vals[p.in] = x0
 	nb := len(rects)
 	geos := make([]*incGeo, 0, 8)
@@ -635,7 +631,7 @@ func (inc *Incremental) Occlude(ctx context.Context, fill *tensor.Tensor, rects 
 		var err error
 		if reached && st.kind != incFull {
 			gm := p.geometry(k, geos)
-			if gm.full && !incGeomFits(gm, p.shapes[nd.out[0]]) {
+			if gm.full {
 				err = inc.runFull(k, vals, nb)
 			} else {
 				var out *incVal
@@ -663,12 +659,6 @@ func (inc *Incremental) Occlude(ctx context.Context, fill *tensor.Tensor, rects 
 		return o.t, nil
 	}
 	return inc.materialize(p.out, o, nb), nil
-}
-
-// incGeomFits reports whether a full-covering patch geometry came from a patch
-// computation (p×q equal to the map), so the patch code can produce it.
-func incGeomFits(gm incGeo, ys []int) bool {
-	return len(ys) == 4 && gm.p == ys[2] && gm.q == ys[3] && gm.oy != nil
 }
 
 // materialize returns value v in full for every window: the kept value
@@ -887,10 +877,36 @@ func (inc *Incremental) runPatch(k int, gm incGeo, vals []*incVal, nb int) (*inc
 	if !shapeEq(out.t.Shape, want) {
 		return nil, fmt.Errorf("patch output %v, want %v", out.t.Shape, want)
 	}
-	if gm.full {
-		out.t = tensor.FromFloat32(out.t.F32, want...)
-	}
+	inc.restore(nd.out[0], out)
 	return out, nil
+}
+
+// restore writes the kept values back over the positions of a patch that
+// lie outside its window's changed rectangle. Those positions were
+// recomputed only because a batch shares one patch size; restoring them
+// makes each window's result independent of which windows share its batch
+// (and of the batch size), bit for bit, even where a patch kernel rounds
+// differently from the kernel of the unoccluded pass.
+func (inc *Incremental) restore(v int, s *incVal) {
+	base := inc.base[v]
+	c, h, w := base.Shape[1], base.Shape[2], base.Shape[3]
+	for b, r := range s.chg {
+		pt := s.t.F32[b*c*s.p*s.q : (b+1)*c*s.p*s.q]
+		oy, ox := s.oy[b], s.ox[b]
+		for ch := 0; ch < c; ch++ {
+			for i := 0; i < s.p; i++ {
+				y := oy + i
+				row := pt[(ch*s.p+i)*s.q : (ch*s.p+i+1)*s.q]
+				src := base.F32[(ch*h+y)*w+ox : (ch*h+y)*w+ox+s.q]
+				if r.empty() || y < r.Y0 || y >= r.Y1 {
+					copy(row, src)
+					continue
+				}
+				copy(row[:r.X0-ox], src[:r.X0-ox])
+				copy(row[r.X1-ox:], src[r.X1-ox:])
+			}
+		}
+	}
 }
 
 // convPatch convolves a batch of gathered input patches x [B, C, IH, IW]
@@ -1065,9 +1081,7 @@ func (p *incPlan) propagate(rects []Rect) []*incGeo {
 		}
 		gm := incGeo{full: true}
 		if reached && st.kind != incFull {
-			if g := p.geometry(k, ins); !g.full || incGeomFits(g, p.shapes[nd.out[0]]) {
-				gm = g
-			}
+			gm = p.geometry(k, ins)
 		}
 		for _, v := range nd.out {
 			if v >= 0 {

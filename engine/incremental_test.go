@@ -260,11 +260,19 @@ func TestIncrementalHandGraph(t *testing.T) {
 			t.Errorf("%s: changed region %+v, want %+v", name, gm.chg[0], r)
 		}
 	}
-	// dw covers its whole 5×5 map, so everything after it is full.
-	for _, name := range []string{"add", "cat", "pad", "ap", "y"} {
-		if gm := geos[g.index[name]]; gm == nil || !gm.full {
-			t.Errorf("%s: want full recomputation", name)
+	// dw covers its whole 5×5 map, so add and cat change everywhere; pad
+	// (1 row on top, 1 column on the right) gives rows [1, 6), columns
+	// [0, 5) of 6×6; ap (2×2, stride 1, one column of padding each side,
+	// output 5×7) reads rows o..o+1 and columns o−1..o, so rows [0, 5) and
+	// columns [0, 6). The classifier head after global pooling is
+	// recomputed in full.
+	for name, r := range map[string]Rect{"add": {0, 0, 5, 5}, "cat": {0, 0, 5, 5}, "pad": {0, 1, 5, 6}, "ap": {0, 0, 6, 5}} {
+		if gm := geos[g.index[name]]; gm == nil || gm.full || gm.chg[0] != r {
+			t.Errorf("%s: geometry %+v, want changed %+v", name, gm, r)
 		}
+	}
+	if gm := geos[g.index["y"]]; gm == nil || !gm.full {
+		t.Error("y: want full recomputation")
 	}
 	// A window whose region stays partial through the concat and pad: a
 	// corner pixel.
