@@ -593,3 +593,23 @@ func mustIndex(t testing.TB, out string) Index {
 	}
 	return idx
 }
+
+// A file without read permission is that image's error, naming the file.
+// Root reads every file, so the test needs an ordinary user (the same
+// check as root: setpriv --reuid=65534 heedmap run ...).
+func TestUnreadableFileRecorded(t *testing.T) {
+	if os.Geteuid() == 0 {
+		t.Skip("root can read a file without read permission")
+	}
+	dir := t.TempDir()
+	in := folderSet(t, dir, 2)
+	locked := filepath.Join(in.Images, "img001.png")
+	if err := os.Chmod(locked, 0); err != nil {
+		t.Fatal(err)
+	}
+	defer os.Chmod(locked, 0o644)
+	p := plan(t, in, Shard{})
+	if len(p.Invalid) != 1 || !strings.Contains(p.Invalid[0].Reason, locked+": permission denied") {
+		t.Fatalf("invalid %+v", p.Invalid)
+	}
+}
