@@ -443,6 +443,27 @@ func TestRunRealPipelineOnDemoModel(t *testing.T) {
 			}
 		}
 	}
+	// The same scenes as folders (--images, --masks, --artefacts with
+	// artefacts/CATEGORY/ID.png, as synth writes them) give the same
+	// measures as the manifest that lists those files.
+	folder := filepath.Join(dir, "folder")
+	fargs := []string{"run", "--model", model, "--images", filepath.Join(data, "images"), "--masks", filepath.Join(data, "masks"),
+		"--artefacts", filepath.Join(data, "artefacts"), "--out", folder, "--labels", labels,
+		"--config", "../../testdata/demo/demo.yaml", "--methods", "occlusion,grad-cam", "--workers", "2"}
+	if code, _, e := runCLI(t, fargs...); code != 0 {
+		t.Fatalf("folder input: exit %d\n%s", code, e)
+	}
+	fromManifest, fromFolder := readRows(t, filepath.Join(out, "images.csv")), readRows(t, filepath.Join(folder, "images.csv"))
+	for id, row := range fromManifest {
+		for col, v := range row {
+			if strings.Contains(col, "mass") && fromFolder[id][col] != v {
+				t.Errorf("%s %s: folder input %q, manifest %q", id, col, fromFolder[id][col], v)
+			}
+		}
+		if row["occlusion.artifact_mass:ruler"] == "" {
+			t.Errorf("%s: no ruler measure", id)
+		}
+	}
 	// An acceptance criterion no map can meet (pointing accuracy above 1)
 	// makes the run exit 1 after writing the report; one every map meets
 	// (at least 0) keeps exit 0.
