@@ -10,9 +10,11 @@
 // Output layout under the output folder OUT:
 //
 //	OUT/records/KEY.json   one record per finished image (ok or error)
-//	OUT/items/NAME/...     files a worker writes for an image (NAME = SafeName(id))
+//	OUT/FOLDER/NAME...     files a worker writes for an image through Dest.Path,
+//	                       e.g. overlays/NAME.grad-cam.png (NAME = SafeName(id))
 //	OUT/index.json         the shard's plan: fingerprint, shard, id→key
 //	OUT/metrics.csv        one row per planned image, rebuilt from records
+//	                       (Runner.Table renames it when a report owns metrics.csv)
 //	OUT/summary.json       counts of the last run
 //
 // KEY is the SHA-256 of the item's id, label, image bytes, mask bytes and
