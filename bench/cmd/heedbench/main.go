@@ -166,7 +166,8 @@ func run(ctx context.Context, c config) error {
 	// Rounds: every engine takes a turn per round and the best round is
 	// kept per configuration, so a burst of load from other users during
 	// one engine's turn does not decide a ratio (best-of-N, common practice
-	// for timing on shared machines). The occlusion comparison runs once.
+	// for timing on shared machines). The occlusion comparison runs once:
+	// ONNX Runtime's in the last round, heedmap's right after it.
 	var rows []timing
 	var ortOut *ortResult
 	var torchOut *torchResult
@@ -186,12 +187,12 @@ func run(ctx context.Context, c config) error {
 			}
 		}
 		if !c.skipORT {
-			o, err := runORT(c, ms, imgPath, ortMap, c.occlusion && r == 0)
+			o, err := runORT(c, ms, imgPath, ortMap, c.occlusion && r == c.rounds-1)
 			if err != nil {
 				return err
 			}
-			if ortOut == nil {
-				ortOut = o
+			if ortOut == nil || o.occ != nil {
+				ortOut = o // keep the turn that ran the occlusion windows
 			}
 			for _, t := range o.rows {
 				rows = best(rows, t)
