@@ -27,6 +27,7 @@ type Column struct {
 //	pointing_tolerance_px, peak_x, peak_y, peak_ties, band_mass, far_mass,
 //	band_width_px, lesion_px, lesion_unseen_fraction, hot_regions, hot_top_mass, hot_top_area_px,
 //	hot_top_bbox, flagged, flag_reasons, undefined_reason,
+//	ig_completeness_gap, warnings,
 //	then artefact_<category>_mass for every category in the dataset,
 //	sorted by name.
 var columns = []Column{
@@ -57,6 +58,8 @@ var columns = []Column{
 	{"flagged", "0 or 1", "1 when inside_mass < the inside threshold (default 0.5) or any artefact mass > its threshold (default 0.2)"},
 	{"flag_reasons", "text", "why the row is flagged, separated by \"; \""},
 	{"undefined_reason", "text", "why empty cells are undefined (empty mask, no positive relevance, lesion outside the view...)"},
+	{"ig_completeness_gap", "fraction (0.05 = 5 %)", "integrated gradients' relative completeness gap |Σ IG − (F(x) − F(x′))| / |F(x) − F(x′)| with F the explained score and x′ the baseline (Sundararajan et al. 2017); the absolute residual |Σ IG| when F(x) = F(x′); empty for other methods"},
+	{"warnings", "text", "the method's warnings for this image (default black occlusion fill, completeness gap above 5 %...), separated by \"; \""},
 }
 
 // artefactColumn documents the per-category columns.
@@ -163,6 +166,14 @@ func WriteCSV(w io.Writer, r *Report) error {
 				}
 			}
 			row = append(row, strings.Join(reasons, "; "))
+			gap, warn := "", ""
+			if a := im.Attribution(res.Method); a != nil {
+				if a.CompletenessGap != nil {
+					gap = cell(*a.CompletenessGap)
+				}
+				warn = strings.Join(a.Warnings, "; ")
+			}
+			row = append(row, gap, warn)
 			for _, c := range cats {
 				row = append(row, cell(res.ArtefactMass[c]))
 			}

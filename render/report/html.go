@@ -92,6 +92,7 @@ type tableRow struct {
 	Unseen                            measure.Value // primary method's lesion_unseen_fraction
 	Flagged                           bool
 	Link                              string
+	Warnings                          []string // "method: text"
 }
 
 type pageData struct {
@@ -115,6 +116,11 @@ type pageData struct {
 	HotNote         string
 	MaxGallery      int
 	GalleryMore     int
+	// Preprocess is the resolved preprocessing in one line; "" when the
+	// report does not record it.
+	Preprocess string
+	// Warnings are the distinct method warnings, most frequent first.
+	Warnings []warningGroup
 }
 
 // maxGallery bounds the gallery so a large dataset still gives a page a
@@ -128,7 +134,8 @@ func WriteHTML(w io.Writer, r *Report) error {
 		c.Caution = Caution
 		r = &c
 	}
-	d := pageData{Report: r, Methods: methodNames(r), Columns: ColumnDocs(), Statistics: measure.Statistics(), MaxGallery: maxGallery}
+	d := pageData{Report: r, Methods: methodNames(r), Columns: ColumnDocs(), Statistics: measure.Statistics(), MaxGallery: maxGallery,
+		Preprocess: PreprocessText(r.Provenance.Preprocessing), Warnings: warningGroups(r.Images)}
 	for _, v := range r.Verdicts {
 		if v.Pass {
 			d.Passed++
@@ -154,7 +161,7 @@ func WriteHTML(w io.Writer, r *Report) error {
 	for i := range r.Images {
 		im := &r.Images[i]
 		byID[im.ID] = im
-		row := tableRow{ID: im.ID, TrueClass: im.TrueClass, PredClass: im.PredClass, Correct: im.Correctness(), Score: im.Score, Link: picture(im)}
+		row := tableRow{ID: im.ID, TrueClass: im.TrueClass, PredClass: im.PredClass, Correct: im.Correctness(), Score: im.Score, Link: picture(im), Warnings: imageWarnings(im)}
 		for _, m := range d.Methods {
 			if res, ok := im.Result(m); ok {
 				row.Inside = append(row.Inside, res.InsideMass)

@@ -14,6 +14,7 @@ import (
 	"time"
 
 	"heedmap/explain/measure"
+	"heedmap/explain/preprocess"
 )
 
 // Provenance says what produced a report, so that a reviewer can tell
@@ -34,6 +35,9 @@ import (
 //	seeds             every random seed by purpose (e.g. "smoothgrad",
 //	                  "rise", "bootstrap")
 //	methods           each method's parameters by method name
+//	preprocessing     the preprocessing configuration resolved against the
+//	                  model (size, resize mode, range, mean, std, channel
+//	                  order, layout, pad colour)
 //	measure           the measurement parameters (tolerance, band, hot
 //	                  fraction)
 type Provenance struct {
@@ -54,6 +58,8 @@ type Provenance struct {
 	Seeds        map[string]uint64         `json:"seeds"`
 	Methods      map[string]map[string]any `json:"methods"`
 	Measure      measure.Params            `json:"measure"`
+	// Preprocessing is nil for reports built before it was recorded.
+	Preprocessing *preprocess.Config `json:"preprocessing,omitempty"`
 }
 
 // FileDigest identifies one input file.

@@ -62,6 +62,9 @@ type ImageRecord struct {
 	ArtefactFiles map[string]string `json:"artefact_files,omitempty"`
 	Overlays      map[string]string `json:"overlays,omitempty"` // method → relative PNG path
 	Panel         string            `json:"panel,omitempty"`
+	// Attributions are, per method in run order, the target, settings and
+	// warnings behind Results.
+	Attributions []Attribution `json:"attributions,omitempty"`
 }
 
 // Failure is an image that could not be measured.
