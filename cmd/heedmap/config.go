@@ -59,6 +59,20 @@ type Config struct {
 	RiseMasks int    `yaml:"rise-masks,omitempty"`
 	Layer     string `yaml:"layer,omitempty"`
 	Seed      uint64 `yaml:"seed"`
+	// SmoothGradSigma is the noise level as a fraction of the input's
+	// range; 0 means no noise (SmoothGrad then equals the gradient).
+	SmoothGradSigma  float64 `yaml:"smoothgrad-sigma"`
+	SmoothGradOverIG bool    `yaml:"smoothgrad-over-ig"`
+	IGQuadrature     string  `yaml:"ig-quadrature"`
+	// BlurSigma is the Gaussian σ in model-input pixels of the blurred
+	// occlusion fill and integrated-gradients baseline; 0 = each method's
+	// default (patch/2 and width/16).
+	BlurSigma float64 `yaml:"blur-sigma"`
+	RiseGrid  int     `yaml:"rise-grid"`
+	RiseP     float64 `yaml:"rise-p"`
+	// Output names the graph value holding the logits; empty = the graph's
+	// first output.
+	Output string `yaml:"output,omitempty"`
 
 	// Report: title, the dataset summary's primary method and flag rule. They do
 	// not change per-image results and stay out of the record key.
@@ -90,6 +104,11 @@ func defaultConfig() Config {
 		Fill:     "mean",
 		Baseline: "black",
 		Seed:     1,
+		// The methods' published defaults (explain package doc comments).
+		SmoothGradSigma: 0.15,
+		IGQuadrature:    "midpoint",
+		RiseGrid:        7,
+		RiseP:           0.5,
 		// The memory cap's default (reduce.go).
 		MaxMegapixels: defaultMegapixels,
 		// The summary's default flag rule (measure.DefaultSummaryOptions).
@@ -212,16 +231,18 @@ func runOptions() []option {
 		return nil
 	}, func(c *Config) string { return strings.Join(c.Methods, ",") })
 	s, g = str(func(c *Config) *string { return &c.Target })
-	add(io, "target", "T", "class to explain: predicted, label (from the manifest), a class index or a name from --labels", s, g)
-	add(io, "score", "logit|prob", "explain the raw logit or the softmax probability of the target", func(c *Config, v string) error {
-		if err := oneOf(v, "logit", "prob"); err != nil {
+	add(io, "target", "T", "what to explain: predicted, label (from the manifest), a class index, a class name from --labels, or a group NAME=A+B+... whose score is the sum of the members' probabilities (needs --score prob or sigmoid)", s, g)
+	s, g = str(func(c *Config) *string { return &c.Output })
+	add(io, "output", "NAME", "graph value holding the logits; for a model ending in Softmax name the tensor that feeds it; empty = the graph's first output", s, g)
+	add(io, "score", "logit|prob|sigmoid", "explain the raw logit, the softmax probability or the sigmoid probability (multi-label models) of the target", func(c *Config, v string) error {
+		if err := oneOf(v, "logit", "prob", "sigmoid"); err != nil {
 			return err
 		}
 		c.Score = v
 		return nil
 	}, func(c *Config) string { return c.Score })
 	s, g = flg(func(c *Config) *bool { return &c.SaveMaps })
-	addBool(io, "save-maps", "also save raw attribution maps (NPY) per image and method", s, g)
+	addBool(io, "save-maps", "also save each method's map as OUT/maps/ID.METHOD.npy: float32 H×W in model-input space, signed and summed over colour channels (gradient: Σ_c ∂score/∂x_c; gradient-x-input: Σ_c x_c·∂score/∂x_c; SmoothGrad: channel sum of the mean gradient), i.e. before any absolute value or clipping; overlays and measures use the method's display map (max over channels of |gradient| for gradient and SmoothGrad)", s, g)
 	s, g = str(func(c *Config) *string { return &c.Labels })
 	add(io, "labels", "FILE", "class names, one per line, in logit order", s, g)
 	s, g = str(func(c *Config) *string { return &c.Criteria })
@@ -294,6 +315,35 @@ func runOptions() []option {
 	add(met, "samples", "N", "SmoothGrad noise samples and RISE masks; 0 = the methods' defaults (25 and 2000)", s, g)
 	s, g = num(func(c *Config) *int { return &c.RiseMasks }, 0)
 	add(met, "rise-masks", "N", "RISE masks; 0 = --samples if set, else the method's default (2000)", s, g)
+	fnum := func(p func(c *Config) *float64, ok func(float64) bool, want string) (func(*Config, string) error, func(*Config) string) {
+		return func(c *Config, v string) error {
+				f, err := strconv.ParseFloat(strings.TrimSpace(v), 64)
+				if err != nil || math.IsNaN(f) || math.IsInf(f, 0) || !ok(f) {
+					return fmt.Errorf("want %s, got %q", want, v)
+				}
+				*p(c) = f
+				return nil
+			}, func(c *Config) string {
+				return strconv.FormatFloat(*p(c), 'g', -1, 64)
+			}
+	}
+	s, g = fnum(func(c *Config) *float64 { return &c.SmoothGradSigma }, func(f float64) bool { return f >= 0 }, "a fraction >= 0")
+	add(met, "smoothgrad-sigma", "F", "SmoothGrad noise σ as a fraction of the input's value range; 0 = no noise", s, g)
+	s, g = flg(func(c *Config) *bool { return &c.SmoothGradOverIG })
+	addBool(met, "smoothgrad-over-ig", "SmoothGrad averages integrated gradients (--steps, --baseline, --ig-quadrature) instead of the gradient; costs samples × steps gradients; reported as method smoothgrad-ig", s, g)
+	add(met, "ig-quadrature", "midpoint|gauss-legendre", "integrated-gradients path integral rule", func(c *Config, v string) error {
+		if err := oneOf(v, "midpoint", "gauss-legendre"); err != nil {
+			return err
+		}
+		c.IGQuadrature = v
+		return nil
+	}, func(c *Config) string { return c.IGQuadrature })
+	s, g = fnum(func(c *Config) *float64 { return &c.BlurSigma }, func(f float64) bool { return f >= 0 }, "pixels >= 0")
+	add(met, "blur-sigma", "PX", "Gaussian σ in model-input pixels of the blurred occlusion fill and integrated-gradients baseline; 0 = patch/2 and width/16", s, g)
+	s, g = num(func(c *Config) *int { return &c.RiseGrid }, 1)
+	add(met, "rise-grid", "S", "RISE mask grid: S×S cells before upsampling", s, g)
+	s, g = fnum(func(c *Config) *float64 { return &c.RiseP }, func(f float64) bool { return f > 0 && f <= 1 }, "a probability in (0, 1]")
+	add(met, "rise-p", "P", "RISE probability that a grid cell is kept", s, g)
 	s, g = str(func(c *Config) *string { return &c.Layer })
 	add(met, "layer", "NAME", "Grad-CAM layer (tensor name); empty = last 4-D activation before global pooling", s, g)
 	add(met, "seed", "N", "seed for SmoothGrad noise and RISE masks", func(c *Config, v string) error {

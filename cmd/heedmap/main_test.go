@@ -7,6 +7,7 @@ import (
 	"encoding/hex"
 	"encoding/json"
 	"fmt"
+	"io"
 	"os"
 	"os/exec"
 	"path/filepath"
@@ -494,7 +495,7 @@ func BenchmarkDemoImage(b *testing.B) {
 	if err != nil {
 		b.Fatal(err)
 	}
-	p, err := newPipeline(demoConfig(dir, dir, m, geo))
+	p, err := newPipeline(demoConfig(dir, dir, m, geo), io.Discard)
 	if err != nil {
 		b.Fatal(err)
 	}

@@ -5,11 +5,13 @@ import (
 	"encoding/json"
 	"fmt"
 	"image"
+	"io"
 	"math"
 	"os"
 	"sort"
 	"strconv"
 	"strings"
+	"sync"
 	"time"
 
 	"heedmap/batch"
@@ -49,6 +51,34 @@ type attributionWorker struct {
 	labels  []string
 	kind    explain.ScoreKind
 	params  measure.Params
+	// prep is the preprocessing resolved against the model, as recorded.
+	prep preprocess.Config
+	warn *warnLog
+}
+
+// warnLog prints the first occurrence of each kind of method warning on
+// the run's error stream; every occurrence stays in the records. Warnings
+// that differ only in their numbers (a completeness gap of 6.1 % or 7.4 %)
+// are one kind, so a dataset-wide condition prints one line, not one per
+// image.
+type warnLog struct {
+	mu   sync.Mutex
+	w    io.Writer
+	seen map[string]bool
+}
+
+func (l *warnLog) add(id, method, text string) {
+	if l == nil || l.w == nil {
+		return
+	}
+	k := method + "\x00" + report.WarningKind(text)
+	l.mu.Lock()
+	defer l.mu.Unlock()
+	if l.seen[k] {
+		return
+	}
+	l.seen[k] = true
+	fmt.Fprintf(l.w, "warning: %s: %s (first seen on %s; every occurrence is in report.html)\n", method, text, id)
 }
 
 // detail is what the worker stores in each record for the report.
@@ -63,9 +93,16 @@ type detail struct {
 	// do not exist, and the report must still say which bytes were
 	// measured.
 	Inputs []report.FileDigest `json:"inputs,omitempty"`
+	// Attributions: per method, the target, resolved settings and warnings.
+	Attributions []report.Attribution `json:"attributions,omitempty"`
+	// Preprocess is the run's resolved preprocessing, kept in every record
+	// so that a report built by a merge can state it without the model.
+	Preprocess *preprocess.Config `json:"preprocess,omitempty"`
 }
 
-func newPipeline(cfg Config) (*pipeline, error) {
+// newPipeline compiles the model and the configured methods; method
+// warnings are printed on warn (first occurrence of each kind).
+func newPipeline(cfg Config, warn io.Writer) (*pipeline, error) {
 	g, err := engine.Load(cfg.Model)
 	if err != nil {
 		return nil, fmt.Errorf("model: %w", err)
@@ -96,11 +133,15 @@ func newPipeline(cfg Config) (*pipeline, error) {
 	if err != nil {
 		return nil, err
 	}
-	net, err := explain.FromGraph(g, explain.GraphOptions{NHWC: pc.Layout == "NHWC"})
+	net, err := explain.FromGraph(g, explain.GraphOptions{NHWC: pc.Layout == "NHWC", Output: cfg.Output})
 	if err != nil {
+		if cfg.Output != "" {
+			return nil, fmt.Errorf("--output %s: %w", cfg.Output, err)
+		}
 		return nil, err
 	}
-	w := &attributionWorker{cfg: cfg, pp: pp, net: net, params: measure.DefaultParams()}
+	w := &attributionWorker{cfg: cfg, pp: pp, net: net, params: measure.DefaultParams(), prep: recordedPreprocess(pc),
+		warn: &warnLog{w: warn, seen: map[string]bool{}}}
 	if w.kind, err = explain.ParseScoreKind(cfg.Score); err != nil {
 		return nil, err
 	}
@@ -113,11 +154,20 @@ func newPipeline(cfg Config) (*pipeline, error) {
 		return nil, fmt.Errorf("--target %s: %w", cfg.Target, err)
 	}
 	norm := pp.Normalization()
+	quad, err := explain.ParseQuadrature(cfg.IGQuadrature)
+	if err != nil {
+		return nil, err
+	}
+	baseline, err := explain.ParseBaseline(cfg.Baseline)
+	if err != nil {
+		return nil, err
+	}
+	ig := explain.IntegratedGradients{Steps: cfg.Steps, Quadrature: quad, Baseline: baseline, Norm: norm, BlurSigma: cfg.BlurSigma, Seed: cfg.Seed}
 	for _, name := range cfg.Methods {
 		var m explain.Method
 		switch name {
 		case "occlusion":
-			o := occlusion.Occlusion{Patch: cfg.Patch, Stride: cfg.Stride, Norm: norm}
+			o := occlusion.Occlusion{Patch: cfg.Patch, Stride: cfg.Stride, Norm: norm, BlurSigma: cfg.BlurSigma}
 			if f, perr := occlusion.ParseFill(cfg.Fill); perr == nil {
 				o.Fill = f
 			} else if rgb, terr := parseTriple(cfg.Fill); terr == nil {
@@ -134,13 +184,16 @@ func newPipeline(cfg Config) (*pipeline, error) {
 		case "gradient-x-input":
 			m = explain.GradientTimesInput{}
 		case "integrated-gradients":
-			b, err := explain.ParseBaseline(cfg.Baseline)
-			if err != nil {
-				return nil, err
-			}
-			m = explain.IntegratedGradients{Steps: cfg.Steps, Baseline: b, Norm: norm, Seed: cfg.Seed}
+			m = ig
 		case "smoothgrad":
-			m = explain.SmoothGrad{Samples: cfg.Samples, Seed: cfg.Seed}
+			sg := explain.SmoothGrad{Samples: cfg.Samples, Sigma: cfg.SmoothGradSigma, Seed: cfg.Seed}
+			if sg.Sigma == 0 {
+				sg.Sigma = -1 // the user's 0 is no noise; the method's 0 would mean its default
+			}
+			if cfg.SmoothGradOverIG {
+				sg.OverIG = &ig
+			}
+			m = sg
 		case "grad-cam":
 			layer := cfg.Layer
 			if layer == "" {
@@ -154,7 +207,7 @@ func newPipeline(cfg Config) (*pipeline, error) {
 			if cfg.RiseMasks > 0 {
 				n = cfg.RiseMasks
 			}
-			m = explain.RISE{Masks: n, Seed: cfg.Seed}
+			m = explain.RISE{Masks: n, Grid: cfg.RiseGrid, P: cfg.RiseP, Seed: cfg.Seed}
 		default:
 			return nil, fmt.Errorf("unknown method %q", name)
 		}
@@ -168,7 +221,8 @@ func newPipeline(cfg Config) (*pipeline, error) {
 	}, nil
 }
 
-// target resolves --target for one item.
+// target resolves --target for one item (explain.ParseTarget: predicted,
+// a class index, a class name or a group NAME=A+B).
 func (w *attributionWorker) target(it batch.Item) (explain.Target, error) {
 	t := w.cfg.Target
 	if t == "label" {
@@ -177,20 +231,30 @@ func (w *attributionWorker) target(it batch.Item) (explain.Target, error) {
 		}
 		t = it.Label
 	}
-	if t == "predicted" || t == "" {
-		return explain.Predicted(w.kind), nil
+	return explain.ParseTarget(t, w.labels, w.kind)
+}
+
+// recordedPreprocess is c as the report states it: the defaults that
+// Resolve leaves implicit (value range, channel order, letterbox colour)
+// written out.
+func recordedPreprocess(c preprocess.Config) preprocess.Config {
+	if c.Range == 0 {
+		c.Range = 1
 	}
-	if i, err := strconv.Atoi(t); err == nil {
-		if i < 0 || (len(w.labels) > 0 && i >= len(w.labels)) {
-			return explain.Target{}, fmt.Errorf("class index %d out of range", i)
-		}
-		tg := explain.Class(i, w.kind)
-		if i < len(w.labels) {
-			tg.Name = w.labels[i]
-		}
-		return tg, nil
+	if c.Channels == "" {
+		c.Channels = "RGB"
 	}
-	return explain.ClassByName(w.labels, t, w.kind)
+	if len(c.PadColor) == 0 {
+		// preprocess.Config's rule: the mean colour, or black without one.
+		c.PadColor = []float32{0, 0, 0}
+		if len(c.Mean) == 3 {
+			c.PadColor = append([]float32(nil), c.Mean...)
+			if strings.EqualFold(c.Channels, "BGR") { // Mean is in model channel order; PadColor is RGB
+				c.PadColor[0], c.PadColor[2] = c.PadColor[2], c.PadColor[0]
+			}
+		}
+	}
+	return c
 }
 
 func (w *attributionWorker) className(i int) string {
@@ -358,7 +422,8 @@ func (w *attributionWorker) Process(ctx context.Context, it batch.Item, dst batc
 	if reduced != "" {
 		res.Info["reduced"] = reduced
 	}
-	d := detail{Overlays: map[string]string{}, Inputs: digests}
+	prep := w.prep
+	d := detail{Overlays: map[string]string{}, Inputs: digests, Preprocess: &prep}
 	for name, p := range it.Artefacts {
 		if p != "" {
 			if d.Artefacts == nil {
@@ -388,10 +453,35 @@ func (w *attributionWorker) Process(ctx context.Context, it batch.Item, dst batc
 		if i, v, ok := finite(r.Map.Data); !ok {
 			return batch.Result{}, fmt.Errorf("%s: %s: map value %d is %v (not finite)", it.Image, m.Name(), i, v)
 		}
-		if len(r.Target.Classes) == 1 {
-			res.Info["target"] = w.className(r.Target.Classes[0])
-			d.Image.Score = float64(probs[r.Target.Classes[0]])
+		// The image's score is the probability of what is explained: the
+		// class, or the sum over a group's members (its definition).
+		var p float64
+		for _, c := range r.Target.Classes {
+			if c >= 0 && c < len(probs) {
+				p += float64(probs[c])
+			}
 		}
+		d.Image.Score = p
+		tname := r.Target.Name
+		if len(r.Target.Classes) == 1 {
+			tname = w.className(r.Target.Classes[0])
+		}
+		res.Info["target"] = tname
+		att := report.Attribution{Method: r.Method, Target: tname, ScoreKind: r.Target.Score.String(), Warnings: r.Warnings}
+		for _, p := range r.Params {
+			att.Params = append(att.Params, report.Param{Name: p.Name, Value: p.Value})
+		}
+		if r.Method == "integrated-gradients" || !math.IsNaN(r.Gap) {
+			v := measure.Undef("not computed")
+			if !math.IsNaN(r.Gap) {
+				v = measure.Num(r.Gap)
+			}
+			att.CompletenessGap = &v
+		}
+		for _, wt := range r.Warnings {
+			w.warn.add(it.ID, r.Method, wt)
+		}
+		d.Attributions = append(d.Attributions, att)
 		mr, err := plan.Measure(r.Method, r.Map)
 		if err != nil {
 			return batch.Result{}, fmt.Errorf("%s: %s: measure: %w", it.Image, r.Method, err)
@@ -437,7 +527,10 @@ func (w *attributionWorker) Process(ctx context.Context, it batch.Item, dst batc
 			if err != nil {
 				return batch.Result{}, err
 			}
-			if err := explain.SaveNPY(abs, r.Map); err != nil {
+			// The saved map is the signed channel sum (Result.Signed), the
+			// method output as the tool defines it; r.Map may be the
+			// gradient's max-|·| display map.
+			if err := explain.SaveNPY(abs, r.Signed); err != nil {
 				return batch.Result{}, err
 			}
 			res.Files = append(res.Files, rel)
@@ -570,6 +663,9 @@ func writeReport(ctx context.Context, cfg Config, out string, start time.Time) (
 func summaryOptions(cfg Config) (measure.SummaryOptions, error) {
 	o := measure.DefaultSummaryOptions()
 	o.Primary = cfg.Primary
+	if o.Primary == "smoothgrad" && cfg.SmoothGradOverIG {
+		o.Primary = "smoothgrad-ig" // the name its results carry
+	}
 	o.InsideThreshold = cfg.FlagInside
 	def, per, err := parseArtefactRule(cfg.FlagArtefact)
 	if err != nil {
@@ -605,7 +701,7 @@ func buildReport(ctx context.Context, cfg Config, out string, start time.Time) (
 			continue
 		}
 		images = append(images, d.Image)
-		r.Images = append(r.Images, report.ImageRecord{Image: d.Image, File: rec.Image, MaskFile: rec.Mask, ArtefactFiles: d.Artefacts, Overlays: d.Overlays, Panel: d.Panel})
+		r.Images = append(r.Images, report.ImageRecord{Image: d.Image, File: rec.Image, MaskFile: rec.Mask, ArtefactFiles: d.Artefacts, Overlays: d.Overlays, Panel: d.Panel, Attributions: d.Attributions})
 		details = append(details, d)
 	}
 	pass := true
@@ -643,8 +739,12 @@ func buildReport(ctx context.Context, cfg Config, out string, start time.Time) (
 	p.Seeds["methods"] = cfg.Seed
 	p.Seeds["bootstrap"] = opt.Seed
 	p.Measure = measure.DefaultParams()
-	for _, m := range cfg.Methods {
-		p.Methods[m] = map[string]any{"patch": cfg.Patch, "stride": cfg.Stride, "fill": cfg.Fill, "baseline": cfg.Baseline, "steps": cfg.Steps, "samples": cfg.Samples, "rise-masks": cfg.RiseMasks, "layer": cfg.Layer, "seed": cfg.Seed}
+	p.Methods = methodSettings(cfg)
+	for _, d := range details {
+		if d.Preprocess != nil {
+			p.Preprocessing = d.Preprocess
+			break
+		}
 	}
 	r.Provenance = p
 	if err := inputProvenance(r, details); err != nil {
@@ -679,4 +779,43 @@ func inputProvenance(r *report.Report, details []detail) error {
 	}
 	r.Provenance.Images, r.Provenance.Masks = imgs, masks
 	return nil
+}
+
+// methodSettings is each configured method's settings as given (option
+// names; 0 = the method's default, which every image's record states
+// resolved), keyed by the method name its results carry.
+func methodSettings(cfg Config) map[string]map[string]any {
+	out := map[string]map[string]any{}
+	igs := func() map[string]any {
+		return map[string]any{"steps": cfg.Steps, "baseline": cfg.Baseline, "ig-quadrature": cfg.IGQuadrature, "blur-sigma": cfg.BlurSigma, "seed": cfg.Seed}
+	}
+	for _, m := range cfg.Methods {
+		var s map[string]any
+		switch m {
+		case "occlusion":
+			s = map[string]any{"patch": cfg.Patch, "stride": cfg.Stride, "fill": cfg.Fill, "blur-sigma": cfg.BlurSigma}
+		case "integrated-gradients":
+			s = igs()
+		case "smoothgrad":
+			s = map[string]any{"samples": cfg.Samples, "smoothgrad-sigma": cfg.SmoothGradSigma, "seed": cfg.Seed}
+			if cfg.SmoothGradOverIG {
+				m = "smoothgrad-ig"
+				for k, v := range igs() {
+					s["ig-"+strings.TrimPrefix(k, "ig-")] = v
+				}
+			}
+		case "grad-cam":
+			s = map[string]any{"layer": cfg.Layer}
+		case "rise":
+			s = map[string]any{"rise-masks": cfg.RiseMasks, "samples": cfg.Samples, "rise-grid": cfg.RiseGrid, "rise-p": cfg.RiseP, "seed": cfg.Seed}
+		default:
+			s = map[string]any{}
+		}
+		s["target"], s["score"] = cfg.Target, cfg.Score
+		if cfg.Output != "" {
+			s["output"] = cfg.Output
+		}
+		out[m] = s
+	}
+	return out
 }

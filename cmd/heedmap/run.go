@@ -209,7 +209,7 @@ func execute(ctx context.Context, cfg Config, rf runFlags, stdout, stderr io.Wri
 	} else {
 		// The model and every setting are checked before the images, so a
 		// bad model or option fails in seconds, dry run included.
-		p, err := newPipeline(cfg)
+		p, err := newPipeline(cfg, stderr)
 		if err != nil {
 			fmt.Fprintf(stderr, "heedmap run: %v\n", err)
 			return exitUsage, oc

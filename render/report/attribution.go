@@ -42,9 +42,32 @@ func (im *ImageRecord) Attribution(method string) *Attribution {
 	return nil
 }
 
-// warningGroup is one distinct warning text and where it occurred.
+// WarningKind is the text of a warning with every number replaced by
+// "#": warnings of one kind that differ only in a measured value (a
+// completeness gap of 6.1 % on one image and 7.4 % on another) share it.
+func WarningKind(text string) string {
+	var b strings.Builder
+	num := false
+	for _, r := range text {
+		isNum := r >= '0' && r <= '9' || (num && (r == '.' || r == 'e'))
+		if isNum {
+			if !num {
+				b.WriteByte('#')
+			}
+			num = true
+			continue
+		}
+		num = false
+		b.WriteRune(r)
+	}
+	return b.String()
+}
+
+// warningGroup is one kind of warning (see WarningKind) and where it
+// occurred.
 type warningGroup struct {
-	Text   string
+	Text   string   // the first occurrence's text
+	Varies bool     // other occurrences differ in their numbers
 	Count  int      // image × method occurrences
 	Images []string // image ids, first few
 	More   int      // ids not listed
@@ -53,7 +76,7 @@ type warningGroup struct {
 // maxWarningImages bounds the ids listed per warning on the page.
 const maxWarningImages = 12
 
-// warningGroups collects the distinct warnings of every image, most
+// warningGroups collects the kinds of warning of every image, most
 // frequent first (ties by text).
 func warningGroups(images []ImageRecord) []warningGroup {
 	idx := map[string]int{}
@@ -61,13 +84,15 @@ func warningGroups(images []ImageRecord) []warningGroup {
 	for _, im := range images {
 		for _, a := range im.Attributions {
 			for _, w := range a.Warnings {
-				i, ok := idx[w]
+				k := a.Method + "\x00" + WarningKind(w)
+				i, ok := idx[k]
 				if !ok {
 					i = len(out)
-					idx[w] = i
+					idx[k] = i
 					out = append(out, warningGroup{Text: w})
 				}
 				g := &out[i]
+				g.Varies = g.Varies || w != g.Text
 				g.Count++
 				if n := len(g.Images); n > 0 && g.Images[n-1] == im.ID {
 					continue
