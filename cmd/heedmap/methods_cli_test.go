@@ -94,7 +94,9 @@ func loadMap(t *testing.T, path string) []float32 {
 	return data
 }
 
-func closeTo(a, b, tol float64) bool { return math.Abs(a-b) <= tol*math.Max(1, math.Max(math.Abs(a), math.Abs(b))) }
+func closeTo(a, b, tol float64) bool {
+	return math.Abs(a-b) <= tol*math.Max(1, math.Max(math.Abs(a), math.Abs(b)))
+}
 
 // TestSaveMapsAreSignedChannelSums checks what --save-maps writes against
 // the definitions: the gradient map is Σ_c ∂S/∂x_c (Simonyan, Vedaldi &
@@ -389,5 +391,28 @@ func TestNewOptionsInConfigAndHelp(t *testing.T) {
 		if params[k] != v {
 			t.Errorf("record param %s = %q, want %q (all: %v)", k, params[k], v, params)
 		}
+	}
+}
+
+// TestOutputOption names the logits value explicitly (the demo model's own
+// output, so the maps must equal the default run's) and checks that a
+// name the graph does not have is refused with the option named.
+func TestOutputOption(t *testing.T) {
+	c := newCLICase(t, 1)
+	base := []string{"--config", "../../testdata/demo/demo.yaml", "--methods", "gradient", "--save-maps"}
+	a, b := filepath.Join(c.dir, "a"), filepath.Join(c.dir, "b")
+	c.run(t, a, base...)
+	c.run(t, b, append(base, "--output", "logits")...)
+	ma := loadMap(t, filepath.Join(a, "maps", "syn00000.gradient.npy"))
+	mb := loadMap(t, filepath.Join(b, "maps", "syn00000.gradient.npy"))
+	for i := range ma {
+		if ma[i] != mb[i] {
+			t.Fatalf("--output logits changed pixel %d: %g vs %g", i, ma[i], mb[i])
+		}
+	}
+	code, _, stderr := runCLI(t, append([]string{"run", "--model", c.model, "--images", filepath.Join(c.data, "manifest.csv"), "--out", filepath.Join(c.dir, "bad"),
+		"--output", "no-such-value"}, base...)...)
+	if code == 0 || !strings.Contains(stderr, "--output no-such-value") {
+		t.Errorf("unknown --output: exit %d\n%s", code, stderr)
 	}
 }

@@ -133,6 +133,9 @@ func newPipeline(cfg Config, warn io.Writer) (*pipeline, error) {
 	if err != nil {
 		return nil, err
 	}
+	if cfg.Output != "" && !g.HasValue(cfg.Output) {
+		return nil, fmt.Errorf("--output %s: the model %s has no value of that name (its outputs: %s)", cfg.Output, cfg.Model, outputNames(g))
+	}
 	net, err := explain.FromGraph(g, explain.GraphOptions{NHWC: pc.Layout == "NHWC", Output: cfg.Output})
 	if err != nil {
 		if cfg.Output != "" {
@@ -818,4 +821,12 @@ func methodSettings(cfg Config) map[string]map[string]any {
 		out[m] = s
 	}
 	return out
+}
+
+func outputNames(g *engine.Graph) string {
+	var s []string
+	for _, o := range g.Outputs() {
+		s = append(s, o.Name)
+	}
+	return strings.Join(s, ", ")
 }
