@@ -278,6 +278,10 @@ func TestWarningsGapAndProvenance(t *testing.T) {
 	if n := strings.Count(stderr, "warning: occlusion:"); n != 1 {
 		t.Errorf("stderr has %d occlusion fill warnings, want 1 (first occurrence only):\n%s", n, stderr)
 	}
+	// Gap warnings differ in their numbers per image; one line per kind.
+	if n := strings.Count(stderr, "warning: integrated-gradients: integrated gradients: completeness gap"); n > 1 {
+		t.Errorf("stderr has %d completeness-gap warnings, want at most 1:\n%s", n, stderr)
+	}
 	r := readReport(t, out)
 	rows := csvRows(t, filepath.Join(out, "metrics.csv"))
 	if len(rows) != 4 {
@@ -372,7 +376,7 @@ func TestNewOptionsInConfigAndHelp(t *testing.T) {
 	yml := filepath.Join(c.dir, "c.yaml")
 	os.WriteFile(yml, []byte("size: 64\nmean: [0.5, 0.5, 0.5]\nstd: [0.25, 0.25, 0.25]\nsmoothgrad-sigma: 0.2\nsmoothgrad-over-ig: true\nig-quadrature: gauss-legendre\nblur-sigma: 3\nrise-grid: 4\nrise-p: 0.3\n"), 0o644)
 	out := filepath.Join(c.dir, "out")
-	c.run(t, out, "--config", yml, "--methods", "smoothgrad,rise", "--samples", "2", "--steps", "2", "--rise-masks", "8", "--baseline", "blur")
+	c.run(t, out, "--config", yml, "--methods", "smoothgrad,rise,grad-cam", "--samples", "2", "--steps", "2", "--rise-masks", "8", "--baseline", "blur")
 	cfg, _ := os.ReadFile(filepath.Join(out, "config.yaml"))
 	for _, s := range []string{"smoothgrad-sigma: 0.2", "smoothgrad-over-ig: true", "ig-quadrature: gauss-legendre", "blur-sigma: 3", "rise-grid: 4", "rise-p: 0.3"} {
 		if !strings.Contains(string(cfg), s) {
@@ -387,7 +391,7 @@ func TestNewOptionsInConfigAndHelp(t *testing.T) {
 		}
 	}
 	for k, v := range map[string]string{"smoothgrad-ig.sigma_fraction": "0.2", "smoothgrad-ig.ig_quadrature": "gauss-legendre", "smoothgrad-ig.ig_blur_sigma_px": "3",
-		"rise.masks": "8", "rise.grid": "4", "rise.p": "0.3"} {
+		"rise.masks": "8", "rise.grid": "4", "rise.p": "0.3", "grad-cam.layer_choice": "automatic"} {
 		if params[k] != v {
 			t.Errorf("record param %s = %q, want %q (all: %v)", k, params[k], v, params)
 		}

@@ -198,13 +198,14 @@ func newPipeline(cfg Config, warn io.Writer) (*pipeline, error) {
 			}
 			m = sg
 		case "grad-cam":
-			layer := cfg.Layer
-			if layer == "" {
-				if layer, err = g.GradCAMLayer(); err != nil {
+			if cfg.Layer == "" {
+				// Checked once here; the method then chooses the same layer
+				// itself and records the choice as automatic.
+				if _, err = g.GradCAMLayer(); err != nil {
 					return nil, fmt.Errorf("grad-cam: %w (pass --layer)", err)
 				}
 			}
-			m = explain.GradCAM{Layer: layer}
+			m = explain.GradCAM{Layer: cfg.Layer}
 		case "rise":
 			n := cfg.Samples
 			if cfg.RiseMasks > 0 {
