@@ -78,7 +78,7 @@ func (l *warnLog) add(id, method, text string) {
 		return
 	}
 	l.seen[k] = true
-	fmt.Fprintf(l.w, "warning: %s: %s (first seen on %s; every occurrence is in report.html)\n", method, text, id)
+	fmt.Fprintf(l.w, "warning: %s (first seen on %s; every occurrence is in report.html)\n", report.WarningLine(method, text), id)
 }
 
 // detail is what the worker stores in each record for the report.

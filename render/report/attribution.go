@@ -89,10 +89,10 @@ func warningGroups(images []ImageRecord) []warningGroup {
 				if !ok {
 					i = len(out)
 					idx[k] = i
-					out = append(out, warningGroup{Text: w})
+					out = append(out, warningGroup{Text: WarningLine(a.Method, w)})
 				}
 				g := &out[i]
-				g.Varies = g.Varies || w != g.Text
+				g.Varies = g.Varies || WarningLine(a.Method, w) != g.Text
 				g.Count++
 				if n := len(g.Images); n > 0 && g.Images[n-1] == im.ID {
 					continue
@@ -114,12 +114,23 @@ func warningGroups(images []ImageRecord) []warningGroup {
 	return out
 }
 
-// imageWarnings lists an image's warnings as "method: text" lines.
+// WarningLine is a method's warning as one line that names the method:
+// text as it is when it already starts with the method's name (methods
+// usually prefix their own), else "method: text".
+func WarningLine(method, text string) string {
+	low := strings.ToLower(text)
+	if strings.HasPrefix(low, method) || strings.HasPrefix(low, strings.ReplaceAll(method, "-", " ")) {
+		return text
+	}
+	return method + ": " + text
+}
+
+// imageWarnings lists an image's warnings, one WarningLine each.
 func imageWarnings(im *ImageRecord) []string {
 	var out []string
 	for _, a := range im.Attributions {
 		for _, w := range a.Warnings {
-			out = append(out, a.Method+": "+w)
+			out = append(out, WarningLine(a.Method, w))
 		}
 	}
 	return out

@@ -92,7 +92,7 @@ type tableRow struct {
 	Unseen                            measure.Value // primary method's lesion_unseen_fraction
 	Flagged                           bool
 	Link                              string
-	Warnings                          []string // "method: text"
+	Warnings                          []string // WarningLine per warning
 }
 
 type pageData struct {
