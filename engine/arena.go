@@ -20,8 +20,21 @@ import (
 // view such as Reshape or Identity); anything else is left to the garbage
 // collector. Values a caller can still see (graph outputs, kept values,
 // those retained for Backward) are never freed by Run, so they are never
-// recycled. The trade-off is memory held between passes, bounded by
-// maxBytes; buffers past the bound are dropped.
+// recycled. The trade-off is memory held between passes. Two rules keep it
+// proportional to the network rather than to the number of passes:
+//
+//   - Only lengths some operator has asked the arena for are kept. Most
+//     recyclable operators (pooling, element-wise, normalisation) allocate
+//     their own outputs, so without this rule their buffers, returned at
+//     every pass and never taken again, piled up to the byte bound: ~385 MB
+//     of pooling outputs on a 47k-parameter network.
+//   - The bytes held never exceed the largest live activation bytes of one
+//     pass (Pass.peakBytes, reported as it grows) times the largest number
+//     of passes seen running at once: that many bytes serve every buffer
+//     the next passes can ask for before their own frees come back. A fixed
+//     ceiling, arenaMaxBytes, still applies on top.
+//
+// Buffers past the bound are dropped to the garbage collector.
 //
 // Tensors handed out by the arena are not zeroed: only operators that
 // overwrite every output element take them. A nil *arena allocates
@@ -30,9 +43,17 @@ import (
 type arena struct {
 	mu       sync.Mutex
 	free     map[int][][]float32 // by length
+	asked    map[int]bool        // lengths floats has been called for
 	bytes    int
-	maxBytes int
+	maxBytes int // fixed ceiling
 	hits     int // buffers reused (for tests and benchmarks)
+
+	// Pass accounting for the bound (see passStart, passPeak). peak is 0
+	// for an arena no Run has used (operator tests), which then has only
+	// the fixed ceiling.
+	active, maxActive int
+	peak              int64 // largest Pass.peakBytes reported
+	maxHeld           int   // high-water mark of bytes (for tests)
 }
 
 // arenaMaxBytes bounds the memory the free lists hold between passes:
@@ -41,7 +62,7 @@ type arena struct {
 const arenaMaxBytes = 384 << 20
 
 func newArena() *arena {
-	return &arena{free: map[int][][]float32{}, maxBytes: arenaMaxBytes}
+	return &arena{free: map[int][][]float32{}, asked: map[int]bool{}, maxBytes: arenaMaxBytes}
 }
 
 // floats returns a slice of n floats with arbitrary contents.
@@ -50,6 +71,7 @@ func (a *arena) floats(n int) []float32 {
 		return make([]float32, n)
 	}
 	a.mu.Lock()
+	a.asked[n] = true
 	if l := a.free[n]; len(l) > 0 {
 		b := l[len(l)-1]
 		l[len(l)-1] = nil
@@ -84,11 +106,57 @@ func (a *arena) put(b []float32) {
 	n := len(b)
 	a.mu.Lock()
 	defer a.mu.Unlock()
-	if a.bytes+4*n > a.maxBytes {
+	if !a.asked[n] || a.bytes+4*n > a.limit() {
 		return
 	}
 	a.free[n] = append(a.free[n], b)
 	a.bytes += 4 * n
+	a.maxHeld = max(a.maxHeld, a.bytes)
+}
+
+// limit is the byte bound on the free lists; the caller holds a.mu.
+func (a *arena) limit() int {
+	if a.peak == 0 {
+		return a.maxBytes
+	}
+	return int(min(int64(a.maxBytes), int64(max(a.maxActive, 1))*a.peak))
+}
+
+// passStart records that a pass began; the returned func records its end.
+func (a *arena) passStart() (end func()) {
+	if a == nil {
+		return func() {}
+	}
+	a.mu.Lock()
+	a.active++
+	a.maxActive = max(a.maxActive, a.active)
+	a.mu.Unlock()
+	return func() {
+		a.mu.Lock()
+		a.active--
+		a.mu.Unlock()
+	}
+}
+
+// passPeak records a pass's live activation bytes high-water mark so far.
+func (a *arena) passPeak(b int64) {
+	if a == nil {
+		return
+	}
+	a.mu.Lock()
+	a.peak = max(a.peak, b)
+	a.mu.Unlock()
+}
+
+// held reports the bytes on the free lists now, their high-water mark and
+// the current bound.
+func (a *arena) held() (now, most, bound int) {
+	if a == nil {
+		return 0, 0, 0
+	}
+	a.mu.Lock()
+	defer a.mu.Unlock()
+	return a.bytes, a.maxHeld, a.limit()
 }
 
 // reused reports how many buffers have been handed out again.

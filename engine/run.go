@@ -77,6 +77,8 @@ func (g *Graph) Run(ctx context.Context, inputs map[string]*tensor.Tensor, opt R
 			}
 		}
 	}
+	defer g.arena.passStart()()
+	var reported int64 // p.peakBytes last told to the arena
 	p := &Pass{
 		g:        g,
 		vals:     make([]*tensor.Tensor, len(g.names)),
@@ -133,6 +135,13 @@ func (g *Graph) Run(ctx context.Context, inputs map[string]*tensor.Tensor, opt R
 		if p.liveBytes > p.peakBytes {
 			p.peakBytes = p.liveBytes
 		}
+		// Tell the arena before this node's frees, so the first pass may
+		// already recycle; only growth of a fifth or more is reported, to
+		// keep the lock off the per-node path.
+		if p.peakBytes > reported+reported/5 {
+			reported = p.peakBytes
+			g.arena.passPeak(reported)
+		}
 		// Free what this node was the last reader of, and outputs nobody reads.
 		for _, v := range nd.in {
 			if v >= 0 && g.lastUse[v] == k && g.producer[v] >= 0 && !keep[v] && !g.isOutput[v] && p.vals[v] != nil {
@@ -155,6 +164,7 @@ func (g *Graph) Run(ctx context.Context, inputs map[string]*tensor.Tensor, opt R
 			}
 		}
 	}
+	g.arena.passPeak(p.peakBytes)
 	return p, nil
 }
 
