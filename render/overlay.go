@@ -158,7 +158,7 @@ func Overlay(s Scene) (*image.RGBA, error) {
 
 	dst := image.NewRGBA(L.canvas)
 	draw.Draw(dst, dst.Bounds(), image.NewUniform(bgColour), image.Point{}, draw.Src)
-	drawPicture(dst, L.picture, b, ht, hatchPeriod, hatchWidth, overlayTextPx)
+	drawPicture(dst, L.picture, b, ht, hatchPeriod, hatchWidth, overlayTextPx, nil)
 	drawColourBar(dst, L.bar, ht.ramp, ht.signed, ht.scale, fs.text)
 
 	dc := gg.NewContextForRGBA(dst)

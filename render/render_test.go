@@ -9,6 +9,7 @@ import (
 	"math"
 	"os"
 	"path/filepath"
+	"strings"
 	"testing"
 
 	"github.com/fogleman/gg"
@@ -354,36 +355,68 @@ func TestHotRegionBoxes(t *testing.T) {
 	}
 }
 
+// testPanelLayout plans a panel for c as Panel does, with the legend and
+// footer at their usual one-line heights.
+func testPanelLayout(t *testing.T, c Case) panelLayout {
+	t.Helper()
+	dc := gg.NewContext(10, 10)
+	head, text, value := face(true, panelHeadPx), face(false, panelTextPx), face(true, panelValuePx)
+	defer head.Close()
+	defer text.Close()
+	defer value.Close()
+	scales := make([]string, len(c.Methods))
+	for i := range scales {
+		scales[i] = "max 0.123"
+	}
+	w, h := c.Image.Bounds().Dx(), c.Image.Bounds().Dy()
+	return planPanel(dc, c.Methods, scales, panelLegendMin, 54, w, h, head, text, value)
+}
+
 func TestPanelLayout(t *testing.T) {
-	s := newSynth(120, 90)
-	for n := 1; n <= MaxPanelMethods; n++ {
-		img, err := Panel(s.panel(n))
-		if err != nil {
-			t.Fatalf("%d methods: %v", n, err)
-		}
-		if img.Bounds() != image.Rect(0, 0, 1920, 1080) {
-			t.Fatalf("%d methods: size %v", n, img.Bounds())
-		}
-		area := image.Rect(panelPad+panelLeftW+panelGap+10, panelTitleH+14, panelW-panelPad, panelH-panelFooterH-panelLegendH-8)
-		p := planTiles(n, area, 5, 10, tileHeadH+tileScaleH, 120, 90)
-		var rects []image.Rectangle
-		for i := 0; i < n; i++ {
-			r := p.tileRect(i)
-			if !r.In(area) {
-				t.Errorf("%d methods: tile %d %v outside %v", n, i, r, area)
+	for _, size := range [][2]int{{120, 90}, {224, 224}} {
+		s := newSynth(size[0], size[1])
+		for n := 1; n <= MaxPanelMethods; n++ {
+			c := s.panel(n)
+			img, err := Panel(c)
+			if err != nil {
+				t.Fatalf("%d methods: %v", n, err)
 			}
-			for j, q := range rects {
-				if r.Overlaps(q) {
-					t.Errorf("%d methods: tiles %d and %d overlap", n, i, j)
+			if img.Bounds() != image.Rect(0, 0, 1920, 1080) {
+				t.Fatalf("%d methods: size %v", n, img.Bounds())
+			}
+			L := testPanelLayout(t, c)
+			main := image.Rect(panelPad, L.mainTop, panelW-panelPad, L.legendY)
+			p := L.tiles
+			rects := []image.Rectangle{L.refs[0], L.refs[1]}
+			for i := 0; i < n; i++ {
+				rects = append(rects, L.method(i))
+			}
+			for i, r := range rects {
+				if !r.In(main) {
+					t.Errorf("%v, %d methods: rectangle %d %v outside %v", size, n, i, r, main)
+				}
+				for j, q := range rects[:i] {
+					if r.Overlaps(q) {
+						t.Errorf("%v, %d methods: rectangles %d %v and %d %v overlap", size, n, i, r, j, q)
+					}
 				}
 			}
-			rects = append(rects, r)
-		}
-		// Pictures stay projector-sized even with seven methods.
-		if p.picW < 220 || p.picH < 165 {
-			t.Errorf("%d methods: pictures only %d×%d px", n, p.picW, p.picH)
+			// Pictures stay projector-sized even with seven methods: at
+			// least 300 px on the short side (the tiles were ~200 px before
+			// the grid spanned the slide's width).
+			if min(p.picW, p.picH) < 300 {
+				t.Errorf("%v, %d methods: pictures only %d×%d px", size, n, p.picW, p.picH)
+			}
+			if n == MaxPanelMethods {
+				t.Logf("%v, 7 methods: pictures %d×%d px, %d×%d grid, compact=%v full labels=%v, reference column %d px",
+					size, p.picW, p.picH, p.rows, p.cols, p.compact, p.fullLabels, L.refW)
+				if L.first == 1 && (!L.refs[0].In(p.tileRect(0)) || !L.refs[1].In(p.tileRect(0)) || L.refs[0].Overlaps(L.refs[1])) {
+					t.Errorf("%v: original %v and mask %v do not share grid cell 0 %v", size, L.refs[0], L.refs[1], p.tileRect(0))
+				}
+			}
 		}
 	}
+	s := newSynth(120, 90)
 	for _, n := range []int{0, MaxPanelMethods + 1} {
 		if _, err := Panel(s.panel(n)); err == nil {
 			t.Errorf("%d methods: no error", n)
@@ -464,7 +497,7 @@ func TestExamples(t *testing.T) {
 		if fi, _ := os.Stat(path); fi.Size() > 300<<10 {
 			t.Errorf("%s is %d KB, keep examples under 300 KB", path, fi.Size()>>10)
 		}
-		if e.name == "panel_4_methods.png" && (cfg.Width != 1920 || cfg.Height != 1080) {
+		if strings.HasPrefix(e.name, "panel_") && (cfg.Width != 1920 || cfg.Height != 1080) {
 			t.Errorf("%s is %d×%d", path, cfg.Width, cfg.Height)
 		}
 	}
@@ -491,15 +524,15 @@ func TestPanelShowsEveryScale(t *testing.T) {
 			t.Fatal(err)
 		}
 		dc := gg.NewContext(10, 10)
-		head, text, value := face(true, panelHeadPx), face(false, panelTextPx), face(true, panelValuePx)
-		area := image.Rect(panelPad+panelLeftW+panelGap+10, panelTitleH+14, panelW-panelPad, panelH-panelFooterH-panelLegendH-8)
+		head, text := face(true, panelHeadPx), face(false, panelTextPx)
 		scales := make([]string, len(names))
 		for i := range scales {
 			scales[i] = "max 1"
 		}
-		plan := planPanelTiles(dc, c.Methods, scales, area, s.w, s.h, head, text, value)
+		L := testPanelLayout(t, c)
+		plan := L.tiles
 		for i, name := range names {
-			tile := plan.tileRect(i)
+			tile := L.method(i)
 			// The scale is right-aligned; a strip as wide as its text
 			// cannot reach a name that shares the line (20 px gap).
 			dc.SetFontFace(text)

@@ -449,41 +449,119 @@ func drawOutlines(dc *gg.Context, r image.Rectangle, b *base) {
 	}
 }
 
-// drawBoxes draws the hot regions with their numbers in a tag at the
-// top-left corner (inside the picture when the box touches its edge).
-func drawBoxes(dc *gg.Context, r image.Rectangle, ht *heat, labelPx float64) {
+// drawBoxes draws the hot regions whose indices are in show (all of them
+// when show is nil), then their number tags, and returns the tag
+// rectangles drawn. Boxes are stroked before any tag so that no outline
+// crosses a number.
+func drawBoxes(dc *gg.Context, r image.Rectangle, ht *heat, labelPx float64, show []int) []tagRect {
+	if show == nil {
+		show = make([]int, len(ht.boxes))
+		for i := range show {
+			show[i] = i
+		}
+	}
 	k := lineScale(r)
 	sx := float64(r.Dx()) / float64(ht.w)
 	sy := float64(r.Dy()) / float64(ht.h)
 	f := face(true, labelPx)
 	defer f.Close()
 	dc.SetFontFace(f)
-	for i, b := range ht.boxes {
+	boxes := make([]tagRect, len(show))
+	sizes := make([][2]float64, len(show))
+	for j, i := range show {
+		b := ht.boxes[i]
 		x0 := float64(r.Min.X) + float64(b.Min.X)*sx
 		y0 := float64(r.Min.Y) + float64(b.Min.Y)*sy
 		x1 := float64(r.Min.X) + float64(b.Max.X)*sx
 		y1 := float64(r.Min.Y) + float64(b.Max.Y)*sy
+		boxes[j] = tagRect{x0, y0, x1, y1}
 		poly := [][]gg.Point{{{X: x0, Y: y0}, {X: x1, Y: y0}, {X: x1, Y: y1}, {X: x0, Y: y1}}}
 		strokePolys(dc, poly, strokeStyle{core: boxColour, coreW: 3.5 * k, haloW: 7.5 * k})
-		label := fmt.Sprint(i + 1)
-		tw, _ := dc.MeasureString(label)
-		tagW, tagH := tw+labelPx*0.6, labelPx*1.25
-		tx := math.Max(float64(r.Min.X), math.Min(x0, float64(r.Max.X)-tagW))
-		ty := y0 - tagH
-		if ty < float64(r.Min.Y) {
-			ty = y0
+		tw, _ := dc.MeasureString(fmt.Sprint(i + 1))
+		sizes[j] = [2]float64{tw + labelPx*0.6, labelPx * 1.25}
+	}
+	bounds := tagRect{float64(r.Min.X), float64(r.Min.Y), float64(r.Max.X), float64(r.Max.Y)}
+	tags, ok := placeTags(boxes, sizes, bounds)
+	var drawn []tagRect
+	for j, i := range show {
+		if !ok[j] {
+			continue // the box stays; its number would cover another
 		}
+		t := tags[j]
 		dc.SetColor(boxColour)
-		dc.DrawRectangle(tx, ty, tagW, tagH)
+		dc.DrawRectangle(t.x0, t.y0, t.x1-t.x0, t.y1-t.y0)
 		dc.Fill()
 		dc.SetColor(outlineHalo)
-		dc.DrawStringAnchored(label, tx+tagW/2, ty+tagH/2, 0.5, 0.35)
+		dc.DrawStringAnchored(fmt.Sprint(i+1), (t.x0+t.x1)/2, (t.y0+t.y1)/2, 0.5, 0.35)
+		drawn = append(drawn, t)
 	}
+	return drawn
 }
 
-// drawPicture draws photo, heat, outlines and boxes into r; ht may be nil
-// (plain image with outlines).
-func drawPicture(dst *image.RGBA, r image.Rectangle, b *base, ht *heat, period, lw int, labelPx float64) {
+// tagRect is a rectangle in canvas coordinates, [x0, x1) × [y0, y1).
+type tagRect struct{ x0, y0, x1, y1 float64 }
+
+func (a tagRect) overlaps(b tagRect) bool {
+	return a.x0 < b.x1 && b.x0 < a.x1 && a.y0 < b.y1 && b.y0 < a.y1
+}
+
+func (a tagRect) in(b tagRect) bool {
+	return a.x0 >= b.x0 && a.y0 >= b.y0 && a.x1 <= b.x1 && a.y1 <= b.y1
+}
+
+// placeTags places one w×h tag per box, in rank order, greedily: the first
+// candidate position inside bounds that overlaps no tag placed before it.
+// Candidates are the box's corners (just above the top-left corner first,
+// the usual place for a label, then inside each corner) and then positions
+// outside the box next to it. A box whose every candidate collides gets no
+// tag (ok false): an unreadable pile of numbers is worse than an unnumbered
+// box, and the higher-ranked boxes, placed first, keep theirs.
+func placeTags(boxes []tagRect, sizes [][2]float64, bounds tagRect) (tags []tagRect, ok []bool) {
+	tags = make([]tagRect, len(boxes))
+	ok = make([]bool, len(boxes))
+	var placed []tagRect
+	for i, b := range boxes {
+		w, h := sizes[i][0], sizes[i][1]
+		cands := [][2]float64{
+			{b.x0, b.y0 - h},     // above, left-aligned
+			{b.x0, b.y0},         // inside top-left
+			{b.x1 - w, b.y0},     // inside top-right
+			{b.x0, b.y1 - h},     // inside bottom-left
+			{b.x1 - w, b.y1 - h}, // inside bottom-right
+			{b.x1 - w, b.y0 - h}, // above, right-aligned
+			{b.x0, b.y1},         // below, left-aligned
+			{b.x1 - w, b.y1},     // below, right-aligned
+			{b.x0 - w, b.y0},     // left of the top
+			{b.x1, b.y0},         // right of the top
+			{b.x0 - w, b.y1 - h}, // left of the bottom
+			{b.x1, b.y1 - h},     // right of the bottom
+		}
+		for _, c := range cands {
+			t := tagRect{c[0], c[1], c[0] + w, c[1] + h}
+			if !t.in(bounds) {
+				continue
+			}
+			free := true
+			for _, p := range placed {
+				if t.overlaps(p) {
+					free = false
+					break
+				}
+			}
+			if free {
+				tags[i], ok[i] = t, true
+				placed = append(placed, t)
+				break
+			}
+		}
+	}
+	return tags, ok
+}
+
+// drawPicture draws photo, heat, outlines and the hot regions listed in
+// show (all when show is nil) into r; ht may be nil (plain image with
+// outlines). It returns the number tags drawn.
+func drawPicture(dst *image.RGBA, r image.Rectangle, b *base, ht *heat, period, lw int, labelPx float64, show []int) []tagRect {
 	drawPhoto(dst, r, b.img)
 	if ht != nil {
 		drawHeat(dst, r, ht, period, lw)
@@ -491,8 +569,9 @@ func drawPicture(dst *image.RGBA, r image.Rectangle, b *base, ht *heat, period, 
 	dc := gg.NewContextForRGBA(dst)
 	drawOutlines(dc, r, b)
 	if ht != nil {
-		drawBoxes(dc, r, ht, labelPx)
+		return drawBoxes(dc, r, ht, labelPx, show)
 	}
+	return nil
 }
 
 // fitRect returns the largest rectangle with the image's aspect ratio
