@@ -145,11 +145,14 @@ func TestArenaConcurrentRuns(t *testing.T) {
 // TestArenaBoundedByPassPeak runs the compact ResNet-18 many times at
 // several batch sizes (as RISE and integrated gradients do: full batches, a
 // short last batch, single images) and checks, with the engine's own byte
-// accounting, that the arena never holds more than one pass's peak live
-// activation bytes (passes here run one at a time) and that recycling
-// still happens at the same rate in steady state. Before the bound, pooling
-// outputs returned at every pass but never asked for again piled up to a
-// fixed 384 MiB whatever the network's size.
+// accounting, that the arena never holds more than arenaPeakFactor times
+// one pass's peak live activation bytes (passes here run one at a time)
+// and that, once warm, passes allocate nothing but their graph outputs
+// (counted over a round: an output handed to the caller may take a buffer
+// another batch size's pass would have reused, so a single pass can miss
+// one more).
+// Before the bound, pooling outputs returned at every pass but never asked
+// for again piled up to a fixed 384 MiB whatever the network's size.
 func TestArenaBoundedByPassPeak(t *testing.T) {
 	dir := filepath.Join("..", "testdata", "nets", "resnet18")
 	b, err := os.ReadFile(filepath.Join(dir, "meta.json"))
@@ -178,9 +181,8 @@ func TestArenaBoundedByPassPeak(t *testing.T) {
 	}
 	ctx := context.Background()
 	var peak int64
-	var hits []int
 	for round := 0; round < 12; round++ {
-		before := g.arena.reused()
+		misses := g.arena.misses
 		for _, in := range inputs {
 			p, err := g.Run(ctx, map[string]*tensor.Tensor{meta.Input: in}, RunOptions{})
 			if err != nil {
@@ -188,13 +190,13 @@ func TestArenaBoundedByPassPeak(t *testing.T) {
 			}
 			peak = max(peak, p.peakBytes)
 			now, most, _ := g.arena.held()
-			if int64(most) > peak || int64(now) > peak {
+			if int64(most) > arenaPeakFactor*peak || int64(now) > arenaPeakFactor*peak {
 				t.Fatalf("round %d: arena holds %d bytes (high-water %d), one pass's peak live bytes are %d", round, now, most, peak)
 			}
 		}
-		hits = append(hits, g.arena.reused()-before)
-	}
-	if hits[len(hits)-1] == 0 || hits[len(hits)-1] < hits[2] {
-		t.Errorf("buffers reused per round: %v; want steady, nonzero reuse", hits)
+		// The graph outputs go to the caller and never come back.
+		if n, most := g.arena.misses-misses, len(inputs)*len(g.Outputs()); round > 1 && n > most {
+			t.Errorf("round %d: %d fresh buffers in %d warm passes, want at most %d (the outputs)", round, n, len(inputs), most)
+		}
 	}
 }

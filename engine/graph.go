@@ -149,6 +149,7 @@ func Compile(m *onnx.Model, opts ...Option) (*Graph, error) {
 			rejected = append(rejected, fmt.Sprintf("node %q (%s): %v", n.Name, n.OpType, err))
 			continue
 		}
+		useArena(op, g.arena)
 		built[k] = op
 	}
 	if len(unsupported) > 0 || len(rejected) > 0 {

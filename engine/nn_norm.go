@@ -16,7 +16,10 @@ func init() {
 
 // batchNormOp is BatchNormalization in inference mode:
 // Y = scale·(X−mean)/√(var+ε) + B per channel (axis 1).
-type batchNormOp struct{ eps float32 }
+type batchNormOp struct {
+	eps   float32
+	arena *arena // output buffers; nil allocates
+}
 
 func buildBatchNorm(n *onnx.Node, env *Env) (Op, error) {
 	if n.Int("training_mode", 0) != 0 {
@@ -62,7 +65,7 @@ func (op *batchNormOp) Forward(in []*tensor.Tensor) ([]*tensor.Tensor, error) {
 		return nil, err
 	}
 	x, scale, bias, mean, vr := in[0], in[1].F32, in[2].F32, in[3].F32, in[4].F32
-	y := tensor.New(x.Shape...)
+	y := op.arena.tensor(x.Shape...)
 	nc := x.Shape[0] * c
 	splitWork(nc, nc*inner, func(p0, p1 int) {
 		for p := p0; p < p1; p++ {

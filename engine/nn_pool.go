@@ -22,7 +22,8 @@ type poolOp struct {
 	includePad   bool
 	storageOrder int64
 	kernel       []int
-	hasIndices   bool // the node exposes MaxPool's Indices output
+	hasIndices   bool   // the node exposes MaxPool's Indices output
+	arena        *arena // output buffers; nil allocates
 }
 
 func buildMaxPool(n *onnx.Node, env *Env) (Op, error) {
@@ -85,7 +86,7 @@ func (op *poolOp) forward(x *tensor.Tensor, wantIdx bool) ([]*tensor.Tensor, err
 	}
 	nc := x.Shape[0] * x.Shape[1]
 	spatial := len(x.Shape) - 2
-	y := tensor.New(g.outShape(x.Shape[0], x.Shape[1], spatial)...)
+	y := op.arena.tensor(g.outShape(x.Shape[0], x.Shape[1], spatial)...)
 	ihw, ohw := g.ih*g.iw, g.oh*g.ow
 	var idx *tensor.Tensor
 	if op.max && wantIdx {
@@ -203,7 +204,10 @@ func (op *poolOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor,
 
 // globalPoolOp is GlobalAveragePool or GlobalMaxPool over all spatial axes
 // of any rank.
-type globalPoolOp struct{ max bool }
+type globalPoolOp struct {
+	max   bool
+	arena *arena // output buffers; nil allocates
+}
 
 func buildGlobalPool(isMax bool) Builder {
 	return func(n *onnx.Node, env *Env) (Op, error) { return &globalPoolOp{max: isMax}, nil }
@@ -220,10 +224,10 @@ func (op *globalPoolOp) Forward(in []*tensor.Tensor) ([]*tensor.Tensor, error) {
 	for range x.Shape[2:] {
 		shape = append(shape, 1)
 	}
-	y := tensor.New(shape...)
 	if hw == 0 {
 		return nil, fmt.Errorf("global pooling over empty spatial shape %v", x.Shape)
 	}
+	y := op.arena.tensor(shape...)
 	for p := 0; p < nc; p++ {
 		src := x.F32[p*hw : (p+1)*hw]
 		if op.max {

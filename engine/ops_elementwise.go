@@ -54,7 +54,8 @@ type unaryOp struct {
 	useIn, useOut bool
 	// vec, when set, is a whole-slice forward kernel for hot activations,
 	// avoiding an indirect call per element.
-	vec func(dst, src []float32)
+	vec   func(dst, src []float32)
+	arena *arena // float32 output buffers; nil allocates
 }
 
 func (u *unaryOp) Forward(in []*tensor.Tensor) ([]*tensor.Tensor, error) {
@@ -64,7 +65,7 @@ func (u *unaryOp) Forward(in []*tensor.Tensor) ([]*tensor.Tensor, error) {
 	x := in[0]
 	switch {
 	case x.DType == tensor.Float32:
-		y := tensor.New(x.Shape...)
+		y := u.arena.tensor(x.Shape...)
 		if u.vec != nil {
 			u.vec(y.F32, x.F32)
 			return []*tensor.Tensor{y}, nil
@@ -378,6 +379,7 @@ type binaryOp struct {
 	kind       binKind
 	legacy     bool
 	legacyAxis int64
+	arena      *arena // float32 output buffers; nil allocates
 }
 
 func buildBinary(k binKind) Builder {
@@ -458,7 +460,7 @@ func (b *binaryOp) Forward(in []*tensor.Tensor) ([]*tensor.Tensor, error) {
 }
 
 func (b *binaryOp) floatForward(p *bcastPlan, shape []int, x, y []float32) *tensor.Tensor {
-	out := tensor.New(shape...)
+	out := b.arena.tensor(shape...)
 	dst := out.F32
 	kind := b.kind
 	p.rows(func(o int, offs, steps []int, n int) {
