@@ -177,6 +177,22 @@ type panelLayout struct {
 	footerY int
 }
 
+// cellRefs places original and mask in one grid cell under a label line:
+// side by side, or stacked with a second label line when that is larger.
+func cellRefs(cell image.Rectangle, w, h int) [2]image.Rectangle {
+	body := image.Rect(cell.Min.X, cell.Min.Y+tileHeadH, cell.Max.X, cell.Max.Y)
+	half := (body.Dx() - tileColGap) / 2
+	a := fitRect(image.Rect(body.Min.X, body.Min.Y, body.Min.X+half, body.Max.Y), w, h)
+	hh := (body.Dy() - tileHeadH - tileRowGap) / 2
+	b := fitRect(image.Rect(body.Min.X, body.Min.Y, body.Max.X, body.Min.Y+hh), w, h)
+	if a.Dx() >= b.Dx() {
+		a = a.Add(image.Pt(body.Min.X-a.Min.X, body.Min.Y-a.Min.Y))
+		return [2]image.Rectangle{a, a.Add(image.Pt(half+tileColGap, 0))}
+	}
+	b = b.Add(image.Pt(body.Min.X-b.Min.X, body.Min.Y-b.Min.Y))
+	return [2]image.Rectangle{b, b.Add(image.Pt(0, hh+tileRowGap+tileHeadH))}
+}
+
 // method returns the tile of method i.
 func (L panelLayout) method(i int) image.Rectangle { return L.tiles.tileRect(L.first + i) }
 
@@ -184,7 +200,8 @@ func (L panelLayout) method(i int) image.Rectangle { return L.tiles.tileRect(L.f
 // arrangements are tried and the one with the larger method pictures wins
 // (the method maps are what the slide is for): a reference column on the
 // left, at every width from narrow to as wide as two stacked pictures
-// allow (the widest that does not shrink the method pictures), or original
+// allow (the widest that keeps the method pictures within 10 % of their
+// largest), or original
 // and mask side by side (or stacked) in the grid's first cell, which fills
 // the cell a 4+3 grid of seven methods would leave empty and gives every
 // column the full slide width.
@@ -197,12 +214,19 @@ func planPanel(dc *gg.Context, ms []MethodView, scales []string, legendH, footer
 	maxRef := int(float64(avail-tileRowGap-2*tileHeadH) / 2 / aspect)
 	maxRef = min(maxRef, 420)
 	best := -1
+	var plans []tilePlan
 	for rw := 140; rw <= maxRef; rw += 10 {
 		area := image.Rect(panelPad+rw+panelGap, L.mainTop, panelW-panelPad, mainBot)
 		p := planPanelTiles(dc, ms, scales, 0, area, w, h, head, text, value)
-		if p.picW >= best {
-			best = p.picW
-			L.refW, L.tiles = rw, p
+		plans = append(plans, p)
+		best = max(best, p.picW)
+	}
+	// The widest column that keeps the method pictures within 10 % of
+	// their largest size: with few methods the pictures are limited by
+	// the width, and a 140 px original beside 550 px maps is hard to read.
+	for i, p := range plans {
+		if 10*p.picW >= 9*best {
+			L.refW, L.tiles = 140+10*i, p
 		}
 	}
 	if best < 0 { // a very tall image: no room for a reference column of 140 px
@@ -210,23 +234,14 @@ func planPanel(dc *gg.Context, ms []MethodView, scales []string, legendH, footer
 		L.tiles = planPanelTiles(dc, ms, scales, 0, image.Rect(panelPad+L.refW+panelGap, L.mainTop, panelW-panelPad, mainBot), w, h, head, text, value)
 		best = L.tiles.picW
 	}
-	if g := planPanelTiles(dc, ms, scales, 1, image.Rect(panelPad, L.mainTop, panelW-panelPad, mainBot), w, h, head, text, value); g.picW > best {
-		L.refW, L.first, L.tiles = 0, 1, g
-		cell := g.tileRect(0)
-		body := image.Rect(cell.Min.X, cell.Min.Y+tileHeadH, cell.Max.X, cell.Max.Y)
-		// Side by side, or stacked with a second label line.
-		half := (body.Dx() - tileColGap) / 2
-		a := fitRect(image.Rect(body.Min.X, body.Min.Y, body.Min.X+half, body.Max.Y), w, h)
-		hh := (body.Dy() - tileHeadH - tileRowGap) / 2
-		b := fitRect(image.Rect(body.Min.X, body.Min.Y, body.Max.X, body.Min.Y+hh), w, h)
-		if a.Dx() >= b.Dx() {
-			L.refs[0] = a.Add(image.Pt(body.Min.X-a.Min.X, body.Min.Y-a.Min.Y))
-			L.refs[1] = L.refs[0].Add(image.Pt(half+tileColGap, 0))
-		} else {
-			L.refs[0] = b.Add(image.Pt(body.Min.X-b.Min.X, body.Min.Y-b.Min.Y))
-			L.refs[1] = L.refs[0].Add(image.Pt(0, hh+tileRowGap+tileHeadH))
+	// The grid cell wins when its method pictures are larger, or as large
+	// with larger references.
+	if g := planPanelTiles(dc, ms, scales, 1, image.Rect(panelPad, L.mainTop, panelW-panelPad, mainBot), w, h, head, text, value); g.cols > 0 {
+		refs := cellRefs(g.tileRect(0), w, h)
+		if g.picW > best || (g.picW >= L.tiles.picW && refs[0].Dx() > L.refW) {
+			L.refW, L.first, L.tiles, L.refs = 0, 1, g, refs
+			return L
 		}
-		return L
 	}
 	refH := int(float64(L.refW) * aspect)
 	// Level with the grid's first row when the column fits from there.
@@ -291,14 +306,21 @@ func Panel(c Case) (*image.RGBA, error) {
 	items := legendItems(b, anyBoxes, anyUnseen, 0.75)
 	for i := range items {
 		if items[i].kind == legendBox {
-			items[i].label = fmt.Sprintf("top %d hot regions, numbered by rank", panelMaxBoxes)
+			items[i].label = fmt.Sprintf("top %d hot regions by rank", panelMaxBoxes)
 			if anyExtra {
-				items[i].label += " (and the off-lesion box named)"
+				items[i].label += " + named off-lesion box"
 			}
 		}
 	}
 	items = append(items, legendItem{kind: legendNote, label: "opacity proportional to |attribution|; colour runs to each map's own max"})
-	legendRows, lh := layoutLegend(dc, items, 1060, 52, 26, panelLegendRow)
+	// The keys flow left of the colour bars (380 px each, right-aligned).
+	bars := 0
+	for _, on := range []bool{anySigned, anyUnsigned} {
+		if on {
+			bars++
+		}
+	}
+	legendRows, lh := layoutLegend(dc, items, float64(panelW-2*panelPad-380*bars-30), 52, 26, panelLegendRow)
 	legendH := max(panelLegendMin, int(lh)+10)
 	caution := dc.WordWrap(Caution, panelW-2*panelPad)
 	cautionLH := panelTextPx * 1.35
