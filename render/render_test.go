@@ -403,9 +403,9 @@ func TestPanelLayout(t *testing.T) {
 				}
 			}
 			// Pictures stay projector-sized even with seven methods: at
-			// least 300 px on the short side (the tiles were ~200 px before
-			// the grid spanned the slide's width).
-			if min(p.picW, p.picH) < 300 {
+			// least 320 px on the short side (they were ~200 px before the
+			// grid spanned the slide's width).
+			if min(p.picW, p.picH) < 320 {
 				t.Errorf("%v, %d methods: pictures only %d×%d px", size, n, p.picW, p.picH)
 			}
 			if n == MaxPanelMethods {
