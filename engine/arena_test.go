@@ -2,13 +2,9 @@ package engine
 
 import (
 	"context"
-	"encoding/json"
 	"math"
-	"os"
-	"path/filepath"
 	"testing"
 
-	"heedmap/onnx"
 	"heedmap/tensor"
 )
 
@@ -21,27 +17,9 @@ import (
 func TestArenaReuseKeepsResults(t *testing.T) {
 	for _, name := range []string{"resnet18", "mobilenet_v2"} {
 		t.Run(name, func(t *testing.T) {
-			dir := filepath.Join("..", "testdata", "nets", name)
-			b, err := os.ReadFile(filepath.Join(dir, "meta.json"))
-			if err != nil {
-				t.Skip(err)
-			}
-			var meta struct{ Input, Output string }
-			if err := json.Unmarshal(b, &meta); err != nil {
-				t.Fatal(err)
-			}
-			x, _, err := onnx.LoadTensor(filepath.Join(dir, "input.pb"))
-			if err != nil {
-				t.Fatal(err)
-			}
-			want, _, err := onnx.LoadTensor(filepath.Join(dir, "logits.pb"))
-			if err != nil {
-				t.Fatal(err)
-			}
-			g, err := Load(filepath.Join(dir, "model.onnx"))
-			if err != nil {
-				t.Fatal(err)
-			}
+			n := loadCompactNet(t, name)
+			meta, x, g := n.meta, n.x, n.g
+			want := n.tensor(t, "logits.pb")
 			other := x.Clone()
 			for i := range other.F32 {
 				other.F32[i] = -0.5 * other.F32[i]
@@ -90,23 +68,8 @@ func TestArenaReuseKeepsResults(t *testing.T) {
 // goroutines at once; each must equal the sequential pass bit for bit.
 // Run with -race to check the arena and the slab workers.
 func TestArenaConcurrentRuns(t *testing.T) {
-	dir := filepath.Join("..", "testdata", "nets", "resnet18")
-	b, err := os.ReadFile(filepath.Join(dir, "meta.json"))
-	if err != nil {
-		t.Skip(err)
-	}
-	var meta struct{ Input, Output string }
-	if err := json.Unmarshal(b, &meta); err != nil {
-		t.Fatal(err)
-	}
-	x, _, err := onnx.LoadTensor(filepath.Join(dir, "input.pb"))
-	if err != nil {
-		t.Fatal(err)
-	}
-	g, err := Load(filepath.Join(dir, "model.onnx"))
-	if err != nil {
-		t.Fatal(err)
-	}
+	n := loadCompactNet(t, "resnet18")
+	meta, x, g := n.meta, n.x, n.g
 	ctx := context.Background()
 	in := map[string]*tensor.Tensor{meta.Input: x}
 	p, err := g.Run(ctx, in, RunOptions{})
@@ -154,23 +117,8 @@ func TestArenaConcurrentRuns(t *testing.T) {
 // Before the bound, pooling outputs returned at every pass but never asked
 // for again piled up to a fixed 384 MiB whatever the network's size.
 func TestArenaBoundedByPassPeak(t *testing.T) {
-	dir := filepath.Join("..", "testdata", "nets", "resnet18")
-	b, err := os.ReadFile(filepath.Join(dir, "meta.json"))
-	if err != nil {
-		t.Skip(err)
-	}
-	var meta struct{ Input, Output string }
-	if err := json.Unmarshal(b, &meta); err != nil {
-		t.Fatal(err)
-	}
-	x, _, err := onnx.LoadTensor(filepath.Join(dir, "input.pb"))
-	if err != nil {
-		t.Fatal(err)
-	}
-	g, err := Load(filepath.Join(dir, "model.onnx"))
-	if err != nil {
-		t.Fatal(err)
-	}
+	n := loadCompactNet(t, "resnet18")
+	meta, x, g := n.meta, n.x, n.g
 	inputs := []*tensor.Tensor{x}
 	if g.Inputs()[0].Shape[0].Param != "" { // a symbolic batch: vary it
 		one := tensor.FromFloat32(x.F32[:len(x.F32)/x.Shape[0]], append([]int{1}, x.Shape[1:]...)...)

@@ -2,13 +2,9 @@ package engine
 
 import (
 	"context"
-	"encoding/json"
 	"math"
-	"os"
-	"path/filepath"
 	"testing"
 
-	"heedmap/onnx"
 	"heedmap/tensor"
 )
 
@@ -20,27 +16,9 @@ import (
 func TestFusionMatchesUnfused(t *testing.T) {
 	for _, name := range []string{"resnet18", "mobilenet_v2"} {
 		t.Run(name, func(t *testing.T) {
-			dir := filepath.Join("..", "testdata", "nets", name)
-			b, err := os.ReadFile(filepath.Join(dir, "meta.json"))
-			if err != nil {
-				t.Skip(err)
-			}
-			var meta struct{ Input, Output string }
-			if err := json.Unmarshal(b, &meta); err != nil {
-				t.Fatal(err)
-			}
-			x, _, err := onnx.LoadTensor(filepath.Join(dir, "input.pb"))
-			if err != nil {
-				t.Fatal(err)
-			}
-			want, _, err := onnx.LoadTensor(filepath.Join(dir, "logits.pb"))
-			if err != nil {
-				t.Fatal(err)
-			}
-			g, err := Load(filepath.Join(dir, "model.onnx"))
-			if err != nil {
-				t.Fatal(err)
-			}
+			n := loadCompactNet(t, name)
+			meta, x, g := n.meta, n.x, n.g
+			want := n.tensor(t, "logits.pb")
 			if len(g.fusion.head) == 0 {
 				t.Fatal("no Conv→activation pair found")
 			}

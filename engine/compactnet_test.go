@@ -1,0 +1,52 @@
+package engine
+
+import (
+	"encoding/json"
+	"os"
+	"path/filepath"
+	"testing"
+
+	"heedmap/onnx"
+	"heedmap/tensor"
+)
+
+// compactNet is one compact reference network committed in
+// testdata/nets/<name> (made by testdata/reference/export_nets.py), loaded
+// the way the arena and fusion tests share: its meta.json, its reference
+// input and the compiled graph.
+type compactNet struct {
+	dir  string
+	meta struct{ Input, Output string }
+	x    *tensor.Tensor
+	g    *Graph
+}
+
+// loadCompactNet loads testdata/nets/<name>; the test is skipped when the
+// network is not committed.
+func loadCompactNet(t *testing.T, name string) compactNet {
+	t.Helper()
+	n := compactNet{dir: filepath.Join("..", "testdata", "nets", name)}
+	b, err := os.ReadFile(filepath.Join(n.dir, "meta.json"))
+	if err != nil {
+		t.Skip(err)
+	}
+	if err := json.Unmarshal(b, &n.meta); err != nil {
+		t.Fatal(err)
+	}
+	n.x = n.tensor(t, "input.pb")
+	if n.g, err = Load(filepath.Join(n.dir, "model.onnx")); err != nil {
+		t.Fatal(err)
+	}
+	return n
+}
+
+// tensor loads one of the network's TensorProto files (input.pb,
+// logits.pb, ...).
+func (n compactNet) tensor(t *testing.T, file string) *tensor.Tensor {
+	t.Helper()
+	x, _, err := onnx.LoadTensor(filepath.Join(n.dir, file))
+	if err != nil {
+		t.Fatal(err)
+	}
+	return x
+}
