@@ -134,10 +134,40 @@ func (p *Im2colPlan) check(col, img []float32, op string) error {
 	if len(col) < rows*cols {
 		return fmt.Errorf("kernel: %s column buffer has %d values, want %d (%d×%d)", op, len(col), rows*cols, rows, cols)
 	}
+	return p.checkImage(img, op)
+}
+
+func (p *Im2colPlan) checkImage(img []float32, op string) error {
 	if n := p.g.C * p.g.H * p.g.W; len(img) < n {
 		return fmt.Errorf("kernel: %s image has %d values, want %d (%d×%d×%d)", op, len(img), n, p.g.C, p.g.H, p.g.W)
 	}
 	return nil
+}
+
+// srcRow is the input row that output row oh reads at kernel row kh.
+func (p *Im2colPlan) srcRow(oh, kh int) int {
+	return oh*p.g.StrideH - p.g.PadTop + kh*p.g.DilationH
+}
+
+// srcCol is the input column that output column ow reads at kernel
+// column kw.
+func (p *Im2colPlan) srcCol(ow, kw int) int {
+	return ow*p.g.StrideW - p.g.PadLeft + kw*p.g.DilationW
+}
+
+// gather fills out with the input row values in[iw0], in[iw0+StrideW], …
+// (one kernel tap over consecutive output columns); unit stride is a
+// plain copy.
+func (p *Im2colPlan) gather(out, in []float32, iw0 int) {
+	if p.g.StrideW == 1 {
+		copy(out, in[iw0:iw0+len(out)])
+		return
+	}
+	iw := iw0
+	for k := range out {
+		out[k] = in[iw]
+		iw += p.g.StrideW
+	}
 }
 
 // Im2col writes the column matrix of src (C×H×W) into dst (K×N, see
@@ -160,24 +190,13 @@ func (p *Im2colPlan) Im2col(dst, src []float32) error {
 				clear(d[:ohLo*p.ow])
 				clear(d[ohHi*p.ow:])
 				for oh := ohLo; oh < ohHi; oh++ {
-					ih := oh*g.StrideH - g.PadTop + kh*g.DilationH
 					out := d[oh*p.ow : (oh+1)*p.ow]
 					clear(out[:owLo])
 					clear(out[owHi:])
 					if owLo == owHi {
 						continue
 					}
-					iw0 := owLo*g.StrideW - g.PadLeft + kw*g.DilationW
-					in := plane[ih*g.W:]
-					if g.StrideW == 1 {
-						copy(out[owLo:owHi], in[iw0:iw0+owHi-owLo])
-						continue
-					}
-					iw := iw0
-					for ow := owLo; ow < owHi; ow++ {
-						out[ow] = in[iw]
-						iw += g.StrideW
-					}
+					p.gather(out[owLo:owHi], plane[p.srcRow(oh, kh)*g.W:], p.srcCol(owLo, kw))
 				}
 			}
 		}
@@ -205,10 +224,9 @@ func (p *Im2colPlan) Col2im(dst, src []float32) error {
 				row++
 				owLo, owHi := p.owLo[kw], p.owHi[kw]
 				for oh := p.ohLo[kh]; oh < p.ohHi[kh]; oh++ {
-					ih := oh*g.StrideH - g.PadTop + kh*g.DilationH
 					in := s[oh*p.ow : (oh+1)*p.ow]
-					out := plane[ih*g.W:]
-					iw := owLo*g.StrideW - g.PadLeft + kw*g.DilationW
+					out := plane[p.srcRow(oh, kh)*g.W:]
+					iw := p.srcCol(owLo, kw)
 					for ow := owLo; ow < owHi; ow++ {
 						out[iw] += in[ow]
 						iw += g.StrideW
@@ -245,10 +263,10 @@ func (p *Im2colPlan) Im2colCols(dst, src []float32, j0, j1 int) error {
 	if len(dst) < rows*w {
 		return fmt.Errorf("kernel: im2col column block has %d values, want %d (%d×%d)", len(dst), rows*w, rows, w)
 	}
-	g := p.g
-	if n := g.C * g.H * g.W; len(src) < n {
-		return fmt.Errorf("kernel: im2col image has %d values, want %d (%d×%d×%d)", len(src), n, g.C, g.H, g.W)
+	if err := p.checkImage(src, "im2col"); err != nil {
+		return err
 	}
+	g := p.g
 	row := 0
 	for c := 0; c < g.C; c++ {
 		plane := src[c*g.H*g.W : (c+1)*g.H*g.W]
@@ -275,19 +293,7 @@ func (p *Im2colPlan) Im2colCols(dst, src []float32, j0, j1 int) error {
 					if lo == hi {
 						continue
 					}
-					ih := oh*g.StrideH - g.PadTop + kh*g.DilationH
-					iw0 := lo*g.StrideW - g.PadLeft + kw*g.DilationW
-					out := seg[lo-ow0 : hi-ow0]
-					in := plane[ih*g.W:]
-					if g.StrideW == 1 {
-						copy(out, in[iw0:iw0+len(out)])
-						continue
-					}
-					iw := iw0
-					for k := range out {
-						out[k] = in[iw]
-						iw += g.StrideW
-					}
+					p.gather(seg[lo-ow0:hi-ow0], plane[p.srcRow(oh, kh)*g.W:], p.srcCol(lo, kw))
 				}
 			}
 		}
