@@ -164,31 +164,25 @@ func (p *shAxisPlan) rows(fn func(o, base int, last []int)) {
 func (p *shAxisPlan) gather(x *tensor.Tensor, fill float32, fillI int64) *tensor.Tensor {
 	y := shNewLike(x, p.shape)
 	if x.DType == tensor.Float32 {
-		src, dst := x.F32, y.F32
-		p.rows(func(o, base int, last []int) {
-			d := dst[o : o+len(last)]
-			for i, lo := range last {
-				if base < 0 || lo < 0 {
-					d[i] = fill
-				} else {
-					d[i] = src[base+lo]
-				}
-			}
-		})
-		return y
+		shGatherRows(p, y.F32, x.F32, fill)
+	} else {
+		shGatherRows(p, y.I64, x.I64, fillI)
 	}
-	src, dst := x.I64, y.I64
+	return y
+}
+
+// shGatherRows is gather for one element type.
+func shGatherRows[T float32 | int64](p *shAxisPlan, dst, src []T, fill T) {
 	p.rows(func(o, base int, last []int) {
 		d := dst[o : o+len(last)]
 		for i, lo := range last {
 			if base < 0 || lo < 0 {
-				d[i] = fillI
+				d[i] = fill
 			} else {
 				d[i] = src[base+lo]
 			}
 		}
 	})
-	return y
 }
 
 // scatterAdd is the adjoint of gather: g (of the plan's shape) is added
@@ -213,24 +207,23 @@ func (p *shAxisPlan) scatterAdd(g []float32, src []int) *tensor.Tensor {
 func shTake(x *tensor.Tensor, shape []int, idx []int, fill float32, fillI int64) *tensor.Tensor {
 	if x.DType == tensor.Float32 {
 		y := tensor.New(shape...)
-		for o, s := range idx {
-			if s < 0 {
-				y.F32[o] = fill
-			} else {
-				y.F32[o] = x.F32[s]
-			}
-		}
+		shTakeInto(y.F32, x.F32, idx, fill)
 		return y
 	}
 	y := &tensor.Tensor{DType: x.DType, Shape: append([]int(nil), shape...), I64: make([]int64, len(idx))}
+	shTakeInto(y.I64, x.I64, idx, fillI)
+	return y
+}
+
+// shTakeInto is shTake for one element type.
+func shTakeInto[T float32 | int64](dst, src []T, idx []int, fill T) {
 	for o, s := range idx {
 		if s < 0 {
-			y.I64[o] = fillI
+			dst[o] = fill
 		} else {
-			y.I64[o] = x.I64[s]
+			dst[o] = src[s]
 		}
 	}
-	return y
 }
 
 // shScatterAdd is the adjoint of shTake: it adds g[o] to source offset
