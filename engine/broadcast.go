@@ -201,31 +201,21 @@ func reduceToShape(g []float32, out, in []int) ([]float32, error) {
 
 // expandF32 materialises x (shape in) broadcast to shape out.
 func expandF32(x []float32, in, out []int) ([]float32, error) {
-	p, err := newBcastPlan(out, in)
-	if err != nil {
-		return nil, err
-	}
-	dst := make([]float32, tensor.Numel(out))
-	p.rows(func(o int, offs, steps []int, n int) {
-		if steps[0] == 0 {
-			v := x[offs[0]]
-			for i := range dst[o : o+n] {
-				dst[o+i] = v
-			}
-			return
-		}
-		copy(dst[o:o+n], x[offs[0]:offs[0]+n])
-	})
-	return dst, nil
+	return expandRows(x, in, out)
 }
 
 // expandI64 is expandF32 for integer and boolean data.
 func expandI64(x []int64, in, out []int) ([]int64, error) {
+	return expandRows(x, in, out)
+}
+
+// expandRows is expandF32 for either element type.
+func expandRows[T float32 | int64](x []T, in, out []int) ([]T, error) {
 	p, err := newBcastPlan(out, in)
 	if err != nil {
 		return nil, err
 	}
-	dst := make([]int64, tensor.Numel(out))
+	dst := make([]T, tensor.Numel(out))
 	p.rows(func(o int, offs, steps []int, n int) {
 		if steps[0] == 0 {
 			v := x[offs[0]]

@@ -877,28 +877,26 @@ func (w whereOp) Forward(in []*tensor.Tensor) ([]*tensor.Tensor, error) {
 	}
 	if x.DType == tensor.Float32 {
 		out := tensor.New(shape...)
-		p.rows(func(o int, offs, steps []int, n int) {
-			for i := 0; i < n; i++ {
-				if c.I64[offs[0]+i*steps[0]] != 0 {
-					out.F32[o+i] = x.F32[offs[1]+i*steps[1]]
-				} else {
-					out.F32[o+i] = y.F32[offs[2]+i*steps[2]]
-				}
-			}
-		})
+		whereRows(p, c.I64, x.F32, y.F32, out.F32)
 		return []*tensor.Tensor{out}, nil
 	}
 	out := &tensor.Tensor{DType: x.DType, Shape: shape, I64: make([]int64, tensor.Numel(shape))}
+	whereRows(p, c.I64, x.I64, y.I64, out.I64)
+	return []*tensor.Tensor{out}, nil
+}
+
+// whereRows is Where's selection for one element type; p broadcasts
+// (cond, x, y) to dst.
+func whereRows[T float32 | int64](p *bcastPlan, cond []int64, x, y, dst []T) {
 	p.rows(func(o int, offs, steps []int, n int) {
 		for i := 0; i < n; i++ {
-			if c.I64[offs[0]+i*steps[0]] != 0 {
-				out.I64[o+i] = x.I64[offs[1]+i*steps[1]]
+			if cond[offs[0]+i*steps[0]] != 0 {
+				dst[o+i] = x[offs[1]+i*steps[1]]
 			} else {
-				out.I64[o+i] = y.I64[offs[2]+i*steps[2]]
+				dst[o+i] = y[offs[2]+i*steps[2]]
 			}
 		}
 	})
-	return []*tensor.Tensor{out}, nil
 }
 
 func (w whereOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor, error) {
