@@ -4,6 +4,7 @@ import (
 	"context"
 	"errors"
 	"fmt"
+	"slices"
 
 	"heedmap/tensor"
 )
@@ -188,17 +189,8 @@ func (p *Pass) Backward(ctx context.Context, seeds map[string]*tensor.Tensor, wr
 	return res, nil
 }
 
-func shapeEq(a, b []int) bool {
-	if len(a) != len(b) {
-		return false
-	}
-	for i := range a {
-		if a[i] != b[i] {
-			return false
-		}
-	}
-	return true
-}
+// shapeEq reports whether a and b are equal shapes.
+func shapeEq(a, b []int) bool { return slices.Equal(a, b) }
 
 // safeBackward calls the op's selective backward when it has one, turning
 // a panic into an error like safeForward.

@@ -156,24 +156,11 @@ func (p *bcastPlan) rows(fn func(o int, offs, steps []int, n int)) {
 	}
 }
 
-// bcSameShape reports whether a and b are equal shapes.
-func bcSameShape(a, b []int) bool {
-	if len(a) != len(b) {
-		return false
-	}
-	for i := range a {
-		if a[i] != b[i] {
-			return false
-		}
-	}
-	return true
-}
-
 // reduceToShape sums g (of shape out) over the dimensions along which an
 // operand of shape in was broadcast, the adjoint of broadcasting. It returns
 // g itself when no reduction is needed.
 func reduceToShape(g []float32, out, in []int) ([]float32, error) {
-	if bcSameShape(out, in) {
+	if shapeEq(out, in) {
 		return g, nil
 	}
 	p, err := newBcastPlan(out, in)

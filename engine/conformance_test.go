@@ -277,7 +277,7 @@ func conformanceCompare(got, want *tensor.Tensor) error {
 	if got.DType != want.DType {
 		return fmt.Errorf("dtype %s, want %s", got.DType, want.DType)
 	}
-	if !bcSameShape(got.Shape, want.Shape) {
+	if !shapeEq(got.Shape, want.Shape) {
 		return fmt.Errorf("shape %v, want %v", got.Shape, want.Shape)
 	}
 	if want.DType == tensor.Float32 {

@@ -174,7 +174,7 @@ func gradCheck(op Op, in []*tensor.Tensor, o gradOpts) error {
 		if g == nil {
 			return fmt.Errorf("input %d: no gradient", i)
 		}
-		if !bcSameShape(g.Shape, x.Shape) || len(g.F32) != len(x.F32) {
+		if !shapeEq(g.Shape, x.Shape) || len(g.F32) != len(x.F32) {
 			return fmt.Errorf("input %d: gradient %s for input %s", i, g, x)
 		}
 		pert := cloneAll(in)
@@ -261,7 +261,7 @@ func equalAll(a, b []*tensor.Tensor) bool {
 		if a[i] == nil {
 			continue
 		}
-		if !bcSameShape(a[i].Shape, b[i].Shape) || len(a[i].F32) != len(b[i].F32) || len(a[i].I64) != len(b[i].I64) {
+		if !shapeEq(a[i].Shape, b[i].Shape) || len(a[i].F32) != len(b[i].F32) || len(a[i].I64) != len(b[i].I64) {
 			return false
 		}
 		for j := range a[i].F32 {

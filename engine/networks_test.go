@@ -8,6 +8,7 @@ import (
 	"os"
 	"os/exec"
 	"path/filepath"
+	"slices"
 	"strings"
 	"testing"
 
@@ -143,7 +144,7 @@ func checkNetwork(t *testing.T, dir string) {
 		t.Fatalf("no output %q", meta.Output)
 	}
 	want := load("logits.pb")
-	if !sameShape(logits.Shape, want.Shape) {
+	if !slices.Equal(logits.Shape, want.Shape) {
 		t.Fatalf("logits %v, PyTorch %v", logits, want)
 	}
 	act, ok := pass.Value(meta.Layer)
@@ -151,7 +152,7 @@ func checkNetwork(t *testing.T, dir string) {
 		t.Fatalf("layer %q not kept", meta.Layer)
 	}
 	wantAct := load("layer.pb")
-	if !sameShape(act.Shape, wantAct.Shape) {
+	if !slices.Equal(act.Shape, wantAct.Shape) {
 		t.Fatalf("layer %q: %v, PyTorch %v", meta.Layer, act, wantAct)
 	}
 	if meta.Float64 {
@@ -180,7 +181,7 @@ func checkNetwork(t *testing.T, dir string) {
 	for _, c := range []struct{ name, file string }{{meta.Input, "grad_input.pb"}, {meta.Layer, "grad_layer.pb"}} {
 		got := grads[c.name]
 		want := load(c.file)
-		if got == nil || !sameShape(got.Shape, want.Shape) {
+		if got == nil || !slices.Equal(got.Shape, want.Shape) {
 			t.Errorf("gradient w.r.t. %q: %v, PyTorch %v", c.name, got, want)
 			continue
 		}
@@ -250,18 +251,6 @@ func checkGradF64(t *testing.T, name string, got, unfolded, torch32, truth []flo
 func fileExists(p string) bool {
 	_, err := os.Stat(p)
 	return err == nil
-}
-
-func sameShape(a, b []int) bool {
-	if len(a) != len(b) {
-		return false
-	}
-	for i := range a {
-		if a[i] != b[i] {
-			return false
-		}
-	}
-	return true
 }
 
 // maxRel is max|a−b| / max|b|.

@@ -716,7 +716,7 @@ func (p *preluOp) slopeShape(x, s *tensor.Tensor) ([]int, error) {
 		shape[0] = s.Shape[0]
 	}
 	b, err := broadcastShapes(x.Shape, shape)
-	if err != nil || !bcSameShape(b, x.Shape) {
+	if err != nil || !shapeEq(b, x.Shape) {
 		return nil, fmt.Errorf("PRelu: slope %s does not broadcast to input %s", s, x)
 	}
 	return shape, nil

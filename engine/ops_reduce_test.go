@@ -41,14 +41,14 @@ func TestReduceGradients(t *testing.T) {
 		// noop_with_empty_axes: identity.
 		op := mustOp(t, opType, 18, 1, attrInt("noop_with_empty_axes", 1))
 		checkGrad(t, op, []*tensor.Tensor{x, i64s([]int{0})}, gradOpts{})
-		if y := forward1(t, op, x, i64s([]int{0})); !bcSameShape(y.Shape, x.Shape) || y.F32[5] != x.F32[5] {
+		if y := forward1(t, op, x, i64s([]int{0})); !shapeEq(y.Shape, x.Shape) || y.F32[5] != x.F32[5] {
 			t.Errorf("%s noop = %v", opType, y.Shape)
 		}
 	}
 	// Worked example: mean over axis 1 of [[1,2],[3,5]] is [1.5, 4].
 	m := tensor.FromFloat32([]float32{1, 2, 3, 5}, 2, 2)
 	y := forward1(t, mustOp(t, "ReduceMean", 13, 1, attrInts("axes", 1), attrInt("keepdims", 0)), m)
-	if !bcSameShape(y.Shape, []int{2}) || y.F32[0] != 1.5 || y.F32[1] != 4 {
+	if !shapeEq(y.Shape, []int{2}) || y.F32[0] != 1.5 || y.F32[1] != 4 {
 		t.Errorf("ReduceMean = %v %v", y.Shape, y.F32)
 	}
 	// Integer sums for shape arithmetic.

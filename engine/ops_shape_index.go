@@ -319,7 +319,7 @@ func (s *scatterOp) targets(in []*tensor.Tensor) ([]int, error) {
 	if err != nil {
 		return nil, fmt.Errorf("%s: %v", s.name, err)
 	}
-	if !bcSameShape(ind.Shape, upd.Shape) || len(ind.Shape) != len(x.Shape) {
+	if !shapeEq(ind.Shape, upd.Shape) || len(ind.Shape) != len(x.Shape) {
 		return nil, fmt.Errorf("%s: indices %s, updates %s and data %s disagree", s.name, ind, upd, x)
 	}
 	is := shStrides(ind.Shape)

@@ -48,7 +48,7 @@ func TestResizeGradients(t *testing.T) {
 	y := forward1(t, op, x, nil, nil, sizes(6, 6))
 	// not_larger: scale = min(6/3, 6/4) = 1.5, so 3×4 becomes round(4.5)×6 = 5×6
 	// (ONNX Resize-18 definition: round half up).
-	if !bcSameShape(y.Shape, []int{1, 2, 5, 6}) {
+	if !shapeEq(y.Shape, []int{1, 2, 5, 6}) {
 		t.Errorf("keep_aspect_ratio_policy not_larger: shape %v, want [1 2 5 6]", y.Shape)
 	}
 	checkGrad(t, op, []*tensor.Tensor{x, nil, nil, sizes(6, 6)}, gradOpts{Wrt: []int{0}})
@@ -59,7 +59,7 @@ func TestResizeGradients(t *testing.T) {
 	up7 := mustOp(t, "Upsample", 7, 1, &onnx.Attr{Name: "scales", Type: onnx.AttrFloats, Floats: []float32{1, 1, 2, 2}})
 	y = forward1(t, up7, x)
 	// Nearest ×2 repeats each pixel into a 2×2 block.
-	if !bcSameShape(y.Shape, []int{1, 2, 6, 8}) || y.F32[8+1] != x.F32[0] || y.F32[2*8+2] != x.F32[4+1] {
+	if !shapeEq(y.Shape, []int{1, 2, 6, 8}) || y.F32[8+1] != x.F32[0] || y.F32[2*8+2] != x.F32[4+1] {
 		t.Errorf("Upsample-7 nearest: shape %v", y.Shape)
 	}
 

@@ -79,7 +79,7 @@ func TestSliceGradients(t *testing.T) {
 	m := tensor.FromFloat32([]float32{0, 1, 2, 3, 4, 5, 6, 7, 8, 9}, 2, 5)
 	y := forward1(t, op, m, i64s([]int{1}, -1), i64s([]int{1}, -1<<62), i64s([]int{1}, 1), i64s([]int{1}, -2))
 	want := []float32{4, 2, 0, 9, 7, 5}
-	if !bcSameShape(y.Shape, []int{2, 3}) {
+	if !shapeEq(y.Shape, []int{2, 3}) {
 		t.Fatalf("shape %v", y.Shape)
 	}
 	for i := range want {
@@ -109,7 +109,7 @@ func TestGatherGradients(t *testing.T) {
 	}
 	op := mustOp(t, "Gather", 13, 1, attrInt("axis", 1))
 	y := forward1(t, op, x, i64s(nil, -1)) // scalar index drops the axis
-	if !bcSameShape(y.Shape, []int{3, 3}) || y.F32[0] != x.F32[9] {
+	if !shapeEq(y.Shape, []int{3, 3}) || y.F32[0] != x.F32[9] {
 		t.Errorf("scalar Gather = %v %v", y.Shape, y.F32)
 	}
 	if _, err := op.Forward([]*tensor.Tensor{x, i64s([]int{1}, 4)}); err == nil {
@@ -124,14 +124,14 @@ func TestTransposeSqueezeExpandGradients(t *testing.T) {
 	checkGrad(t, mustOp(t, "Transpose", 13, 1), []*tensor.Tensor{x}, gradOpts{})
 	y := forward1(t, mustOp(t, "Transpose", 13, 1, attrInts("perm", 1, 2, 0)), x)
 	// y[j][k][i] = x[i][j][k]
-	if !bcSameShape(y.Shape, []int{3, 4, 2}) || y.F32[(1*4+2)*2+1] != x.F32[(1*3+1)*4+2] {
+	if !shapeEq(y.Shape, []int{3, 4, 2}) || y.F32[(1*4+2)*2+1] != x.F32[(1*3+1)*4+2] {
 		t.Errorf("Transpose element mismatch")
 	}
 
 	s := randTensor(rng, -1, 1, 1, 3, 1, 2)
 	checkGrad(t, mustOp(t, "Squeeze", 11, 1, attrInts("axes", 0, -2)), []*tensor.Tensor{s}, gradOpts{})
 	checkGrad(t, mustOp(t, "Squeeze", 13, 1), []*tensor.Tensor{s, i64s([]int{1}, 2)}, gradOpts{})
-	if y := forward1(t, mustOp(t, "Squeeze", 13, 1), s); !bcSameShape(y.Shape, []int{3, 2}) {
+	if y := forward1(t, mustOp(t, "Squeeze", 13, 1), s); !shapeEq(y.Shape, []int{3, 2}) {
 		t.Errorf("Squeeze all = %v", y.Shape)
 	}
 	if _, err := mustOp(t, "Squeeze", 13, 1).Forward([]*tensor.Tensor{s, i64s([]int{1}, 1)}); err == nil {
@@ -140,13 +140,13 @@ func TestTransposeSqueezeExpandGradients(t *testing.T) {
 	checkGrad(t, mustOp(t, "Unsqueeze", 11, 1, attrInts("axes", 0, 4)), []*tensor.Tensor{x}, gradOpts{})
 	u := mustOp(t, "Unsqueeze", 13, 1)
 	checkGrad(t, u, []*tensor.Tensor{x, i64s([]int{2}, -1, 1)}, gradOpts{})
-	if y := forward1(t, u, x, i64s([]int{2}, -1, 1)); !bcSameShape(y.Shape, []int{2, 1, 3, 4, 1}) {
+	if y := forward1(t, u, x, i64s([]int{2}, -1, 1)); !shapeEq(y.Shape, []int{2, 1, 3, 4, 1}) {
 		t.Errorf("Unsqueeze [-1,1] = %v", y.Shape)
 	}
 
 	e := mustOp(t, "Expand", 13, 1)
 	checkGrad(t, e, []*tensor.Tensor{randTensor(rng, -1, 1, 3, 1), i64s([]int{3}, 2, 1, 4)}, gradOpts{})
-	if y := forward1(t, e, randTensor(rng, -1, 1, 3, 1), i64s([]int{1}, 1)); !bcSameShape(y.Shape, []int{3, 1}) {
+	if y := forward1(t, e, randTensor(rng, -1, 1, 3, 1), i64s([]int{1}, 1)); !shapeEq(y.Shape, []int{3, 1}) {
 		t.Errorf("Expand to smaller shape = %v (bidirectional broadcast keeps [3 1])", y.Shape)
 	}
 }
@@ -175,7 +175,7 @@ func TestPadGradients(t *testing.T) {
 	checkGrad(t, mustOp(t, "Pad", 2, 1, attrInts("pads", 1, 0, 0, 0, 2, 1), attrString("mode", "edge")), []*tensor.Tensor{x}, gradOpts{})
 	op18 := mustOp(t, "Pad", 18, 1)
 	y = forward1(t, op18, x, i64s([]int{2}, 1, 2), nil, i64s([]int{1}, -1))
-	if !bcSameShape(y.Shape, []int{2, 3, 7}) {
+	if !shapeEq(y.Shape, []int{2, 3, 7}) {
 		t.Errorf("Pad with axes = %v", y.Shape)
 	}
 	checkGrad(t, op18, []*tensor.Tensor{x, i64s([]int{2}, 1, 2), nil, i64s([]int{1}, -1)}, gradOpts{})

@@ -5,6 +5,7 @@ import (
 	"math"
 	"os"
 	"path/filepath"
+	"slices"
 	"testing"
 
 	"heedmap/onnx"
@@ -84,7 +85,7 @@ func TestValuesMatchNumpyHelper(t *testing.T) {
 
 func checkAgainstRef(t *testing.T, label string, got *tensor.Tensor, r refEntry) {
 	t.Helper()
-	if !equalInts(got.Shape, r.Shape) {
+	if !slices.Equal(got.Shape, r.Shape) {
 		t.Errorf("%s: shape %v, numpy_helper %v", label, got.Shape, r.Shape)
 		return
 	}
@@ -123,16 +124,4 @@ func checkAgainstRef(t *testing.T, label string, got *tensor.Tensor, r refEntry)
 	if math.Abs(sum-r.Sum) > 1e-9*abs+tol*abs {
 		t.Errorf("%s: sum %v, numpy_helper %v", label, sum, r.Sum)
 	}
-}
-
-func equalInts(a, b []int) bool {
-	if len(a) != len(b) {
-		return false
-	}
-	for i := range a {
-		if a[i] != b[i] {
-			return false
-		}
-	}
-	return true
 }
