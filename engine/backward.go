@@ -205,3 +205,16 @@ func safeBackward(op Op, d Differentiable, in, out, gradOut []*tensor.Tensor, ne
 	}
 	return d.Backward(in, out, gradOut)
 }
+
+// floatBackward starts the Backward of an op whose first input carries
+// the gradient: it returns the (still empty) input gradients and the
+// output gradient, or a nil output gradient when there is nothing to
+// propagate (no gradient arrived, or the input is not float32).
+func floatBackward(in, gradOut []*tensor.Tensor) ([]*tensor.Tensor, *tensor.Tensor) {
+	grads := make([]*tensor.Tensor, len(in))
+	g := gradOut[0]
+	if g == nil || in[0].DType != tensor.Float32 {
+		return grads, nil
+	}
+	return grads, g
+}

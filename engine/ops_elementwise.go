@@ -324,9 +324,8 @@ func (c *clipOp) Forward(in []*tensor.Tensor) ([]*tensor.Tensor, error) {
 // not differentiable and, as in most frameworks' subgradient choice for
 // saturating units, nothing flows.
 func (c *clipOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor, error) {
-	grads := make([]*tensor.Tensor, len(in))
-	g := gradOut[0]
-	if g == nil || in[0].DType != tensor.Float32 {
+	grads, g := floatBackward(in, gradOut)
+	if g == nil {
 		return grads, nil
 	}
 	lo, hi, err := c.bounds(in)

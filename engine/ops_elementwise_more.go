@@ -265,9 +265,8 @@ func (v *variadicOp) Forward(in []*tensor.Tensor) ([]*tensor.Tensor, error) {
 // Backward: Sum and Mean spread the gradient to every input; Max and Min
 // route it to the first input attaining the extreme (a subgradient).
 func (v *variadicOp) Backward(in, outs, gradOut []*tensor.Tensor) ([]*tensor.Tensor, error) {
-	grads := make([]*tensor.Tensor, len(in))
-	g := gradOut[0]
-	if g == nil || in[0].DType != tensor.Float32 {
+	grads, g := floatBackward(in, gradOut)
+	if g == nil {
 		return grads, nil
 	}
 	out, shapes, err := v.shapes(in)

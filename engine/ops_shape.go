@@ -616,9 +616,8 @@ func (s *sliceOp) Forward(in []*tensor.Tensor) ([]*tensor.Tensor, error) {
 }
 
 func (s *sliceOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor, error) {
-	grads := make([]*tensor.Tensor, len(in))
-	g := gradOut[0]
-	if g == nil || in[0].DType != tensor.Float32 {
+	grads, g := floatBackward(in, gradOut)
+	if g == nil {
 		return grads, nil
 	}
 	_, lists, err := s.plan(in)
@@ -1047,9 +1046,8 @@ func (p *padOp) Forward(in []*tensor.Tensor) ([]*tensor.Tensor, error) {
 // Backward scatters the gradient back: for edge and reflect several output
 // positions read one input element, and their gradients add.
 func (p *padOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor, error) {
-	grads := make([]*tensor.Tensor, len(in))
-	g := gradOut[0]
-	if g == nil || in[0].DType != tensor.Float32 {
+	grads, g := floatBackward(in, gradOut)
+	if g == nil {
 		return grads, nil
 	}
 	_, lists, _, _, err := p.plan(in)

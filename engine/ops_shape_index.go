@@ -125,9 +125,8 @@ func (op *topKOp) Forward(in []*tensor.Tensor) ([]*tensor.Tensor, error) {
 }
 
 func (op *topKOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor, error) {
-	grads := make([]*tensor.Tensor, len(in))
-	g := gradOut[0]
-	if g == nil || in[0].DType != tensor.Float32 {
+	grads, g := floatBackward(in, gradOut)
+	if g == nil {
 		return grads, nil
 	}
 	_, idx, err := op.plan(in)
@@ -399,9 +398,8 @@ func (s *scatterOp) Forward(in []*tensor.Tensor) ([]*tensor.Tensor, error) {
 // gradient at its target (with duplicate targets only the last write
 // survives, so only it gets the gradient).
 func (s *scatterOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor, error) {
-	grads := make([]*tensor.Tensor, len(in))
-	g := gradOut[0]
-	if g == nil || in[0].DType != tensor.Float32 {
+	grads, g := floatBackward(in, gradOut)
+	if g == nil {
 		return grads, nil
 	}
 	if s.reduction != "none" && s.reduction != "add" {

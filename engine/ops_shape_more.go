@@ -43,9 +43,8 @@ func (o *takeOp) Forward(in []*tensor.Tensor) ([]*tensor.Tensor, error) {
 }
 
 func (o *takeOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor, error) {
-	grads := make([]*tensor.Tensor, len(in))
-	g := gradOut[0]
-	if g == nil || in[0].DType != tensor.Float32 {
+	grads, g := floatBackward(in, gradOut)
+	if g == nil {
 		return grads, nil
 	}
 	_, idx, err := o.plan(in)
@@ -323,9 +322,8 @@ func (c *cumSumOp) Forward(in []*tensor.Tensor) ([]*tensor.Tensor, error) {
 // Backward: the adjoint of a cumulative sum is the cumulative sum in the
 // opposite direction (same exclusivity).
 func (c *cumSumOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor, error) {
-	grads := make([]*tensor.Tensor, len(in))
-	g := gradOut[0]
-	if g == nil || in[0].DType != tensor.Float32 {
+	grads, g := floatBackward(in, gradOut)
+	if g == nil {
 		return grads, nil
 	}
 	outer, dim, inner, err := c.geometry(in)
