@@ -4,8 +4,6 @@ import (
 	"math"
 	"math/rand/v2"
 	"testing"
-
-	"heedmap/kernel"
 )
 
 // TestDepthwiseBackwardIsAdjoint checks DepthwiseBackward against the
@@ -15,24 +13,8 @@ import (
 // ONNX Conv definition by TestDepthwiseMatchesDirectConv.
 func TestDepthwiseBackwardIsAdjoint(t *testing.T) {
 	r := rand.New(rand.NewPCG(21, 22))
-	for i, tc := range []struct {
-		c, h, w, mult int
-		g             kernel.Conv2D
-	}{
-		{4, 9, 9, 1, kernel.Conv2D{KH: 3, KW: 3, PadTop: 1, PadLeft: 1, PadBottom: 1, PadRight: 1}},
-		{3, 12, 11, 3, kernel.Conv2D{KH: 3, KW: 3, StrideH: 2, StrideW: 2, PadTop: 1, PadLeft: 1, PadBottom: 1, PadRight: 1}},
-		{2, 10, 13, 2, kernel.Conv2D{KH: 5, KW: 3, StrideW: 3, DilationH: 2, PadTop: 3, PadLeft: 0, PadBottom: 1, PadRight: 2}},
-		{1, 3, 3, 1, kernel.Conv2D{KH: 5, KW: 5, PadTop: 2, PadLeft: 2, PadBottom: 2, PadRight: 2}},
-	} {
-		g := tc.g
-		g.C, g.H, g.W = tc.c, tc.h, tc.w
-		p, err := kernel.NewIm2col(g)
-		if err != nil {
-			t.Fatal(err)
-		}
-		g = p.Geometry()
-		oh, ow := p.Out()
-		m := tc.c * tc.mult
+	for i, tc := range dwBaseCases {
+		p, g, oh, ow, m := tc.plan(t)
 		x := randSlice(r, tc.c*tc.h*tc.w)
 		w := randSlice(r, m*g.KH*g.KW)
 		dy := randSlice(r, m*oh*ow)

@@ -358,30 +358,15 @@ func runONNXConv(t *testing.T, dir string) {
 // definition at group = C, with channel multipliers 1 and 3.
 func TestDepthwiseMatchesDirectConv(t *testing.T) {
 	r := rand.New(rand.NewPCG(11, 12))
-	for i, tc := range []struct {
-		c, h, w, mult int
-		g             kernel.Conv2D
-	}{
-		{4, 9, 9, 1, kernel.Conv2D{KH: 3, KW: 3, PadTop: 1, PadLeft: 1, PadBottom: 1, PadRight: 1}},
-		{3, 12, 11, 3, kernel.Conv2D{KH: 3, KW: 3, StrideH: 2, StrideW: 2, PadTop: 1, PadLeft: 1, PadBottom: 1, PadRight: 1}},
-		{2, 10, 13, 2, kernel.Conv2D{KH: 5, KW: 3, StrideW: 3, DilationH: 2, PadTop: 3, PadLeft: 0, PadBottom: 1, PadRight: 2}},
-		{1, 3, 3, 1, kernel.Conv2D{KH: 5, KW: 5, PadTop: 2, PadLeft: 2, PadBottom: 2, PadRight: 2}},
+	for i, tc := range append(dwBaseCases[:len(dwBaseCases):len(dwBaseCases)], []dwCase{
 		// Three-tap rows (the fused row loop): dilated, strided, and
 		// narrower than the filter span.
 		{2, 9, 14, 1, kernel.Conv2D{KH: 3, KW: 3, StrideW: 2, DilationW: 2, PadTop: 1, PadLeft: 2, PadBottom: 1, PadRight: 2}},
 		{2, 4, 2, 2, kernel.Conv2D{KH: 3, KW: 3, PadTop: 1, PadLeft: 1, PadBottom: 1, PadRight: 1}},
 		{3, 7, 8, 1, kernel.Conv2D{KH: 1, KW: 3, PadLeft: 1, PadRight: 1}},
 		{2, 5, 57, 1, kernel.Conv2D{KH: 3, KW: 3, PadTop: 1, PadLeft: 1, PadBottom: 1, PadRight: 1}},
-	} {
-		g := tc.g
-		g.C, g.H, g.W = tc.c, tc.h, tc.w
-		p, err := kernel.NewIm2col(g)
-		if err != nil {
-			t.Fatal(err)
-		}
-		g = p.Geometry()
-		oh, ow := p.Out()
-		m := tc.c * tc.mult
+	}...) {
+		p, g, oh, ow, m := tc.plan(t)
 		x := randSlice(r, tc.c*tc.h*tc.w)
 		w := randSlice(r, m*g.KH*g.KW)
 		got := make([]float32, m*oh*ow)
