@@ -399,46 +399,39 @@ func roundUp(x, m int) int { return (x + m - 1) / m * m }
 // packB copies op(B)[pc:pc+kb, jc:jc+nb] into kb×nr micro-panels, column
 // index fastest, zero-padding the last panel to nr columns.
 func packB(dst []float32, transB bool, b []float32, ldb, pc, jc, kb, nb, nr int) {
-	for jr := 0; jr < nb; jr += nr {
-		nrr := min(nr, nb-jr)
-		panel := dst[jr*kb : jr*kb+kb*nr]
-		if !transB {
-			for p := 0; p < kb; p++ {
-				src := b[(pc+p)*ldb+jc+jr:]
-				d := panel[p*nr : p*nr+nr]
-				copy(d, src[:nrr])
-				clear(d[nrr:])
-			}
-			continue
-		}
-		// op(B)(p, j) = B[j, p]: read each stored row contiguously.
-		if nrr < nr {
-			clear(panel)
-		}
-		transposeStrip(panel, nr, b, ldb, (jc+jr)*ldb+pc, nrr, kb)
-	}
+	packPanels(dst, !transB, b, ldb, pc, jc, nb, kb, nr)
 }
 
 // packA copies op(A)[ic:ic+mb, pc:pc+kb] into mr×kb micro-panels, row index
-// fastest, zero-padding the last panel to mr rows.
+// fastest, zero-padding the last panel to mr rows. It is packB of op(A)ᵀ:
+// the same panels, with the stored layout's transposition flipped.
 func packA(dst []float32, transA bool, a []float32, lda, ic, pc, mb, kb, mr int) {
-	for ir := 0; ir < mb; ir += mr {
-		mrr := min(mr, mb-ir)
-		panel := dst[ir*kb : ir*kb+kb*mr]
-		if transA {
-			// op(A)(i, p) = A[p, i]: stored rows are contiguous in i.
+	packPanels(dst, transA, a, lda, pc, ic, mb, kb, mr)
+}
+
+// packPanels copies the kb×nb block of panel entries (p, j), p in
+// [0, kb), j in [0, nb), into kb×w micro-panels, j fastest, zero-padding
+// the last panel to w. With contiguous, entry (p, j) is stored at
+// src[(pc+p)·ld + j0+j] (stored rows run along j and are copied);
+// otherwise at src[(j0+j)·ld + pc+p] (each stored row is read
+// contiguously and transposed).
+func packPanels(dst []float32, contiguous bool, src []float32, ld, pc, j0, nb, kb, w int) {
+	for jr := 0; jr < nb; jr += w {
+		wr := min(w, nb-jr)
+		panel := dst[jr*kb : jr*kb+kb*w]
+		if contiguous {
 			for p := 0; p < kb; p++ {
-				src := a[(pc+p)*lda+ic+ir:]
-				d := panel[p*mr : p*mr+mr]
-				copy(d, src[:mrr])
-				clear(d[mrr:])
+				row := src[(pc+p)*ld+j0+jr:]
+				d := panel[p*w : p*w+w]
+				copy(d, row[:wr])
+				clear(d[wr:])
 			}
 			continue
 		}
-		if mrr < mr {
+		if wr < w {
 			clear(panel)
 		}
-		transposeStrip(panel, mr, a, lda, (ic+ir)*lda+pc, mrr, kb)
+		transposeStrip(panel, w, src, ld, (j0+jr)*ld+pc, wr, kb)
 	}
 }
 
