@@ -7,7 +7,6 @@ package engine
 
 import (
 	"fmt"
-	"math"
 	"sort"
 
 	"heedmap/onnx"
@@ -358,39 +357,32 @@ func (s *scatterOp) Forward(in []*tensor.Tensor) ([]*tensor.Tensor, error) {
 	}
 	y := x.Clone()
 	if x.DType == tensor.Float32 {
-		for i, p := range t {
-			u := upd.F32[i]
-			switch s.reduction {
-			case "add":
-				y.F32[p] += u
-			case "mul":
-				y.F32[p] *= u
-			case "max":
-				y.F32[p] = float32(math.Max(float64(y.F32[p]), float64(u)))
-			case "min":
-				y.F32[p] = float32(math.Min(float64(y.F32[p]), float64(u)))
-			default:
-				y.F32[p] = u
-			}
-		}
-		return []*tensor.Tensor{y}, nil
-	}
-	for i, p := range t {
-		u := upd.I64[i]
-		switch s.reduction {
-		case "add":
-			y.I64[p] += u
-		case "mul":
-			y.I64[p] *= u
-		case "max":
-			y.I64[p] = max(y.I64[p], u)
-		case "min":
-			y.I64[p] = min(y.I64[p], u)
-		default:
-			y.I64[p] = u
-		}
+		scatterReduce(y.F32, upd.F32, t, s.reduction)
+	} else {
+		scatterReduce(y.I64, upd.I64, t, s.reduction)
 	}
 	return []*tensor.Tensor{y}, nil
+}
+
+// scatterReduce combines update i into y[t[i]] by the reduction ("none"
+// overwrites). The built-in max and min return NaN when either operand is
+// NaN and order −0 below +0, as math.Max and math.Min do.
+func scatterReduce[T float32 | int64](y, upd []T, t []int, reduction string) {
+	for i, p := range t {
+		u := upd[i]
+		switch reduction {
+		case "add":
+			y[p] += u
+		case "mul":
+			y[p] *= u
+		case "max":
+			y[p] = max(y[p], u)
+		case "min":
+			y[p] = min(y[p], u)
+		default:
+			y[p] = u
+		}
+	}
 }
 
 // Backward for reduction none and add. With none, a data position that an
