@@ -37,6 +37,23 @@ func init() {
 // ---------------------------------------------------------------------------
 // Helpers.
 
+// shDims reads a shape input (as shInts) whose entries must all be
+// non-negative dimensions.
+func shDims(t *tensor.Tensor, what string) ([]int, error) {
+	raw, err := shInts(t, what)
+	if err != nil {
+		return nil, err
+	}
+	dims := make([]int, len(raw))
+	for i, v := range raw {
+		if v < 0 {
+			return nil, fmt.Errorf("%s: negative dimension in %v", what, raw)
+		}
+		dims[i] = int(v)
+	}
+	return dims, nil
+}
+
 // shInts returns the values of an integer tensor (shape inputs, axes,
 // indices). A float tensor is an error: ONNX requires int32/int64 there.
 func shInts(t *tensor.Tensor, what string) ([]int64, error) {
@@ -1091,16 +1108,9 @@ func (expandOp) Forward(in []*tensor.Tensor) ([]*tensor.Tensor, error) {
 		return nil, err
 	}
 	x := in[0]
-	raw, err := shInts(in[1], "Expand: shape")
+	want, err := shDims(in[1], "Expand: shape")
 	if err != nil {
 		return nil, err
-	}
-	want := make([]int, len(raw))
-	for i, v := range raw {
-		if v < 0 {
-			return nil, fmt.Errorf("Expand: negative dimension in shape %v", raw)
-		}
-		want[i] = int(v)
 	}
 	shape, err := broadcastShapes(x.Shape, want)
 	if err != nil {
@@ -1189,16 +1199,9 @@ func (c *constantOfShapeOp) Forward(in []*tensor.Tensor) ([]*tensor.Tensor, erro
 	if err := shNeed(in, 1, "ConstantOfShape"); err != nil {
 		return nil, err
 	}
-	raw, err := shInts(in[0], "ConstantOfShape: shape")
+	shape, err := shDims(in[0], "ConstantOfShape: shape")
 	if err != nil {
 		return nil, err
-	}
-	shape := make([]int, len(raw))
-	for i, v := range raw {
-		if v < 0 {
-			return nil, fmt.Errorf("ConstantOfShape: negative dimension in %v", raw)
-		}
-		shape[i] = int(v)
 	}
 	y := shNewLike(c.value, shape)
 	if y.DType == tensor.Float32 {
