@@ -203,7 +203,9 @@ func recyclable(op Op) bool {
 // outgrows the most buffers of that length live at once (no per-pass
 // allocation in steady state). Each of these operators writes every
 // output element, as arena buffers require. Convolution takes its arena
-// from Env when built.
+// from Env when built. Their Backward draws input gradients from the
+// arena too (zeroed where it accumulates or writes only some elements),
+// and Pass.Backward returns those that die inside the sweep.
 func useArena(op Op, a *arena) {
 	switch o := op.(type) {
 	case *poolOp:
@@ -216,6 +218,8 @@ func useArena(op Op, a *arena) {
 		o.arena = a
 	case *batchNormOp:
 		o.arena = a
+	case *clipOp:
+		o.arena = a // Backward only
 	}
 }
 
@@ -246,4 +250,37 @@ func (g *Graph) recycle(p *Pass, v int) {
 		}
 	}
 	g.arena.put(t.F32)
+}
+
+// zeroed returns a float32 tensor of the given shape with every element
+// zero, for operators that accumulate into or write only part of their
+// output.
+func (a *arena) zeroed(shape ...int) *tensor.Tensor {
+	t := a.tensor(shape...)
+	if a != nil {
+		clear(t.F32)
+	}
+	return t
+}
+
+// ownCopy is ownCopy drawing the copy from the operator's arena.
+func (b *binaryOp) ownCopy(s, shared []float32) []float32 {
+	if len(s) > 0 && len(shared) > 0 && &s[0] == &shared[0] {
+		c := b.arena.floats(len(s))
+		copy(c, s)
+		return c
+	}
+	return s
+}
+
+// freshGrads reports whether op's Backward returns freshly allocated
+// gradients (from its arena or make) that alias neither its gradient
+// arguments, its inputs and outputs, nor any state of its own, so Backward
+// may recycle one once the next node upstream has consumed it.
+func freshGrads(op Op) bool {
+	switch op.(type) {
+	case *convOp, *poolOp, *globalPoolOp, *unaryOp, *clipOp, *binaryOp, *batchNormOp:
+		return true
+	}
+	return false
 }

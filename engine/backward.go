@@ -62,7 +62,26 @@ func (p *Pass) Backward(ctx context.Context, seeds map[string]*tensor.Tensor, wr
 	}
 
 	grads := make([]*tensor.Tensor, len(g.names))
-	owned := make([]bool, len(g.names)) // grads[v] is ours to add into
+	// owned[v]: grads[v] is ours to add into: a clone, or a gradient an op
+	// known to allocate afresh returned (freshGrads). Owned gradients that
+	// die inside the sweep go back to the arena (see release).
+	owned := make([]bool, len(g.names))
+	// release hands t, an owned gradient nothing will read again, to the
+	// arena unless another live gradient shares its backing array (a view
+	// some op such as Reshape returned). Seeds are never owned, and the
+	// gradients handed to the caller never die here.
+	release := func(t *tensor.Tensor) {
+		if g.arena == nil || t == nil || cap(t.F32) == 0 {
+			return
+		}
+		end := backing(t.F32)
+		for _, o := range grads {
+			if o != nil && o != t && backing(o.F32) == end {
+				return
+			}
+		}
+		g.arena.put(t.F32)
+	}
 	for name, s := range seeds {
 		v, ok := g.index[name]
 		if !ok {
@@ -144,6 +163,7 @@ func (p *Pass) Backward(ctx context.Context, seeds map[string]*tensor.Tensor, wr
 		if err != nil {
 			return nil, fmt.Errorf("engine: Backward: %s: %w", nd.label(), err)
 		}
+		fresh := freshGrads(nd.op)
 		for i, v := range nd.in {
 			if v < 0 || i >= len(gin) || gin[i] == nil || !upstream[v] {
 				continue
@@ -153,22 +173,33 @@ func (p *Pass) Backward(ctx context.Context, seeds map[string]*tensor.Tensor, wr
 				return nil, fmt.Errorf("engine: Backward: %s returned gradient %v for input %q of shape %v", nd.label(), gi, g.names[v], p.shapes[v])
 			}
 			if grads[v] == nil {
-				grads[v] = gi
+				// A fresh gradient has no other holder until v's producer
+				// runs, after every addition into it.
+				grads[v], owned[v] = gi, fresh
 				continue
 			}
 			if !owned[v] {
-				grads[v] = grads[v].Clone()
-				owned[v] = true
+				c := g.arena.tensor(p.shapes[v]...)
+				copy(c.F32, grads[v].F32)
+				grads[v], owned[v] = c, true
 			}
 			acc := grads[v].F32
 			for j, x := range gi.F32 {
 				acc[j] += x
 			}
+			if fresh {
+				release(gi)
+			}
 		}
 		// Output gradients are no longer needed unless asked for.
 		for _, v := range nd.out {
 			if v >= 0 && !isWrt[v] {
+				t := grads[v]
 				grads[v] = nil
+				if owned[v] {
+					release(t)
+				}
+				owned[v] = false
 			}
 		}
 	}

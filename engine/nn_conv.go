@@ -236,7 +236,8 @@ func (op *convOp) BackwardFor(in, out, gradOut []*tensor.Tensor, need []bool) ([
 	needX, needW := need[0], len(need) > 1 && need[1]
 	var dx, dw *tensor.Tensor
 	if needX {
-		dx = tensor.New(x.Shape...)
+		// Zeroed: col2im, slabs and the depthwise kernels accumulate.
+		dx = op.arena.zeroed(x.Shape...)
 	}
 	if needW {
 		dw = tensor.New(w.Shape...)

@@ -101,7 +101,7 @@ func (op *batchNormOp) BackwardFor(in, out, gradOut []*tensor.Tensor, need []boo
 	x, dy := in[0], gradOut[0]
 	c, inner := x.Shape[1], tensor.Numel(x.Shape[2:])
 	scale, vr := in[1].F32, in[4].F32
-	dx := tensor.New(x.Shape...)
+	dx := op.arena.tensor(x.Shape...) // every element written below
 	nc := x.Shape[0] * c
 	splitWork(nc, nc*inner, func(p0, p1 int) {
 		for p := p0; p < p1; p++ {

@@ -156,7 +156,7 @@ func (op *poolOp) BackwardNeeds() (in, out []int) {
 
 func (op *poolOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor, error) {
 	x, dy := in[0], gradOut[0]
-	dx := tensor.New(x.Shape...)
+	dx := op.arena.zeroed(x.Shape...) // both paths accumulate
 	if op.max {
 		var arg *tensor.Tensor
 		if len(out) > 1 && out[1] != nil && out[1].I64 != nil {
@@ -262,7 +262,7 @@ func (op *globalPoolOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.T
 	x, dy := in[0], gradOut[0]
 	nc := x.Shape[0] * x.Shape[1]
 	hw := tensor.Numel(x.Shape[2:])
-	dx := tensor.New(x.Shape...)
+	dx := op.arena.zeroed(x.Shape...) // the max writes one element per plane
 	for p := 0; p < nc; p++ {
 		d := dx.F32[p*hw : (p+1)*hw]
 		if op.max {

@@ -89,8 +89,8 @@ func (u *unaryOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor,
 	if g == nil || in[0].DType != tensor.Float32 {
 		return []*tensor.Tensor{nil}, nil
 	}
-	gx := tensor.New(in[0].Shape...)
 	if u.name == "Relu" && u.useIn {
+		gx := u.arena.zeroed(in[0].Shape...) // written where x > 0 only
 		// The hot activation of most CNNs: the same rule as its df
 		// (gradient where x > 0) without an indirect call per element.
 		xs, gs, ds := in[0].F32, g.F32[:len(in[0].F32)], gx.F32[:len(in[0].F32)]
@@ -101,6 +101,7 @@ func (u *unaryOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor,
 		}
 		return []*tensor.Tensor{gx}, nil
 	}
+	gx := u.arena.tensor(in[0].Shape...) // every element written below
 	var xs, ys []float32
 	if u.useIn {
 		xs = in[0].F32
@@ -252,6 +253,7 @@ func buildSqrt(n *onnx.Node, env *Env) (Op, error) {
 type clipOp struct {
 	attrBounds bool
 	lo, hi     float32
+	arena      *arena // gradient buffers; nil allocates
 }
 
 func buildClip(n *onnx.Node, env *Env) (Op, error) {
@@ -332,7 +334,7 @@ func (c *clipOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor, 
 	if err != nil {
 		return nil, err
 	}
-	gx := tensor.New(in[0].Shape...)
+	gx := c.arena.zeroed(in[0].Shape...) // written inside the bounds only
 	if l, h := float32(lo), float32(hi); float64(l) == lo && float64(h) == hi {
 		// Bounds exact in float32 (always, for float32 bound tensors and
 		// infinities): compare in float32, without a conversion per
@@ -591,7 +593,7 @@ func (b *binaryOp) BackwardFor(in, out, gradOut []*tensor.Tensor, need []bool) (
 			gx = g.F32
 		}
 		if yFloat {
-			gy = make([]float32, len(g.F32))
+			gy = b.arena.floats(len(g.F32)) // every element written below
 			if b.kind == binAdd {
 				copy(gy, g.F32)
 			} else {
@@ -667,7 +669,7 @@ func (b *binaryOp) BackwardFor(in, out, gradOut []*tensor.Tensor, need []bool) (
 		if err != nil {
 			return nil, err
 		}
-		grads[0] = &tensor.Tensor{DType: tensor.Float32, Shape: append([]int(nil), x.Shape...), F32: ownCopy(rx, g.F32)}
+		grads[0] = &tensor.Tensor{DType: tensor.Float32, Shape: append([]int(nil), x.Shape...), F32: b.ownCopy(rx, g.F32)}
 	}
 	if gy != nil {
 		ry, err := reduceToShape(gy, shape, ys)
