@@ -94,3 +94,60 @@ func TestArenaBackwardReuse(t *testing.T) {
 		}
 	}
 }
+
+// TestArenaBackwardConcurrent runs forward+backward passes of the compact
+// ResNet-18 from several goroutines sharing one Graph (and so one arena), as
+// the batch workers do; every input gradient must equal the sequential one
+// bit for bit. Run with -race to check the arena under backward traffic.
+func TestArenaBackwardConcurrent(t *testing.T) {
+	n := loadCompactNet(t, "resnet18")
+	meta, x, g := n.meta, n.x, n.g
+	ctx := context.Background()
+	in := map[string]*tensor.Tensor{meta.Input: x}
+	grad := func() (*tensor.Tensor, error) {
+		p, err := g.Run(ctx, in, RunOptions{Backward: true})
+		if err != nil {
+			return nil, err
+		}
+		y, _ := p.Value(meta.Output)
+		seed := tensor.New(y.Shape...)
+		classes := y.Shape[len(y.Shape)-1]
+		for i := 0; i < len(seed.F32); i += classes {
+			seed.F32[i] = 1
+		}
+		gs, err := p.Backward(ctx, map[string]*tensor.Tensor{meta.Output: seed}, []string{meta.Input})
+		if err != nil {
+			return nil, err
+		}
+		return gs[meta.Input], nil
+	}
+	want, err := grad()
+	if err != nil {
+		t.Fatal(err)
+	}
+	const workers, rounds = 3, 4
+	errs := make(chan string, workers)
+	for w := 0; w < workers; w++ {
+		go func() {
+			for r := 0; r < rounds; r++ {
+				got, err := grad()
+				if err != nil {
+					errs <- err.Error()
+					return
+				}
+				for i := range want.F32 {
+					if got.F32[i] != want.F32[i] {
+						errs <- "concurrent backward differs from the sequential one"
+						return
+					}
+				}
+			}
+			errs <- ""
+		}()
+	}
+	for w := 0; w < workers; w++ {
+		if e := <-errs; e != "" {
+			t.Fatal(e)
+		}
+	}
+}
