@@ -124,16 +124,7 @@ func (op *topKOp) Forward(in []*tensor.Tensor) ([]*tensor.Tensor, error) {
 }
 
 func (op *topKOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor, error) {
-	grads, g := floatBackward(in, gradOut)
-	if g == nil {
-		return grads, nil
-	}
-	_, idx, err := op.plan(in)
-	if err != nil {
-		return nil, err
-	}
-	grads[0] = shScatterAdd(g.F32, idx, in[0].Shape)
-	return grads, nil
+	return takeBackward(in, gradOut, op.plan)
 }
 
 // ---------------------------------------------------------------------------

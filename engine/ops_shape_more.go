@@ -43,11 +43,18 @@ func (o *takeOp) Forward(in []*tensor.Tensor) ([]*tensor.Tensor, error) {
 }
 
 func (o *takeOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor, error) {
+	return takeBackward(in, gradOut, o.plan)
+}
+
+// takeBackward is the backward of any op whose first output gathers x at
+// the offsets plan computes: the gradient scatter-adds back through the
+// same offsets; other inputs get none.
+func takeBackward(in, gradOut []*tensor.Tensor, plan func([]*tensor.Tensor) ([]int, []int, error)) ([]*tensor.Tensor, error) {
 	grads, g := floatBackward(in, gradOut)
 	if g == nil {
 		return grads, nil
 	}
-	_, idx, err := o.plan(in)
+	_, idx, err := plan(in)
 	if err != nil {
 		return nil, err
 	}
