@@ -1,9 +1,10 @@
-// Command asmgen writes the amd64 SGEMM micro-kernels of package kernel
-// (../kernel_amd64.s and its Go declarations ../kernel_amd64_stubs.go) with
-// the avo assembler generator. It is its own module so that the heedmap
-// build never depends on avo; regenerate with
-//
-//	cd kernel/asmgen && go run . -out ../kernel_amd64.s -stubs ../stubs_amd64.go -pkg kernel
+// Command asmgen writes the amd64 kernels of package kernel with the avo
+// assembler generator, one kernel set per run (-set gemm: the SGEMM
+// micro-kernels in ../kernel_amd64.s; -set dw: depthwise loops in
+// ../depthwise_amd64.s; -set ep: convolution epilogues in
+// ../epilogue_amd64.s; each with its Go declarations). It is its own module
+// so that the heedmap build never depends on avo; regenerate everything
+// with `go generate ./kernel` (the commands are in ../generate.go).
 //
 // Each micro-kernel computes one mr×nr register tile of C from a packed A
 // micro-panel (k steps of mr values, row index fastest) and a packed B
@@ -20,7 +21,9 @@
 package main
 
 import (
+	"flag"
 	"fmt"
+	"os"
 
 	. "github.com/mmcloughlin/avo/build"
 	. "github.com/mmcloughlin/avo/operand"
@@ -53,6 +56,24 @@ func main() {
 		reg.Y0, reg.Y1, reg.Y2, reg.Y3, reg.Y4, reg.Y5, reg.Y6, reg.Y7,
 		reg.Y8, reg.Y9, reg.Y10, reg.Y11, reg.Y12, reg.Y13, reg.Y14, reg.Y15,
 	}
+	set := flag.String("set", "gemm", "which kernels to emit: gemm (GEMM micro-kernels and the FMA peak loop), dw (depthwise), ep (epilogues)")
+	flag.Parse()
+	switch *set {
+	case "gemm":
+		genGEMM(zmm, ymm)
+	case "dw":
+		genDepthwise(zmm, ymm)
+	case "ep":
+		genEpilogue(zmm, ymm)
+	default:
+		fmt.Fprintf(os.Stderr, "asmgen: unknown -set %q\n", *set)
+		os.Exit(2)
+	}
+	Generate()
+}
+
+// genGEMM emits the packed SGEMM micro-kernels and the FMA peak loop.
+func genGEMM(zmm, ymm []reg.VecPhysical) {
 	gen(tile{
 		name: "sgemm12x32AVX512", mr: 12, nv: 2, width: 16, vec: zmm,
 		doc: "12×32 tile: 24 zmm accumulators, 2 for the B row, 2 for broadcasts.",
@@ -61,11 +82,14 @@ func main() {
 		name: "sgemm6x16AVX2", mr: 6, nv: 2, width: 8, vec: ymm,
 		doc: "6×16 tile: 12 ymm accumulators, 2 for the B row, 2 for broadcasts.",
 	})
-	genRow3("dwRow3AVX512", zmm, 16)
-	genRow3("dwRow3AVX2", ymm, 8)
 	genPeak("fmaPeakAVX512", zmm, 24)
 	genPeak("fmaPeakAVX2", ymm, 12)
-	Generate()
+}
+
+// genDepthwise emits the depthwise-convolution row loops.
+func genDepthwise(zmm, ymm []reg.VecPhysical) {
+	genRow3("dwRow3AVX512", zmm, 16)
+	genRow3("dwRow3AVX2", ymm, 8)
 }
 
 // genRow3 emits the inner loop of a three-tap depthwise filter row with
