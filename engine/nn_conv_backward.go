@@ -1,0 +1,179 @@
+package engine
+
+import (
+	"heedmap/tensor"
+)
+
+// BackwardNeeds implements BackwardNeeder: the output is not needed.
+func (op *convOp) BackwardNeeds() (in, out []int) { return []int{0, 1}, nil }
+
+// BackwardNeedsFor implements SelectiveBackward: dX reads W, dW reads X.
+func (op *convOp) BackwardNeedsFor(need []bool) (in, out []int) {
+	if need[0] {
+		in = append(in, 1)
+	}
+	if len(need) > 1 && need[1] {
+		in = append(in, 0)
+	}
+	return in, nil
+}
+
+func (op *convOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor, error) {
+	return op.BackwardFor(in, out, gradOut, []bool{true, true, true})
+}
+
+// BackwardFor implements SelectiveBackward. With constant weights (every
+// attribution) only dX = col2im(Wᵀ·dY) is computed.
+func (op *convOp) BackwardFor(in, out, gradOut []*tensor.Tensor, need []bool) ([]*tensor.Tensor, error) {
+	x, w, dy := in[0], in[1], gradOut[0]
+	s, err := op.shape(x, w)
+	if err != nil {
+		return nil, err
+	}
+	g := s.g
+	ihw, ohw := g.ih*g.iw, g.oh*g.ow
+	needX, needW := need[0], len(need) > 1 && need[1]
+	var dx, dw *tensor.Tensor
+	if needX {
+		// Zeroed: col2im, slabs and the depthwise kernels accumulate.
+		dx = op.arena.zeroed(x.Shape...)
+	}
+	if needW {
+		dw = tensor.New(w.Shape...)
+	}
+	plan, perr := op.plans.plan(g)
+	if s.depthwise() {
+		if perr != nil {
+			depthwiseBackward(x.F32, w.F32, dy.F32, dx, dw, s)
+		} else {
+			var dxs, dws []float32
+			if dx != nil {
+				dxs = dx.F32
+			}
+			if dw != nil {
+				dws = dw.F32
+			}
+			if err := planDepthwiseBackward(plan, x.F32, w.F32, dy.F32, dxs, dws, s); err != nil {
+				return nil, err
+			}
+		}
+	} else if needX || needW {
+		kk := s.cg * g.kh * g.kw
+		pw := s.pointwise()
+		var col, dcol []float32
+		if !pw {
+			b1, b2 := op.colBuf(kk*ohw), op.colBuf(kk*ohw)
+			defer op.cols.Put(b1)
+			defer op.cols.Put(b2)
+			col, dcol = *b1, *b2
+		}
+		for n := 0; n < s.n; n++ {
+			for gi := 0; gi < op.group; gi++ {
+				off := (n*s.c + gi*s.cg) * ihw
+				dyg := dy.F32[(n*s.m+gi*s.mg)*ohw : (n*s.m+(gi+1)*s.mg)*ohw]
+				if needW {
+					xg := x.F32[off : off+s.cg*ihw]
+					src := xg
+					if !pw {
+						if perr != nil {
+							im2col(xg, s.cg, g, col)
+						} else if err := planIm2col(plan, xg, s.cg, g, col); err != nil {
+							return nil, err
+						}
+						src = col
+					}
+					// dW_g += dY_g · colᵀ
+					dwg := dw.F32[gi*s.mg*kk : (gi+1)*s.mg*kk]
+					op.gemm.Sgemm(false, true, s.mg, kk, ohw, 1, dyg, ohw, src, ohw, 1, dwg, kk)
+				}
+				if !needX {
+					continue
+				}
+				dxg := dx.F32[off : off+s.cg*ihw]
+				wg := w.F32[gi*s.mg*kk : (gi+1)*s.mg*kk]
+				if tg, ok := transposedGeom(g); ok && !pw && op.useSlabs(s.mg*g.kh*g.kw, ihw) {
+					if err := op.slabBackwardX(tg, wg, s.cg, s.mg, dyg, dxg); err != nil {
+						return nil, err
+					}
+					continue
+				}
+				// dcol = W_gᵀ · dY_g, scattered back onto dX.
+				if pw {
+					op.gemm.Sgemm(true, false, kk, ohw, s.mg, 1, wg, kk, dyg, ohw, 0, dxg, ohw)
+				} else {
+					op.gemm.Sgemm(true, false, kk, ohw, s.mg, 1, wg, kk, dyg, ohw, 0, dcol, ohw)
+					if perr != nil {
+						col2im(dcol, s.cg, g, dxg)
+					} else if err := planCol2im(plan, dcol, s.cg, g, dxg); err != nil {
+						return nil, err
+					}
+				}
+			}
+		}
+	}
+	res := []*tensor.Tensor{dx, dw, nil}
+	if len(in) > 2 && in[2] != nil && need[2] {
+		db := tensor.New(in[2].Shape...)
+		for n := 0; n < s.n; n++ {
+			for m := 0; m < s.m; m++ {
+				var acc float32
+				for _, v := range dy.F32[(n*s.m+m)*ohw : (n*s.m+m+1)*ohw] {
+					acc += v
+				}
+				db.F32[m] += acc
+			}
+		}
+		res[2] = db
+	}
+	return res[:len(in)], nil
+}
+
+// transposedGeom returns the geometry of the input gradient of a
+// unit-stride, undilated convolution written as a convolution of dY: with
+// the filters flipped in space and the channel axes swapped, dX is dY
+// convolved with pads k−1−p on each side (the "full" correlation), whose
+// output size is exactly the input's. ok is false when the convolution is
+// strided or dilated, or a pad exceeds k−1.
+func transposedGeom(g geom2) (t geom2, ok bool) {
+	if g.sh != 1 || g.sw != 1 || g.dh != 1 || g.dw != 1 {
+		return t, false
+	}
+	t = geom2{
+		ih: g.oh, iw: g.ow, kh: g.kh, kw: g.kw, sh: 1, sw: 1, dh: 1, dw: 1,
+		pt: g.kh - 1 - g.pt, pl: g.kw - 1 - g.pl, pb: g.kh - 1 - g.pb, pr: g.kw - 1 - g.pr,
+		oh: g.ih, ow: g.iw,
+	}
+	if t.pt < 0 || t.pl < 0 || t.pb < 0 || t.pr < 0 || t.ih+t.pt+t.pb-t.kh+1 != t.oh || t.iw+t.pl+t.pr-t.kw+1 != t.ow {
+		return t, false
+	}
+	return t, true
+}
+
+// slabBackwardX computes one image and group's input gradient dxg
+// (cg×ih·iw, overwritten) of a unit-stride convolution as the slab-parallel
+// forward convolution of dyg (mg×oh·ow) with the flipped, channel-swapped
+// filters, instead of the K×N matrix Wᵀ·dY followed by a col2im scatter:
+// the same multiply-adds, without the column matrix going through memory,
+// and with both cores on every layer.
+func (op *convOp) slabBackwardX(tg geom2, wg []float32, cg, mg int, dyg, dxg []float32) error {
+	plan, err := op.tplans.plan(tg)
+	if err != nil {
+		return err
+	}
+	khw := tg.kh * tg.kw
+	kk := mg * khw
+	wf := poolBuf(&op.slabBufs, cg*kk)
+	defer op.slabBufs.Put(wf)
+	f := *wf
+	// Wf[c][m][ki][kj] = W[m][c][kh−1−ki][kw−1−kj]
+	for m := 0; m < mg; m++ {
+		for c := 0; c < cg; c++ {
+			src := wg[(m*cg+c)*khw : (m*cg+c+1)*khw]
+			dst := f[(c*mg+m)*khw : (c*mg+m+1)*khw]
+			for t, v := range src {
+				dst[khw-1-t] = v
+			}
+		}
+	}
+	return op.slabForward(plan, dyg, mg, tg, f, cg, kk, dxg, nil, 0)
+}
