@@ -153,9 +153,7 @@ func (op *convOp) forward(in []*tensor.Tensor, act actKind, lo, hi float32) ([]*
 	ep := &epilogue{bias: b, act: act, lo: lo, hi: hi}
 	epDone := false
 	if s.depthwise() {
-		if perr != nil {
-			depthwiseForward(x.F32, w.F32, y.F32, s)
-		} else if err := planDepthwise(plan, x.F32, w.F32, y.F32, s); err != nil {
+		if epDone, err = op.depthwiseForwardPlanned(plan, perr, x.F32, w.F32, y.F32, s, ep); err != nil {
 			return nil, err
 		}
 	} else {
@@ -266,103 +264,6 @@ func col2im(col []float32, c int, g geom2, dx []float32) {
 								row[ix] += v
 							}
 							ix += g.sw
-						}
-					}
-				}
-			}
-		}
-	})
-}
-
-// depthwiseForward computes a convolution with one input channel per group
-// (and mg = m/c output channels per group, the channel multiplier) directly.
-func depthwiseForward(x, w, y []float32, s convShape) {
-	g := s.g
-	ihw, ohw, khw := g.ih*g.iw, g.oh*g.ow, g.kh*g.kw
-	planes := s.n * s.m
-	splitWork(planes, planes*ohw*khw, func(p0, p1 int) {
-		for p := p0; p < p1; p++ {
-			n, m := p/s.m, p%s.m
-			ch := m / s.mg
-			src := x[(n*s.c+ch)*ihw : (n*s.c+ch+1)*ihw]
-			ker := w[m*khw : (m+1)*khw]
-			dst := y[p*ohw : (p+1)*ohw]
-			for oy := 0; oy < g.oh; oy++ {
-				for ox := 0; ox < g.ow; ox++ {
-					var acc float32
-					for ki := 0; ki < g.kh; ki++ {
-						iy := oy*g.sh - g.pt + ki*g.dh
-						if iy < 0 || iy >= g.ih {
-							continue
-						}
-						row := src[iy*g.iw : (iy+1)*g.iw]
-						for kj := 0; kj < g.kw; kj++ {
-							ix := ox*g.sw - g.pl + kj*g.dw
-							if ix >= 0 && ix < g.iw {
-								acc += row[ix] * ker[ki*g.kw+kj]
-							}
-						}
-					}
-					dst[oy*g.ow+ox] = acc
-				}
-			}
-		}
-	})
-}
-
-// depthwiseBackward accumulates dX and dW (each skipped when nil) for the
-// direct depthwise path. Work is split by input channel so each goroutine
-// owns the dX planes and dW rows it writes.
-func depthwiseBackward(x, w, dy []float32, dxT, dwT *tensor.Tensor, s convShape) {
-	var dx, dw []float32
-	if dxT != nil {
-		dx = dxT.F32
-	}
-	if dwT != nil {
-		dw = dwT.F32
-	}
-	g := s.g
-	ihw, ohw, khw := g.ih*g.iw, g.oh*g.ow, g.kh*g.kw
-	splitWork(s.c, s.n*s.m*ohw*khw, func(c0, c1 int) {
-		for ch := c0; ch < c1; ch++ {
-			for m := ch * s.mg; m < (ch+1)*s.mg; m++ {
-				ker := w[m*khw : (m+1)*khw]
-				var dker, src, dsrc []float32
-				if dw != nil {
-					dker = dw[m*khw : (m+1)*khw]
-				}
-				for n := 0; n < s.n; n++ {
-					if dw != nil {
-						src = x[(n*s.c+ch)*ihw : (n*s.c+ch+1)*ihw]
-					}
-					if dx != nil {
-						dsrc = dx[(n*s.c+ch)*ihw : (n*s.c+ch+1)*ihw]
-					}
-					gy := dy[(n*s.m+m)*ohw : (n*s.m+m+1)*ohw]
-					for oy := 0; oy < g.oh; oy++ {
-						for ox := 0; ox < g.ow; ox++ {
-							gv := gy[oy*g.ow+ox]
-							if gv == 0 {
-								continue
-							}
-							for ki := 0; ki < g.kh; ki++ {
-								iy := oy*g.sh - g.pt + ki*g.dh
-								if iy < 0 || iy >= g.ih {
-									continue
-								}
-								for kj := 0; kj < g.kw; kj++ {
-									ix := ox*g.sw - g.pl + kj*g.dw
-									if ix >= 0 && ix < g.iw {
-										j := iy*g.iw + ix
-										if dker != nil {
-											dker[ki*g.kw+kj] += gv * src[j]
-										}
-										if dsrc != nil {
-											dsrc[j] += gv * ker[ki*g.kw+kj]
-										}
-									}
-								}
-							}
 						}
 					}
 				}
