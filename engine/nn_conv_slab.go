@@ -1,6 +1,7 @@
 package engine
 
 import (
+	"math"
 	"runtime"
 	"sync"
 	"sync/atomic"
@@ -25,31 +26,33 @@ const (
 )
 
 // apply runs the epilogue on rows [m0, m1) of one image's M×N output,
-// columns [j0, j1) (a row stride of n).
+// columns [j0, j1) (a row stride of n), with the kernel package's vector
+// loop: Relu is max(v, 0) and Clip min(hi, max(lo, v)) exactly as those
+// operators' forward kernels compute them.
 func (e *epilogue) apply(y []float32, n, m0, m1, j0, j1 int) {
 	if e == nil || (e.bias == nil && e.act == actNone) {
 		return
 	}
+	lo, hi := e.bounds()
 	for m := m0; m < m1; m++ {
-		row := y[m*n+j0 : m*n+j1]
+		var bv float32
 		if e.bias != nil {
-			bv := e.bias[m]
-			for i := range row {
-				row[i] += bv
-			}
+			bv = e.bias[m]
 		}
-		switch e.act {
-		case actRelu:
-			for i, v := range row {
-				row[i] = max(v, 0) // as Relu's forward kernel
-			}
-		case actClip:
-			l, h := e.lo, e.hi
-			for i, v := range row {
-				row[i] = min(h, max(l, v)) // as Clip's forward
-			}
-		}
+		kernel.BiasClamp(y[m*n+j0:m*n+j1], bv, lo, hi)
 	}
+}
+
+// bounds returns the clamp interval of the activation.
+func (e *epilogue) bounds() (lo, hi float32) {
+	inf := float32(math.Inf(1))
+	switch e.act {
+	case actRelu:
+		return 0, inf
+	case actClip:
+		return e.lo, e.hi
+	}
+	return -inf, inf
 }
 
 // slabCols is the target size, in floats, of one column slab: 128 Ki

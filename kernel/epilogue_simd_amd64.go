@@ -1,0 +1,20 @@
+package kernel
+
+import "golang.org/x/sys/cpu"
+
+// biasClampSIMD runs the vector part of BiasClamp and returns how many
+// leading values of x it did (0 when the CPU has neither AVX-512F nor AVX2).
+func biasClampSIMD(x []float32, bias, lo, hi float32) int {
+	n := len(x)
+	switch {
+	case n >= 16 && cpu.X86.HasAVX512F:
+		n &^= 15
+		biasClampAVX512(n, &x[0], bias, lo, hi)
+		return n
+	case n >= 8 && cpu.X86.HasAVX2:
+		n &^= 7
+		biasClampAVX2(n, &x[0], bias, lo, hi)
+		return n
+	}
+	return 0
+}
