@@ -189,11 +189,46 @@ func (g *Packed) Sgemm(transA, transB bool, m, n, k int, alpha float32, a []floa
 	cfg := g.conf()
 	if threads < 2 || m*n*k < cfg.minParallelOps {
 		ws := g.get()
-		g.run(ws, transA, transB, m, n, k, alpha, a, lda, b, ldb, beta, c, ldc)
+		g.run(ws, transA, transB, m, n, k, alpha, a, lda, b, ldb, beta, c, ldc, nil)
 		g.pool.Put(ws)
 		return
 	}
 	g.parallel(threads, transA, transB, m, n, k, alpha, a, lda, b, ldb, beta, c, ldc)
+}
+
+// PanelWidth is the column count nr of the packed B panels SgemmPanels
+// reads (the micro-kernel's register tile width).
+func (g *Packed) PanelWidth() int { return g.conf().nr }
+
+// SgemmPanels computes C = A·B (m×n, row stride ldc, overwritten) for a
+// row-major A (m×k, row stride lda) and a B that the caller has already
+// packed: ⌈n/nr⌉ panels of k×nr values (nr = PanelWidth), panel q holding
+// columns q·nr … q·nr+nr−1 with the column index fastest, the last panel
+// zero-padded. Producing B in that layout directly (Im2colPlan.
+// Im2colPanels does for a convolution) saves the copy Sgemm's packing
+// step makes, which costs as much as a sizeable share of the multiply
+// when B is an im2col slab used once. It runs on the calling goroutine:
+// the callers split their work into independent slabs themselves.
+func (g *Packed) SgemmPanels(m, n, k int, a []float32, lda int, panels []float32, c []float32, ldc int) {
+	nr := g.conf().nr
+	if m < 0 || n < 0 || k < 0 {
+		panic(fmt.Sprintf("kernel: negative GEMM size m=%d n=%d k=%d", m, n, k))
+	}
+	checkMat("A", a, m, k, lda)
+	checkMat("C", c, m, n, ldc)
+	if need := (n + nr - 1) / nr * nr * k; len(panels) < need {
+		panic(fmt.Sprintf("kernel: SgemmPanels B panels have %d elements, want >= %d for k=%d n=%d nr=%d", len(panels), need, k, n, nr))
+	}
+	if m == 0 || n == 0 {
+		return
+	}
+	if k == 0 {
+		scaleC(m, n, 0, c, ldc)
+		return
+	}
+	ws := g.get()
+	g.run(ws, false, false, m, n, k, 1, a, lda, nil, 0, 0, c, ldc, panels)
+	g.pool.Put(ws)
 }
 
 // parallel splits C into slabs of whole register tiles along the dimension
@@ -220,7 +255,7 @@ func (g *Packed) parallel(threads int, transA, transB bool, m, n, k int, alpha f
 	slabs := min(tiles, threads*slabsPerThread, max(threads, m*n*k/(cfg.minParallelOps/2)))
 	if threads < 2 {
 		ws := g.get()
-		g.run(ws, transA, transB, m, n, k, alpha, a, lda, b, ldb, beta, c, ldc)
+		g.run(ws, transA, transB, m, n, k, alpha, a, lda, b, ldb, beta, c, ldc, nil)
 		g.pool.Put(ws)
 		return
 	}
@@ -295,7 +330,7 @@ func (j *parJob) work() {
 			}
 			sc = j.c[lo*j.ldc:]
 		}
-		g.run(ws, j.transA, j.transB, sm, sn, j.k, j.alpha, sa, j.lda, sb, j.ldb, j.beta, sc, j.ldc)
+		g.run(ws, j.transA, j.transB, sm, sn, j.k, j.alpha, sa, j.lda, sb, j.ldb, j.beta, sc, j.ldc, nil)
 	}
 }
 
@@ -314,15 +349,19 @@ func grow(buf []float32, n int) []float32 {
 	return buf[:n]
 }
 
-// run is the sequential blocked algorithm on one slab of C.
-func (g *Packed) run(ws *workspace, transA, transB bool, m, n, k int, alpha float32, a []float32, lda int, b []float32, ldb int, beta float32, c []float32, ldc int) {
+// run is the sequential blocked algorithm on one slab of C. When panels
+// is not nil it holds B already packed (see SgemmPanels) and b, ldb and
+// transB are ignored.
+func (g *Packed) run(ws *workspace, transA, transB bool, m, n, k int, alpha float32, a []float32, lda int, b []float32, ldb int, beta float32, c []float32, ldc int, panels []float32) {
 	cfg := g.conf()
 	mr, nr := cfg.mr, cfg.nr
 	kcMax := min(cfg.kc, k)
 	ncMax := min(cfg.nc, roundUp(n, nr))
 	mcMax := min(cfg.mc, roundUp(m, mr))
 	ws.a = grow(ws.a, mcMax*kcMax)
-	ws.b = grow(ws.b, ncMax*kcMax)
+	if panels == nil {
+		ws.b = grow(ws.b, ncMax*kcMax)
+	}
 	kern := cfg.kernel
 	// A non-transposed A is read in place by the direct kernel when the
 	// path has one: packing it would be a strided gather (see
@@ -332,7 +371,9 @@ func (g *Packed) run(ws *workspace, transA, transB bool, m, n, k int, alpha floa
 		nb := min(cfg.nc, n-jc)
 		for pc := 0; pc < k; pc += cfg.kc {
 			kb := min(cfg.kc, k-pc)
-			packB(ws.b, transB, b, ldb, pc, jc, kb, nb, nr)
+			if panels == nil {
+				packB(ws.b, transB, b, ldb, pc, jc, kb, nb, nr)
+			}
 			bet := beta
 			if pc > 0 {
 				bet = 1 // later k slices accumulate onto the first
@@ -350,7 +391,13 @@ func (g *Packed) run(ws *workspace, transA, transB bool, m, n, k int, alpha floa
 				}
 				for jr := 0; jr < nb; jr += nr {
 					nrr := min(nr, nb-jr)
-					bp := ws.b[jr*kb : (jr+nr)*kb]
+					var bp []float32
+					if panels == nil {
+						bp = ws.b[jr*kb : (jr+nr)*kb]
+					} else {
+						off := (jc+jr)/nr*k*nr + pc*nr
+						bp = panels[off : off+kb*nr]
+					}
 					for ir := 0; ir < mb; ir += mr {
 						mrr := min(mr, mb-ir)
 						ci := (ic+ir)*ldc + jc + jr

@@ -1,0 +1,133 @@
+package kernel_test
+
+import (
+	"math/rand/v2"
+	"testing"
+
+	"heedmap/kernel"
+)
+
+// TestIm2colPanelsConv checks the packed-panel lowering end to end: the
+// convolution computed slab by slab with Im2colPanels and SgemmPanels
+// equals the ONNX Conv definition (directConv), for every GEMM path this
+// CPU has (so every panel width), slabs that start and end mid-row and
+// widths that leave a partial last panel. It also checks each panel entry
+// against the plain column matrix of Im2col, bit for bit.
+func TestIm2colPanelsConv(t *testing.T) {
+	r := rand.New(rand.NewPCG(3, 4))
+	cases := []struct {
+		c, h, w, m int
+		g          kernel.Conv2D
+	}{
+		{3, 9, 8, 5, kernel.Conv2D{KH: 3, KW: 3, PadTop: 1, PadLeft: 1, PadBottom: 1, PadRight: 1}},
+		{4, 11, 10, 13, kernel.Conv2D{KH: 3, KW: 2, StrideH: 2, StrideW: 3, PadTop: 2, PadBottom: 1, PadRight: 3}},
+		{2, 12, 13, 3, kernel.Conv2D{KH: 3, KW: 3, DilationH: 2, DilationW: 3, PadTop: 2, PadLeft: 3, PadBottom: 2, PadRight: 3}},
+		{3, 40, 37, 14, kernel.Conv2D{KH: 7, KW: 7, StrideH: 2, StrideW: 2, PadTop: 3, PadLeft: 3, PadBottom: 3, PadRight: 3}},
+		{16, 30, 30, 25, kernel.Conv2D{KH: 3, KW: 3, PadTop: 1, PadLeft: 1, PadBottom: 1, PadRight: 1}},
+		{5, 7, 7, 4, kernel.Conv2D{KH: 1, KW: 1, StrideH: 2, StrideW: 2}},
+		{2, 3, 3, 2, kernel.Conv2D{KH: 5, KW: 5, PadTop: 2, PadLeft: 2, PadBottom: 2, PadRight: 2}},
+	}
+	for _, isa := range []kernel.ISA{kernel.ISAPortable, kernel.ISAAVX2, kernel.ISAAVX512} {
+		if !kernel.Supported(isa) {
+			continue
+		}
+		gemm, err := kernel.New(kernel.Options{ISA: isa, Threads: 1})
+		if err != nil {
+			t.Fatal(err)
+		}
+		nr := gemm.PanelWidth()
+		for i, tc := range cases {
+			g := tc.g
+			g.C, g.H, g.W = tc.c, tc.h, tc.w
+			plan, err := kernel.NewIm2col(g)
+			if err != nil {
+				t.Fatal(err)
+			}
+			oh, ow := plan.Out()
+			rows, cols := plan.Shape()
+			x := randSlice(r, tc.c*tc.h*tc.w)
+			wt := randSlice(r, tc.m*rows)
+			full := make([]float32, rows*cols)
+			if err := plan.Im2col(full, x); err != nil {
+				t.Fatal(err)
+			}
+			y := make([]float32, tc.m*cols)
+			for j0 := 0; j0 < cols; {
+				j1 := min(cols, j0+1+r.IntN(3*nr))
+				np := (j1 - j0 + nr - 1) / nr
+				panels := make([]float32, np*rows*nr)
+				for k := range panels {
+					panels[k] = 99 // every entry must be overwritten
+				}
+				if err := plan.Im2colPanels(panels, x, tc.c, j0, j1, nr); err != nil {
+					t.Fatal(err)
+				}
+				for q := 0; q < np; q++ {
+					for row := 0; row < rows; row++ {
+						for j := 0; j < nr; j++ {
+							var want float32
+							if col := j0 + q*nr + j; col < j1 {
+								want = full[row*cols+col]
+							}
+							if got := panels[(q*rows+row)*nr+j]; got != want {
+								t.Fatalf("%v case %d slab [%d,%d): panel %d entry (%d,%d) = %v, want %v", isa, i, j0, j1, q, row, j, got, want)
+							}
+						}
+					}
+				}
+				// A plan made for one channel serves any channel count.
+				g1 := g
+				g1.C = 1
+				plan1, err := kernel.NewIm2col(g1)
+				if err != nil {
+					t.Fatal(err)
+				}
+				again := make([]float32, len(panels))
+				if err := plan1.Im2colPanels(again, x, tc.c, j0, j1, nr); err != nil {
+					t.Fatal(err)
+				}
+				for k := range again {
+					if again[k] != panels[k] {
+						t.Fatalf("%v case %d: one-channel plan differs at %d", isa, i, k)
+					}
+				}
+				gemm.SgemmPanels(tc.m, j1-j0, rows, wt, rows, panels, y[j0:], cols)
+				j0 = j1
+			}
+			want := directConv(x, 1, tc.c, tc.h, tc.w, wt, tc.m, 1, plan.Geometry(), oh, ow)
+			if err := closeTo(y, want, 1e-5, 1e-5); err != nil {
+				t.Fatalf("%v case %d: %v", isa, i, err)
+			}
+		}
+	}
+}
+
+// TestIm2colPanelsRejects checks the argument errors.
+func TestIm2colPanelsRejects(t *testing.T) {
+	plan, err := kernel.NewIm2col(kernel.Conv2D{C: 2, H: 5, W: 5, KH: 3, KW: 3})
+	if err != nil {
+		t.Fatal(err)
+	}
+	x := make([]float32, 2*5*5)
+	buf := make([]float32, 18*32)
+	for _, tc := range []struct {
+		name       string
+		dst, src   []float32
+		j0, j1, nr int
+	}{
+		{"columns out of range", buf, x, 0, 10, 32},
+		{"reversed columns", buf, x, 5, 2, 32},
+		{"panel width 0", buf, x, 0, 9, 0},
+		{"panel width too large", buf, x, 0, 9, 65},
+		{"short destination", buf[:10], x, 0, 9, 32},
+		{"short image", buf, x[:10], 0, 9, 32},
+		{"short image for the channel count", buf, x[:40], 0, 9, 32},
+	} {
+		if err := plan.Im2colPanels(tc.dst, tc.src, 2, tc.j0, tc.j1, tc.nr); err == nil {
+			t.Errorf("%s: no error", tc.name)
+		}
+	}
+	if err := plan.Im2colPanels(buf, x, 0, 0, 9, 32); err == nil {
+		t.Error("zero channels: no error")
+	}
+}
