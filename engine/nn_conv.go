@@ -33,7 +33,7 @@ type convOp struct {
 	// gemm1 is a single-threaded instance of the same packed GEMM, for
 	// the slab-parallel path (nn_conv_slab.go); nil when gemm is not a
 	// *kernel.Packed.
-	gemm1    kernel.GEMM
+	gemm1    *kernel.Packed
 	slabBufs sync.Pool
 	// tplans caches the plans of the transposed convolutions that give
 	// the input gradient (nn_conv_slab.go).
@@ -158,9 +158,12 @@ func (op *convOp) forward(in []*tensor.Tensor, act actKind, lo, hi float32) ([]*
 		}
 	} else {
 		kk := s.cg * g.kh * g.kw
-		slabs := !s.pointwise() && perr == nil && op.useSlabs(kk, ohw)
+		// The packed-panel paths (nn_conv_slab.go) need a plan and the
+		// packed GEMM; any other GEMM gets the plain im2col lowering.
+		panels := perr == nil && op.gemm1 != nil
+		slabs := panels && op.useSlabs(kk, ohw)
 		var col []float32
-		if !s.pointwise() && !slabs {
+		if !panels && !s.pointwise() {
 			buf := op.colBuf(kk * ohw)
 			defer op.cols.Put(buf)
 			col = *buf
@@ -170,10 +173,16 @@ func (op *convOp) forward(in []*tensor.Tensor, act actKind, lo, hi float32) ([]*
 				xg := x.F32[(n*s.c+gi*s.cg)*ihw : (n*s.c+(gi+1)*s.cg)*ihw]
 				yg := y.F32[(n*s.m+gi*s.mg)*ohw : (n*s.m+(gi+1)*s.mg)*ohw]
 				wg := w.F32[gi*s.mg*kk : (gi+1)*s.mg*kk]
-				if slabs {
-					if err := op.slabForward(plan, xg, s.cg, g, wg, s.mg, kk, yg, ep, gi*s.mg); err != nil {
-						return nil, err
-					}
+				switch {
+				case slabs:
+					err = op.slabForward(plan, xg, s.cg, g, wg, s.mg, kk, yg, ep, gi*s.mg)
+				case panels:
+					err = op.panelForward(plan, xg, s.cg, g, wg, s.mg, kk, yg, ep, gi*s.mg)
+				}
+				if err != nil {
+					return nil, err
+				}
+				if panels {
 					continue
 				}
 				src := xg
@@ -188,7 +197,7 @@ func (op *convOp) forward(in []*tensor.Tensor, act actKind, lo, hi float32) ([]*
 				op.gemm.Sgemm(false, false, s.mg, ohw, kk, 1, wg, kk, src, ohw, 0, yg, ohw)
 			}
 		}
-		epDone = slabs
+		epDone = panels
 	}
 	if !epDone && (b != nil || act != actNone) {
 		// One pass over the output for bias and activation, split by

@@ -63,68 +63,124 @@ const slabFloats = 128 << 10
 // useSlabs reports whether a convolution of this shape is lowered slab by
 // slab: only when there are enough output positions for every core to
 // take several 32-column slabs. With fewer (late layers, N = 49 … 196)
-// the column matrix is small anyway and the multi-threaded GEMM splits the
+// panelForward lowers the whole (small) column matrix once and splits the
 // much larger M instead.
 func (op *convOp) useSlabs(kk, ohw int) bool {
 	return op.gemm1 != nil && ohw >= 8*32*runtime.GOMAXPROCS(0)/2 && kk >= 8
 }
 
-// slabForward computes one image and group, Yg (mg×ohw) = Wg·col, by
-// slabs of columns: each goroutine claims the next slab, lowers it with
-// Im2colCols into its own cache-sized buffer, multiplies it with a
-// single-threaded GEMM and applies the epilogue to it while it is hot.
-// Both cores are busy on every such convolution, and the full column
-// matrix (7 MiB for a 64-channel 56×56 3×3 layer) is never written out.
-func (op *convOp) slabForward(plan *kernel.Im2colPlan, xg []float32, cg int, g geom2, wg []float32, mg, kk int, yg []float32, ep *epilogue, mOff int) error {
-	ohw := g.oh * g.ow
-	nb := max(32, min(512, slabFloats/kk/32*32))
-	slabs := (ohw + nb - 1) / nb
-	workers := min(runtime.GOMAXPROCS(0), slabs)
+// forGroup returns the epilogue of the output channels starting at mOff
+// (a group's slice of the bias).
+func (e *epilogue) forGroup(mOff int) *epilogue {
+	if e == nil || e.bias == nil || mOff == 0 {
+		return e
+	}
+	sub := *e
+	sub.bias = sub.bias[mOff:]
+	return &sub
+}
+
+// claimTasks runs f(0) … f(tasks−1) on up to GOMAXPROCS goroutines (the
+// caller's included), each taking the next unclaimed task, so a core slowed
+// by other work on a shared machine does fewer tasks instead of holding up
+// the rest. It returns the first error.
+func claimTasks(tasks int, f func(t int) error) error {
+	workers := min(runtime.GOMAXPROCS(0), tasks)
 	var next atomic.Int64
 	var mu sync.Mutex
 	var firstErr error
 	work := func() {
-		buf := poolBuf(&op.slabBufs, kk*nb)
-		defer op.slabBufs.Put(buf)
 		for {
-			s := int(next.Add(1) - 1)
-			if s >= slabs {
+			t := int(next.Add(1) - 1)
+			if t >= tasks {
 				return
 			}
-			j0 := s * nb
-			j1 := min(j0+nb, ohw)
-			w := j1 - j0
-			col := (*buf)[:kk*w]
-			for ch := 0; ch < cg; ch++ {
-				rows := kk / cg
-				if err := plan.Im2colCols(col[ch*rows*w:(ch+1)*rows*w], xg[ch*g.ih*g.iw:(ch+1)*g.ih*g.iw], j0, j1); err != nil {
-					mu.Lock()
+			if err := f(t); err != nil {
+				mu.Lock()
+				if firstErr == nil {
 					firstErr = err
-					mu.Unlock()
-					return
 				}
-			}
-			op.gemm1.Sgemm(false, false, mg, w, kk, 1, wg, kk, col, w, 0, yg[j0:], ohw)
-			if ep != nil {
-				sub := *ep
-				if sub.bias != nil {
-					sub.bias = sub.bias[mOff:]
-				}
-				sub.apply(yg, ohw, 0, mg, j0, j1)
+				mu.Unlock()
+				return
 			}
 		}
 	}
-	var wg2 sync.WaitGroup
-	for t := 1; t < workers; t++ {
-		wg2.Add(1)
+	var wg sync.WaitGroup
+	for w := 1; w < workers; w++ {
+		wg.Add(1)
 		go func() {
-			defer wg2.Done()
+			defer wg.Done()
 			work()
 		}()
 	}
 	work()
-	wg2.Wait()
+	wg.Wait()
 	return firstErr
+}
+
+// slabForward computes one image and group, Yg (mg×ohw) = Wg·col, by
+// slabs of columns: each goroutine claims the next slab, lowers it with
+// Im2colPanels straight into the GEMM's packed-panel layout in its own
+// cache-sized buffer, multiplies it with the single-threaded SgemmPanels
+// and applies the epilogue to it while it is hot. Both cores are busy on
+// every such convolution, the full column matrix (7 MiB for a 64-channel
+// 56×56 3×3 layer) is never written out, and no value is copied twice.
+func (op *convOp) slabForward(plan *kernel.Im2colPlan, xg []float32, cg int, g geom2, wg []float32, mg, kk int, yg []float32, ep *epilogue, mOff int) error {
+	ohw := g.oh * g.ow
+	nr := op.gemm1.PanelWidth()
+	nb := max(nr, min(512, slabFloats/kk/nr*nr))
+	ep = ep.forGroup(mOff)
+	return claimTasks((ohw+nb-1)/nb, func(s int) error {
+		j0 := s * nb
+		j1 := min(j0+nb, ohw)
+		w := j1 - j0
+		buf := poolBuf(&op.slabBufs, kk*((w+nr-1)/nr*nr))
+		defer op.slabBufs.Put(buf)
+		if err := plan.Im2colPanels(*buf, xg, cg, j0, j1, nr); err != nil {
+			return err
+		}
+		op.gemm1.SgemmPanels(mg, w, kk, wg, kk, *buf, yg[j0:], ohw)
+		ep.apply(yg, ohw, 0, mg, j0, j1)
+		return nil
+	})
+}
+
+// panelForward computes one image and group with few output positions
+// (N = OH·OW too small for slabs): the whole column matrix is lowered once
+// into packed panels, split over the cores by panel, and the product is
+// then split by blocks of output channels, each multiplied with
+// SgemmPanels and given its epilogue while hot. Lowering once matters
+// here: a GEMM that splits M packs its B operand once per block.
+func (op *convOp) panelForward(plan *kernel.Im2colPlan, xg []float32, cg int, g geom2, wg []float32, mg, kk int, yg []float32, ep *epilogue, mOff int) error {
+	ohw := g.oh * g.ow
+	nr := op.gemm1.PanelWidth()
+	mr, _ := op.gemm1.Tile()
+	np := (ohw + nr - 1) / nr
+	buf := poolBuf(&op.slabBufs, kk*np*nr)
+	defer op.slabBufs.Put(buf)
+	panels := *buf
+	// Fill: about 2 tasks per core, whole panels each.
+	fills := min(np, 2*runtime.GOMAXPROCS(0))
+	err := claimTasks(fills, func(t int) error {
+		q0, q1 := np*t/fills, np*(t+1)/fills
+		return plan.Im2colPanels(panels[q0*kk*nr:q1*kk*nr], xg, cg, q0*nr, min(q1*nr, ohw), nr)
+	})
+	if err != nil {
+		return err
+	}
+	ep = ep.forGroup(mOff)
+	tiles := (mg + mr - 1) / mr
+	blocks := min(tiles, 3*runtime.GOMAXPROCS(0))
+	return claimTasks(blocks, func(t int) error {
+		m0 := min(mg, tiles*t/blocks*mr)
+		m1 := min(mg, tiles*(t+1)/blocks*mr)
+		if m0 == m1 {
+			return nil
+		}
+		op.gemm1.SgemmPanels(m1-m0, ohw, kk, wg[m0*kk:], kk, panels, yg[m0*ohw:], ohw)
+		ep.apply(yg, ohw, m0, m1, 0, ohw)
+		return nil
+	})
 }
 
 // poolBuf returns a buffer of n floats from p; its contents are arbitrary.
