@@ -1,6 +1,9 @@
 package kernel
 
-import "fmt"
+import (
+	"fmt"
+	"math"
+)
 
 // Depthwise computes a depthwise convolution (ONNX Conv with group equal
 // to the input channel count C): each input channel c is convolved with
@@ -11,11 +14,204 @@ import "fmt"
 //
 // A depthwise filter has K = KH·KW ≤ 49 taps, so lowering it to a GEMM
 // gives matrices too thin for the packed kernels to pay back the im2col
-// copy. Instead each tap adds a scaled, shifted input row onto the output
-// row (unit-stride rows are contiguous loops the compiler keeps free of
-// bounds checks), using the plan's precomputed valid ranges for padding.
+// copy. Instead each input plane is first copied into a zero-padded
+// scratch plane (a few tens of KiB, cache resident), after which every
+// output row is the same branch-free loop over all its columns: the
+// padding costs one copy per plane instead of bounds bookkeeping per row
+// and tap, which dominated the previous row-wise loops at MobileNet's
+// 7–28-wide planes. See DepthwiseFused.
 func (p *Im2colPlan) Depthwise(dst, src, w []float32, multiplier int) error {
 	return p.DepthwiseRange(dst, src, w, multiplier, 0, p.g.C*multiplier)
+}
+
+// DepthwiseRange is Depthwise restricted to output channels [m0, m1), so
+// callers can split the channels over goroutines; the other output
+// channels are not touched. It allocates its scratch plane; repeated
+// callers use DepthwiseFused with their own.
+func (p *Im2colPlan) DepthwiseRange(dst, src, w []float32, multiplier, m0, m1 int) error {
+	return p.DepthwiseFused(dst, src, w, multiplier, m0, m1, nil, make([]float32, p.DepthwiseScratch()))
+}
+
+// DepthwiseEpilogue is applied to every depthwise output value as the
+// kernel writes it, so the output is written once:
+//
+//	v = min(Hi, max(Lo, v + Bias[m]))
+//
+// for output channel m (Bias indexed like dst's channels; nil adds
+// nothing). Lo = −Inf, Hi = +Inf is no activation, Lo = 0, Hi = +Inf is
+// ReLU, and finite bounds are Clip (ReLU6: 0, 6). A NaN v stays NaN, as
+// Go's min and max keep it.
+type DepthwiseEpilogue struct {
+	Bias   []float32
+	Lo, Hi float32
+}
+
+// Unclamped returns an epilogue that adds bias (which may be nil) and
+// clamps nothing.
+func Unclamped(bias []float32) DepthwiseEpilogue {
+	return DepthwiseEpilogue{Bias: bias, Lo: float32(math.Inf(-1)), Hi: float32(math.Inf(1))}
+}
+
+// dwSlack is how many floats past the last padded row the scratch holds:
+// the vector kernels load whole vectors (two per tap at stride 2) past a
+// row's end, and the lanes that read them are masked off at the store.
+const dwSlack = 128
+
+// dwLayout is the zero-padded scratch plane of one input channel: padded
+// row r, column c holds the image value at (r − top, c − left), or zero.
+// It has exactly the rows and columns the output reads, so an output
+// (oh, ow) at tap (kh, kw) reads padded (oh·sh + kh·dh, ow·sw + kw·dw).
+type dwLayout struct {
+	rows, pitch int
+	top, left   int
+	h, w        int // image size
+}
+
+func (l dwLayout) size() int { return l.rows*l.pitch + dwSlack }
+
+// fill copies an h×w image plane into its place in the padded plane. The
+// padding is never written, so it stays zero from one channel to the
+// next and scratch is cleared once per call.
+func (l dwLayout) fill(scr, plane []float32) {
+	nr := min(l.h, l.rows-l.top)
+	nc := min(l.w, l.pitch-l.left)
+	if nc <= 0 {
+		return
+	}
+	for i := 0; i < nr; i++ {
+		d := scr[(i+l.top)*l.pitch+l.left:]
+		copy(d[:nc], plane[i*l.w:i*l.w+nc])
+	}
+}
+
+// dwArgs is the geometry one plane kernel sees: a KH×KW filter with
+// strides and dilations over a padded plane pitch floats wide, giving
+// oh×ow outputs.
+type dwArgs struct {
+	kh, kw, sh, sw, dh, dw int
+	oh, ow, pitch          int
+}
+
+// forwardLayout is the padded plane of the forward pass.
+func (p *Im2colPlan) forwardLayout() (dwLayout, dwArgs) {
+	g := p.g
+	l := dwLayout{
+		rows:  (p.oh-1)*g.StrideH + (g.KH-1)*g.DilationH + 1,
+		pitch: (p.ow-1)*g.StrideW + (g.KW-1)*g.DilationW + 1,
+		top:   g.PadTop, left: g.PadLeft, h: g.H, w: g.W,
+	}
+	return l, dwArgs{g.KH, g.KW, g.StrideH, g.StrideW, g.DilationH, g.DilationW, p.oh, p.ow, l.pitch}
+}
+
+// DepthwiseScratch returns how many floats of scratch DepthwiseFused
+// needs.
+func (p *Im2colPlan) DepthwiseScratch() int {
+	l, _ := p.forwardLayout()
+	return l.size()
+}
+
+// DepthwiseFused is DepthwiseRange with the epilogue ep (nil for none)
+// applied as each output row is written, and caller-owned scratch of at
+// least DepthwiseScratch() floats (its contents are ignored), so a caller
+// running many planes allocates nothing.
+//
+// Each input plane is copied once into the zero-padded scratch plane and
+// each output plane is then one kernel call: on amd64 with AVX-512F or
+// AVX2+FMA, 3×3 and 5×5 filters at stride 1 and 2 (the depthwise shapes
+// of MobileNetV2/V3 and EfficientNet) run generated vector kernels that
+// keep the filter, bias and bounds in registers and store each output
+// vector once (partial vectors under a mask); every other shape, and
+// every shape off amd64 or on a plan from PortableLoops, runs the
+// pure-Go loop over the same layout.
+func (p *Im2colPlan) DepthwiseFused(dst, src, w []float32, multiplier, m0, m1 int, ep *DepthwiseEpilogue, scratch []float32) error {
+	isa := ISAAuto
+	if p.portable {
+		isa = ISAPortable
+	}
+	return p.depthwiseFused(isa, dst, src, w, multiplier, m0, m1, ep, scratch)
+}
+
+func (p *Im2colPlan) depthwiseFused(isa ISA, dst, src, w []float32, multiplier, m0, m1 int, ep *DepthwiseEpilogue, scratch []float32) error {
+	if err := p.checkDepthwise(dst, src, w, multiplier, m0, m1, true); err != nil {
+		return err
+	}
+	if ep != nil && ep.Bias != nil && len(ep.Bias) < m1 {
+		return fmt.Errorf("kernel: depthwise bias has %d values, want at least %d", len(ep.Bias), m1)
+	}
+	l, a := p.forwardLayout()
+	if len(scratch) < l.size() {
+		return fmt.Errorf("kernel: depthwise scratch has %d values, want %d", len(scratch), l.size())
+	}
+	scr := scratch[:l.size()]
+	clear(scr)
+	g := p.g
+	hw, ohw, taps := g.H*g.W, p.oh*p.ow, g.KH*g.KW
+	par := [3]float32{0, float32(math.Inf(-1)), float32(math.Inf(1))}
+	if ep != nil {
+		par[1], par[2] = ep.Lo, ep.Hi
+	}
+	last := -1
+	for mo := m0; mo < m1; mo++ {
+		if ch := mo / multiplier; ch != last {
+			l.fill(scr, src[ch*hw:(ch+1)*hw])
+			last = ch
+		}
+		if ep != nil && ep.Bias != nil {
+			par[0] = ep.Bias[mo]
+		}
+		dwPlane(isa, &a, dst[mo*ohw:(mo+1)*ohw], scr, w[mo*taps:(mo+1)*taps], &par, false)
+	}
+	return nil
+}
+
+// dwPlane computes one output plane from a padded plane with the vector
+// kernel for isa when there is one for the shape, else in Go. par is
+// {bias, lo, hi}; with accum the output is added to instead of starting
+// from the bias.
+func dwPlane(isa ISA, a *dwArgs, out, scr, filt []float32, par *[3]float32, accum bool) {
+	if isa != ISAPortable && dwPlaneSIMD(isa, a, out, scr, filt, par, accum) {
+		return
+	}
+	dwPlaneGo(a, out, scr, filt, par, accum)
+}
+
+// dwPlaneGo is the pure-Go plane loop: tap by tap, each output row gets a
+// scaled input row added (unit-stride rows are contiguous loops the
+// compiler keeps free of bounds checks), then the clamp.
+func dwPlaneGo(a *dwArgs, out, scr, filt []float32, par *[3]float32, accum bool) {
+	bias, lo, hi := par[0], par[1], par[2]
+	clamp := !math.IsInf(float64(lo), -1) || !math.IsInf(float64(hi), 1)
+	for r := 0; r < a.oh; r++ {
+		o := out[r*a.ow : (r+1)*a.ow]
+		if !accum {
+			for j := range o {
+				o[j] = bias
+			}
+		}
+		for kh := 0; kh < a.kh; kh++ {
+			base := (r*a.sh + kh*a.dh) * a.pitch
+			for kw := 0; kw < a.kw; kw++ {
+				wv := filt[kh*a.kw+kw]
+				off := base + kw*a.dw
+				if a.sw == 1 {
+					in := scr[off : off+len(o)]
+					for j := range o {
+						o[j] += wv * in[j]
+					}
+					continue
+				}
+				in := scr[off : off+(len(o)-1)*a.sw+1]
+				for j := range o {
+					o[j] += wv * in[j*a.sw]
+				}
+			}
+		}
+		if clamp {
+			for j, v := range o {
+				o[j] = min(hi, max(lo, v))
+			}
+		}
+	}
 }
 
 func (p *Im2colPlan) checkDepthwise(dst, src, w []float32, multiplier, m0, m1 int, needSrc bool) error {
@@ -39,198 +235,180 @@ func (p *Im2colPlan) checkDepthwise(dst, src, w []float32, multiplier, m0, m1 in
 	return nil
 }
 
-// DepthwiseRange is Depthwise restricted to output channels [m0, m1), so
-// callers can split the channels over goroutines; the other output
-// channels are not touched.
-func (p *Im2colPlan) DepthwiseRange(dst, src, w []float32, multiplier, m0, m1 int) error {
-	if err := p.checkDepthwise(dst, src, w, multiplier, m0, m1, true); err != nil {
-		return err
-	}
+// backwardLayout is the padded plane of the input gradient: the output
+// gradient dy spread out by the strides (zeros between) and padded so
+// that the input gradient is a stride-1 convolution of it with the
+// flipped filter,
+//
+//	dx[ih, iw] = Σ_{kh,kw} w[KH−1−kh, KW−1−kw]·U[ih + kh·dh, iw + kw·dw]
+//
+// with U[oh·sh + (KH−1)·dh − PadTop, ow·sw + (KW−1)·dw − PadLeft] =
+// dy[oh, ow] (the transposed convolution of Dumoulin & Visin, "A guide to
+// convolution arithmetic for deep learning", arXiv:1603.07285, §4). The
+// stride-2 spread costs 4× the multiply-adds on zeros, but every plane
+// then runs the same vector kernels as the forward pass.
+func (p *Im2colPlan) backwardLayout() (dwLayout, dwArgs) {
 	g := p.g
-	ohw := p.oh * p.ow
-	taps := g.KH * g.KW
-	for mo := m0; mo < m1; mo++ {
-		plane := src[(mo/multiplier)*g.H*g.W : (mo/multiplier+1)*g.H*g.W]
-		out := dst[mo*ohw : (mo+1)*ohw]
-		clear(out)
-		filt := w[mo*taps : (mo+1)*taps]
-		if g.KW == 3 {
-			p.depthwiseRow3(out, plane, filt)
+	l := dwLayout{
+		rows:  g.H + (g.KH-1)*g.DilationH,
+		pitch: g.W + (g.KW-1)*g.DilationW,
+		top:   (g.KH-1)*g.DilationH - g.PadTop,
+		left:  (g.KW-1)*g.DilationW - g.PadLeft,
+		h:     p.oh, w: p.ow,
+	}
+	return l, dwArgs{g.KH, g.KW, 1, 1, g.DilationH, g.DilationW, g.H, g.W, l.pitch}
+}
+
+// spread writes the output-gradient plane dy into U (see backwardLayout).
+// Positions outside U are outputs whose taps all fall in the padding.
+func (p *Im2colPlan) spread(l dwLayout, scr, dy []float32) {
+	g := p.g
+	for oh := 0; oh < p.oh; oh++ {
+		y := oh*g.StrideH + l.top
+		if y < 0 || y >= l.rows {
 			continue
 		}
-		for kh := 0; kh < g.KH; kh++ {
-			for kw := 0; kw < g.KW; kw++ {
-				wv := filt[kh*g.KW+kw]
-				owLo, owHi := p.owLo[kw], p.owHi[kw]
-				if owLo == owHi {
-					continue
-				}
-				for oh := p.ohLo[kh]; oh < p.ohHi[kh]; oh++ {
-					ih := oh*g.StrideH - g.PadTop + kh*g.DilationH
-					iw0 := owLo*g.StrideW - g.PadLeft + kw*g.DilationW
-					o := out[oh*p.ow+owLo : oh*p.ow+owHi]
-					if g.StrideW == 1 {
-						in := plane[ih*g.W+iw0 : ih*g.W+iw0+len(o)]
-						for j := range o {
-							o[j] += wv * in[j]
-						}
-						continue
-					}
-					in := plane[ih*g.W:]
-					iw := iw0
-					for j := range o {
-						o[j] += wv * in[iw]
-						iw += g.StrideW
-					}
-				}
-			}
+		// Output columns whose spread column x = ow·sw + left is in [0, pitch).
+		ow0 := 0
+		if l.left < 0 {
+			ow0 = (-l.left + g.StrideW - 1) / g.StrideW
+		}
+		ow1 := min(p.ow, (l.pitch-1-l.left)/g.StrideW+1)
+		if l.pitch-1-l.left < 0 {
+			ow1 = 0
+		}
+		if ow0 >= ow1 {
+			continue
+		}
+		row := scr[y*l.pitch : (y+1)*l.pitch]
+		src := dy[oh*p.ow+ow0 : oh*p.ow+ow1]
+		x := ow0*g.StrideW + l.left
+		if g.StrideW == 1 {
+			copy(row[x:x+len(src)], src)
+			continue
+		}
+		d := row[x : x+(len(src)-1)*g.StrideW+1]
+		for j, v := range src {
+			d[j*g.StrideW] = v
 		}
 	}
-	return nil
+}
+
+// DepthwiseBackwardScratch returns how many floats of scratch
+// DepthwiseBackwardInto needs.
+func (p *Im2colPlan) DepthwiseBackwardScratch() int {
+	lb, _ := p.backwardLayout()
+	lf, _ := p.forwardLayout()
+	return lb.size() + lf.size() + p.g.KH*p.g.KW
 }
 
 // DepthwiseBackward accumulates the gradients of a depthwise convolution
 // for input channels [c0, c1) (and their output channels): dsrc += the
 // input gradient and dw += the filter gradient, given the output gradient
 // dy. Either of dsrc and dw may be nil to skip it; src is read only for
-// dw. It is the adjoint of
-// DepthwiseRange tap by tap: every forward row update o += w·in becomes
-// din += w·dout and dw += dout·in over the same valid ranges, so the
-// padding logic is shared with the forward pass.
+// dw. It allocates its scratch; see DepthwiseBackwardInto.
 func (p *Im2colPlan) DepthwiseBackward(dsrc, dw, dy, src, w []float32, multiplier, c0, c1 int) error {
-	if c0 < 0 || c1 > p.g.C || c0 > c1 {
-		return fmt.Errorf("kernel: depthwise backward channel range [%d, %d) outside [0, %d)", c0, c1, p.g.C)
+	return p.DepthwiseBackwardInto(dsrc, dw, dy, src, w, multiplier, c0, c1, make([]float32, p.DepthwiseBackwardScratch()))
+}
+
+// DepthwiseBackwardInto is DepthwiseBackward with caller-owned scratch of
+// at least DepthwiseBackwardScratch() floats.
+//
+// The input gradient is the stride-1 convolution of the spread, padded dy
+// with the flipped filter (see backwardLayout), so it runs on the forward
+// kernels, accumulating into dsrc. The filter gradient is
+// dw[kh, kw] = Σ dy[oh, ow]·x[oh·sh + kh·dh − PadTop, ow·sw + kw·dw − PadLeft],
+// one dot product per tap and output row over the zero-padded input
+// plane of the forward pass.
+func (p *Im2colPlan) DepthwiseBackwardInto(dsrc, dw, dy, src, w []float32, multiplier, c0, c1 int, scratch []float32) error {
+	isa := ISAAuto
+	if p.portable {
+		isa = ISAPortable
+	}
+	return p.depthwiseBackward(isa, dsrc, dw, dy, src, w, multiplier, c0, c1, scratch)
+}
+
+func (p *Im2colPlan) depthwiseBackward(isa ISA, dsrc, dw, dy, src, w []float32, multiplier, c0, c1 int, scratch []float32) error {
+	g := p.g
+	if c0 < 0 || c1 > g.C || c0 > c1 {
+		return fmt.Errorf("kernel: depthwise backward channel range [%d, %d) outside [0, %d)", c0, c1, g.C)
 	}
 	if err := p.checkDepthwise(dy, src, w, multiplier, c0*multiplier, c1*multiplier, dw != nil); err != nil {
 		return err
 	}
-	g := p.g
-	ohw := p.oh * p.ow
-	taps := g.KH * g.KW
-	if dsrc != nil && len(dsrc) < g.C*g.H*g.W {
-		return fmt.Errorf("kernel: depthwise input gradient has %d values, want %d", len(dsrc), g.C*g.H*g.W)
+	hw, ohw, taps := g.H*g.W, p.oh*p.ow, g.KH*g.KW
+	if dsrc != nil && len(dsrc) < g.C*hw {
+		return fmt.Errorf("kernel: depthwise input gradient has %d values, want %d", len(dsrc), g.C*hw)
 	}
 	if dw != nil && len(dw) < g.C*multiplier*taps {
 		return fmt.Errorf("kernel: depthwise filter gradient has %d values, want %d", len(dw), g.C*multiplier*taps)
 	}
-	for mo := c0 * multiplier; mo < c1*multiplier; mo++ {
-		ch := mo / multiplier
-		gy := dy[mo*ohw : (mo+1)*ohw]
-		filt := w[mo*taps : (mo+1)*taps]
-		var plane, dplane, dfilt []float32
+	if len(scratch) < p.DepthwiseBackwardScratch() {
+		return fmt.Errorf("kernel: depthwise backward scratch has %d values, want %d", len(scratch), p.DepthwiseBackwardScratch())
+	}
+	lb, ab := p.backwardLayout()
+	lf, af := p.forwardLayout()
+	u := scratch[:lb.size()]
+	xs := scratch[lb.size() : lb.size()+lf.size()]
+	flip := scratch[lb.size()+lf.size() : lb.size()+lf.size()+taps]
+	if dsrc != nil {
+		clear(u)
+	}
+	if dw != nil {
+		clear(xs)
+	}
+	par := [3]float32{0, float32(math.Inf(-1)), float32(math.Inf(1))}
+	for ch := c0; ch < c1; ch++ {
 		if dw != nil {
-			plane = src[ch*g.H*g.W : (ch+1)*g.H*g.W]
-			dfilt = dw[mo*taps : (mo+1)*taps]
+			lf.fill(xs, src[ch*hw:(ch+1)*hw])
 		}
-		if dsrc != nil {
-			dplane = dsrc[ch*g.H*g.W : (ch+1)*g.H*g.W]
-		}
-		for kh := 0; kh < g.KH; kh++ {
-			for kw := 0; kw < g.KW; kw++ {
-				wv := filt[kh*g.KW+kw]
-				owLo, owHi := p.owLo[kw], p.owHi[kw]
-				if owLo == owHi {
-					continue
+		for mo := ch * multiplier; mo < (ch+1)*multiplier; mo++ {
+			gy := dy[mo*ohw : (mo+1)*ohw]
+			filt := w[mo*taps : (mo+1)*taps]
+			if dsrc != nil {
+				p.spread(lb, u, gy)
+				for t := range flip {
+					flip[t] = filt[taps-1-t]
 				}
-				var acc float32
-				for oh := p.ohLo[kh]; oh < p.ohHi[kh]; oh++ {
-					ih := oh*g.StrideH - g.PadTop + kh*g.DilationH
-					iw0 := owLo*g.StrideW - g.PadLeft + kw*g.DilationW
-					o := gy[oh*p.ow+owLo : oh*p.ow+owHi]
-					if g.StrideW == 1 {
-						if dplane != nil {
-							d := dplane[ih*g.W+iw0 : ih*g.W+iw0+len(o)]
-							for j, v := range o {
-								d[j] += wv * v
-							}
-						}
-						if plane != nil {
-							in := plane[ih*g.W+iw0 : ih*g.W+iw0+len(o)]
-							for j, v := range o {
-								acc += v * in[j]
-							}
-						}
-						continue
-					}
-					iw := iw0
-					row := ih * g.W
-					for _, v := range o {
-						if dplane != nil {
-							dplane[row+iw] += wv * v
-						}
-						if plane != nil {
-							acc += v * plane[row+iw]
-						}
-						iw += g.StrideW
-					}
-				}
-				if dfilt != nil {
-					dfilt[kh*g.KW+kw] += acc
-				}
+				dwPlane(isa, &ab, dsrc[ch*hw:(ch+1)*hw], u, flip, &par, true)
+			}
+			if dw != nil {
+				dwFilterGrad(&af, dw[mo*taps:(mo+1)*taps], gy, xs)
 			}
 		}
 	}
 	return nil
 }
 
-// depthwiseRow3 is the forward loop for three-tap-wide filters (3×3, the
-// depthwise shape of MobileNet-style networks): on the output columns
-// where all three taps of a filter row fall inside the image, the three
-// products are summed before the output is updated, so each output value
-// is loaded and stored once per filter row instead of once per tap. The
-// few border columns take the tap-by-tap path.
-func (p *Im2colPlan) depthwiseRow3(out, plane, filt []float32) {
-	g := p.g
-	a := max(p.owLo[0], p.owLo[1], p.owLo[2])
-	b := min(p.owHi[0], p.owHi[1], p.owHi[2])
-	if a > b {
-		a, b = 0, 0 // no common interior: every column takes the tap path
-	}
-	sw, dw := g.StrideW, g.DilationW
-	for kh := 0; kh < g.KH; kh++ {
-		w0, w1, w2 := filt[kh*3], filt[kh*3+1], filt[kh*3+2]
-		for oh := p.ohLo[kh]; oh < p.ohHi[kh]; oh++ {
-			ih := oh*g.StrideH - g.PadTop + kh*g.DilationH
-			row := plane[ih*g.W : (ih+1)*g.W]
-			o := out[oh*p.ow : (oh+1)*p.ow]
-			for kw := 0; kw < 3; kw++ {
-				wv := filt[kh*3+kw]
-				for _, r := range [2][2]int{{p.owLo[kw], min(a, p.owHi[kw])}, {max(b, p.owLo[kw]), p.owHi[kw]}} {
-					iw := r[0]*sw - g.PadLeft + kw*dw
-					for ow := r[0]; ow < r[1]; ow++ {
-						o[ow] += wv * row[iw]
-						iw += sw
+// dwFilterGrad adds the filter gradient of one plane: for each tap, the
+// dot product of dy with the input values that tap read.
+func dwFilterGrad(a *dwArgs, dfilt, dy, xs []float32) {
+	for kh := 0; kh < a.kh; kh++ {
+		for kw := 0; kw < a.kw; kw++ {
+			var acc float32
+			for r := 0; r < a.oh; r++ {
+				gy := dy[r*a.ow : (r+1)*a.ow]
+				off := (r*a.sh+kh*a.dh)*a.pitch + kw*a.dw
+				if a.sw == 1 {
+					in := xs[off : off+len(gy)]
+					var s0, s1 float32
+					j := 0
+					for ; j+1 < len(gy); j += 2 {
+						s0 += gy[j] * in[j]
+						s1 += gy[j+1] * in[j+1]
 					}
-				}
-			}
-			if a == b {
-				continue
-			}
-			iw := a*sw - g.PadLeft
-			if sw == 1 && dw == 1 {
-				oi := o[a:b]
-				in := row[iw : iw+len(oi)+2]
-				if p.portable {
-					row3Go(oi, in, w0, w1, w2)
+					if j < len(gy) {
+						s0 += gy[j] * in[j]
+					}
+					acc += s0 + s1
 					continue
 				}
-				done := row3SIMD(oi, in, w0, w1, w2)
-				row3Go(oi[done:], in[done:], w0, w1, w2)
-				continue
+				in := xs[off : off+(len(gy)-1)*a.sw+1]
+				for j, v := range gy {
+					acc += v * in[j*a.sw]
+				}
 			}
-			for ow := a; ow < b; ow++ {
-				o[ow] += w0*row[iw] + w1*row[iw+dw] + w2*row[iw+2*dw]
-				iw += sw
-			}
+			dfilt[kh*a.kw+kw] += acc
 		}
-	}
-}
-
-// row3Go is the portable unit-stride three-tap row loop; in holds
-// len(o)+2 values.
-func row3Go(o, in []float32, w0, w1, w2 float32) {
-	in = in[:len(o)+2]
-	for j := range o {
-		o[j] += w0*in[j] + w1*in[j+1] + w2*in[j+2]
 	}
 }

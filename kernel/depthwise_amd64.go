@@ -2,28 +2,80 @@ package kernel
 
 import "golang.org/x/sys/cpu"
 
-// row3SIMD runs the vector part of a unit-stride three-tap row,
-// o[j] += w0·in[j] + w1·in[j+1] + w2·in[j+2], and returns how many leading
-// values of o it did (0 when the CPU has neither AVX-512F nor AVX2+FMA).
-// in must hold len(o)+2 values.
-func row3SIMD(o, in []float32, w0, w1, w2 float32) int {
-	n := len(o)
-	if n == 0 || len(in) < n+2 {
-		return 0
+// dwTailMasks gives the AVX2 kernels their partial-vector store masks:
+// &dwTailMasks[8-t] is 8 lane masks with the first t lanes set.
+var dwTailMasks = [16]int32{-1, -1, -1, -1, -1, -1, -1, -1}
+
+// dwPlaneSIMD runs the generated kernel for a K×K filter (K = 3, 5) with
+// unit dilation and equal strides of 1 or 2, when isa (ISAAuto: the best
+// the CPU has) provides one. It reports false, having done nothing, for
+// every other shape or when out, scr or filt are too short for the
+// kernel's reads and writes (the caller's Go loop then does the plane).
+func dwPlaneSIMD(isa ISA, a *dwArgs, out, scr, filt []float32, par *[3]float32, accum bool) bool {
+	k, s := a.kh, a.sh
+	if a.kw != k || a.sw != s || a.dh != 1 || a.dw != 1 || (k != 3 && k != 5) || (s != 1 && s != 2) || a.oh <= 0 || a.ow <= 0 {
+		return false
 	}
+	if isa == ISAAuto {
+		switch {
+		case cpu.X86.HasAVX512F:
+			isa = ISAAVX512
+		case cpu.X86.HasAVX2 && cpu.X86.HasFMA:
+			isa = ISAAVX2
+		default:
+			return false
+		}
+	}
+	width := 16
+	switch isa {
+	case ISAAVX512:
+		if !cpu.X86.HasAVX512F {
+			return false
+		}
+	case ISAAVX2:
+		if !cpu.X86.HasAVX2 || !cpu.X86.HasFMA {
+			return false
+		}
+		width = 8
+	default:
+		return false
+	}
+	// Furthest float read: the last row's last tap row, plus the whole
+	// vectors (two per tap at stride 2) of the last, rounded-up column
+	// block.
+	vecs := (a.ow + width - 1) / width
+	reach := ((a.oh-1)*s+k-1)*a.pitch + s*vecs*width + 2*width + k
+	if len(scr) < reach || len(out) < a.oh*a.ow || len(filt) < k*k {
+		return false
+	}
+	tail := a.ow % width
+	o, sp, w, ep := &out[0], &scr[0], &filt[0], &par[0]
+	acc := b2i(accum)
+	spitch, rowstep := 4*s*a.pitch, 4*a.pitch
+	if isa == ISAAVX512 {
+		mask := 1<<tail - 1
+		switch {
+		case k == 3 && s == 1:
+			dwK3S1AVX512(o, sp, w, ep, a.oh, a.ow, spitch, rowstep, acc, mask)
+		case k == 3 && s == 2:
+			dwK3S2AVX512(o, sp, w, ep, a.oh, a.ow, spitch, rowstep, acc, mask)
+		case k == 5 && s == 1:
+			dwK5S1AVX512(o, sp, w, ep, a.oh, a.ow, spitch, rowstep, acc, mask)
+		default:
+			dwK5S2AVX512(o, sp, w, ep, a.oh, a.ow, spitch, rowstep, acc, mask)
+		}
+		return true
+	}
+	mask := &dwTailMasks[8-tail]
 	switch {
-	case cpu.X86.HasAVX512F:
-		n &^= 15
-		if n > 0 {
-			dwRow3AVX512(n, &o[0], &in[0], w0, w1, w2)
-		}
-		return n
-	case cpu.X86.HasAVX2 && cpu.X86.HasFMA:
-		n &^= 7
-		if n > 0 {
-			dwRow3AVX2(n, &o[0], &in[0], w0, w1, w2)
-		}
-		return n
+	case k == 3 && s == 1:
+		dwK3S1AVX2(o, sp, w, ep, a.oh, a.ow, spitch, rowstep, acc, mask)
+	case k == 3 && s == 2:
+		dwK3S2AVX2(o, sp, w, ep, a.oh, a.ow, spitch, rowstep, acc, mask)
+	case k == 5 && s == 1:
+		dwK5S1AVX2(o, sp, w, ep, a.oh, a.ow, spitch, rowstep, acc, mask)
+	default:
+		dwK5S2AVX2(o, sp, w, ep, a.oh, a.ow, spitch, rowstep, acc, mask)
 	}
-	return 0
+	return true
 }

@@ -2,5 +2,7 @@
 
 package kernel
 
-// row3SIMD: no vector path off amd64; the caller's Go loop does every value.
-func row3SIMD(o, in []float32, w0, w1, w2 float32) int { return 0 }
+// dwPlaneSIMD: no vector kernels off amd64; the Go loop does every plane.
+func dwPlaneSIMD(isa ISA, a *dwArgs, out, scr, filt []float32, par *[3]float32, accum bool) bool {
+	return false
+}

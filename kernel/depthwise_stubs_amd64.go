@@ -2,12 +2,42 @@
 
 package kernel
 
-// dwRow3AVX512 adds w0·in[j]+w1·in[j+1]+w2·in[j+2] onto o[j] for j < n rounded down to 16.
+// dwK3S1AVX512 computes rows×ow outputs of a 3×3 stride-1 depthwise filter from a zero-padded plane, with the bias (or accumulation) and clamp fused; mask holds the tail's k-register bits.
 //
 //go:noescape
-func dwRow3AVX512(n int, o *float32, in *float32, w0 float32, w1 float32, w2 float32)
+func dwK3S1AVX512(o *float32, s *float32, w *float32, ep *float32, rows int, ow int, spitch int, rowstep int, accum int, mask int)
 
-// dwRow3AVX2 adds w0·in[j]+w1·in[j+1]+w2·in[j+2] onto o[j] for j < n rounded down to 8.
+// dwK3S1AVX2 computes rows×ow outputs of a 3×3 stride-1 depthwise filter from a zero-padded plane, with the bias (or accumulation) and clamp fused; mask points to the tail's 8 lane masks.
 //
 //go:noescape
-func dwRow3AVX2(n int, o *float32, in *float32, w0 float32, w1 float32, w2 float32)
+func dwK3S1AVX2(o *float32, s *float32, w *float32, ep *float32, rows int, ow int, spitch int, rowstep int, accum int, mask *int32)
+
+// dwK3S2AVX512 computes rows×ow outputs of a 3×3 stride-2 depthwise filter from a zero-padded plane, with the bias (or accumulation) and clamp fused; mask holds the tail's k-register bits.
+//
+//go:noescape
+func dwK3S2AVX512(o *float32, s *float32, w *float32, ep *float32, rows int, ow int, spitch int, rowstep int, accum int, mask int)
+
+// dwK3S2AVX2 computes rows×ow outputs of a 3×3 stride-2 depthwise filter from a zero-padded plane, with the bias (or accumulation) and clamp fused; mask points to the tail's 8 lane masks.
+//
+//go:noescape
+func dwK3S2AVX2(o *float32, s *float32, w *float32, ep *float32, rows int, ow int, spitch int, rowstep int, accum int, mask *int32)
+
+// dwK5S1AVX512 computes rows×ow outputs of a 5×5 stride-1 depthwise filter from a zero-padded plane, with the bias (or accumulation) and clamp fused; mask holds the tail's k-register bits.
+//
+//go:noescape
+func dwK5S1AVX512(o *float32, s *float32, w *float32, ep *float32, rows int, ow int, spitch int, rowstep int, accum int, mask int)
+
+// dwK5S1AVX2 computes rows×ow outputs of a 5×5 stride-1 depthwise filter from a zero-padded plane, with the bias (or accumulation) and clamp fused; mask points to the tail's 8 lane masks.
+//
+//go:noescape
+func dwK5S1AVX2(o *float32, s *float32, w *float32, ep *float32, rows int, ow int, spitch int, rowstep int, accum int, mask *int32)
+
+// dwK5S2AVX512 computes rows×ow outputs of a 5×5 stride-2 depthwise filter from a zero-padded plane, with the bias (or accumulation) and clamp fused; mask holds the tail's k-register bits.
+//
+//go:noescape
+func dwK5S2AVX512(o *float32, s *float32, w *float32, ep *float32, rows int, ow int, spitch int, rowstep int, accum int, mask int)
+
+// dwK5S2AVX2 computes rows×ow outputs of a 5×5 stride-2 depthwise filter from a zero-padded plane, with the bias (or accumulation) and clamp fused; mask points to the tail's 8 lane masks.
+//
+//go:noescape
+func dwK5S2AVX2(o *float32, s *float32, w *float32, ep *float32, rows int, ow int, spitch int, rowstep int, accum int, mask *int32)

@@ -86,48 +86,6 @@ func genGEMM(zmm, ymm []reg.VecPhysical) {
 	genPeak("fmaPeakAVX2", ymm, 12)
 }
 
-// genDepthwise emits the depthwise-convolution row loops.
-func genDepthwise(zmm, ymm []reg.VecPhysical) {
-	genRow3("dwRow3AVX512", zmm, 16)
-	genRow3("dwRow3AVX2", ymm, 8)
-}
-
-// genRow3 emits the inner loop of a three-tap depthwise filter row with
-// unit stride and dilation: o[j] += w0·in[j] + w1·in[j+1] + w2·in[j+2] for
-// the first n/width·width values of o (the caller finishes the rest). Each
-// output vector is loaded and stored once and takes three FMAs with
-// unaligned loads of the shifted input; in must hold n+2 values.
-func genRow3(name string, vec []reg.VecPhysical, width int) {
-	TEXT(name, NOSPLIT, "func(n int, o, in *float32, w0, w1, w2 float32)")
-	Doc(fmt.Sprintf("%s adds w0·in[j]+w1·in[j+1]+w2·in[j+2] onto o[j] for j < n rounded down to %d.", name, width))
-	Pragma("noescape")
-	n := Load(Param("n"), GP64())
-	o := Load(Param("o"), GP64())
-	in := Load(Param("in"), GP64())
-	w := vec[0:3]
-	acc := vec[3]
-	for i, p := range []string{"w0", "w1", "w2"} {
-		m, err := Param(p).Resolve()
-		check(err)
-		VBROADCASTSS(m.Addr, w[i])
-	}
-	Label(name + "_loop")
-	CMPQ(n, Imm(uint64(width)))
-	JL(LabelRef(name + "_done"))
-	VMOVUPS(Mem{Base: o}, acc)
-	VFMADD231PS(Mem{Base: in}, w[0], acc)
-	VFMADD231PS(Mem{Base: in, Disp: 4}, w[1], acc)
-	VFMADD231PS(Mem{Base: in, Disp: 8}, w[2], acc)
-	VMOVUPS(acc, Mem{Base: o})
-	ADDQ(U32(4*width), o)
-	ADDQ(U32(4*width), in)
-	SUBQ(Imm(uint64(width)), n)
-	JMP(LabelRef(name + "_loop"))
-	Label(name + "_done")
-	VZEROUPPER()
-	RET()
-}
-
 // genPeak emits a loop of n·acc independent register FMAs with no memory
 // traffic: the machine's attainable FMA rate at the moment, against which
 // the benchmarks report the micro-kernels (useful on a shared machine,

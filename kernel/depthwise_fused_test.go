@@ -1,0 +1,258 @@
+package kernel_test
+
+import (
+	"fmt"
+	"math"
+	"math/rand/v2"
+	"testing"
+
+	"heedmap/kernel"
+)
+
+// dwISAs are the paths every depthwise test runs: the pure-Go loop
+// always, and each vector ISA the CPU has.
+func dwISAs() []kernel.ISA {
+	isas := []kernel.ISA{kernel.ISAPortable}
+	for _, isa := range []kernel.ISA{kernel.ISAAVX2, kernel.ISAAVX512} {
+		if kernel.Supported(isa) {
+			isas = append(isas, isa)
+		}
+	}
+	return isas
+}
+
+// dwKernelCases covers the shapes with vector kernels (3×3 and 5×5 at
+// strides 1 and 2, MobileNet/EfficientNet's "same" padding and others)
+// at widths that leave every tail length of 8- and 16-lane vectors
+// (1…17, 31, 33, 56 columns of output), plus shapes that take the
+// generic loop (dilation, unequal strides, 7×7, 1×3).
+func dwKernelCases() []dwCase {
+	var cs []dwCase
+	for _, k := range []int{3, 5} {
+		p := k / 2
+		for _, s := range []int{1, 2} {
+			for _, w := range []int{1, 2, 5, 7, 8, 9, 14, 15, 16, 17, 31, 33, 56, 57} {
+				h := 3 + w%5
+				cs = append(cs, dwCase{2, h, w, 1, kernel.Conv2D{KH: k, KW: k, StrideH: s, StrideW: s, PadTop: p, PadLeft: p, PadBottom: p, PadRight: p}})
+			}
+			// No padding, asymmetric padding (TF "same" at stride 2 pads
+			// after), and multiplier 2.
+			cs = append(cs,
+				dwCase{3, 12, 19, 1, kernel.Conv2D{KH: k, KW: k, StrideH: s, StrideW: s}},
+				dwCase{3, 11, 20, 1, kernel.Conv2D{KH: k, KW: k, StrideH: s, StrideW: s, PadTop: p - 1 + s%2, PadLeft: p - 1 + s%2, PadBottom: p, PadRight: p}},
+				dwCase{2, 9, 23, 2, kernel.Conv2D{KH: k, KW: k, StrideH: s, StrideW: s, PadTop: p, PadLeft: p, PadBottom: p, PadRight: p}},
+			)
+		}
+	}
+	return append(cs,
+		dwCase{2, 10, 13, 1, kernel.Conv2D{KH: 3, KW: 3, DilationH: 2, DilationW: 2, PadTop: 2, PadLeft: 2, PadBottom: 2, PadRight: 2}},
+		dwCase{2, 10, 13, 1, kernel.Conv2D{KH: 3, KW: 3, StrideH: 1, StrideW: 2, PadTop: 1, PadLeft: 1, PadBottom: 1, PadRight: 1}},
+		dwCase{2, 16, 18, 1, kernel.Conv2D{KH: 7, KW: 7, StrideH: 2, StrideW: 2, PadTop: 3, PadLeft: 3, PadBottom: 3, PadRight: 3}},
+		dwCase{3, 7, 8, 1, kernel.Conv2D{KH: 1, KW: 3, PadLeft: 1, PadRight: 1}},
+		dwCase{1, 3, 3, 1, kernel.Conv2D{KH: 5, KW: 5, PadTop: 3, PadLeft: 3, PadBottom: 3, PadRight: 3}}, // pads beyond the filter
+	)
+}
+
+// dwEpilogues are the fused epilogues as the ONNX operators define them
+// (Relu: max(0, x); Clip: min(max, max(min, x)); MobileNetV2's ReLU6 is
+// Clip(0, 6)), applied after the bias of Conv.
+var dwEpilogues = []struct {
+	name   string
+	bias   bool
+	lo, hi float32
+}{
+	{"none", false, float32(math.Inf(-1)), float32(math.Inf(1))},
+	{"bias", true, float32(math.Inf(-1)), float32(math.Inf(1))},
+	{"bias+relu", true, 0, float32(math.Inf(1))},
+	{"relu6", false, 0, 6},
+	{"bias+clip", true, -0.5, 0.75},
+}
+
+// TestDepthwiseFusedMatchesDefinition compares every path of
+// DepthwiseFused with the ONNX Conv definition (group = C, computed in
+// float64 by directConv) followed by the bias and activation as the ONNX
+// Conv, Relu and Clip operators define them.
+func TestDepthwiseFusedMatchesDefinition(t *testing.T) {
+	r := rand.New(rand.NewPCG(31, 32))
+	vec := map[kernel.ISA]int{}
+	for i, tc := range dwKernelCases() {
+		p, g, oh, ow, m := tc.plan(t)
+		x := randSlice(r, tc.c*tc.h*tc.w)
+		w := randSlice(r, m*g.KH*g.KW)
+		bias := randSlice(r, m)
+		conv := directConv(x, 1, tc.c, tc.h, tc.w, w, m, tc.c, g, oh, ow)
+		for _, isa := range dwISAs() {
+			if f, _ := p.DepthwiseVectorized(isa); f {
+				vec[isa]++
+			}
+			for _, e := range dwEpilogues {
+				ep := kernel.DepthwiseEpilogue{Lo: e.lo, Hi: e.hi}
+				want := make([]float32, len(conv))
+				for j, v := range conv {
+					if e.bias {
+						v += bias[j/(oh*ow)]
+					}
+					want[j] = min(e.hi, max(e.lo, v))
+				}
+				if e.bias {
+					ep.Bias = bias
+				}
+				got := make([]float32, m*oh*ow)
+				for j := range got {
+					got[j] = float32(math.NaN()) // overwritten, not accumulated
+				}
+				scratch := make([]float32, p.DepthwiseScratch())
+				for j := range scratch {
+					scratch[j] = 1e30 // contents must not matter
+				}
+				// Two channel ranges, the second starting mid-channel when
+				// the multiplier is 2.
+				for _, rg := range [][2]int{{0, m/2 + 1}, {m/2 + 1, m}} {
+					if err := p.DepthwiseFusedISA(isa, got, x, w, tc.mult, rg[0], rg[1], &ep, scratch); err != nil {
+						t.Fatal(err)
+					}
+				}
+				if err := closeTo(got, want, 1e-5, 1e-5); err != nil {
+					t.Fatalf("case %d (%+v, %d×%d) %v %s: %v", i, g, oh, ow, isa, e.name, err)
+				}
+			}
+		}
+	}
+	// The vector kernels must have taken the 3×3/5×5 stride-1/2 cases.
+	for _, isa := range dwISAs()[1:] {
+		if vec[isa] < 4*17 {
+			t.Errorf("%v: vector kernels ran %d cases, want at least %d", isa, vec[isa], 4*17)
+		}
+	}
+}
+
+// TestDepthwiseFusedKeepsNaN: a NaN input gives a NaN output through
+// ReLU and Clip, as Go's max and min (the ops' forward loops) keep it.
+func TestDepthwiseFusedKeepsNaN(t *testing.T) {
+	for _, isa := range dwISAs() {
+		p, err := kernel.NewIm2col(kernel.Conv2D{C: 1, H: 5, W: 21, KH: 3, KW: 3, PadTop: 1, PadLeft: 1, PadBottom: 1, PadRight: 1})
+		if err != nil {
+			t.Fatal(err)
+		}
+		x := make([]float32, 5*21)
+		x[2*21+19] = float32(math.NaN())
+		w := []float32{1, 1, 1, 1, 1, 1, 1, 1, 1}
+		y := make([]float32, 5*21)
+		ep := kernel.DepthwiseEpilogue{Lo: 0, Hi: 6}
+		if err := p.DepthwiseFusedISA(isa, y, x, w, 1, 0, 1, &ep, make([]float32, p.DepthwiseScratch())); err != nil {
+			t.Fatal(err)
+		}
+		if v := y[2*21+20]; !math.IsNaN(float64(v)) {
+			t.Errorf("%v: output next to a NaN input is %v, want NaN", isa, v)
+		}
+		if v := y[2*21+10]; v != 0 {
+			t.Errorf("%v: output away from the NaN is %v, want 0", isa, v)
+		}
+	}
+}
+
+// dwBackwardDirect is the gradient of the ONNX Conv definition at
+// group = C written out: every output (oh, ow) that tap (kh, kw) links to
+// input (ih, iw) adds dy·w to dx and dy·x to dw.
+func dwBackwardDirect(x, w, dy []float32, c, h, wd, mult int, g kernel.Conv2D, oh, ow int) (dx, dw []float32) {
+	dx64 := make([]float64, c*h*wd)
+	dw64 := make([]float64, c*mult*g.KH*g.KW)
+	for mo := 0; mo < c*mult; mo++ {
+		ch := mo / mult
+		for i := 0; i < oh; i++ {
+			for j := 0; j < ow; j++ {
+				gv := float64(dy[(mo*oh+i)*ow+j])
+				for kh := 0; kh < g.KH; kh++ {
+					for kw := 0; kw < g.KW; kw++ {
+						ih := i*g.StrideH - g.PadTop + kh*g.DilationH
+						iw := j*g.StrideW - g.PadLeft + kw*g.DilationW
+						if ih < 0 || ih >= h || iw < 0 || iw >= wd {
+							continue
+						}
+						t := (mo*g.KH+kh)*g.KW + kw
+						dx64[(ch*h+ih)*wd+iw] += gv * float64(w[t])
+						dw64[t] += gv * float64(x[(ch*h+ih)*wd+iw])
+					}
+				}
+			}
+		}
+	}
+	dx, dw = make([]float32, len(dx64)), make([]float32, len(dw64))
+	for i, v := range dx64 {
+		dx[i] = float32(v)
+	}
+	for i, v := range dw64 {
+		dw[i] = float32(v)
+	}
+	return dx, dw
+}
+
+// TestDepthwiseBackwardMatchesDefinition checks the input and filter
+// gradients of every path against dwBackwardDirect, accumulating onto
+// nonzero gradients as the contract says.
+func TestDepthwiseBackwardMatchesDefinition(t *testing.T) {
+	r := rand.New(rand.NewPCG(41, 42))
+	vec := map[kernel.ISA]int{}
+	for i, tc := range append(dwKernelCases(), dwBaseCases...) {
+		p, g, oh, ow, m := tc.plan(t)
+		x := randSlice(r, tc.c*tc.h*tc.w)
+		w := randSlice(r, m*g.KH*g.KW)
+		dy := randSlice(r, m*oh*ow)
+		wantDX, wantDW := dwBackwardDirect(x, w, dy, tc.c, tc.h, tc.w, tc.mult, g, oh, ow)
+		dx0, dw0 := randSlice(r, len(x)), randSlice(r, len(w))
+		for j := range wantDX {
+			wantDX[j] += dx0[j]
+		}
+		for j := range wantDW {
+			wantDW[j] += dw0[j]
+		}
+		for _, isa := range dwISAs() {
+			if _, b := p.DepthwiseVectorized(isa); b {
+				vec[isa]++
+			}
+			dx := append([]float32(nil), dx0...)
+			dw := append([]float32(nil), dw0...)
+			for _, rg := range [][2]int{{0, tc.c / 2}, {tc.c / 2, tc.c}} {
+				if err := p.DepthwiseBackwardISA(isa, dx, dw, dy, x, w, tc.mult, rg[0], rg[1]); err != nil {
+					t.Fatal(err)
+				}
+			}
+			name := fmt.Sprintf("case %d (%+v, %d×%d) %v", i, g, oh, ow, isa)
+			if err := closeTo(dx, wantDX, 1e-4, 1e-5); err != nil {
+				t.Fatalf("%s dx: %v", name, err)
+			}
+			if err := closeTo(dw, wantDW, 1e-4, 1e-4); err != nil {
+				t.Fatalf("%s dw: %v", name, err)
+			}
+			// dx alone: src is not read.
+			dx2 := append([]float32(nil), dx0...)
+			if err := p.DepthwiseBackwardISA(isa, dx2, nil, dy, nil, w, tc.mult, 0, tc.c); err != nil {
+				t.Fatal(err)
+			}
+			if err := closeTo(dx2, wantDX, 1e-4, 1e-5); err != nil {
+				t.Fatalf("%s dx only: %v", name, err)
+			}
+		}
+	}
+	for _, isa := range dwISAs()[1:] {
+		if vec[isa] < 4*17 {
+			t.Errorf("%v: vector kernels ran %d backward cases, want at least %d", isa, vec[isa], 4*17)
+		}
+	}
+}
+
+// TestDepthwiseFusedRejectsBadInput: short buffers are errors, not
+// panics.
+func TestDepthwiseFusedRejectsBadInput(t *testing.T) {
+	p, _ := kernel.NewIm2col(kernel.Conv2D{C: 2, H: 6, W: 6, KH: 3, KW: 3, PadTop: 1, PadLeft: 1, PadBottom: 1, PadRight: 1})
+	x, w, y := make([]float32, 72), make([]float32, 18), make([]float32, 72)
+	if err := p.DepthwiseFused(y, x, w, 1, 0, 2, nil, make([]float32, p.DepthwiseScratch()-1)); err == nil {
+		t.Error("short scratch accepted")
+	}
+	if err := p.DepthwiseFused(y, x, w, 1, 0, 2, &kernel.DepthwiseEpilogue{Bias: []float32{1}}, make([]float32, p.DepthwiseScratch())); err == nil {
+		t.Error("short bias accepted")
+	}
+	if err := p.DepthwiseBackwardInto(x, nil, y, nil, w, 1, 0, 2, make([]float32, 10)); err == nil {
+		t.Error("short backward scratch accepted")
+	}
+}
