@@ -33,8 +33,36 @@ type netMeta struct {
 	Layer  string `json:"layer"`
 	Class  int    `json:"class"`
 	// Float64 is set for full-size exports: the goldens also exist
-	// computed in float64 (*_f64.pb), see checkAgainstFloat64.
+	// computed in float64 (*_f64.pb), see checkGradF64.
 	Float64 bool `json:"float64_goldens"`
+	// Spread is PyTorch float32's own distance from the float64 goldens
+	// over several evaluations of the exported graph (full-size only).
+	Spread *float32Spread `json:"float32_spread"`
+}
+
+// float32Spread is export_nets.py's float32_spread: one entry per PyTorch
+// float32 evaluation of the exported graph, measured against the float64
+// evaluation with the same definitions as maxRel and compareGrad.
+type float32Spread struct {
+	Reference string        `json:"reference"`
+	Runs      []float32Eval `json:"runs"`
+}
+
+type float32Eval struct {
+	Name string `json:"name"`
+	// Kind "implementation": same input and weights, only the float32
+	// summation order differs (thread count, memory format, convolution
+	// algorithm). Kind "input": the input moved by one ulp; reported only.
+	Kind         string    `json:"kind"`
+	LogitsMaxRel float64   `json:"logits_max_rel"`
+	LayerMaxRel  float64   `json:"layer_max_rel"`
+	GradInput    gradError `json:"grad_input"`
+	GradLayer    gradError `json:"grad_layer"`
+}
+
+type gradError struct {
+	Cosine float64 `json:"cosine"`
+	RelL2  float64 `json:"rel_l2"`
 }
 
 // Tolerances for float32 CPU arithmetic against PyTorch's float32 CPU
@@ -66,11 +94,10 @@ func TestCompactNetworks(t *testing.T) {
 // with torch, torchvision and onnx; several minutes and a few GB of memory).
 // HEEDMAP_FULLNETS_DIR=DIR reuses exports already made with
 // export_nets.py --full --out DIR instead of exporting again.
-// The tolerances are those of the compact nets, measured against the
-// exported graph computed in float64 (see checkGradF64 for why): at 224×224 PyTorch's own
-// float32 input gradient of a ReLU/ReLU6 network moves by a relative L2 of
-// 1e-3 to 7e-3 when computed in float64 or with BatchNorm folded into the
-// convolutions as the export does (testdata/reference/noise_floor.py).
+// Values are held to the compact nets' 1e-4 against the exported graph
+// computed in float64; gradients to the compact nets' bounds widened, per
+// net, to the worst of PyTorch's own float32 evaluations of the same graph
+// (see checkGradF64 for why and how).
 func TestFullSizeNetworks(t *testing.T) {
 	sel := os.Getenv("HEEDMAP_FULLNETS")
 	if sel == "" {
@@ -156,8 +183,11 @@ func checkNetwork(t *testing.T, dir string) {
 		t.Fatalf("layer %q: %v, PyTorch %v", meta.Layer, act, wantAct)
 	}
 	if meta.Float64 {
-		checkValueF64(t, "logits", logits.F32, want.F32, load("logits_g32.pb").F32, load("logits_f64.pb").F32)
-		checkValueF64(t, "layer "+meta.Layer+" value", act.F32, wantAct.F32, load("layer_g32.pb").F32, load("layer_f64.pb").F32)
+		if meta.Spread == nil || len(implementationRuns(meta.Spread)) == 0 {
+			t.Fatalf("meta.json has float64 goldens but no float32_spread implementation runs: re-export with export_nets.py --full")
+		}
+		checkValueF64(t, "logits", logits.F32, want.F32, load("logits_f64.pb").F32, meta.Spread, func(e float32Eval) float64 { return e.LogitsMaxRel })
+		checkValueF64(t, "layer "+meta.Layer+" value", act.F32, wantAct.F32, load("layer_f64.pb").F32, meta.Spread, func(e float32Eval) float64 { return e.LayerMaxRel })
 	} else {
 		if e := maxRel(logits.F32, want.F32); e > logitTol {
 			t.Errorf("logits: max|a-b|/max|b| = %.2e > %.0e vs PyTorch", e, logitTol)
@@ -187,7 +217,11 @@ func checkNetwork(t *testing.T, dir string) {
 		}
 		if meta.Float64 {
 			base := strings.TrimSuffix(c.file, ".pb")
-			checkGradF64(t, c.name, got.F32, want.F32, load(base+"_g32.pb").F32, load(base+"_f64.pb").F32)
+			pick := func(e float32Eval) gradError { return e.GradInput }
+			if c.file == "grad_layer.pb" {
+				pick = func(e float32Eval) gradError { return e.GradLayer }
+			}
+			checkGradF64(t, c.name, got.F32, want.F32, load(base+"_f64.pb").F32, meta.Spread, pick)
 			continue
 		}
 		cos, rel := compareGrad(got.F32, want.F32)
@@ -202,47 +236,81 @@ func checkNetwork(t *testing.T, dir string) {
 // Full-size networks are judged against the exported graph's own function
 // computed in float64 (*_f64.pb: export_nets.py loads the ONNX file's
 // BatchNorm-folded weights back into the torchvision model and runs it in
-// float64), not against PyTorch's float32 result alone. At 224×224 and
-// 299×299 two correct float32 computations of a ReLU network's input
-// gradient differ by more than the 1e-3 relative L2 bound (rounding flips
-// units whose derivative is discontinuous; noise_floor.py measures PyTorch
-// float32 against float64, and folded against unfolded, at 1e-3 to 7e-3),
-// so a float32 golden cannot separate a runtime bug from rounding. Our
-// float32 result passes when it is within the issue's bounds of the float64
-// truth, or, failing that, at least as close to it as PyTorch float32
-// computing the same graph (*_g32.pb) is, by both the cosine and the
-// relative L2 error. The bounds are those of the compact nets; nothing is
-// loosened: a result worse than both the bound and PyTorch's own float32
-// fails. The unfolded float32 golden is reported beside.
+// float64), not against one PyTorch float32 result. The issue's gradient
+// bounds (cosine ≥ 0.9999, relative L2 ≤ 1e-3) presuppose that two correct
+// float32 computations agree that closely; at 224×224 and 299×299 they do
+// not for ReLU networks. A ReLU's derivative jumps at zero, and a handful of
+// the millions of pre-activations lie within float32 rounding of zero, so
+// the branch taken depends on summation order. export_nets.py measures it:
+// PyTorch float32 on the same graph and input, with 1 or 2 threads, NHWC
+// memory format or oneDNN disabled, lands between 1.5e-3 and 1.0e-2 from
+// float64 on ResNet-18 (relu_flips.py: 2 to 6 of 4.6 million ReLUs take the
+// other branch; forced onto float64's branches the same float32 arithmetic
+// is within 1.8e-6). Such an error says nothing about the runtime being
+// wrong, and PyTorch itself fails the issue's bounds by it.
+//
+// So each full-size net's gradient bound is the issue's bound widened to the
+// worst PyTorch float32 evaluation of kind "implementation" recorded in
+// meta.json for that net: relative L2 ≤ max(1e-3, PyTorch's largest) and
+// cosine ≥ min(0.9999, PyTorch's smallest). Nets without such kinks
+// (ConvNeXt, EfficientNet-B0, MobileNetV3, ViT) keep the issue's bounds
+// because PyTorch stays within them there. The one-ulp input runs are
+// reported, never used for a bound: they evaluate another input. Values
+// (logits, the inner activation) are continuous functions and keep 1e-4
+// against float64 with no widening. Trade-off: the worst of four PyTorch
+// runs is a sample of a heavy-tailed quantity, so a correct runtime can
+// land just beyond it on an unlucky net; the message prints every run.
 
-// checkValueF64 judges a forward value by max|a−b|/max|b| against the
-// float64 truth.
-func checkValueF64(t *testing.T, what string, got, unfolded, torch32, truth []float32) {
+// implementationRuns are the spread runs that evaluate the same input.
+func implementationRuns(s *float32Spread) []float32Eval {
+	var runs []float32Eval
+	for _, r := range s.Runs {
+		if r.Kind == "implementation" {
+			runs = append(runs, r)
+		}
+	}
+	return runs
+}
+
+// checkValueF64 judges a forward value by max|a−b|/max|b| ≤ logitTol
+// against the float64 truth; PyTorch float32's own errors are printed.
+func checkValueF64(t *testing.T, what string, got, unfolded, truth []float32, spread *float32Spread, pick func(float32Eval) float64) {
 	t.Helper()
-	ours, theirs := maxRel(got, truth), maxRel(torch32, truth)
-	msg := fmt.Sprintf("%s: max|a-b|/max|b| vs float64 graph = %.2e (PyTorch float32 graph: %.2e; ours vs PyTorch float32 unfolded: %.2e)",
-		what, ours, theirs, maxRel(got, unfolded))
-	if ours > logitTol && ours > theirs {
-		t.Errorf("%s, need ≤ %.0e or ≤ PyTorch float32's", msg, logitTol)
+	ours := maxRel(got, truth)
+	var torch []string
+	for _, r := range spread.Runs {
+		torch = append(torch, fmt.Sprintf("%s %.1e", r.Name, pick(r)))
+	}
+	msg := fmt.Sprintf("%s: max|a-b|/max|b| vs float64 graph = %.2e (PyTorch float32: %s; ours vs PyTorch float32 unfolded: %.2e)",
+		what, ours, strings.Join(torch, ", "), maxRel(got, unfolded))
+	if !(ours <= logitTol) {
+		t.Errorf("%s, need ≤ %.0e", msg, logitTol)
 	} else {
 		t.Log(msg)
 	}
 }
 
 // checkGradF64 judges a gradient by cosine and relative L2 error against
-// the float64 truth.
-func checkGradF64(t *testing.T, name string, got, unfolded, torch32, truth []float32) {
+// the float64 truth, with the issue's bounds widened to PyTorch float32's
+// worst implementation run (see above).
+func checkGradF64(t *testing.T, name string, got, unfolded, truth []float32, spread *float32Spread, pick func(float32Eval) gradError) {
 	t.Helper()
 	cos, rel := compareGrad(got, truth)
-	tcos, trel := compareGrad(torch32, truth)
-	ucos, urel := compareGrad(unfolded, truth)
-	c32, r32 := compareGrad(got, unfolded)
-	msg := fmt.Sprintf("gradient w.r.t. %q vs float64 graph: cosine %.7f, relative L2 %.2e (PyTorch float32 graph: cosine %.7f, relative L2 %.2e; PyTorch float32 unfolded: cosine %.7f, relative L2 %.2e; ours vs PyTorch float32 unfolded: cosine %.7f, relative L2 %.2e)",
-		name, cos, rel, tcos, trel, ucos, urel, c32, r32)
-	withinBound := cos >= minCos && rel <= maxRelL2
-	asGoodAsTorch := cos >= tcos && rel <= trel
-	if math.IsNaN(cos) || math.IsNaN(rel) || !(withinBound || asGoodAsTorch) {
-		t.Errorf("%s; need cosine ≥ %v and relative L2 ≤ %.0e, or at least PyTorch float32's", msg, minCos, maxRelL2)
+	needCos, needRel := minCos, maxRelL2
+	var torch []string
+	for _, r := range spread.Runs {
+		e := pick(r)
+		torch = append(torch, fmt.Sprintf("%s %.7f/%.2e", r.Name, e.Cosine, e.RelL2))
+		if r.Kind == "implementation" {
+			needCos = math.Min(needCos, e.Cosine)
+			needRel = math.Max(needRel, e.RelL2)
+		}
+	}
+	ucos, urel := compareGrad(got, unfolded)
+	msg := fmt.Sprintf("gradient w.r.t. %q vs float64 graph: cosine %.7f, relative L2 %.2e (need ≥ %.7f, ≤ %.2e; PyTorch float32 cosine/relative L2: %s; ours vs PyTorch float32 unfolded: %.7f/%.2e)",
+		name, cos, rel, needCos, needRel, strings.Join(torch, ", "), ucos, urel)
+	if !(cos >= needCos && rel <= needRel) { // false for NaN too
+		t.Errorf("%s", msg)
 	} else {
 		t.Log(msg)
 	}
