@@ -11,32 +11,60 @@ import (
 // channel per group) into y, through the plan when there is one (perr is
 // nil) and the direct loops otherwise. It reports whether it also applied
 // the epilogue ep (bias and fused activation); when it did not, the caller
-// applies it.
+// applies it. The planned path always does: the kernel adds the bias and
+// clamps as it writes each output row, so the output plane is written
+// once instead of twice.
 func (op *convOp) depthwiseForwardPlanned(plan *kernel.Im2colPlan, perr error, x, w, y []float32, s convShape, ep *epilogue) (epDone bool, err error) {
 	if perr != nil {
 		depthwiseForward(x, w, y, s)
 		return false, nil
 	}
-	return false, planDepthwise(plan, x, w, y, s)
+	return true, op.planDepthwise(plan, x, w, y, s, ep)
+}
+
+// kernelEpilogue translates ep into the kernel's bias-and-clamp form:
+// Relu is max(v, 0) and Clip min(hi, max(lo, v)), exactly as the
+// epilogue's own apply (and those ops' forward) computes them.
+func kernelEpilogue(ep *epilogue) kernel.DepthwiseEpilogue {
+	if ep == nil {
+		return kernel.Unclamped(nil)
+	}
+	k := kernel.Unclamped(ep.bias)
+	switch ep.act {
+	case actRelu:
+		k.Lo = 0
+	case actClip:
+		k.Lo, k.Hi = ep.lo, ep.hi
+	}
+	return k
 }
 
 // planDepthwise computes a depthwise convolution through the kernel
-// package's row-wise loops, splitting (image, channel) planes over
-// goroutines.
-func planDepthwise(p *kernel.Im2colPlan, x, w, y []float32, s convShape) error {
+// package's padded-plane kernels with the epilogue ep fused, splitting
+// (image, channel) planes over goroutines (at batch 1 there are still
+// 32–960 channel planes per layer to share). Each goroutine takes one
+// scratch plane from the convolution's buffer pool for all its planes.
+func (op *convOp) planDepthwise(p *kernel.Im2colPlan, x, w, y []float32, s convShape, ep *epilogue) error {
 	g := s.g
 	ihw, ohw, khw := g.ih*g.iw, g.oh*g.ow, g.kh*g.kw
 	planes := s.n * s.c
+	kep := kernelEpilogue(ep)
 	var firstErr error
 	var mu sync.Mutex
 	splitWork(planes, planes*s.mg*ohw*khw, func(p0, p1 int) {
+		buf := poolBuf(&op.slabBufs, p.DepthwiseScratch())
+		defer op.slabBufs.Put(buf)
 		for pl := p0; pl < p1; pl++ {
 			n, ch := pl/s.c, pl%s.c
 			m0 := ch * s.mg
-			err := p.DepthwiseRange(
+			e := kep
+			if e.Bias != nil {
+				e.Bias = e.Bias[m0 : m0+s.mg]
+			}
+			err := p.DepthwiseFused(
 				y[(n*s.m+m0)*ohw:(n*s.m+m0+s.mg)*ohw],
 				x[(n*s.c+ch)*ihw:(n*s.c+ch+1)*ihw],
-				w[m0*khw:(m0+s.mg)*khw], s.mg, 0, s.mg)
+				w[m0*khw:(m0+s.mg)*khw], s.mg, 0, s.mg, &e, *buf)
 			if err != nil {
 				mu.Lock()
 				firstErr = err
@@ -50,13 +78,15 @@ func planDepthwise(p *kernel.Im2colPlan, x, w, y []float32, s convShape) error {
 
 // planDepthwiseBackward accumulates dx and dw (either may be nil) for the
 // depthwise path. Work is split by input channel so each goroutine owns
-// the dx planes and dw rows it writes; images are summed inside.
+// the dx planes and dw rows it writes; images are summed inside. Each
+// goroutine allocates one scratch area for all its planes.
 func planDepthwiseBackward(p *kernel.Im2colPlan, x, w, dy, dx, dw []float32, s convShape) error {
 	g := s.g
 	ihw, ohw, khw := g.ih*g.iw, g.oh*g.ow, g.kh*g.kw
 	var firstErr error
 	var mu sync.Mutex
 	splitWork(s.c, s.n*s.m*ohw*khw, func(c0, c1 int) {
+		scratch := make([]float32, p.DepthwiseBackwardScratch())
 		for ch := c0; ch < c1; ch++ {
 			m0 := ch * s.mg
 			var dwc []float32
@@ -71,9 +101,9 @@ func planDepthwiseBackward(p *kernel.Im2colPlan, x, w, dy, dx, dw []float32, s c
 				if dw != nil { // x is not retained when only dx is wanted
 					xc = x[(n*s.c+ch)*ihw : (n*s.c+ch+1)*ihw]
 				}
-				err := p.DepthwiseBackward(dxc, dwc,
+				err := p.DepthwiseBackwardInto(dxc, dwc,
 					dy[(n*s.m+m0)*ohw:(n*s.m+m0+s.mg)*ohw],
-					xc, w[m0*khw:(m0+s.mg)*khw], s.mg, 0, 1)
+					xc, w[m0*khw:(m0+s.mg)*khw], s.mg, 0, 1, scratch)
 				if err != nil {
 					mu.Lock()
 					firstErr = err

@@ -69,9 +69,27 @@ type dwLayout struct {
 
 func (l dwLayout) size() int { return l.rows*l.pitch + dwSlack }
 
-// fill copies an h×w image plane into its place in the padded plane. The
-// padding is never written, so it stays zero from one channel to the
-// next and scratch is cleared once per call.
+// clearPad zeroes every cell of the padded plane that fill does not
+// write (the padding, any image-free rows, the slack). fill never writes
+// them, so they stay zero from one channel to the next: one clearPad per
+// call, one fill per channel, and no full clear.
+func (l dwLayout) clearPad(scr []float32) {
+	scr = scr[:l.size()]
+	top := min(l.top, l.rows)
+	nr := max(0, min(l.h, l.rows-top))
+	left := min(l.left, l.pitch)
+	right := min(l.left+max(0, min(l.w, l.pitch-l.left)), l.pitch)
+	clear(scr[:top*l.pitch])
+	for i := top; i < top+nr; i++ {
+		row := scr[i*l.pitch : (i+1)*l.pitch]
+		clear(row[:left])
+		clear(row[right:])
+	}
+	clear(scr[(top+nr)*l.pitch:])
+}
+
+// fill copies an h×w image plane into its place in the padded plane (see
+// clearPad).
 func (l dwLayout) fill(scr, plane []float32) {
 	nr := min(l.h, l.rows-l.top)
 	nc := min(l.w, l.pitch-l.left)
@@ -143,7 +161,7 @@ func (p *Im2colPlan) depthwiseFused(isa ISA, dst, src, w []float32, multiplier, 
 		return fmt.Errorf("kernel: depthwise scratch has %d values, want %d", len(scratch), l.size())
 	}
 	scr := scratch[:l.size()]
-	clear(scr)
+	l.clearPad(scr)
 	g := p.g
 	hw, ohw, taps := g.H*g.W, p.oh*p.ow, g.KH*g.KW
 	par := [3]float32{0, float32(math.Inf(-1)), float32(math.Inf(1))}
@@ -355,7 +373,7 @@ func (p *Im2colPlan) depthwiseBackward(isa ISA, dsrc, dw, dy, src, w []float32, 
 		clear(u)
 	}
 	if dw != nil {
-		clear(xs)
+		lf.clearPad(xs)
 	}
 	par := [3]float32{0, float32(math.Inf(-1)), float32(math.Inf(1))}
 	for ch := c0; ch < c1; ch++ {
