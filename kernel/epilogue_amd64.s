@@ -95,3 +95,50 @@ biasClampAVX2_loop1:
 biasClampAVX2_done:
 	VZEROUPPER
 	RET
+
+// func panelRowsAVX512(rows int, dst *float32, base *float32, offs *int32, segs *uint64, nseg int)
+// Requires: AVX, AVX512F
+TEXT ·panelRowsAVX512(SB), NOSPLIT, $0-48
+	MOVQ rows+0(FP), AX
+	MOVQ dst+8(FP), CX
+	MOVQ base+16(FP), DX
+	MOVQ offs+24(FP), BX
+	MOVQ segs+32(FP), SI
+	MOVQ nseg+40(FP), DI
+
+panelRowsAVX512_row:
+	TESTQ   AX, AX
+	JZ      panelRowsAVX512_done
+	MOVLQSX (BX), R8
+	LEAQ    (DX)(R8*4), R8
+	VPXORD  Z0, Z0, Z0
+	VPXORD  Z1, Z1, Z1
+	MOVQ    SI, R9
+	MOVQ    DI, R10
+
+panelRowsAVX512_seg:
+	TESTQ   R10, R10
+	JZ      panelRowsAVX512_store
+	MOVQ    (R9), R11
+	MOVLQSX R11, R12
+	SHRQ    $0x20, R11
+	KMOVW   R11, K1
+	SHRQ    $0x10, R11
+	KMOVW   R11, K2
+	VMOVUPS (R8)(R12*4), K1, Z0
+	VMOVUPS 64(R8)(R12*4), K2, Z1
+	ADDQ    $0x08, R9
+	DECQ    R10
+	JMP     panelRowsAVX512_seg
+
+panelRowsAVX512_store:
+	VMOVUPS Z0, (CX)
+	VMOVUPS Z1, 64(CX)
+	ADDQ    $0x00000080, CX
+	ADDQ    $0x04, BX
+	DECQ    AX
+	JMP     panelRowsAVX512_row
+
+panelRowsAVX512_done:
+	VZEROUPPER
+	RET

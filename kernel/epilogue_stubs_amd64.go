@@ -11,3 +11,8 @@ func biasClampAVX512(n int, x *float32, bias float32, lo float32, hi float32)
 //
 //go:noescape
 func biasClampAVX2(n int, x *float32, bias float32, lo float32, hi float32)
+
+// panelRowsAVX512 writes rows 32-wide panel rows of dst from the padded input at base: row r takes segments segs[0:nseg] relative to base+offs[r].
+//
+//go:noescape
+func panelRowsAVX512(rows int, dst *float32, base *float32, offs *int32, segs *uint64, nseg int)

@@ -91,6 +91,24 @@ func TestIm2colPanelsConv(t *testing.T) {
 						t.Fatalf("%v case %d: one-channel plan differs at %d", isa, i, k)
 					}
 				}
+				// The padded-input lowering writes the same panels, on the
+				// vector path and on the pure-Go one.
+				ph, pw := plan.PaddedShape()
+				padded := make([]float32, tc.c*ph*pw)
+				if err := plan.Pad(padded, x, 0, tc.c); err != nil {
+					t.Fatal(err)
+				}
+				for _, pl := range []*kernel.Im2colPlan{plan, plan.PortableLoops()} {
+					clear(again)
+					if err := pl.Im2colPanelsPadded(again, padded, tc.c, j0, j1, nr); err != nil {
+						t.Fatal(err)
+					}
+					for k := range again {
+						if again[k] != panels[k] {
+							t.Fatalf("%v case %d slab [%d,%d): padded lowering differs at %d: %v, want %v", isa, i, j0, j1, k, again[k], panels[k])
+						}
+					}
+				}
 				gemm.SgemmPanels(tc.m, j1-j0, rows, wt, rows, panels, y[j0:], cols)
 				j0 = j1
 			}
@@ -129,5 +147,52 @@ func TestIm2colPanelsRejects(t *testing.T) {
 	}
 	if err := plan.Im2colPanels(buf, x, 0, 0, 9, 32); err == nil {
 		t.Error("zero channels: no error")
+	}
+}
+
+// BenchmarkIm2colPanels lowers the 64-channel 56×56 3×3 layer of a
+// ResNet-18 into 32-wide panels, one 512-column slab at a time (the
+// engine's slab size for this layer), reporting bytes written per second.
+func BenchmarkIm2colPanels(b *testing.B) {
+	for _, tc := range []struct {
+		name string
+		g    kernel.Conv2D
+	}{
+		{"56x56s1", kernel.Conv2D{C: 64, H: 56, W: 56, KH: 3, KW: 3, PadTop: 1, PadLeft: 1, PadBottom: 1, PadRight: 1}},
+		{"56x56s2", kernel.Conv2D{C: 64, H: 56, W: 56, KH: 3, KW: 3, StrideH: 2, StrideW: 2, PadTop: 1, PadLeft: 1, PadBottom: 1, PadRight: 1}},
+		{"14x14s1", kernel.Conv2D{C: 256, H: 14, W: 14, KH: 3, KW: 3, PadTop: 1, PadLeft: 1, PadBottom: 1, PadRight: 1}},
+	} {
+		plan, err := kernel.NewIm2col(tc.g)
+		if err != nil {
+			b.Fatal(err)
+		}
+		x := make([]float32, tc.g.C*tc.g.H*tc.g.W)
+		ph, pw := plan.PaddedShape()
+		padded := make([]float32, tc.g.C*ph*pw)
+		for _, v := range []struct {
+			name  string
+			lower func(dst []float32, j0, j1 int) error
+		}{
+			{"direct", func(dst []float32, j0, j1 int) error { return plan.Im2colPanels(dst, x, tc.g.C, j0, j1, 32) }},
+			{"padded", func(dst []float32, j0, j1 int) error {
+				return plan.Im2colPanelsPadded(dst, padded, tc.g.C, j0, j1, 32)
+			}},
+		} {
+			lower := v.lower
+			b.Run(tc.name+"/"+v.name, func(b *testing.B) {
+				rows, cols := plan.Shape()
+				const nr = 32
+				slab := min(cols, 512)
+				dst := make([]float32, rows*(slab+nr-1)/nr*nr)
+				b.SetBytes(int64(4 * rows * cols))
+				for b.Loop() {
+					for j0 := 0; j0 < cols; j0 += slab {
+						if err := lower(dst, j0, min(j0+slab, cols)); err != nil {
+							b.Fatal(err)
+						}
+					}
+				}
+			})
+		}
 	}
 }

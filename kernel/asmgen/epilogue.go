@@ -8,10 +8,72 @@ import (
 	"github.com/mmcloughlin/avo/reg"
 )
 
-// genEpilogue emits the vector epilogues applied to convolution outputs.
+// genEpilogue emits the vector epilogues applied to convolution outputs
+// and the im2col panel copy that feeds them.
 func genEpilogue(zmm, ymm []reg.VecPhysical) {
 	genBiasClamp("biasClampAVX512", zmm, 16)
 	genBiasClamp("biasClampAVX2", ymm, 8)
+	genPanelRows()
+}
+
+// genPanelRows emits the row loop of Im2colPlan.Im2colPanelsPadded for
+// 32-wide panels and unit column stride: for each of rows panel rows, the
+// row's 32 values are assembled in two zmm registers from up to nseg
+// segments of the zero-padded input, each a merge-masked load (lanes
+// outside the segment keep what earlier segments put there, and a masked
+// lane never faults, so the load address may run off either end of the
+// segment), then stored with two full-width stores. Lanes no segment
+// covers stay zero: the zero padding of a partial last panel.
+//
+// segs[s] packs one segment: bits 0–31 the signed shift, in floats, from
+// the row's tap base to the input value of panel lane 0; bits 32–47 the
+// lane mask of the first 16 lanes; bits 48–63 that of the last 16.
+func genPanelRows() {
+	const name = "panelRowsAVX512"
+	TEXT(name, NOSPLIT, "func(rows int, dst, base *float32, offs *int32, segs *uint64, nseg int)")
+	Doc(name + " writes rows 32-wide panel rows of dst from the padded input at base: row r takes segments segs[0:nseg] relative to base+offs[r].")
+	Pragma("noescape")
+	rows := Load(Param("rows"), GP64())
+	dst := Load(Param("dst"), GP64())
+	base := Load(Param("base"), GP64())
+	offs := Load(Param("offs"), GP64())
+	segs := Load(Param("segs"), GP64())
+	nseg := Load(Param("nseg"), GP64())
+	rowBase, sp, sn, w, shift := GP64(), GP64(), GP64(), GP64(), GP64()
+	lo, hi := reg.Z0, reg.Z1
+	Label(name + "_row")
+	TESTQ(rows, rows)
+	JZ(LabelRef(name + "_done"))
+	MOVLQSX(Mem{Base: offs}, rowBase)
+	LEAQ(Mem{Base: base, Index: rowBase, Scale: 4}, rowBase)
+	VPXORD(lo, lo, lo)
+	VPXORD(hi, hi, hi)
+	MOVQ(segs, sp)
+	MOVQ(nseg, sn)
+	Label(name + "_seg")
+	TESTQ(sn, sn)
+	JZ(LabelRef(name + "_store"))
+	MOVQ(Mem{Base: sp}, w)
+	MOVLQSX(w.As32(), shift)
+	SHRQ(U8(32), w)
+	KMOVW(w.As32(), reg.K1)
+	SHRQ(U8(16), w)
+	KMOVW(w.As32(), reg.K2)
+	VMOVUPS(Mem{Base: rowBase, Index: shift, Scale: 4}, reg.K1, lo)
+	VMOVUPS(Mem{Base: rowBase, Index: shift, Scale: 4, Disp: 64}, reg.K2, hi)
+	ADDQ(U8(8), sp)
+	DECQ(sn)
+	JMP(LabelRef(name + "_seg"))
+	Label(name + "_store")
+	VMOVUPS(lo, Mem{Base: dst})
+	VMOVUPS(hi, Mem{Base: dst, Disp: 64})
+	ADDQ(U32(128), dst)
+	ADDQ(U8(4), offs)
+	DECQ(rows)
+	JMP(LabelRef(name + "_row"))
+	Label(name + "_done")
+	VZEROUPPER()
+	RET()
 }
 
 // genBiasClamp emits x[j] = min(hi, max(lo, x[j]+bias)) for the first

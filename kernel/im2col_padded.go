@@ -1,0 +1,130 @@
+package kernel
+
+import "fmt"
+
+// PaddedShape returns the height and width of one zero-padded input plane,
+// H+PadTop+PadBottom by W+PadLeft+PadRight: the layout Pad writes and
+// Im2colPanelsPadded reads.
+func (p *Im2colPlan) PaddedShape() (ph, pw int) {
+	g := p.g
+	return g.H + g.PadTop + g.PadBottom, g.W + g.PadLeft + g.PadRight
+}
+
+// NeedsPad reports whether the plan has padding; without it the input
+// itself is its padded layout and Pad need not run.
+func (p *Im2colPlan) NeedsPad() bool {
+	g := p.g
+	return g.PadTop != 0 || g.PadLeft != 0 || g.PadBottom != 0 || g.PadRight != 0
+}
+
+// Pad copies channel planes [c0, c1) of src (planes of the plan's H×W) into
+// dst (planes of PaddedShape), writing zeros around them. Callers split the
+// channels over goroutines.
+func (p *Im2colPlan) Pad(dst, src []float32, c0, c1 int) error {
+	g := p.g
+	ph, pw := p.PaddedShape()
+	if c0 < 0 || c0 > c1 {
+		return fmt.Errorf("kernel: pad channel range [%d, %d) is invalid", c0, c1)
+	}
+	if len(src) < c1*g.H*g.W || len(dst) < c1*ph*pw {
+		return fmt.Errorf("kernel: pad of %d channels needs %d input and %d output values, got %d and %d", c1, c1*g.H*g.W, c1*ph*pw, len(src), len(dst))
+	}
+	for c := c0; c < c1; c++ {
+		d := dst[c*ph*pw : (c+1)*ph*pw]
+		s := src[c*g.H*g.W : (c+1)*g.H*g.W]
+		clear(d[:g.PadTop*pw])
+		for h := 0; h < g.H; h++ {
+			row := d[(g.PadTop+h)*pw : (g.PadTop+h+1)*pw]
+			clear(row[:g.PadLeft])
+			copy(row[g.PadLeft:], s[h*g.W:(h+1)*g.W])
+			clear(row[g.PadLeft+g.W:])
+		}
+		clear(d[(g.PadTop+g.H)*pw:])
+	}
+	return nil
+}
+
+// Im2colPanelsPadded is Im2colPanels reading the zero-padded input that
+// Pad writes (channels planes of PaddedShape). Every kernel tap then reads
+// inside the buffer, so no value needs a padding test: each panel row is a
+// few plain copies, one per output row the panel spans, at an offset that
+// depends only on the tap. With 32-wide panels, unit column stride and
+// AVX-512 the rows are assembled in registers with masked loads
+// (panelRowsAVX512); elsewhere a Go loop does the same copies. Its
+// output equals Im2colPanels' bit for bit.
+func (p *Im2colPlan) Im2colPanelsPadded(dst, padded []float32, channels, j0, j1, nr int) error {
+	_, cols := p.Shape()
+	g := p.g
+	if channels <= 0 {
+		return fmt.Errorf("kernel: im2col channel count %d must be positive", channels)
+	}
+	rows := channels * g.KH * g.KW
+	if j0 < 0 || j1 > cols || j0 > j1 {
+		return fmt.Errorf("kernel: im2col columns [%d, %d) outside [0, %d)", j0, j1, cols)
+	}
+	if nr <= 0 || nr > maxPanelWidth {
+		return fmt.Errorf("kernel: im2col panel width %d outside [1, %d]", nr, maxPanelWidth)
+	}
+	panels := (j1 - j0 + nr - 1) / nr
+	if len(dst) < panels*rows*nr {
+		return fmt.Errorf("kernel: im2col panels have %d values, want %d (%d panels of %d×%d)", len(dst), panels*rows*nr, panels, rows, nr)
+	}
+	ph, pw := p.PaddedShape()
+	if len(padded) < channels*ph*pw {
+		return fmt.Errorf("kernel: padded image has %d values, want %d (%d×%d×%d)", len(padded), channels*ph*pw, channels, ph, pw)
+	}
+	offs := make([]int32, rows)
+	r := 0
+	for c := 0; c < channels; c++ {
+		for kh := 0; kh < g.KH; kh++ {
+			for kw := 0; kw < g.KW; kw++ {
+				offs[r] = int32(c*ph*pw + kh*g.DilationH*pw + kw*g.DilationW)
+				r++
+			}
+		}
+	}
+	vector := nr == 32 && g.StrideW == 1 && !p.portable && panelRowsSIMD()
+	var segBuf [maxPanelWidth]panelSeg
+	var packed [maxPanelWidth]uint64
+	for q := 0; q < panels; q++ {
+		jp := j0 + q*nr
+		je := min(jp+nr, j1)
+		segs := segBuf[:0]
+		for j := jp; j < je; {
+			oh, ow0 := j/p.ow, j%p.ow
+			end := min(je, (oh+1)*p.ow)
+			// off is the panel lane; ow0 and ow1 become the segment's
+			// input offset (from the tap base) and length.
+			segs = append(segs, panelSeg{oh: oh, ow0: oh*g.StrideH*pw + ow0*g.StrideW, ow1: end - j, off: j - jp})
+			j = end
+		}
+		panel := dst[q*rows*nr : (q+1)*rows*nr]
+		if vector {
+			for i, s := range segs {
+				mask := uint32(((uint64(1) << s.ow1) - 1) << s.off)
+				shift := int32(s.ow0 - s.off)
+				packed[i] = uint64(uint32(shift)) | uint64(mask)<<32
+			}
+			panelRows(rows, panel, padded, offs, packed[:len(segs)])
+			continue
+		}
+		valid := je - jp
+		sw := g.StrideW
+		for r, off := range offs {
+			d := panel[r*nr : (r+1)*nr]
+			for _, s := range segs {
+				src := padded[int(off)+s.ow0:]
+				seg := d[s.off : s.off+s.ow1]
+				if sw == 1 {
+					copy(seg, src[:len(seg)])
+					continue
+				}
+				for i := range seg {
+					seg[i] = src[i*sw]
+				}
+			}
+			clear(d[valid:])
+		}
+	}
+	return nil
+}

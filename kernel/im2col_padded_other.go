@@ -1,0 +1,9 @@
+//go:build !amd64
+
+package kernel
+
+func panelRowsSIMD() bool { return false }
+
+func panelRows(rows int, panel, padded []float32, offs []int32, segs []uint64) {
+	panic("unreachable: panelRowsSIMD is false")
+}
