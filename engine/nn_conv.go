@@ -35,6 +35,7 @@ type convOp struct {
 	// *kernel.Packed.
 	gemm1    *kernel.Packed
 	slabBufs sync.Pool
+	padBufs  sync.Pool // zero-padded inputs of the panel paths
 	// tplans caches the plans of the transposed convolutions that give
 	// the input gradient (nn_conv_slab.go).
 	tplans planCache

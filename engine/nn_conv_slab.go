@@ -130,13 +130,18 @@ func (op *convOp) slabForward(plan *kernel.Im2colPlan, xg []float32, cg int, g g
 	nr := op.gemm1.PanelWidth()
 	nb := max(nr, min(512, slabFloats/kk/nr*nr))
 	ep = ep.forGroup(mOff)
+	padded, release, err := op.padInput(plan, xg, cg)
+	if err != nil {
+		return err
+	}
+	defer release()
 	return claimTasks((ohw+nb-1)/nb, func(s int) error {
 		j0 := s * nb
 		j1 := min(j0+nb, ohw)
 		w := j1 - j0
 		buf := poolBuf(&op.slabBufs, kk*((w+nr-1)/nr*nr))
 		defer op.slabBufs.Put(buf)
-		if err := plan.Im2colPanels(*buf, xg, cg, j0, j1, nr); err != nil {
+		if err := plan.Im2colPanelsPadded(*buf, padded, cg, j0, j1, nr); err != nil {
 			return err
 		}
 		op.gemm1.SgemmPanels(mg, w, kk, wg, kk, *buf, yg[j0:], ohw)
@@ -159,11 +164,16 @@ func (op *convOp) panelForward(plan *kernel.Im2colPlan, xg []float32, cg int, g 
 	buf := poolBuf(&op.slabBufs, kk*np*nr)
 	defer op.slabBufs.Put(buf)
 	panels := *buf
+	padded, release, err := op.padInput(plan, xg, cg)
+	if err != nil {
+		return err
+	}
+	defer release()
 	// Fill: about 2 tasks per core, whole panels each.
 	fills := min(np, 2*runtime.GOMAXPROCS(0))
-	err := claimTasks(fills, func(t int) error {
+	err = claimTasks(fills, func(t int) error {
 		q0, q1 := np*t/fills, np*(t+1)/fills
-		return plan.Im2colPanels(panels[q0*kk*nr:q1*kk*nr], xg, cg, q0*nr, min(q1*nr, ohw), nr)
+		return plan.Im2colPanelsPadded(panels[q0*kk*nr:q1*kk*nr], padded, cg, q0*nr, min(q1*nr, ohw), nr)
 	})
 	if err != nil {
 		return err
@@ -181,6 +191,22 @@ func (op *convOp) panelForward(plan *kernel.Im2colPlan, xg []float32, cg int, g 
 		ep.apply(yg, ohw, m0, m1, 0, ohw)
 		return nil
 	})
+}
+
+// padInput returns the cg channel planes of xg zero-padded as the plan's
+// PaddedShape (xg itself when the plan has no padding), the copy split by
+// channel over the cores, and a function that hands the buffer back.
+func (op *convOp) padInput(plan *kernel.Im2colPlan, xg []float32, cg int) ([]float32, func(), error) {
+	if !plan.NeedsPad() {
+		return xg, func() {}, nil
+	}
+	ph, pw := plan.PaddedShape()
+	buf := poolBuf(&op.padBufs, cg*ph*pw)
+	chunks := min(cg, 2*runtime.GOMAXPROCS(0))
+	err := claimTasks(chunks, func(t int) error {
+		return plan.Pad(*buf, xg, cg*t/chunks, cg*(t+1)/chunks)
+	})
+	return *buf, func() { op.padBufs.Put(buf) }, err
 }
 
 // poolBuf returns a buffer of n floats from p; its contents are arbitrary.
