@@ -46,7 +46,7 @@ func kernelEpilogue(ep *epilogue) kernel.DepthwiseEpilogue {
 // scratch plane from the convolution's buffer pool for all its planes.
 func (op *convOp) planDepthwise(p *kernel.Im2colPlan, x, w, y []float32, s convShape, ep *epilogue) error {
 	g := s.g
-	ihw, ohw, khw := g.ih*g.iw, g.oh*g.ow, g.kh*g.kw
+	ohw, khw := g.oh*g.ow, g.kh*g.kw
 	planes := s.n * s.c
 	kep := kernelEpilogue(ep)
 	var firstErr error
@@ -54,23 +54,10 @@ func (op *convOp) planDepthwise(p *kernel.Im2colPlan, x, w, y []float32, s convS
 	splitWork(planes, planes*s.mg*ohw*khw, func(p0, p1 int) {
 		buf := poolBuf(&op.slabBufs, p.DepthwiseScratch())
 		defer op.slabBufs.Put(buf)
-		for pl := p0; pl < p1; pl++ {
-			n, ch := pl/s.c, pl%s.c
-			m0 := ch * s.mg
-			e := kep
-			if e.Bias != nil {
-				e.Bias = e.Bias[m0 : m0+s.mg]
-			}
-			err := p.DepthwiseFused(
-				y[(n*s.m+m0)*ohw:(n*s.m+m0+s.mg)*ohw],
-				x[(n*s.c+ch)*ihw:(n*s.c+ch+1)*ihw],
-				w[m0*khw:(m0+s.mg)*khw], s.mg, 0, s.mg, &e, *buf)
-			if err != nil {
-				mu.Lock()
-				firstErr = err
-				mu.Unlock()
-				return
-			}
+		if err := p.DepthwisePlanes(y, x, w, s.c, s.mg, p0, p1, &kep, *buf); err != nil {
+			mu.Lock()
+			firstErr = err
+			mu.Unlock()
 		}
 	})
 	return firstErr

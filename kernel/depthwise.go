@@ -98,7 +98,15 @@ func (l dwLayout) fill(scr, plane []float32) {
 	}
 	for i := 0; i < nr; i++ {
 		d := scr[(i+l.top)*l.pitch+l.left:]
-		copy(d[:nc], plane[i*l.w:i*l.w+nc])
+		d = d[:nc]
+		src := plane[i*l.w : i*l.w+nc]
+		if nc >= 32 {
+			copy(d, src)
+			continue
+		}
+		for j, v := range src { // short rows: cheaper than a memmove call
+			d[j] = v
+		}
 	}
 }
 
@@ -162,22 +170,82 @@ func (p *Im2colPlan) depthwiseFused(isa ISA, dst, src, w []float32, multiplier, 
 	}
 	scr := scratch[:l.size()]
 	l.clearPad(scr)
-	g := p.g
-	hw, ohw, taps := g.H*g.W, p.oh*p.ow, g.KH*g.KW
-	par := [3]float32{0, float32(math.Inf(-1)), float32(math.Inf(1))}
-	if ep != nil {
-		par[1], par[2] = ep.Lo, ep.Hi
-	}
+	hw, ohw, taps := p.g.H*p.g.W, p.oh*p.ow, p.g.KH*p.g.KW
 	last := -1
 	for mo := m0; mo < m1; mo++ {
 		if ch := mo / multiplier; ch != last {
 			l.fill(scr, src[ch*hw:(ch+1)*hw])
 			last = ch
 		}
-		if ep != nil && ep.Bias != nil {
-			par[0] = ep.Bias[mo]
-		}
+		par := dwParams(ep, mo)
 		dwPlane(isa, &a, dst[mo*ohw:(mo+1)*ohw], scr, w[mo*taps:(mo+1)*taps], &par, false)
+	}
+	return nil
+}
+
+// dwParams is the {bias, lo, hi} triple of output channel m.
+func dwParams(ep *DepthwiseEpilogue, m int) [3]float32 {
+	par := [3]float32{0, float32(math.Inf(-1)), float32(math.Inf(1))}
+	if ep != nil {
+		par[1], par[2] = ep.Lo, ep.Hi
+		if ep.Bias != nil {
+			par[0] = ep.Bias[m]
+		}
+	}
+	return par
+}
+
+// DepthwisePlanes is DepthwiseFused over whole N×C×H×W tensors for a plan
+// made for one channel (Geometry().C == 1), as a convolution operator
+// holds it: it computes input planes [p0, p1) of the flattened (image,
+// channel) index, plane pl being channel pl mod channels. Plane pl reads
+// src[pl·H·W:] and writes its multiplier output planes from
+// dst[pl·multiplier·OH·OW:]; output channel m = (pl mod channels)·
+// multiplier + j takes filter w[m·KH·KW:] and ep.Bias[m]. The scratch
+// padding is cleared once per call, so a goroutine should hand it a run
+// of planes, not one at a time.
+func (p *Im2colPlan) DepthwisePlanes(dst, src, w []float32, channels, multiplier, p0, p1 int, ep *DepthwiseEpilogue, scratch []float32) error {
+	isa := ISAAuto
+	if p.portable {
+		isa = ISAPortable
+	}
+	return p.depthwisePlanes(isa, dst, src, w, channels, multiplier, p0, p1, ep, scratch)
+}
+
+func (p *Im2colPlan) depthwisePlanes(isa ISA, dst, src, w []float32, channels, multiplier, p0, p1 int, ep *DepthwiseEpilogue, scratch []float32) error {
+	g := p.g
+	hw, ohw, taps := g.H*g.W, p.oh*p.ow, g.KH*g.KW
+	m := channels * multiplier
+	switch {
+	case g.C != 1:
+		return fmt.Errorf("kernel: depthwise planes need a one-channel plan, got C=%d", g.C)
+	case channels <= 0 || multiplier <= 0:
+		return fmt.Errorf("kernel: depthwise planes: %d channels, multiplier %d must be positive", channels, multiplier)
+	case p0 < 0 || p0 > p1:
+		return fmt.Errorf("kernel: depthwise plane range [%d, %d) is invalid", p0, p1)
+	case len(src) < p1*hw:
+		return fmt.Errorf("kernel: depthwise input has %d values, want %d planes of %d", len(src), p1, hw)
+	case len(dst) < p1*multiplier*ohw:
+		return fmt.Errorf("kernel: depthwise output has %d values, want %d planes of %d", len(dst), p1*multiplier, ohw)
+	case len(w) < m*taps:
+		return fmt.Errorf("kernel: depthwise weights have %d values, want %d (%d×%d×%d)", len(w), m*taps, m, g.KH, g.KW)
+	case ep != nil && ep.Bias != nil && len(ep.Bias) < m:
+		return fmt.Errorf("kernel: depthwise bias has %d values, want %d", len(ep.Bias), m)
+	}
+	l, a := p.forwardLayout()
+	if len(scratch) < l.size() {
+		return fmt.Errorf("kernel: depthwise scratch has %d values, want %d", len(scratch), l.size())
+	}
+	scr := scratch[:l.size()]
+	l.clearPad(scr)
+	for pl := p0; pl < p1; pl++ {
+		l.fill(scr, src[pl*hw:(pl+1)*hw])
+		for j := 0; j < multiplier; j++ {
+			mo := (pl%channels)*multiplier + j
+			out := dst[(pl*multiplier+j)*ohw : (pl*multiplier+j+1)*ohw]
+			par := dwParams(ep, mo)
+			dwPlane(isa, &a, out, scr, w[mo*taps:(mo+1)*taps], &par, false)
+		}
 	}
 	return nil
 }

@@ -25,3 +25,8 @@ func (p *Im2colPlan) DepthwiseVectorized(isa ISA) (fwd, bwd bool) {
 	lb, ab := p.backwardLayout()
 	return try(lf, af), try(lb, ab)
 }
+
+// DepthwisePlanesISA is DepthwisePlanes on the path isa.
+func (p *Im2colPlan) DepthwisePlanesISA(isa ISA, dst, src, w []float32, channels, multiplier, p0, p1 int, ep *DepthwiseEpilogue, scratch []float32) error {
+	return p.depthwisePlanes(isa, dst, src, w, channels, multiplier, p0, p1, ep, scratch)
+}

@@ -256,3 +256,50 @@ func TestDepthwiseFusedRejectsBadInput(t *testing.T) {
 		t.Error("short backward scratch accepted")
 	}
 }
+
+// TestDepthwisePlanesMatchesDefinition runs DepthwisePlanes over a batch
+// of two images split into uneven plane runs (as goroutines take them)
+// and compares with the ONNX Conv definition plus bias and Clip.
+func TestDepthwisePlanesMatchesDefinition(t *testing.T) {
+	r := rand.New(rand.NewPCG(51, 52))
+	const n, c = 2, 5
+	for _, mult := range []int{1, 2} {
+		for _, g := range []kernel.Conv2D{
+			{C: 1, H: 14, W: 14, KH: 3, KW: 3, PadTop: 1, PadLeft: 1, PadBottom: 1, PadRight: 1},
+			{C: 1, H: 15, W: 13, KH: 5, KW: 5, StrideH: 2, StrideW: 2, PadTop: 2, PadLeft: 2, PadBottom: 2, PadRight: 2},
+			{C: 1, H: 9, W: 10, KH: 3, KW: 3, DilationH: 2, DilationW: 2, PadTop: 2, PadLeft: 2, PadBottom: 2, PadRight: 2},
+		} {
+			p, err := kernel.NewIm2col(g)
+			if err != nil {
+				t.Fatal(err)
+			}
+			oh, ow := p.Out()
+			m := c * mult
+			x := randSlice(r, n*c*g.H*g.W)
+			w := randSlice(r, m*g.KH*g.KW)
+			bias := randSlice(r, m)
+			gc := p.Geometry()
+			want := directConv(x, n, c, g.H, g.W, w, m, c, gc, oh, ow)
+			for j := range want {
+				want[j] = min(1.5, max(-0.25, want[j]+bias[j/(oh*ow)%m]))
+			}
+			ep := kernel.DepthwiseEpilogue{Bias: bias, Lo: -0.25, Hi: 1.5}
+			for _, isa := range dwISAs() {
+				got := make([]float32, len(want))
+				scratch := make([]float32, p.DepthwiseScratch())
+				for _, rg := range [][2]int{{0, 3}, {3, 4}, {4, n * c}} {
+					if err := p.DepthwisePlanesISA(isa, got, x, w, c, mult, rg[0], rg[1], &ep, scratch); err != nil {
+						t.Fatal(err)
+					}
+				}
+				if err := closeTo(got, want, 1e-5, 1e-5); err != nil {
+					t.Fatalf("%+v mult %d %v: %v", g, mult, isa, err)
+				}
+			}
+		}
+	}
+	p, _ := kernel.NewIm2col(kernel.Conv2D{C: 2, H: 4, W: 4, KH: 3, KW: 3})
+	if err := p.DepthwisePlanes(make([]float32, 8), make([]float32, 32), make([]float32, 18), 2, 1, 0, 2, nil, make([]float32, p.DepthwiseScratch())); err == nil {
+		t.Error("two-channel plan accepted")
+	}
+}
