@@ -97,6 +97,9 @@ func (a *arena) floats(n int) []float32 {
 		return b
 	}
 	a.misses++
+	if debugMiss != nil {
+		debugMiss(n)
+	}
 	a.mu.Unlock()
 	return make([]float32, n)
 }
@@ -263,20 +266,23 @@ func (a *arena) zeroed(shape ...int) *tensor.Tensor {
 	return t
 }
 
-// ownCopy is ownCopy drawing the copy from the operator's arena.
-func (b *binaryOp) ownCopy(s, shared []float32) []float32 {
-	if len(s) > 0 && len(shared) > 0 && &s[0] == &shared[0] {
-		c := b.arena.floats(len(s))
-		copy(c, s)
-		return c
+// recycleFull returns full, a full-size gradient buffer binaryOp's
+// Backward drew from its arena, once reduced is the reduced copy of it
+// (not full itself, and not the incoming gradient g, which it never draws).
+func (b *binaryOp) recycleFull(full, reduced, g []float32) {
+	if len(full) == 0 || (len(reduced) > 0 && &full[0] == &reduced[0]) || (len(g) > 0 && &full[0] == &g[0]) {
+		return
 	}
-	return s
+	b.arena.put(full)
 }
 
 // freshGrads reports whether op's Backward returns freshly allocated
-// gradients (from its arena or make) that alias neither its gradient
-// arguments, its inputs and outputs, nor any state of its own, so Backward
-// may recycle one once the next node upstream has consumed it.
+// gradients (from its arena or make) that alias neither its inputs and
+// outputs nor any state of its own, so Backward may recycle one once the
+// next node upstream has consumed it. A fresh op may still return a view
+// of its output gradient (Add does, where nothing is reduced): Pass.Backward
+// recognises those by their backing array and treats them as the output
+// gradient itself.
 func freshGrads(op Op) bool {
 	switch op.(type) {
 	case *convOp, *poolOp, *globalPoolOp, *unaryOp, *clipOp, *binaryOp, *batchNormOp:
@@ -284,3 +290,5 @@ func freshGrads(op Op) bool {
 	}
 	return false
 }
+
+var debugMiss func(n int)

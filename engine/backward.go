@@ -25,6 +25,9 @@ func (p *Pass) Backward(ctx context.Context, seeds map[string]*tensor.Tensor, wr
 	if !p.backward {
 		return nil, errors.New("engine: Backward on a pass run without RunOptions.Backward")
 	}
+	if p.released {
+		return nil, errors.New("engine: Backward on a released pass")
+	}
 	if len(seeds) == 0 {
 		return nil, errors.New("engine: Backward needs at least one seed")
 	}
@@ -62,23 +65,44 @@ func (p *Pass) Backward(ctx context.Context, seeds map[string]*tensor.Tensor, wr
 	}
 
 	grads := make([]*tensor.Tensor, len(g.names))
-	// owned[v]: grads[v] is ours to add into: a clone, or a gradient an op
-	// known to allocate afresh returned (freshGrads). Owned gradients that
-	// die inside the sweep go back to the arena (see release).
+	// owned[v]: grads[v]'s buffer belongs to the sweep: drawn from the
+	// arena, returned afresh by an op (freshGrads), or a view an op made of
+	// an owned output gradient (Add, Identity, Reshape and Flatten pass
+	// theirs on without copying). Several values may share one owned
+	// buffer; it is written in place only while no other live gradient
+	// holds it (copy on write) and goes back to the arena when its last
+	// holder dies (see release). Seeds are never owned, so never written
+	// or recycled.
 	owned := make([]bool, len(g.names))
-	// release hands t, an owned gradient nothing will read again, to the
-	// arena unless another live gradient shares its backing array (a view
-	// some op such as Reshape returned). Seeds are never owned, and the
-	// gradients handed to the caller never die here.
-	release := func(t *tensor.Tensor) {
-		if g.arena == nil || t == nil || cap(t.F32) == 0 {
-			return
+	// pending holds the current node's input gradients not yet stored in
+	// grads, so a buffer two of them share is neither released nor
+	// written in place while the other still needs it.
+	var pending []*tensor.Tensor
+	// shared reports whether a live gradient other than grads[except], or
+	// a pending one other than skip, uses buf's backing array.
+	shared := func(buf []float32, except int, skip *tensor.Tensor) bool {
+		if cap(buf) == 0 {
+			return false
 		}
-		end := backing(t.F32)
-		for _, o := range grads {
-			if o != nil && o != t && backing(o.F32) == end {
-				return
+		end := backing(buf)
+		for u, o := range grads {
+			if u != except && o != nil && backing(o.F32) == end {
+				return true
 			}
+		}
+		for _, o := range pending {
+			if o != nil && o != skip && backing(o.F32) == end {
+				return true
+			}
+		}
+		return false
+	}
+	// release hands t, an owned gradient that grads[except] (if any) no
+	// longer holds, to the arena unless another gradient shares its
+	// backing array. The gradients handed to the caller never die here.
+	release := func(t *tensor.Tensor, except int) {
+		if g.arena == nil || t == nil || cap(t.F32) == 0 || shared(t.F32, except, t) {
+			return
 		}
 		g.arena.put(t.F32)
 	}
@@ -96,9 +120,11 @@ func (p *Pass) Backward(ctx context.Context, seeds map[string]*tensor.Tensor, wr
 		grads[v] = s
 	}
 
+	var gradOut, in, out []*tensor.Tensor
+	var need []bool
 	for k := len(g.nodes) - 1; k >= first; k-- {
 		nd := g.nodes[k]
-		var gradOut []*tensor.Tensor
+		gradOut = gradOut[:0]
 		any := false
 		for _, v := range nd.out {
 			var gv *tensor.Tensor
@@ -128,76 +154,121 @@ func (p *Pass) Backward(ctx context.Context, seeds map[string]*tensor.Tensor, wr
 		if !ok {
 			return nil, fmt.Errorf("engine: Backward: %s has no gradient", nd.label())
 		}
-		in := make([]*tensor.Tensor, len(nd.in))
+		in = in[:0]
 		for i, v := range nd.in {
 			if v < 0 {
+				in = append(in, nil)
 				continue
 			}
 			if nd.needIn[i] {
 				if p.vals[v] == nil {
 					return nil, fmt.Errorf("engine: Backward: %s input %q was freed", nd.label(), g.names[v])
 				}
-				in[i] = p.vals[v]
+				in = append(in, p.vals[v])
 			} else {
-				in[i] = &tensor.Tensor{DType: p.dtypes[v], Shape: p.shapes[v]}
+				in = append(in, &tensor.Tensor{DType: p.dtypes[v], Shape: p.shapes[v]})
 			}
 		}
-		out := make([]*tensor.Tensor, len(nd.out))
+		out = out[:0]
 		for i, v := range nd.out {
-			if v < 0 {
-				continue
-			}
-			if nd.needOut[i] && p.vals[v] != nil {
-				out[i] = p.vals[v]
-			} else if nd.needOut[i] {
+			switch {
+			case v < 0:
+				out = append(out, nil)
+			case nd.needOut[i] && p.vals[v] != nil:
+				out = append(out, p.vals[v])
+			case nd.needOut[i]:
 				return nil, fmt.Errorf("engine: Backward: %s output %q was freed", nd.label(), g.names[v])
-			} else {
-				out[i] = &tensor.Tensor{DType: p.dtypes[v], Shape: p.shapes[v]}
+			default:
+				out = append(out, &tensor.Tensor{DType: p.dtypes[v], Shape: p.shapes[v]})
 			}
 		}
-		need := make([]bool, len(nd.in))
-		for i, v := range nd.in {
-			need[i] = v >= 0 && upstream[v]
+		need = need[:0]
+		for _, v := range nd.in {
+			need = append(need, v >= 0 && upstream[v])
 		}
-		gin, err := safeBackward(nd.op, d, in, out, gradOut, need)
-		if err != nil {
-			return nil, fmt.Errorf("engine: Backward: %s: %w", nd.label(), err)
+		var gin []*tensor.Tensor
+		var err error
+		if o := nd.out; len(o) == 1 && o[0] >= 0 && !isWrt[o[0]] && owned[o[0]] && !shared(grads[o[0]].F32, o[0], nil) {
+			// The output gradient dies at this node and nothing else holds
+			// it: an elementwise op may overwrite it with its input's.
+			if ip, ok := nd.op.(gradInPlace); ok && onlyFirst(need) {
+				gin, err = safeInPlace(ip, in, out, grads[o[0]])
+				if err != nil {
+					return nil, fmt.Errorf("engine: Backward: %s: %w", nd.label(), err)
+				}
+			}
+		}
+		if gin == nil {
+			gin, err = safeBackward(nd.op, d, in, out, gradOut, need)
+			if err != nil {
+				return nil, fmt.Errorf("engine: Backward: %s: %w", nd.label(), err)
+			}
 		}
 		fresh := freshGrads(nd.op)
+		pending = append(pending[:0], gin...)
 		for i, v := range nd.in {
-			if v < 0 || i >= len(gin) || gin[i] == nil || !upstream[v] {
-				continue
+			if i >= len(gin) {
+				break
 			}
 			gi := gin[i]
+			pending[i] = nil
+			if v < 0 || gi == nil || !upstream[v] {
+				continue
+			}
 			if !shapeEq(gi.Shape, p.shapes[v]) || len(gi.F32) != tensor.Numel(p.shapes[v]) {
 				return nil, fmt.Errorf("engine: Backward: %s returned gradient %v for input %q of shape %v", nd.label(), gi, g.names[v], p.shapes[v])
 			}
-			if grads[v] == nil {
-				// A fresh gradient has no other holder until v's producer
-				// runs, after every addition into it.
-				grads[v], owned[v] = gi, fresh
-				continue
+			// A view of an output gradient is owned as that gradient is;
+			// anything else is owned when the op allocates afresh.
+			giOwned := fresh
+			if cap(gi.F32) > 0 {
+				for j, gv := range gradOut {
+					if gv != nil && backing(gv.F32) == backing(gi.F32) {
+						giOwned = owned[nd.out[j]]
+						break
+					}
+				}
 			}
-			if !owned[v] {
+			cur := grads[v]
+			switch {
+			case cur == nil:
+				grads[v], owned[v] = gi, giOwned
+			case owned[v] && !shared(cur.F32, v, nil):
+				addTo(cur.F32, gi.F32)
+				if giOwned {
+					release(gi, -1)
+				}
+			case giOwned && !shared(gi.F32, -1, gi):
+				// Addition commutes exactly, so summing into gi gives the
+				// bits summing into a copy of cur would.
+				addTo(gi.F32, cur.F32)
+				grads[v] = gi
+				if owned[v] {
+					release(cur, -1)
+				}
+				owned[v] = true
+			default:
 				c := g.arena.tensor(p.shapes[v]...)
-				copy(c.F32, grads[v].F32)
-				grads[v], owned[v] = c, true
-			}
-			acc := grads[v].F32
-			for j, x := range gi.F32 {
-				acc[j] += x
-			}
-			if fresh {
-				release(gi)
+				copy(c.F32, cur.F32)
+				addTo(c.F32, gi.F32)
+				grads[v] = c
+				if owned[v] {
+					release(cur, -1)
+				}
+				owned[v] = true
+				if giOwned {
+					release(gi, -1)
+				}
 			}
 		}
+		pending = pending[:0]
 		// Output gradients are no longer needed unless asked for.
 		for _, v := range nd.out {
 			if v >= 0 && !isWrt[v] {
 				t := grads[v]
 				grads[v] = nil
 				if owned[v] {
-					release(t)
+					release(t, -1)
 				}
 				owned[v] = false
 			}
@@ -205,15 +276,20 @@ func (p *Pass) Backward(ctx context.Context, seeds map[string]*tensor.Tensor, wr
 	}
 
 	res := make(map[string]*tensor.Tensor, len(wrt))
+	handed := map[uintptr]bool{}
 	for _, name := range wrt {
 		v := g.index[name]
 		gv := grads[v]
 		switch {
 		case gv == nil:
 			gv = tensor.New(p.shapes[v]...)
-		case !owned[v]:
-			// Never hand back a seed or a tensor an op may share.
+		case !owned[v] || handed[backing(gv.F32)]:
+			// Never hand back a seed, a tensor an op may share, or one
+			// buffer as two results.
 			gv = gv.Clone()
+		}
+		if cap(gv.F32) > 0 {
+			handed[backing(gv.F32)] = true
 		}
 		res[name] = gv
 	}
@@ -248,4 +324,48 @@ func floatBackward(in, gradOut []*tensor.Tensor) ([]*tensor.Tensor, *tensor.Tens
 		return grads, nil
 	}
 	return grads, g
+}
+
+// gradInPlace is implemented by elementwise operators whose input gradient
+// has the output gradient's shape and can be computed in place over it
+// (ReLU, Clip: dX = dY masked where the unit is active). Pass.Backward
+// calls backwardInPlace instead of Backward when the output gradient is
+// the sweep's own and dies at this node, which saves a buffer and a full
+// pass of zeroing. The op returns the gradients as Backward would, with
+// g itself as the first input's, or nil gradients when it declines (the
+// caller then runs Backward), and must leave g untouched when it declines.
+type gradInPlace interface {
+	backwardInPlace(in, out []*tensor.Tensor, g *tensor.Tensor) ([]*tensor.Tensor, error)
+}
+
+// safeInPlace is safeBackward for gradInPlace.
+func safeInPlace(ip gradInPlace, in, out []*tensor.Tensor, g *tensor.Tensor) (gin []*tensor.Tensor, err error) {
+	defer func() {
+		if r := recover(); r != nil {
+			gin, err = nil, fmt.Errorf("operator backward panicked: %v", r)
+		}
+	}()
+	return ip.backwardInPlace(in, out, g)
+}
+
+// onlyFirst reports whether need asks for the first input's gradient and
+// no other.
+func onlyFirst(need []bool) bool {
+	if len(need) == 0 || !need[0] {
+		return false
+	}
+	for _, n := range need[1:] {
+		if n {
+			return false
+		}
+	}
+	return true
+}
+
+// addTo adds src into dst elementwise (dst[i] += src[i]).
+func addTo(dst, src []float32) {
+	dst = dst[:len(src)]
+	for i, x := range src {
+		dst[i] += x
+	}
 }

@@ -156,19 +156,10 @@ func (op *poolOp) BackwardNeeds() (in, out []int) {
 
 func (op *poolOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor, error) {
 	x, dy := in[0], gradOut[0]
-	dx := op.arena.zeroed(x.Shape...) // both paths accumulate
-	if op.max {
-		var arg *tensor.Tensor
-		if len(out) > 1 && out[1] != nil && out[1].I64 != nil {
-			arg = out[1]
-		} else {
-			res, err := op.forward(in[0], true)
-			if err != nil {
-				return nil, err
-			}
-			arg = res[1]
-		}
-		for i, j := range arg.I64 {
+	if op.max && len(out) > 1 && out[1] != nil && out[1].I64 != nil {
+		// Route through the kept Indices (flat offsets into x).
+		dx := op.arena.zeroed(x.Shape...)
+		for i, j := range out[1].I64 {
 			dx.F32[j] += dy.F32[i]
 		}
 		return []*tensor.Tensor{dx}, nil
@@ -179,10 +170,18 @@ func (op *poolOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor,
 	}
 	nc := x.Shape[0] * x.Shape[1]
 	ihw, ohw := g.ih*g.iw, g.oh*g.ow
+	// Every plane is cleared by the goroutine that accumulates into it,
+	// while it is in that core's cache, instead of in one serial pass.
+	dx := op.arena.tensor(x.Shape...)
 	splitWork(nc, nc*ohw*g.kh*g.kw, func(p0, p1 int) {
 		for p := p0; p < p1; p++ {
 			dsrc := dx.F32[p*ihw : (p+1)*ihw]
+			clear(dsrc)
 			gy := dy.F32[p*ohw : (p+1)*ohw]
+			if op.max {
+				maxPlaneBackward(x.F32[p*ihw:(p+1)*ihw], gy, dsrc, g)
+				continue
+			}
 			for oy := 0; oy < g.oh; oy++ {
 				for ox := 0; ox < g.ow; ox++ {
 					y0, x0 := oy*g.sh-g.pt, ox*g.sw-g.pl
@@ -281,6 +280,36 @@ func (op *globalPoolOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.T
 		}
 	}
 	return []*tensor.Tensor{dx}, nil
+}
+
+// maxPlaneBackward adds each window's output gradient dy into dx (one
+// channel plane) at the position maxPlane routes it to: the window's
+// maximum, the first in scan order on ties, offset 0 for a window entirely
+// in padding. It recomputes the argmax from x instead of materialising
+// Indices, so a backward pass allocates nothing for it.
+func maxPlaneBackward(src, dy, dx []float32, g geom2) {
+	for oy := 0; oy < g.oh; oy++ {
+		y0 := oy*g.sh - g.pt
+		kilo, kihi := tapRange(y0, g.dh, g.kh, g.ih)
+		for ox := 0; ox < g.ow; ox++ {
+			x0 := ox*g.sw - g.pl
+			kjlo, kjhi := tapRange(x0, g.dw, g.kw, g.iw)
+			best, arg := float32(math.Inf(-1)), -1
+			for ki := kilo; ki < kihi; ki++ {
+				row := (y0 + ki*g.dh) * g.iw
+				for kj := kjlo; kj < kjhi; kj++ {
+					j := row + x0 + kj*g.dw
+					if v := src[j]; v > best || arg < 0 {
+						best, arg = v, j
+					}
+				}
+			}
+			if arg < 0 { // window entirely in padding
+				arg = 0
+			}
+			dx[arg] += dy[oy*g.ow+ox]
+		}
+	}
 }
 
 // tapRange returns the kernel taps [lo, hi) whose input coordinate

@@ -89,27 +89,41 @@ func (u *unaryOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor,
 	if g == nil || in[0].DType != tensor.Float32 {
 		return []*tensor.Tensor{nil}, nil
 	}
-	if u.name == "Relu" && u.useIn {
-		gx := u.arena.zeroed(in[0].Shape...) // written where x > 0 only
+	gx := u.arena.tensor(in[0].Shape...) // every element written below
+	if u.name == "Relu" {
 		// The hot activation of most CNNs: the same rule as its df
-		// (gradient where x > 0) without an indirect call per element.
-		xs, gs, ds := in[0].F32, g.F32[:len(in[0].F32)], gx.F32[:len(in[0].F32)]
-		for i, v := range xs {
-			if v > 0 {
-				ds[i] = gs[i]
-			}
-		}
+		// (gradient where y > 0) without an indirect call per element.
+		reluMask(gx.F32, g.F32, out[0].F32)
 		return []*tensor.Tensor{gx}, nil
 	}
-	gx := u.arena.tensor(in[0].Shape...) // every element written below
+	u.grad(gx.F32, g.F32, in[0], out[0])
+	return []*tensor.Tensor{gx}, nil
+}
+
+// backwardInPlace implements gradInPlace: dX = dY ⊙ f′ overwrites dY.
+func (u *unaryOp) backwardInPlace(in, out []*tensor.Tensor, g *tensor.Tensor) ([]*tensor.Tensor, error) {
+	if in[0].DType != tensor.Float32 || !shapeEq(g.Shape, in[0].Shape) {
+		return nil, nil
+	}
+	if u.name == "Relu" {
+		reluMask(g.F32, g.F32, out[0].F32)
+	} else {
+		u.grad(g.F32, g.F32, in[0], out[0])
+	}
+	return []*tensor.Tensor{g}, nil
+}
+
+// grad writes dst[i] = g[i]·f′(x[i], y[i]); dst may be g.
+func (u *unaryOp) grad(dst, g []float32, x, y *tensor.Tensor) {
 	var xs, ys []float32
 	if u.useIn {
-		xs = in[0].F32
+		xs = x.F32
 	}
 	if u.useOut {
-		ys = out[0].F32
+		ys = y.F32
 	}
-	for i, gv := range g.F32 {
+	dst = dst[:len(g)]
+	for i, gv := range g {
 		var x, y float32
 		if xs != nil {
 			x = xs[i]
@@ -117,9 +131,29 @@ func (u *unaryOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor,
 		if ys != nil {
 			y = ys[i]
 		}
-		gx.F32[i] = gv * u.df(x, y)
+		dst[i] = gv * u.df(x, y)
 	}
-	return []*tensor.Tensor{gx}, nil
+}
+
+// reluMask writes dst[i] = g[i] where y[i] > 0 and 0 elsewhere; dst may be
+// g. ReLU's output is positive exactly where its input is (max(x, 0) > 0
+// iff x > 0, and a NaN input gives a NaN output, positive in neither), so
+// reading y gives the input-based rule's bits and lets a Conv→Relu pair
+// fuse in backward runs too: the pre-activation is then never kept. Long
+// slices are split over the cores.
+func reluMask(dst, g, y []float32) {
+	n := len(y)
+	splitWork(n, n, func(i0, i1 int) {
+		ys, gs, ds := y[i0:i1], g[i0:i1], dst[i0:i1]
+		gs, ds = gs[:len(ys)], ds[:len(ys)]
+		for i, v := range ys {
+			if v > 0 {
+				ds[i] = gs[i]
+			} else {
+				ds[i] = 0
+			}
+		}
+	})
 }
 
 func (u *unaryOp) BackwardNeeds() (in, out []int) {
@@ -140,8 +174,8 @@ func buildRelu(n *onnx.Node, env *Env) (Op, error) {
 			}
 			return 0
 		},
-		df: func(x, _ float32) float32 {
-			if x > 0 {
+		df: func(_, y float32) float32 {
+			if y > 0 { // y > 0 iff x > 0, see reluMask
 				return 1
 			}
 			return 0
@@ -158,7 +192,7 @@ func buildRelu(n *onnx.Node, env *Env) (Op, error) {
 				dst[i] = max(v, 0)
 			}
 		},
-		useIn: true}, nil
+		useOut: true}, nil
 }
 
 func buildLeakyRelu(n *onnx.Node, env *Env) (Op, error) {
@@ -322,9 +356,15 @@ func (c *clipOp) Forward(in []*tensor.Tensor) ([]*tensor.Tensor, error) {
 	return nil, fmt.Errorf("Clip: unsupported input type %s", x)
 }
 
+// BackwardNeeds: the mask is read from the output (and the bounds), so a
+// Conv→Clip pair fuses in backward runs as in forward-only ones.
+func (c *clipOp) BackwardNeeds() (in, out []int) { return []int{1, 2}, []int{0} }
+
 // Backward passes the gradient where lo < x < hi: at a bound the clip is
 // not differentiable and, as in most frameworks' subgradient choice for
-// saturating units, nothing flows.
+// saturating units, nothing flows. It tests the output y = min(hi,
+// max(lo, x)), which lies strictly inside the bounds exactly where x does
+// (and is NaN where x is), so the mask is the input rule's.
 func (c *clipOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor, error) {
 	grads, g := floatBackward(in, gradOut)
 	if g == nil {
@@ -334,28 +374,45 @@ func (c *clipOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor, 
 	if err != nil {
 		return nil, err
 	}
-	gx := c.arena.zeroed(in[0].Shape...) // written inside the bounds only
-	if l, h := float32(lo), float32(hi); float64(l) == lo && float64(h) == hi {
-		// Bounds exact in float32 (always, for float32 bound tensors and
-		// infinities): compare in float32, without a conversion per
-		// element, over equal-length slices the compiler keeps free of
-		// bounds checks.
-		xs, gs, ds := in[0].F32, g.F32[:len(in[0].F32)], gx.F32[:len(in[0].F32)]
-		for i, v := range xs {
-			if v > l && v < h {
-				ds[i] = gs[i]
-			}
-		}
-		grads[0] = gx
-		return grads, nil
-	}
-	for i, v := range in[0].F32 {
-		if f := float64(v); f > lo && f < hi {
-			gx.F32[i] = g.F32[i]
-		}
-	}
+	gx := c.arena.tensor(in[0].Shape...) // every element written
+	clipMask(gx.F32, g.F32, out[0].F32, lo, hi)
 	grads[0] = gx
 	return grads, nil
+}
+
+// backwardInPlace implements gradInPlace.
+func (c *clipOp) backwardInPlace(in, out []*tensor.Tensor, g *tensor.Tensor) ([]*tensor.Tensor, error) {
+	if in[0].DType != tensor.Float32 || !shapeEq(g.Shape, in[0].Shape) {
+		return nil, nil
+	}
+	lo, hi, err := c.bounds(in)
+	if err != nil {
+		return nil, err
+	}
+	clipMask(g.F32, g.F32, out[0].F32, lo, hi)
+	grads := make([]*tensor.Tensor, len(in))
+	grads[0] = g
+	return grads, nil
+}
+
+// clipMask writes dst[i] = g[i] where lo < y[i] < hi and 0 elsewhere; dst
+// may be g. The bounds are compared as float32, the values Forward clamps
+// to, over equal-length slices the compiler keeps free of bounds checks.
+// Long slices are split over the cores.
+func clipMask(dst, g, y []float32, lo, hi float64) {
+	l, h := float32(lo), float32(hi)
+	n := len(y)
+	splitWork(n, n, func(i0, i1 int) {
+		ys, gs, ds := y[i0:i1], g[i0:i1], dst[i0:i1]
+		gs, ds = gs[:len(ys)], ds[:len(ys)]
+		for i, v := range ys {
+			if v > l && v < h {
+				ds[i] = gs[i]
+			} else {
+				ds[i] = 0
+			}
+		}
+	})
 }
 
 // ---------------------------------------------------------------------------
@@ -593,10 +650,10 @@ func (b *binaryOp) BackwardFor(in, out, gradOut []*tensor.Tensor, need []bool) (
 			gx = g.F32
 		}
 		if yFloat {
-			gy = b.arena.floats(len(g.F32)) // every element written below
 			if b.kind == binAdd {
-				copy(gy, g.F32)
+				gy = g.F32
 			} else {
+				gy = b.arena.floats(len(g.F32)) // every element written below
 				for i, v := range g.F32 {
 					gy[i] = -v
 				}
@@ -614,11 +671,12 @@ func (b *binaryOp) BackwardFor(in, out, gradOut []*tensor.Tensor, need []bool) (
 				yv[i] = float32(v)
 			}
 		}
+		// Every element is written below.
 		if needX {
-			gx = make([]float32, len(g.F32))
+			gx = b.arena.floats(len(g.F32))
 		}
 		if yFloat {
-			gy = make([]float32, len(g.F32))
+			gy = b.arena.floats(len(g.F32))
 		}
 		xv, gv, kind := x.F32, g.F32, b.kind
 		if kind == binMul {
@@ -669,15 +727,20 @@ func (b *binaryOp) BackwardFor(in, out, gradOut []*tensor.Tensor, need []bool) (
 		if err != nil {
 			return nil, err
 		}
-		grads[0] = &tensor.Tensor{DType: tensor.Float32, Shape: append([]int(nil), x.Shape...), F32: b.ownCopy(rx, g.F32)}
+		b.recycleFull(gx, rx, g.F32)
+		grads[0] = &tensor.Tensor{DType: tensor.Float32, Shape: append([]int(nil), x.Shape...), F32: rx}
 	}
 	if gy != nil {
 		ry, err := reduceToShape(gy, shape, ys)
 		if err != nil {
 			return nil, err
 		}
+		b.recycleFull(gy, ry, g.F32)
 		grads[1] = &tensor.Tensor{DType: tensor.Float32, Shape: append([]int(nil), y.Shape...), F32: ry}
 	}
+	// Where no reduction was needed, Add passes g itself on (and Sub for
+	// x): a view of the output gradient, which Pass.Backward shares
+	// copy-on-write instead of copying here.
 	return grads, nil
 }
 
