@@ -106,6 +106,7 @@ type incStep struct {
 	group, m, cg int
 	w, b         []float32
 	gemm         kernel.GEMM
+	gemm1        *kernel.Packed // single-threaded, for the panel path; may be nil
 	// pools
 	patchOp Op
 	fill    float32
@@ -289,7 +290,7 @@ func (p *incPlan) classify(nd *node, st *incStep, nSpatial int) (incKind, string
 		if err != nil {
 			return incFull, err.Error()
 		}
-		st.g, st.gemm = geo, gemm
+		st.g, st.gemm, st.gemm1 = geo, gemm, convGEMM1(nd.op)
 		st.group = int(src.Int("group", 1))
 		st.m, st.cg = w.Shape[0], w.Shape[1]
 		st.w = w.F32
@@ -950,6 +951,11 @@ func (st *incStep) convPatch(p *incPlan, x *tensor.Tensor, c, ph, pw int) *tenso
 	}
 	kk := st.cg * g.kh * g.kw
 	n := nb * pq
+	if st.group == 1 && st.gemm1 != nil {
+		if y, ok := st.convPatchPanels(p, x, c, ph, pw); ok {
+			return y
+		}
+	}
 	colb, tmpb := p.buf(kk*n), p.buf(mg*n)
 	defer p.scratch.Put(colb)
 	defer p.scratch.Put(tmpb)
@@ -988,6 +994,53 @@ func (st *incStep) convPatch(p *incPlan, x *tensor.Tensor, c, ph, pw int) *tenso
 		st.scatter(tmp, y.F32, gi, mg, nb, pq)
 	}
 	return y
+}
+
+// convPatchPanels is convPatch for one group through packed panels: the
+// columns of all windows side by side are lowered slab by slab straight
+// into the GEMM's panel layout (Im2colPanelsPadded over the batch of
+// patches, whose padding is already in place) and multiplied with the
+// single-threaded SgemmPanels, the slabs shared out over the cores, as
+// Run's slab path does. ok is false when the patch geometry does not give
+// a plan of the expected size; the caller then takes the general path.
+func (st *incStep) convPatchPanels(p *incPlan, x *tensor.Tensor, c, ph, pw int) (*tensor.Tensor, bool) {
+	nb, ih, iw := x.Shape[0], x.Shape[2], x.Shape[3]
+	g := st.g
+	plan, err := kernel.NewIm2col(kernel.Conv2D{
+		C: c, H: ih, W: iw, KH: g.kh, KW: g.kw,
+		StrideH: g.sh, StrideW: g.sw, DilationH: g.dh, DilationW: g.dw,
+	})
+	if err != nil {
+		return nil, false
+	}
+	if oh, ow := plan.Out(); oh != ph || ow != pw {
+		return nil, false
+	}
+	pq := ph * pw
+	n := nb * pq
+	kk := c * g.kh * g.kw
+	nr := st.gemm1.PanelWidth()
+	width := max(nr, min(512, slabFloats/kk/nr*nr))
+	tmpb := p.buf(st.m * n)
+	defer p.scratch.Put(tmpb)
+	tmp := *tmpb
+	err = claimTasks((n+width-1)/width, func(s int) error {
+		j0 := s * width
+		j1 := min(j0+width, n)
+		buf := p.buf(kk * ((j1 - j0 + nr - 1) / nr * nr))
+		defer p.scratch.Put(buf)
+		if err := plan.Im2colPanelsPadded(*buf, x.F32, nb, c, j0, j1, nr); err != nil {
+			return err
+		}
+		st.gemm1.SgemmPanels(st.m, j1-j0, kk, st.w, kk, *buf, tmp[j0:], n)
+		return nil
+	})
+	if err != nil {
+		return nil, false
+	}
+	y := tensor.New(nb, st.m, ph, pw)
+	st.scatter(tmp, y.F32, 0, st.m, nb, pq)
+	return y, true
 }
 
 // convCols multiplies the weights of a one-group convolution by ready

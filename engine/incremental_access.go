@@ -14,3 +14,13 @@ func convGEMM(op Op) (kernel.GEMM, bool) {
 	}
 	return c.gemm, true
 }
+
+// convGEMM1 returns the single-threaded packed GEMM a compiled Conv keeps
+// for its panel paths (nil when it has none), so the incremental path can
+// lower patches straight into packed panels as Run does.
+func convGEMM1(op Op) *kernel.Packed {
+	if c, ok := op.(*convOp); ok {
+		return c.gemm1
+	}
+	return nil
+}

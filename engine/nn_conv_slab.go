@@ -141,7 +141,7 @@ func (op *convOp) slabForward(plan *kernel.Im2colPlan, xg []float32, cg int, g g
 		w := j1 - j0
 		buf := poolBuf(&op.slabBufs, kk*((w+nr-1)/nr*nr))
 		defer op.slabBufs.Put(buf)
-		if err := plan.Im2colPanelsPadded(*buf, padded, cg, j0, j1, nr); err != nil {
+		if err := plan.Im2colPanelsPadded(*buf, padded, 1, cg, j0, j1, nr); err != nil {
 			return err
 		}
 		op.gemm1.SgemmPanels(mg, w, kk, wg, kk, *buf, yg[j0:], ohw)
@@ -173,7 +173,7 @@ func (op *convOp) panelForward(plan *kernel.Im2colPlan, xg []float32, cg int, g 
 	fills := min(np, 2*runtime.GOMAXPROCS(0))
 	err = claimTasks(fills, func(t int) error {
 		q0, q1 := np*t/fills, np*(t+1)/fills
-		return plan.Im2colPanelsPadded(panels[q0*kk*nr:q1*kk*nr], padded, cg, q0*nr, min(q1*nr, ohw), nr)
+		return plan.Im2colPanelsPadded(panels[q0*kk*nr:q1*kk*nr], padded, 1, cg, q0*nr, min(q1*nr, ohw), nr)
 	})
 	if err != nil {
 		return err

@@ -1,6 +1,9 @@
 package kernel
 
-import "fmt"
+import (
+	"fmt"
+	"math"
+)
 
 // PaddedShape returns the height and width of one zero-padded input plane,
 // H+PadTop+PadBottom by W+PadLeft+PadRight: the layout Pad writes and
@@ -52,9 +55,18 @@ func (p *Im2colPlan) Pad(dst, src []float32, c0, c1 int) error {
 // AVX-512 the rows are assembled in registers with masked loads
 // (panelRowsAVX512); elsewhere a Go loop does the same copies. Its
 // output equals Im2colPanels' bit for bit.
-func (p *Im2colPlan) Im2colPanelsPadded(dst, padded []float32, channels, j0, j1, nr int) error {
-	_, cols := p.Shape()
+//
+// padded may hold several images (images × channels planes): the column
+// matrix is then the images' matrices side by side, column
+// i·OH·OW + oh·OW + ow for output (oh, ow) of image i, so one product
+// serves a batch of small inputs.
+func (p *Im2colPlan) Im2colPanelsPadded(dst, padded []float32, images, channels, j0, j1, nr int) error {
+	_, ohw := p.Shape()
 	g := p.g
+	if images <= 0 {
+		return fmt.Errorf("kernel: im2col image count %d must be positive", images)
+	}
+	cols := images * ohw
 	if channels <= 0 {
 		return fmt.Errorf("kernel: im2col channel count %d must be positive", channels)
 	}
@@ -70,8 +82,11 @@ func (p *Im2colPlan) Im2colPanelsPadded(dst, padded []float32, channels, j0, j1,
 		return fmt.Errorf("kernel: im2col panels have %d values, want %d (%d panels of %d×%d)", len(dst), panels*rows*nr, panels, rows, nr)
 	}
 	ph, pw := p.PaddedShape()
-	if len(padded) < channels*ph*pw {
-		return fmt.Errorf("kernel: padded image has %d values, want %d (%d×%d×%d)", len(padded), channels*ph*pw, channels, ph, pw)
+	if len(padded) < images*channels*ph*pw {
+		return fmt.Errorf("kernel: padded input has %d values, want %d (%d×%d×%d×%d)", len(padded), images*channels*ph*pw, images, channels, ph, pw)
+	}
+	if images*channels*ph*pw > math.MaxInt32 {
+		return fmt.Errorf("kernel: padded input of %d values exceeds the 32-bit offsets of the panel loop", images*channels*ph*pw)
 	}
 	offs := make([]int32, rows)
 	r := 0
@@ -91,11 +106,13 @@ func (p *Im2colPlan) Im2colPanelsPadded(dst, padded []float32, channels, j0, j1,
 		je := min(jp+nr, j1)
 		segs := segBuf[:0]
 		for j := jp; j < je; {
-			oh, ow0 := j/p.ow, j%p.ow
-			end := min(je, (oh+1)*p.ow)
+			img, r := j/ohw, j%ohw
+			oh, ow0 := r/p.ow, r%p.ow
+			end := min(je, img*ohw+(oh+1)*p.ow)
 			// off is the panel lane; ow0 and ow1 become the segment's
 			// input offset (from the tap base) and length.
-			segs = append(segs, panelSeg{oh: oh, ow0: oh*g.StrideH*pw + ow0*g.StrideW, ow1: end - j, off: j - jp})
+			src := img*channels*ph*pw + oh*g.StrideH*pw + ow0*g.StrideW
+			segs = append(segs, panelSeg{oh: oh, ow0: src, ow1: end - j, off: j - jp})
 			j = end
 		}
 		panel := dst[q*rows*nr : (q+1)*rows*nr]

@@ -100,7 +100,7 @@ func TestIm2colPanelsConv(t *testing.T) {
 				}
 				for _, pl := range []*kernel.Im2colPlan{plan, plan.PortableLoops()} {
 					clear(again)
-					if err := pl.Im2colPanelsPadded(again, padded, tc.c, j0, j1, nr); err != nil {
+					if err := pl.Im2colPanelsPadded(again, padded, 1, tc.c, j0, j1, nr); err != nil {
 						t.Fatal(err)
 					}
 					for k := range again {
@@ -175,7 +175,7 @@ func BenchmarkIm2colPanels(b *testing.B) {
 		}{
 			{"direct", func(dst []float32, j0, j1 int) error { return plan.Im2colPanels(dst, x, tc.g.C, j0, j1, 32) }},
 			{"padded", func(dst []float32, j0, j1 int) error {
-				return plan.Im2colPanelsPadded(dst, padded, tc.g.C, j0, j1, 32)
+				return plan.Im2colPanelsPadded(dst, padded, 1, tc.g.C, j0, j1, 32)
 			}},
 		} {
 			lower := v.lower
@@ -193,6 +193,62 @@ func BenchmarkIm2colPanels(b *testing.B) {
 					}
 				}
 			})
+		}
+	}
+}
+
+// TestIm2colPanelsPaddedBatch checks the several-image form: the panels of
+// a batch are those of the images' column matrices side by side, with
+// slabs that straddle image boundaries, on the vector and pure-Go paths.
+func TestIm2colPanelsPaddedBatch(t *testing.T) {
+	r := rand.New(rand.NewPCG(5, 6))
+	for _, g := range []kernel.Conv2D{
+		{C: 3, H: 6, W: 5, KH: 3, KW: 3},
+		{C: 2, H: 9, W: 9, KH: 3, KW: 3, StrideH: 2, StrideW: 2},
+		{C: 4, H: 7, W: 6, KH: 1, KW: 1},
+		{C: 2, H: 8, W: 40, KH: 2, KW: 3, DilationW: 2},
+	} {
+		plan, err := kernel.NewIm2col(g)
+		if err != nil {
+			t.Fatal(err)
+		}
+		const images, nr = 3, 32
+		rows, ohw := plan.Shape()
+		x := randSlice(r, images*g.C*g.H*g.W)
+		full := make([]float32, images*rows*ohw) // row-major rows × images·ohw
+		one := make([]float32, rows*ohw)
+		for i := 0; i < images; i++ {
+			if err := plan.Im2col(one, x[i*g.C*g.H*g.W:]); err != nil {
+				t.Fatal(err)
+			}
+			for row := 0; row < rows; row++ {
+				copy(full[row*images*ohw+i*ohw:], one[row*ohw:(row+1)*ohw])
+			}
+		}
+		cols := images * ohw
+		for j0 := 0; j0 < cols; {
+			j1 := min(cols, j0+1+r.IntN(2*nr))
+			np := (j1 - j0 + nr - 1) / nr
+			for _, pl := range []*kernel.Im2colPlan{plan, plan.PortableLoops()} {
+				got := make([]float32, np*rows*nr)
+				if err := pl.Im2colPanelsPadded(got, x, images, g.C, j0, j1, nr); err != nil {
+					t.Fatal(err)
+				}
+				for q := 0; q < np; q++ {
+					for row := 0; row < rows; row++ {
+						for j := 0; j < nr; j++ {
+							var want float32
+							if col := j0 + q*nr + j; col < j1 {
+								want = full[row*cols+col]
+							}
+							if v := got[(q*rows+row)*nr+j]; v != want {
+								t.Fatalf("%+v slab [%d,%d): panel %d entry (%d,%d) = %v, want %v", g, j0, j1, q, row, j, v, want)
+							}
+						}
+					}
+				}
+			}
+			j0 = j1
 		}
 	}
 }
