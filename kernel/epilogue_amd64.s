@@ -142,3 +142,55 @@ panelRowsAVX512_store:
 panelRowsAVX512_done:
 	VZEROUPPER
 	RET
+
+// func panelRowsGatherAVX512(rows int, dst *float32, base *float32, offs *int32, segs *uint64, nseg int, lanes *int32)
+// Requires: AVX, AVX512F
+TEXT ·panelRowsGatherAVX512(SB), NOSPLIT, $0-56
+	MOVQ      rows+0(FP), AX
+	MOVQ      dst+8(FP), CX
+	MOVQ      base+16(FP), DX
+	MOVQ      offs+24(FP), BX
+	MOVQ      segs+32(FP), SI
+	MOVQ      nseg+40(FP), DI
+	MOVQ      lanes+48(FP), R8
+	VMOVDQU32 (R8), Z2
+	VMOVDQU32 64(R8), Z3
+
+panelRowsGatherAVX512_row:
+	TESTQ   AX, AX
+	JZ      panelRowsGatherAVX512_done
+	MOVLQSX (BX), R8
+	LEAQ    (DX)(R8*4), R8
+	VPXORD  Z0, Z0, Z0
+	VPXORD  Z1, Z1, Z1
+	MOVQ    SI, R9
+	MOVQ    DI, R10
+
+panelRowsGatherAVX512_seg:
+	TESTQ        R10, R10
+	JZ           panelRowsGatherAVX512_store
+	MOVQ         (R9), R11
+	VPBROADCASTD R11, Z4
+	VPADDD       Z2, Z4, Z5
+	VPADDD       Z3, Z4, Z6
+	SHRQ         $0x20, R11
+	KMOVW        R11, K1
+	SHRQ         $0x10, R11
+	KMOVW        R11, K2
+	VGATHERDPS   (R8)(Z5*4), K1, Z0
+	VGATHERDPS   (R8)(Z6*4), K2, Z1
+	ADDQ         $0x08, R9
+	DECQ         R10
+	JMP          panelRowsGatherAVX512_seg
+
+panelRowsGatherAVX512_store:
+	VMOVUPS Z0, (CX)
+	VMOVUPS Z1, 64(CX)
+	ADDQ    $0x00000080, CX
+	ADDQ    $0x04, BX
+	DECQ    AX
+	JMP     panelRowsGatherAVX512_row
+
+panelRowsGatherAVX512_done:
+	VZEROUPPER
+	RET

@@ -16,3 +16,8 @@ func biasClampAVX2(n int, x *float32, bias float32, lo float32, hi float32)
 //
 //go:noescape
 func panelRowsAVX512(rows int, dst *float32, base *float32, offs *int32, segs *uint64, nseg int)
+
+// panelRowsGatherAVX512 is panelRowsAVX512 for strided columns: lane j of a segment reads base+offs[r]+shift+lanes[j].
+//
+//go:noescape
+func panelRowsGatherAVX512(rows int, dst *float32, base *float32, offs *int32, segs *uint64, nseg int, lanes *int32)

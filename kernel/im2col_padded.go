@@ -51,9 +51,10 @@ func (p *Im2colPlan) Pad(dst, src []float32, c0, c1 int) error {
 // Pad writes (channels planes of PaddedShape). Every kernel tap then reads
 // inside the buffer, so no value needs a padding test: each panel row is a
 // few plain copies, one per output row the panel spans, at an offset that
-// depends only on the tap. With 32-wide panels, unit column stride and
-// AVX-512 the rows are assembled in registers with masked loads
-// (panelRowsAVX512); elsewhere a Go loop does the same copies. Its
+// depends only on the tap. With 32-wide panels and AVX-512 the rows are
+// assembled in registers with masked loads (panelRowsAVX512), or masked
+// gathers when the column stride is not 1 (panelRowsGatherAVX512);
+// elsewhere a Go loop does the same copies. Its
 // output equals Im2colPanels' bit for bit.
 //
 // padded may hold several images (images × channels planes): the column
@@ -98,7 +99,11 @@ func (p *Im2colPlan) Im2colPanelsPadded(dst, padded []float32, images, channels,
 			}
 		}
 	}
-	vector := nr == 32 && g.StrideW == 1 && !p.portable && panelRowsSIMD()
+	vector := nr == 32 && !p.portable && panelRowsSIMD()
+	var lanes [32]int32 // lane j of a segment reads shift + j·StrideW
+	for j := range lanes {
+		lanes[j] = int32(j * g.StrideW)
+	}
 	var segBuf [maxPanelWidth]panelSeg
 	var packed [maxPanelWidth]uint64
 	for q := 0; q < panels; q++ {
@@ -119,10 +124,10 @@ func (p *Im2colPlan) Im2colPanelsPadded(dst, padded []float32, images, channels,
 		if vector {
 			for i, s := range segs {
 				mask := uint32(((uint64(1) << s.ow1) - 1) << s.off)
-				shift := int32(s.ow0 - s.off)
+				shift := int32(s.ow0 - s.off*g.StrideW)
 				packed[i] = uint64(uint32(shift)) | uint64(mask)<<32
 			}
-			panelRows(rows, panel, padded, offs, packed[:len(segs)])
+			panelRows(rows, panel, padded, offs, packed[:len(segs)], g.StrideW, &lanes)
 			continue
 		}
 		valid := je - jp

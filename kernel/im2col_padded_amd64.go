@@ -4,10 +4,15 @@ import "golang.org/x/sys/cpu"
 
 func panelRowsSIMD() bool { return cpu.X86.HasAVX512F }
 
-// panelRows runs panelRowsAVX512 over rows panel rows of panel.
-func panelRows(rows int, panel, padded []float32, offs []int32, segs []uint64) {
+// panelRows runs the AVX-512 panel loop over rows panel rows of panel:
+// masked loads for unit column stride, masked gathers otherwise.
+func panelRows(rows int, panel, padded []float32, offs []int32, segs []uint64, strideW int, lanes *[32]int32) {
 	if rows == 0 {
 		return
 	}
-	panelRowsAVX512(rows, &panel[0], &padded[0], &offs[0], &segs[0], len(segs))
+	if strideW == 1 {
+		panelRowsAVX512(rows, &panel[0], &padded[0], &offs[0], &segs[0], len(segs))
+		return
+	}
+	panelRowsGatherAVX512(rows, &panel[0], &padded[0], &offs[0], &segs[0], len(segs), &lanes[0])
 }

@@ -4,6 +4,6 @@ package kernel
 
 func panelRowsSIMD() bool { return false }
 
-func panelRows(rows int, panel, padded []float32, offs []int32, segs []uint64) {
+func panelRows(rows int, panel, padded []float32, offs []int32, segs []uint64, strideW int, lanes *[32]int32) {
 	panic("unreachable: panelRowsSIMD is false")
 }

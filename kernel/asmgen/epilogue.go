@@ -14,6 +14,7 @@ func genEpilogue(zmm, ymm []reg.VecPhysical) {
 	genBiasClamp("biasClampAVX512", zmm, 16)
 	genBiasClamp("biasClampAVX2", ymm, 8)
 	genPanelRows()
+	genPanelRowsGather()
 }
 
 // genPanelRows emits the row loop of Im2colPlan.Im2colPanelsPadded for
@@ -124,6 +125,64 @@ func genBiasClamp(name string, vec []reg.VecPhysical, width int) {
 	ADDQ(U32(4*width), x)
 	SUBQ(Imm(uint64(width)), n)
 	JMP(LabelRef(name + "_loop1"))
+	Label(name + "_done")
+	VZEROUPPER()
+	RET()
+}
+
+// genPanelRowsGather is genPanelRows for a column stride other than 1:
+// panel lane j of a segment reads the input at shift + lanes[j] (lanes
+// holds j·StrideW), so each 16-lane half is one merge-masked gather.
+// segs packs segments as for genPanelRows.
+func genPanelRowsGather() {
+	const name = "panelRowsGatherAVX512"
+	TEXT(name, NOSPLIT, "func(rows int, dst, base *float32, offs *int32, segs *uint64, nseg int, lanes *int32)")
+	Doc(name + " is panelRowsAVX512 for strided columns: lane j of a segment reads base+offs[r]+shift+lanes[j].")
+	Pragma("noescape")
+	rows := Load(Param("rows"), GP64())
+	dst := Load(Param("dst"), GP64())
+	base := Load(Param("base"), GP64())
+	offs := Load(Param("offs"), GP64())
+	segs := Load(Param("segs"), GP64())
+	nseg := Load(Param("nseg"), GP64())
+	lanes := Load(Param("lanes"), GP64())
+	laneLo, laneHi := reg.Z2, reg.Z3
+	VMOVDQU32(Mem{Base: lanes}, laneLo)
+	VMOVDQU32(Mem{Base: lanes, Disp: 64}, laneHi)
+	rowBase, sp, sn, w := GP64(), GP64(), GP64(), GP64()
+	lo, hi, sh, idxLo, idxHi := reg.Z0, reg.Z1, reg.Z4, reg.Z5, reg.Z6
+	Label(name + "_row")
+	TESTQ(rows, rows)
+	JZ(LabelRef(name + "_done"))
+	MOVLQSX(Mem{Base: offs}, rowBase)
+	LEAQ(Mem{Base: base, Index: rowBase, Scale: 4}, rowBase)
+	VPXORD(lo, lo, lo)
+	VPXORD(hi, hi, hi)
+	MOVQ(segs, sp)
+	MOVQ(nseg, sn)
+	Label(name + "_seg")
+	TESTQ(sn, sn)
+	JZ(LabelRef(name + "_store"))
+	MOVQ(Mem{Base: sp}, w)
+	VPBROADCASTD(w.As32(), sh)
+	VPADDD(laneLo, sh, idxLo)
+	VPADDD(laneHi, sh, idxHi)
+	SHRQ(U8(32), w)
+	KMOVW(w.As32(), reg.K1)
+	SHRQ(U8(16), w)
+	KMOVW(w.As32(), reg.K2)
+	VGATHERDPS(Mem{Base: rowBase, Index: idxLo, Scale: 4}, reg.K1, lo)
+	VGATHERDPS(Mem{Base: rowBase, Index: idxHi, Scale: 4}, reg.K2, hi)
+	ADDQ(U8(8), sp)
+	DECQ(sn)
+	JMP(LabelRef(name + "_seg"))
+	Label(name + "_store")
+	VMOVUPS(lo, Mem{Base: dst})
+	VMOVUPS(hi, Mem{Base: dst, Disp: 64})
+	ADDQ(U32(128), dst)
+	ADDQ(U8(4), offs)
+	DECQ(rows)
+	JMP(LabelRef(name + "_row"))
 	Label(name + "_done")
 	VZEROUPPER()
 	RET()
