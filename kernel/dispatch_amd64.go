@@ -22,6 +22,10 @@ func archKernels() map[ISA]config {
 		ks[ISAAVX512] = config{
 			isa: ISAAVX512, mr: 12, nr: 32, kc: 256, mc: 192, nc: 4096,
 			kernel: avx512Kernel, direct: avx512Direct, minParallelOps: 1 << 20,
+			edges: []edgeTile{
+				{mr: 4, kernel: avx512Kernel4, direct: avx512Direct4},
+				{mr: 8, kernel: avx512Kernel8, direct: avx512Direct8},
+			},
 		}
 	}
 	if cpu.X86.HasAVX2 && cpu.X86.HasFMA {
@@ -60,4 +64,24 @@ func avx512Direct(k int, a []float32, lda int, b, c []float32, ldc int, alpha, b
 func avx2Direct(k int, a []float32, lda int, b, c []float32, ldc int, alpha, beta float32, load bool) {
 	_, _, _ = a[5*lda+k-1], b[16*k-1], c[5*ldc+15]
 	sgemm6x16AVX2Direct(k, &a[0], lda, &b[0], &c[0], ldc, alpha, beta, b2i(load))
+}
+
+func avx512Kernel8(k int, a, b, c []float32, ldc int, alpha, beta float32, load bool) {
+	_, _, _ = a[8*k-1], b[32*k-1], c[7*ldc+31]
+	sgemm8x32AVX512(k, &a[0], &b[0], &c[0], ldc, alpha, beta, b2i(load))
+}
+
+func avx512Direct8(k int, a []float32, lda int, b, c []float32, ldc int, alpha, beta float32, load bool) {
+	_, _, _ = a[7*lda+k-1], b[32*k-1], c[7*ldc+31]
+	sgemm8x32AVX512Direct(k, &a[0], lda, &b[0], &c[0], ldc, alpha, beta, b2i(load))
+}
+
+func avx512Kernel4(k int, a, b, c []float32, ldc int, alpha, beta float32, load bool) {
+	_, _, _ = a[4*k-1], b[32*k-1], c[3*ldc+31]
+	sgemm4x32AVX512(k, &a[0], &b[0], &c[0], ldc, alpha, beta, b2i(load))
+}
+
+func avx512Direct4(k int, a []float32, lda int, b, c []float32, ldc int, alpha, beta float32, load bool) {
+	_, _, _ = a[3*lda+k-1], b[32*k-1], c[3*ldc+31]
+	sgemm4x32AVX512Direct(k, &a[0], lda, &b[0], &c[0], ldc, alpha, beta, b2i(load))
 }

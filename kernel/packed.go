@@ -78,6 +78,29 @@ type config struct {
 	kernel         microKernel
 	direct         directKernel // nil when the path has no direct-A kernel
 	minParallelOps int          // m·n·k below which one goroutine is used
+	// edges are shorter tiles, by increasing mr, for the last rows of a
+	// direct-A block: the smallest that covers the remaining rows is used
+	// instead of the full mr-row tile (whose extra rows would be wasted
+	// work). Empty when the path has none.
+	edges []edgeTile
+}
+
+// edgeTile is a micro-kernel pair for fewer rows than the main tile, with
+// the same nr.
+type edgeTile struct {
+	mr     int
+	kernel microKernel
+	direct directKernel
+}
+
+// edgeFor returns the smallest edge tile covering rows rows, if any.
+func (c *config) edgeFor(rows int) (edgeTile, bool) {
+	for _, e := range c.edges {
+		if e.mr >= rows {
+			return e, true
+		}
+	}
+	return edgeTile{}, false
 }
 
 // portableConfig: the 2×4 tile is the largest the Go compiler keeps in
@@ -381,10 +404,20 @@ func (g *Packed) run(ws *workspace, transA, transB bool, m, n, k int, alpha floa
 			for ic := 0; ic < m; ic += cfg.mc {
 				mb := min(cfg.mc, m-ic)
 				full := mb // rows read directly from A; the rest is packed
+				var edge edgeTile
+				edgeOK, edgeDirect := false, false
 				if direct {
 					full = mb / mr * mr
-					if full < mb {
-						packA(ws.a, transA, a, lda, ic+full, pc, mb-full, kb, mr)
+					if rem := mb - full; rem > 0 {
+						edge, edgeOK = cfg.edgeFor(rem)
+						switch {
+						case edgeOK && edge.mr == rem:
+							edgeDirect = true // exactly an edge tile: read A in place
+						case edgeOK:
+							packA(ws.a, transA, a, lda, ic+full, pc, rem, kb, edge.mr)
+						default:
+							packA(ws.a, transA, a, lda, ic+full, pc, rem, kb, mr)
+						}
 					}
 				} else {
 					packA(ws.a, transA, a, lda, ic, pc, mb, kb, mr)
@@ -401,7 +434,18 @@ func (g *Packed) run(ws *workspace, transA, transB bool, m, n, k int, alpha floa
 					for ir := 0; ir < mb; ir += mr {
 						mrr := min(mr, mb-ir)
 						ci := (ic+ir)*ldc + jc + jr
-						if direct && ir < full {
+						if edgeOK && ir >= full {
+							if edgeDirect {
+								ad := a[(ic+ir)*lda+pc:]
+								if nrr == nr {
+									edge.direct(kb, ad, lda, bp, c[ci:], ldc, alpha, bet, bet != 0)
+									continue
+								}
+								edge.direct(kb, ad, lda, bp, ws.tile, nr, alpha, 0, false)
+							} else {
+								edge.kernel(kb, ws.a[:edge.mr*kb], bp, ws.tile, nr, alpha, 0, false)
+							}
+						} else if direct && ir < full {
 							ad := a[(ic+ir)*lda+pc:]
 							if nrr == nr {
 								cfg.direct(kb, ad, lda, bp, c[ci:], ldc, alpha, bet, bet != 0)

@@ -72,6 +72,8 @@ func testShapes() []shape {
 		shape{64, 64, 64}, shape{100, 100, 100}, shape{257, 257, 257},
 		shape{100, 257, 33}, shape{257, 100, 17}, shape{33, 257, 100},
 		shape{64, 7, 257}, shape{7, 64, 257}, shape{1, 257, 64}, shape{257, 1, 64},
+		// last rows taken by an edge tile read in place (8 and 4 rows)
+		shape{20, 33, 40}, shape{128, 49, 300}, shape{16, 70, 9},
 		// more than one kc slice (256), mc block (192), nc block (1024 / 4096)
 		shape{13, 17, 600}, shape{200, 40, 300}, shape{5, 4200, 9}, shape{9, 1100, 3},
 		// large enough to be split across goroutines along n and along m

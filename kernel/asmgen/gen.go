@@ -78,6 +78,15 @@ func genGEMM(zmm, ymm []reg.VecPhysical) {
 		name: "sgemm12x32AVX512", mr: 12, nv: 2, width: 16, vec: zmm,
 		doc: "12×32 tile: 24 zmm accumulators, 2 for the B row, 2 for broadcasts.",
 	})
+	// Edge tiles for the last rows of C when M is not a multiple of 12
+	// (64 = 5·12 + 4, 128 = 10·12 + 8): computing them with the 12-row
+	// tile wastes up to 11 rows of multiply-adds.
+	for _, mr := range []int{8, 4} {
+		gen(tile{
+			name: fmt.Sprintf("sgemm%dx32AVX512", mr), mr: mr, nv: 2, width: 16, vec: zmm,
+			doc: fmt.Sprintf("%d×32 edge tile: %d zmm accumulators.", mr, 2*mr),
+		})
+	}
 	gen(tile{
 		name: "sgemm6x16AVX2", mr: 6, nv: 2, width: 8, vec: ymm,
 		doc: "6×16 tile: 12 ymm accumulators, 2 for the B row, 2 for broadcasts.",
