@@ -48,9 +48,10 @@ class Pattern(TorchFunctionMode):
     (mode "force") the branch pattern of ReLU, hardtanh and max-pool calls,
     matched by call order."""
 
-    def __init__(self, mode, ref=None):
+    def __init__(self, mode, ref=None, kinds=("relu", "hardtanh", "maxpool")):
         super().__init__()
-        self.mode, self.ref, self.pats, self.flips, self.units = mode, ref, [], {}, {}
+        self.mode, self.ref, self.kinds, self.pats, self.flips, self.units = mode, ref, kinds, [], {}, {}
+        self.bounds = []  # (min_val, max_val) of each hardtanh call
 
     def _next(self, kind, pat):
         i = len(self.pats)
@@ -68,6 +69,10 @@ class Pattern(TorchFunctionMode):
     def __torch_function__(self, func, types, args=(), kwargs=None):
         kwargs = kwargs or {}
         name = getattr(func, "__name__", "")
+        kind = {"relu": "relu", "hardtanh": "hardtanh", "max_pool2d": "maxpool",
+                "_max_pool2d": "maxpool", "max_pool2d_with_indices": "maxpool"}.get(name)
+        if kind not in self.kinds:
+            return func(*args, **kwargs)
         if name == "relu":
             z = args[0]
             rp = self._next("relu", ((z > 0).detach(),))
@@ -77,6 +82,7 @@ class Pattern(TorchFunctionMode):
             b = _HT.bind(*args, **kwargs)
             b.apply_defaults()
             z, lo, hi = b.arguments["input"], b.arguments["min_val"], b.arguments["max_val"]
+            self.bounds.append((lo, hi))
             rp = self._next("hardtanh", ((z > lo).detach(), (z < hi).detach()))
             if self.mode == "force":
                 mid = (rp[0] & rp[1]).to(z.dtype)
@@ -107,20 +113,33 @@ def rel(a, b):
     return ((a - b).norm() / b.norm()).item()
 
 
+def load_export(d, name):
+    """Rebuilds the exported graph's function for the full-size net exported
+    to directory d (same seed as export_nets.py) and checks it reproduces
+    the export's own float32 graph logits (logits_g32.pb). Returns
+    (graph model, capture, input)."""
+    seed = 1000 + list(E.NETS).index(name)
+    torch.manual_seed(seed)
+    gen = torch.Generator().manual_seed(seed)
+    model, size, capture = E.NETS[name][1]()
+    E.randomise(model, size, gen)
+    gm = E.graph_model(model, os.path.join(d, "model.onnx"))
+    x = torch.from_numpy(numpy_helper.to_array(onnx.load_tensor(os.path.join(d, "input.pb"))).copy())
+    want = numpy_helper.to_array(onnx.load_tensor(os.path.join(d, "logits_g32.pb")))
+    with torch.no_grad():
+        got = capture(gm, x)[0].numpy()
+    if np.abs(got - want).max() > 1e-5 * np.abs(want).max():
+        raise SystemExit(f"{d}: rebuilt {name} does not reproduce the export's logits_g32.pb")
+    return gm, capture, x
+
+
 def main():
     if len(sys.argv) < 3:
         raise SystemExit(__doc__)
     out = sys.argv[1]
     for name in sys.argv[2:]:
-        d = os.path.join(out, name)
-        seed = 1000 + list(E.NETS).index(name)
-        torch.manual_seed(seed)
-        gen = torch.Generator().manual_seed(seed)
-        model, size, capture = E.NETS[name][1]()
-        E.randomise(model, size, gen)
-        gm = E.graph_model(model, os.path.join(d, "model.onnx"))
-        x = torch.from_numpy(numpy_helper.to_array(onnx.load_tensor(os.path.join(d, "input.pb"))).copy())
         torch.set_num_threads(2)
+        gm, capture, x = load_export(os.path.join(out, name), name)
         rec = Pattern("record")
         g64 = input_grad(copy.deepcopy(gm).double(), capture, x.double(), rec)
         units = {}
