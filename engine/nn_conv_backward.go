@@ -34,14 +34,35 @@ func (op *convOp) BackwardFor(in, out, gradOut []*tensor.Tensor, need []bool) ([
 	ihw, ohw := g.ih*g.iw, g.oh*g.ow
 	needX, needW := need[0], len(need) > 1 && need[1]
 	var dx, dw *tensor.Tensor
+	plan, perr := op.plans.plan(g)
+	// The input gradient of a unit-stride layer is a forward convolution
+	// of dY with the flipped filters, which overwrites dX; col2im and the
+	// depthwise kernels accumulate into a zeroed one.
+	var flipped []float32
+	tg, transposed := transposedGeom(g)
+	transposed = transposed && needX && !s.depthwise() && !s.pointwise() && op.gemm1 != nil
+	if transposed {
+		if _, err := op.tplans.plan(tg); err != nil {
+			transposed = false
+		}
+	}
 	if needX {
-		// Zeroed: col2im, slabs and the depthwise kernels accumulate.
-		dx = op.arena.zeroed(x.Shape...)
+		if transposed || (s.pointwise() && !s.depthwise()) {
+			dx = op.arena.tensor(x.Shape...)
+		} else {
+			dx = op.arena.zeroed(x.Shape...)
+		}
+	}
+	if transposed {
+		// Flipped once per call, not once per image.
+		b := poolBuf(&op.slabBufs, len(w.F32))
+		defer op.slabBufs.Put(b)
+		flipped = *b
+		flipFilters(flipped, w.F32, op.group, s.mg, s.cg, g.kh*g.kw)
 	}
 	if needW {
 		dw = tensor.New(w.Shape...)
 	}
-	plan, perr := op.plans.plan(g)
 	if s.depthwise() {
 		if perr != nil {
 			depthwiseBackward(x.F32, w.F32, dy.F32, dx, dw, s)
@@ -91,8 +112,8 @@ func (op *convOp) BackwardFor(in, out, gradOut []*tensor.Tensor, need []bool) ([
 				}
 				dxg := dx.F32[off : off+s.cg*ihw]
 				wg := w.F32[gi*s.mg*kk : (gi+1)*s.mg*kk]
-				if tg, ok := transposedGeom(g); ok && !pw && op.useSlabs(s.mg*g.kh*g.kw, ihw) {
-					if err := op.slabBackwardX(tg, wg, s.cg, s.mg, dyg, dxg); err != nil {
+				if transposed {
+					if err := op.transposedBackwardX(tg, flipped[gi*s.mg*kk:(gi+1)*s.mg*kk], s.cg, s.mg, dyg, dxg); err != nil {
 						return nil, err
 					}
 					continue
@@ -149,31 +170,43 @@ func transposedGeom(g geom2) (t geom2, ok bool) {
 	return t, true
 }
 
-// slabBackwardX computes one image and group's input gradient dxg
-// (cg×ih·iw, overwritten) of a unit-stride convolution as the slab-parallel
-// forward convolution of dyg (mg×oh·ow) with the flipped, channel-swapped
-// filters, instead of the K×N matrix Wᵀ·dY followed by a col2im scatter:
-// the same multiply-adds, without the column matrix going through memory,
-// and with both cores on every layer.
-func (op *convOp) slabBackwardX(tg geom2, wg []float32, cg, mg int, dyg, dxg []float32) error {
+// flipFilters writes, for each of the groups, the filters of the
+// transposed convolution that gives the input gradient: with the spatial
+// taps reversed and the channel axes swapped,
+// F[c][m][ki][kj] = W[m][c][kh−1−ki][kw−1−kj] (cg×mg filters per group).
+func flipFilters(f, w []float32, groups, mg, cg, khw int) {
+	for gi := 0; gi < groups; gi++ {
+		wg := w[gi*mg*cg*khw : (gi+1)*mg*cg*khw]
+		fg := f[gi*mg*cg*khw : (gi+1)*mg*cg*khw]
+		for m := 0; m < mg; m++ {
+			for c := 0; c < cg; c++ {
+				src := wg[(m*cg+c)*khw : (m*cg+c+1)*khw]
+				dst := fg[(c*mg+m)*khw : (c*mg+m+1)*khw]
+				for t, v := range src {
+					dst[khw-1-t] = v
+				}
+			}
+		}
+	}
+}
+
+// transposedBackwardX computes one image and group's input gradient dxg
+// (cg×ih·iw, overwritten) of a unit-stride convolution as the forward
+// convolution of dyg (mg×oh·ow) with the flipped, channel-swapped filters
+// fg (see flipFilters), instead of the K×N matrix Wᵀ·dY followed by a
+// col2im scatter: the same multiply-adds, without the column matrix going
+// through memory, and through the forward's packed-panel paths with both
+// cores busy: slab by slab for large maps, one shared panel matrix split
+// by output channels for small ones (7×7 and 14×14 layers, which the
+// Wᵀ·dY GEMM and its col2im served before).
+func (op *convOp) transposedBackwardX(tg geom2, fg []float32, cg, mg int, dyg, dxg []float32) error {
 	plan, err := op.tplans.plan(tg)
 	if err != nil {
 		return err
 	}
-	khw := tg.kh * tg.kw
-	kk := mg * khw
-	wf := poolBuf(&op.slabBufs, cg*kk)
-	defer op.slabBufs.Put(wf)
-	f := *wf
-	// Wf[c][m][ki][kj] = W[m][c][kh−1−ki][kw−1−kj]
-	for m := 0; m < mg; m++ {
-		for c := 0; c < cg; c++ {
-			src := wg[(m*cg+c)*khw : (m*cg+c+1)*khw]
-			dst := f[(c*mg+m)*khw : (c*mg+m+1)*khw]
-			for t, v := range src {
-				dst[khw-1-t] = v
-			}
-		}
+	kk := mg * tg.kh * tg.kw
+	if op.useSlabs(kk, tg.oh*tg.ow) {
+		return op.slabForward(plan, dyg, mg, tg, fg, cg, kk, dxg, nil, 0)
 	}
-	return op.slabForward(plan, dyg, mg, tg, f, cg, kk, dxg, nil, 0)
+	return op.panelForward(plan, dyg, mg, tg, fg, cg, kk, dxg, nil, 0)
 }
