@@ -66,38 +66,23 @@ func (op *convOp) planDepthwise(p *kernel.Im2colPlan, x, w, y []float32, s convS
 // planDepthwiseBackward accumulates dx and dw (either may be nil) for the
 // depthwise path. Work is split by input channel so each goroutine owns
 // the dx planes and dw rows it writes; images are summed inside. Each
-// goroutine allocates one scratch area for all its planes.
+// goroutine hands its whole run of channels to one kernel call with one
+// scratch area.
 func planDepthwiseBackward(p *kernel.Im2colPlan, x, w, dy, dx, dw []float32, s convShape) error {
 	g := s.g
-	ihw, ohw, khw := g.ih*g.iw, g.oh*g.ow, g.kh*g.kw
+	ohw, khw := g.oh*g.ow, g.kh*g.kw
 	var firstErr error
 	var mu sync.Mutex
 	splitWork(s.c, s.n*s.m*ohw*khw, func(c0, c1 int) {
 		scratch := make([]float32, p.DepthwiseBackwardScratch())
-		for ch := c0; ch < c1; ch++ {
-			m0 := ch * s.mg
-			var dwc []float32
-			if dw != nil {
-				dwc = dw[m0*khw : (m0+s.mg)*khw]
-			}
-			for n := 0; n < s.n; n++ {
-				var dxc, xc []float32
-				if dx != nil {
-					dxc = dx[(n*s.c+ch)*ihw : (n*s.c+ch+1)*ihw]
-				}
-				if dw != nil { // x is not retained when only dx is wanted
-					xc = x[(n*s.c+ch)*ihw : (n*s.c+ch+1)*ihw]
-				}
-				err := p.DepthwiseBackwardInto(dxc, dwc,
-					dy[(n*s.m+m0)*ohw:(n*s.m+m0+s.mg)*ohw],
-					xc, w[m0*khw:(m0+s.mg)*khw], s.mg, 0, 1, scratch)
-				if err != nil {
-					mu.Lock()
-					firstErr = err
-					mu.Unlock()
-					return
-				}
-			}
+		var xs []float32
+		if dw != nil { // x is not retained when only dx is wanted
+			xs = x
+		}
+		if err := p.DepthwiseBackwardPlanes(dx, dw, dy, xs, w, s.n, s.c, s.mg, c0, c1, scratch); err != nil {
+			mu.Lock()
+			firstErr = err
+			mu.Unlock()
 		}
 	})
 	return firstErr

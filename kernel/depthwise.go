@@ -422,21 +422,70 @@ func (p *Im2colPlan) depthwiseBackward(isa ISA, dsrc, dw, dy, src, w []float32, 
 	if err := p.checkDepthwise(dy, src, w, multiplier, c0*multiplier, c1*multiplier, dw != nil); err != nil {
 		return err
 	}
-	hw, ohw, taps := g.H*g.W, p.oh*p.ow, g.KH*g.KW
+	hw, taps := g.H*g.W, g.KH*g.KW
 	if dsrc != nil && len(dsrc) < g.C*hw {
 		return fmt.Errorf("kernel: depthwise input gradient has %d values, want %d", len(dsrc), g.C*hw)
 	}
 	if dw != nil && len(dw) < g.C*multiplier*taps {
 		return fmt.Errorf("kernel: depthwise filter gradient has %d values, want %d", len(dw), g.C*multiplier*taps)
 	}
-	if len(scratch) < p.DepthwiseBackwardScratch() {
-		return fmt.Errorf("kernel: depthwise backward scratch has %d values, want %d", len(scratch), p.DepthwiseBackwardScratch())
+	return p.dwBackwardPlanes(isa, dsrc, dw, dy, src, w, 1, g.C, multiplier, c0, c1, scratch)
+}
+
+// DepthwiseBackwardPlanes is DepthwiseBackwardInto over whole
+// N×C×H×W tensors for a plan made for one channel (Geometry().C == 1),
+// as DepthwisePlanes is for the forward pass: for channels [c0, c1) of
+// all images, dsrc += the input gradient (planes laid out like src) and
+// dw += the filter gradient summed over the images (rows indexed by
+// output channel like w), from dy laid out like the forward output.
+// Either of dsrc and dw may be nil; src is read only for dw. The scratch
+// is cleared once per call, so a goroutine should hand it a run of
+// channels.
+func (p *Im2colPlan) DepthwiseBackwardPlanes(dsrc, dw, dy, src, w []float32, images, channels, multiplier, c0, c1 int, scratch []float32) error {
+	g := p.g
+	hw, ohw, taps := g.H*g.W, p.oh*p.ow, g.KH*g.KW
+	m := channels * multiplier
+	switch {
+	case g.C != 1:
+		return fmt.Errorf("kernel: depthwise backward planes need a one-channel plan, got C=%d", g.C)
+	case images <= 0 || channels <= 0 || multiplier <= 0:
+		return fmt.Errorf("kernel: depthwise backward planes: %d images, %d channels, multiplier %d must be positive", images, channels, multiplier)
+	case c0 < 0 || c1 > channels || c0 > c1:
+		return fmt.Errorf("kernel: depthwise backward channel range [%d, %d) outside [0, %d)", c0, c1, channels)
+	case len(dy) < images*m*ohw:
+		return fmt.Errorf("kernel: depthwise output gradient has %d values, want %d", len(dy), images*m*ohw)
+	case len(w) < m*taps:
+		return fmt.Errorf("kernel: depthwise weights have %d values, want %d", len(w), m*taps)
+	case dsrc != nil && len(dsrc) < images*channels*hw:
+		return fmt.Errorf("kernel: depthwise input gradient has %d values, want %d", len(dsrc), images*channels*hw)
+	case dw != nil && len(dw) < m*taps:
+		return fmt.Errorf("kernel: depthwise filter gradient has %d values, want %d", len(dw), m*taps)
+	case dw != nil && len(src) < images*channels*hw:
+		return fmt.Errorf("kernel: depthwise input has %d values, want %d", len(src), images*channels*hw)
 	}
+	isa := ISAAuto
+	if p.portable {
+		isa = ISAPortable
+	}
+	return p.dwBackwardPlanes(isa, dsrc, dw, dy, src, w, images, channels, multiplier, c0, c1, scratch)
+}
+
+// dwBackwardPlanes does the work of both backward entry points once the
+// sizes are checked: plane (n, ch) of src/dsrc is at (n·channels + ch)·H·W
+// and output channel mo of image n at (n·channels·multiplier + mo)·OH·OW.
+func (p *Im2colPlan) dwBackwardPlanes(isa ISA, dsrc, dw, dy, src, w []float32, images, channels, multiplier, c0, c1 int, scratch []float32) error {
+	g := p.g
+	hw, ohw, taps := g.H*g.W, p.oh*p.ow, g.KH*g.KW
 	lb, ab := p.backwardLayout()
 	lf, af := p.forwardLayout()
+	if need := lb.size() + lf.size() + taps; len(scratch) < need {
+		return fmt.Errorf("kernel: depthwise backward scratch has %d values, want %d", len(scratch), need)
+	}
 	u := scratch[:lb.size()]
 	xs := scratch[lb.size() : lb.size()+lf.size()]
 	flip := scratch[lb.size()+lf.size() : lb.size()+lf.size()+taps]
+	// spread writes the same positions of u for every plane and fill the
+	// same cells of xs, so one clear each serves the whole call.
 	if dsrc != nil {
 		clear(u)
 	}
@@ -444,22 +493,26 @@ func (p *Im2colPlan) depthwiseBackward(isa ISA, dsrc, dw, dy, src, w []float32, 
 		lf.clearPad(xs)
 	}
 	par := [3]float32{0, float32(math.Inf(-1)), float32(math.Inf(1))}
+	m := channels * multiplier
 	for ch := c0; ch < c1; ch++ {
-		if dw != nil {
-			lf.fill(xs, src[ch*hw:(ch+1)*hw])
-		}
-		for mo := ch * multiplier; mo < (ch+1)*multiplier; mo++ {
-			gy := dy[mo*ohw : (mo+1)*ohw]
-			filt := w[mo*taps : (mo+1)*taps]
-			if dsrc != nil {
-				p.spread(lb, u, gy)
-				for t := range flip {
-					flip[t] = filt[taps-1-t]
-				}
-				dwPlane(isa, &ab, dsrc[ch*hw:(ch+1)*hw], u, flip, &par, true)
-			}
+		for n := 0; n < images; n++ {
+			pl := n*channels + ch
 			if dw != nil {
-				dwFilterGrad(&af, dw[mo*taps:(mo+1)*taps], gy, xs)
+				lf.fill(xs, src[pl*hw:(pl+1)*hw])
+			}
+			for mo := ch * multiplier; mo < (ch+1)*multiplier; mo++ {
+				gy := dy[(n*m+mo)*ohw : (n*m+mo+1)*ohw]
+				filt := w[mo*taps : (mo+1)*taps]
+				if dsrc != nil {
+					p.spread(lb, u, gy)
+					for t := range flip {
+						flip[t] = filt[taps-1-t]
+					}
+					dwPlane(isa, &ab, dsrc[pl*hw:(pl+1)*hw], u, flip, &par, true)
+				}
+				if dw != nil {
+					dwFilterGrad(&af, dw[mo*taps:(mo+1)*taps], gy, xs)
+				}
 			}
 		}
 	}

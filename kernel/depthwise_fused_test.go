@@ -303,3 +303,62 @@ func TestDepthwisePlanesMatchesDefinition(t *testing.T) {
 		t.Error("two-channel plan accepted")
 	}
 }
+
+// TestDepthwiseBackwardPlanesMatchesDefinition runs the batched backward
+// entry point (one-channel plan, two images, channel runs as goroutines
+// take them) against dwBackwardDirect applied image by image, with the
+// filter gradient summed over the images.
+func TestDepthwiseBackwardPlanesMatchesDefinition(t *testing.T) {
+	r := rand.New(rand.NewPCG(61, 62))
+	const n, c = 2, 5
+	for _, mult := range []int{1, 2} {
+		for _, g := range []kernel.Conv2D{
+			{C: 1, H: 14, W: 17, KH: 3, KW: 3, PadTop: 1, PadLeft: 1, PadBottom: 1, PadRight: 1},
+			{C: 1, H: 15, W: 13, KH: 5, KW: 5, StrideH: 2, StrideW: 2, PadTop: 2, PadLeft: 2, PadBottom: 2, PadRight: 2},
+			{C: 1, H: 12, W: 12, KH: 3, KW: 3, StrideH: 2, StrideW: 2, PadTop: 0, PadLeft: 0, PadBottom: 1, PadRight: 1},
+			{C: 1, H: 9, W: 10, KH: 3, KW: 3, DilationH: 2, DilationW: 2, PadTop: 2, PadLeft: 2, PadBottom: 2, PadRight: 2},
+		} {
+			p, err := kernel.NewIm2col(g)
+			if err != nil {
+				t.Fatal(err)
+			}
+			oh, ow := p.Out()
+			gc := p.Geometry()
+			m := c * mult
+			hw, ohw := g.H*g.W, oh*ow
+			x := randSlice(r, n*c*hw)
+			w := randSlice(r, m*g.KH*g.KW)
+			dy := randSlice(r, n*m*ohw)
+			wantDX := make([]float32, len(x))
+			wantDW := make([]float32, len(w))
+			for b := 0; b < n; b++ {
+				dx, dw := dwBackwardDirect(x[b*c*hw:(b+1)*c*hw], w, dy[b*m*ohw:(b+1)*m*ohw], c, g.H, g.W, mult, gc, oh, ow)
+				copy(wantDX[b*c*hw:], dx)
+				for j, v := range dw {
+					wantDW[j] += v
+				}
+			}
+			for _, isa := range dwISAs() {
+				dx, dw := make([]float32, len(x)), make([]float32, len(w))
+				for _, rg := range [][2]int{{0, 2}, {2, 3}, {3, c}} {
+					if err := p.DepthwiseBackwardPlanesISA(isa, dx, dw, dy, x, w, n, c, mult, rg[0], rg[1]); err != nil {
+						t.Fatal(err)
+					}
+				}
+				if err := closeTo(dx, wantDX, 1e-4, 1e-5); err != nil {
+					t.Fatalf("%+v mult %d %v dx: %v", g, mult, isa, err)
+				}
+				if err := closeTo(dw, wantDW, 1e-4, 1e-4); err != nil {
+					t.Fatalf("%+v mult %d %v dw: %v", g, mult, isa, err)
+				}
+			}
+		}
+	}
+	p, _ := kernel.NewIm2col(kernel.Conv2D{C: 1, H: 4, W: 4, KH: 3, KW: 3})
+	if err := p.DepthwiseBackwardPlanes(make([]float32, 32), nil, make([]float32, 8), nil, make([]float32, 18), 1, 2, 1, 0, 2, make([]float32, 4)); err == nil {
+		t.Error("short scratch accepted")
+	}
+	if err := p.DepthwiseBackwardPlanes(make([]float32, 32), nil, make([]float32, 7), nil, make([]float32, 18), 1, 2, 1, 0, 2, make([]float32, p.DepthwiseBackwardScratch())); err == nil {
+		t.Error("short dy accepted")
+	}
+}
