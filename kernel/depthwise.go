@@ -89,24 +89,19 @@ func (l dwLayout) clearPad(scr []float32) {
 }
 
 // fill copies an h×w image plane into its place in the padded plane (see
-// clearPad).
-func (l dwLayout) fill(scr, plane []float32) {
+// clearPad), with the vector copy loop unless isa is ISAPortable.
+func (l dwLayout) fill(isa ISA, scr, plane []float32) {
 	nr := min(l.h, l.rows-l.top)
 	nc := min(l.w, l.pitch-l.left)
-	if nc <= 0 {
+	if nc <= 0 || nr <= 0 {
+		return
+	}
+	dst := scr[l.top*l.pitch+l.left:]
+	if isa != ISAPortable && dwFillSIMD(isa, dst, plane, nr, nc, l.pitch, l.w) {
 		return
 	}
 	for i := 0; i < nr; i++ {
-		d := scr[(i+l.top)*l.pitch+l.left:]
-		d = d[:nc]
-		src := plane[i*l.w : i*l.w+nc]
-		if nc >= 32 {
-			copy(d, src)
-			continue
-		}
-		for j, v := range src { // short rows: cheaper than a memmove call
-			d[j] = v
-		}
+		copy(dst[i*l.pitch:i*l.pitch+nc], plane[i*l.w:i*l.w+nc])
 	}
 }
 
@@ -171,26 +166,26 @@ func (p *Im2colPlan) depthwiseFused(isa ISA, dst, src, w []float32, multiplier, 
 	scr := scratch[:l.size()]
 	l.clearPad(scr)
 	hw, ohw, taps := p.g.H*p.g.W, p.oh*p.ow, p.g.KH*p.g.KW
+	par := dwParams(ep)
 	last := -1
 	for mo := m0; mo < m1; mo++ {
 		if ch := mo / multiplier; ch != last {
-			l.fill(scr, src[ch*hw:(ch+1)*hw])
+			l.fill(isa, scr, src[ch*hw:(ch+1)*hw])
 			last = ch
 		}
-		par := dwParams(ep, mo)
+		if ep != nil && ep.Bias != nil {
+			par[0] = ep.Bias[mo]
+		}
 		dwPlane(isa, &a, dst[mo*ohw:(mo+1)*ohw], scr, w[mo*taps:(mo+1)*taps], &par, false)
 	}
 	return nil
 }
 
-// dwParams is the {bias, lo, hi} triple of output channel m.
-func dwParams(ep *DepthwiseEpilogue, m int) [3]float32 {
+// dwParams is the {bias, lo, hi} triple the kernels take, bias still 0.
+func dwParams(ep *DepthwiseEpilogue) [3]float32 {
 	par := [3]float32{0, float32(math.Inf(-1)), float32(math.Inf(1))}
 	if ep != nil {
 		par[1], par[2] = ep.Lo, ep.Hi
-		if ep.Bias != nil {
-			par[0] = ep.Bias[m]
-		}
 	}
 	return par
 }
@@ -238,12 +233,15 @@ func (p *Im2colPlan) depthwisePlanes(isa ISA, dst, src, w []float32, channels, m
 	}
 	scr := scratch[:l.size()]
 	l.clearPad(scr)
+	par := dwParams(ep)
 	for pl := p0; pl < p1; pl++ {
-		l.fill(scr, src[pl*hw:(pl+1)*hw])
+		l.fill(isa, scr, src[pl*hw:(pl+1)*hw])
 		for j := 0; j < multiplier; j++ {
 			mo := (pl%channels)*multiplier + j
 			out := dst[(pl*multiplier+j)*ohw : (pl*multiplier+j+1)*ohw]
-			par := dwParams(ep, mo)
+			if ep != nil && ep.Bias != nil {
+				par[0] = ep.Bias[mo]
+			}
 			dwPlane(isa, &a, out, scr, w[mo*taps:(mo+1)*taps], &par, false)
 		}
 	}
@@ -498,7 +496,7 @@ func (p *Im2colPlan) dwBackwardPlanes(isa ISA, dsrc, dw, dy, src, w []float32, i
 		for n := 0; n < images; n++ {
 			pl := n*channels + ch
 			if dw != nil {
-				lf.fill(xs, src[pl*hw:(pl+1)*hw])
+				lf.fill(isa, xs, src[pl*hw:(pl+1)*hw])
 			}
 			for mo := ch * multiplier; mo < (ch+1)*multiplier; mo++ {
 				gy := dy[(n*m+mo)*ohw : (n*m+mo+1)*ohw]

@@ -16,28 +16,8 @@ func dwPlaneSIMD(isa ISA, a *dwArgs, out, scr, filt []float32, par *[3]float32, 
 	if a.kw != k || a.sw != s || a.dh != 1 || a.dw != 1 || (k != 3 && k != 5) || (s != 1 && s != 2) || a.oh <= 0 || a.ow <= 0 {
 		return false
 	}
-	if isa == ISAAuto {
-		switch {
-		case cpu.X86.HasAVX512F:
-			isa = ISAAVX512
-		case cpu.X86.HasAVX2 && cpu.X86.HasFMA:
-			isa = ISAAVX2
-		default:
-			return false
-		}
-	}
-	width := 16
-	switch isa {
-	case ISAAVX512:
-		if !cpu.X86.HasAVX512F {
-			return false
-		}
-	case ISAAVX2:
-		if !cpu.X86.HasAVX2 || !cpu.X86.HasFMA {
-			return false
-		}
-		width = 8
-	default:
+	isa, width := dwResolve(isa)
+	if width == 0 {
 		return false
 	}
 	// Furthest float read: the last row's last tap row, plus the whole
@@ -76,6 +56,43 @@ func dwPlaneSIMD(isa ISA, a *dwArgs, out, scr, filt []float32, par *[3]float32, 
 		dwK5S1AVX2(o, sp, w, ep, a.oh, a.ow, spitch, rowstep, acc, mask)
 	default:
 		dwK5S2AVX2(o, sp, w, ep, a.oh, a.ow, spitch, rowstep, acc, mask)
+	}
+	return true
+}
+
+// dwResolve turns isa into the vector path to run and its width in
+// floats; width 0 means none (no such CPU support, or ISAPortable).
+func dwResolve(isa ISA) (ISA, int) {
+	if isa == ISAAuto {
+		switch {
+		case cpu.X86.HasAVX512F:
+			isa = ISAAVX512
+		case cpu.X86.HasAVX2 && cpu.X86.HasFMA:
+			isa = ISAAVX2
+		}
+	}
+	switch {
+	case isa == ISAAVX512 && cpu.X86.HasAVX512F:
+		return isa, 16
+	case isa == ISAAVX2 && cpu.X86.HasAVX2 && cpu.X86.HasFMA:
+		return isa, 8
+	}
+	return isa, 0
+}
+
+// dwFillSIMD copies rows rows of n floats from src (row pitch spitch) to
+// dst (row pitch dpitch) with the vector copy loop, reporting false (and
+// doing nothing) when isa has none or the slices are too short.
+func dwFillSIMD(isa ISA, dst, src []float32, rows, n, dpitch, spitch int) bool {
+	isa, width := dwResolve(isa)
+	if width == 0 || rows <= 0 || n <= 0 || len(dst) < (rows-1)*dpitch+n || len(src) < (rows-1)*spitch+n {
+		return false
+	}
+	tail := n % width
+	if isa == ISAAVX512 {
+		dwFillAVX512(&dst[0], &src[0], rows, n, 4*dpitch, 4*spitch, 1<<tail-1)
+	} else {
+		dwFillAVX2(&dst[0], &src[0], rows, n, 4*dpitch, 4*spitch, &dwTailMasks[8-tail])
 	}
 	return true
 }

@@ -38,6 +38,90 @@ DATA dwOddIdx<>+56(SB)/4, $0x0000001d
 DATA dwOddIdx<>+60(SB)/4, $0x0000001f
 GLOBL dwOddIdx<>(SB), RODATA|NOPTR, $64
 
+// func dwFillAVX512(dst *float32, src *float32, rows int, n int, dpitch int, spitch int, mask int)
+// Requires: AVX, AVX512F
+TEXT ·dwFillAVX512(SB), NOSPLIT, $0-56
+	MOVQ  dst+0(FP), AX
+	MOVQ  src+8(FP), CX
+	MOVQ  rows+16(FP), DX
+	MOVQ  mask+48(FP), BX
+	KMOVW BX, K1
+	TESTQ DX, DX
+	JZ    dwFillAVX512_done
+
+dwFillAVX512_row:
+	MOVQ AX, BX
+	MOVQ CX, SI
+	MOVQ n+24(FP), DI
+
+dwFillAVX512_vec:
+	CMPQ    DI, $0x10
+	JL      dwFillAVX512_tail
+	VMOVUPS (SI), Z0
+	VMOVUPS Z0, (BX)
+	ADDQ    $0x00000040, SI
+	ADDQ    $0x00000040, BX
+	SUBQ    $0x10, DI
+	JMP     dwFillAVX512_vec
+
+dwFillAVX512_tail:
+	TESTQ     DI, DI
+	JZ        dwFillAVX512_next
+	VMOVUPS.Z (SI), K1, Z0
+	VMOVUPS   Z0, K1, (BX)
+
+dwFillAVX512_next:
+	ADDQ dpitch+32(FP), AX
+	ADDQ spitch+40(FP), CX
+	DECQ DX
+	JNZ  dwFillAVX512_row
+
+dwFillAVX512_done:
+	VZEROUPPER
+	RET
+
+// func dwFillAVX2(dst *float32, src *float32, rows int, n int, dpitch int, spitch int, mask *int32)
+// Requires: AVX
+TEXT ·dwFillAVX2(SB), NOSPLIT, $0-56
+	MOVQ    dst+0(FP), AX
+	MOVQ    src+8(FP), CX
+	MOVQ    rows+16(FP), DX
+	MOVQ    mask+48(FP), BX
+	VMOVUPS (BX), Y1
+	TESTQ   DX, DX
+	JZ      dwFillAVX2_done
+
+dwFillAVX2_row:
+	MOVQ AX, BX
+	MOVQ CX, SI
+	MOVQ n+24(FP), DI
+
+dwFillAVX2_vec:
+	CMPQ    DI, $0x08
+	JL      dwFillAVX2_tail
+	VMOVUPS (SI), Y0
+	VMOVUPS Y0, (BX)
+	ADDQ    $0x00000020, SI
+	ADDQ    $0x00000020, BX
+	SUBQ    $0x08, DI
+	JMP     dwFillAVX2_vec
+
+dwFillAVX2_tail:
+	TESTQ      DI, DI
+	JZ         dwFillAVX2_next
+	VMASKMOVPS (SI), Y1, Y0
+	VMASKMOVPS Y0, Y1, (BX)
+
+dwFillAVX2_next:
+	ADDQ dpitch+32(FP), AX
+	ADDQ spitch+40(FP), CX
+	DECQ DX
+	JNZ  dwFillAVX2_row
+
+dwFillAVX2_done:
+	VZEROUPPER
+	RET
+
 // func dwK3S1AVX512(o *float32, s *float32, w *float32, ep *float32, rows int, ow int, spitch int, rowstep int, accum int, mask int)
 // Requires: AVX, AVX512F
 TEXT ·dwK3S1AVX512(SB), NOSPLIT, $0-80

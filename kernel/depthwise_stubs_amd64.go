@@ -2,6 +2,16 @@
 
 package kernel
 
+// dwFillAVX512 copies rows×n floats between row pitches, 16 lanes at a time, the tail under a mask.
+//
+//go:noescape
+func dwFillAVX512(dst *float32, src *float32, rows int, n int, dpitch int, spitch int, mask int)
+
+// dwFillAVX2 copies rows×n floats between row pitches, 8 lanes at a time, the tail under a mask.
+//
+//go:noescape
+func dwFillAVX2(dst *float32, src *float32, rows int, n int, dpitch int, spitch int, mask *int32)
+
 // dwK3S1AVX512 computes rows×ow outputs of a 3×3 stride-1 depthwise filter from a zero-padded plane, with the bias (or accumulation) and clamp fused; mask holds the tail's k-register bits.
 //
 //go:noescape
