@@ -23,7 +23,10 @@ func (op *convOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor,
 }
 
 // BackwardFor implements SelectiveBackward. With constant weights (every
-// attribution) only dX = col2im(Wᵀ·dY) is computed.
+// attribution) only dX is computed: for unit-stride layers, 1×1 included,
+// as the forward convolution of dY with flipped filters (see
+// transposedBackwardX; 1.2–2× faster than the GEMM below on ResNet-18 and
+// MobileNetV2 layers, measured); for strided ones as col2im(Wᵀ·dY).
 func (op *convOp) BackwardFor(in, out, gradOut []*tensor.Tensor, need []bool) ([]*tensor.Tensor, error) {
 	x, w, dy := in[0], in[1], gradOut[0]
 	s, err := op.shape(x, w)
@@ -40,14 +43,14 @@ func (op *convOp) BackwardFor(in, out, gradOut []*tensor.Tensor, need []bool) ([
 	// depthwise kernels accumulate into a zeroed one.
 	var flipped []float32
 	tg, transposed := transposedGeom(g)
-	transposed = transposed && needX && !s.depthwise() && !s.pointwise() && op.gemm1 != nil
+	transposed = transposed && needX && !s.depthwise() && op.gemm1 != nil
 	if transposed {
 		if _, err := op.tplans.plan(tg); err != nil {
 			transposed = false
 		}
 	}
 	if needX {
-		if transposed || (s.pointwise() && !s.depthwise()) {
+		if transposed {
 			dx = op.arena.tensor(x.Shape...)
 		} else {
 			dx = op.arena.zeroed(x.Shape...)
@@ -81,12 +84,18 @@ func (op *convOp) BackwardFor(in, out, gradOut []*tensor.Tensor, need []bool) ([
 	} else if needX || needW {
 		kk := s.cg * g.kh * g.kw
 		pw := s.pointwise()
+		// Column buffers only for the paths that use them: the weight
+		// gradient's im2col and the strided input gradient's col2im.
 		var col, dcol []float32
-		if !pw {
-			b1, b2 := op.colBuf(kk*ohw), op.colBuf(kk*ohw)
-			defer op.cols.Put(b1)
-			defer op.cols.Put(b2)
-			col, dcol = *b1, *b2
+		if !pw && needW {
+			b := op.colBuf(kk * ohw)
+			defer op.cols.Put(b)
+			col = *b
+		}
+		if !pw && needX && !transposed {
+			b := op.colBuf(kk * ohw)
+			defer op.cols.Put(b)
+			dcol = *b
 		}
 		for n := 0; n < s.n; n++ {
 			for gi := 0; gi < op.group; gi++ {
@@ -111,14 +120,15 @@ func (op *convOp) BackwardFor(in, out, gradOut []*tensor.Tensor, need []bool) ([
 					continue
 				}
 				dxg := dx.F32[off : off+s.cg*ihw]
-				wg := w.F32[gi*s.mg*kk : (gi+1)*s.mg*kk]
 				if transposed {
 					if err := op.transposedBackwardX(tg, flipped[gi*s.mg*kk:(gi+1)*s.mg*kk], s.cg, s.mg, dyg, dxg); err != nil {
 						return nil, err
 					}
 					continue
 				}
-				// dcol = W_gᵀ · dY_g, scattered back onto dX.
+				// dcol = W_gᵀ · dY_g, scattered back onto dX. (Handing the
+				// GEMM a transposed copy of W measured no faster.)
+				wg := w.F32[gi*s.mg*kk : (gi+1)*s.mg*kk]
 				if pw {
 					op.gemm.Sgemm(true, false, kk, ohw, s.mg, 1, wg, kk, dyg, ohw, 0, dxg, ohw)
 				} else {
