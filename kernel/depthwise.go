@@ -61,10 +61,20 @@ const dwSlack = 128
 // row r, column c holds the image value at (r − top, c − left), or zero.
 // It has exactly the rows and columns the output reads, so an output
 // (oh, ow) at tap (kh, kw) reads padded (oh·sh + kh·dh, ow·sw + kw·dw).
+//
+// A phased layout (horizontal stride 2 on the vector kernels) stores each
+// padded row de-interleaved: its even columns, then half floats on its
+// odd ones, so padded column c is at (c mod 2)·half + ⌊c/2⌋ and the
+// stride-2 taps become unit-stride vector loads. The copy de-interleaves
+// once per input value; gathering even lanes per tap instead (a permute
+// per tap and vector, tried first) ran stride 2 at a third of stride 1's
+// rate per multiply-add.
 type dwLayout struct {
 	rows, pitch int
 	top, left   int
 	h, w        int // image size
+	phased      bool
+	half        int // phased: floats of the even half of a row
 }
 
 func (l dwLayout) size() int { return l.rows*l.pitch + dwSlack }
@@ -72,9 +82,13 @@ func (l dwLayout) size() int { return l.rows*l.pitch + dwSlack }
 // clearPad zeroes every cell of the padded plane that fill does not
 // write (the padding, any image-free rows, the slack). fill never writes
 // them, so they stay zero from one channel to the next: one clearPad per
-// call, one fill per channel, and no full clear.
+// call, one fill per channel, and no full clear of an unphased plane.
 func (l dwLayout) clearPad(scr []float32) {
 	scr = scr[:l.size()]
+	if l.phased {
+		clear(scr)
+		return
+	}
 	top := min(l.top, l.rows)
 	nr := max(0, min(l.h, l.rows-top))
 	left := min(l.left, l.pitch)
@@ -89,46 +103,102 @@ func (l dwLayout) clearPad(scr []float32) {
 }
 
 // fill copies an h×w image plane into its place in the padded plane (see
-// clearPad), with the vector copy loop unless isa is ISAPortable.
+// clearPad), with the vector copy loops unless isa is ISAPortable.
 func (l dwLayout) fill(isa ISA, scr, plane []float32) {
 	nr := min(l.h, l.rows-l.top)
-	nc := min(l.w, l.pitch-l.left)
+	width := l.pitch
+	if l.phased {
+		width = 2 * l.half
+	}
+	nc := min(l.w, width-l.left)
 	if nc <= 0 || nr <= 0 {
 		return
 	}
-	dst := scr[l.top*l.pitch+l.left:]
-	if isa != ISAPortable && dwFillSIMD(isa, dst, plane, nr, nc, l.pitch, l.w) {
+	if !l.phased {
+		dst := scr[l.top*l.pitch+l.left:]
+		if isa != ISAPortable && dwFillSIMD(isa, dst, plane, nr, nc, l.pitch, l.w) {
+			return
+		}
+		for i := 0; i < nr; i++ {
+			copy(dst[i*l.pitch:i*l.pitch+nc], plane[i*l.w:i*l.w+nc])
+		}
+		return
+	}
+	// Image column j is padded column left + j: the even j go to the
+	// half of left's parity, the odd j to the other.
+	row0 := l.top * l.pitch
+	ev := scr[row0+(l.left&1)*l.half+l.left>>1:]
+	od := scr[row0+((l.left+1)&1)*l.half+(l.left+1)>>1:]
+	if isa != ISAPortable && dwFillPhasedSIMD(isa, ev, od, plane, nr, nc, l.pitch, l.w) {
 		return
 	}
 	for i := 0; i < nr; i++ {
-		copy(dst[i*l.pitch:i*l.pitch+nc], plane[i*l.w:i*l.w+nc])
+		src := plane[i*l.w : i*l.w+nc]
+		e, o := ev[i*l.pitch:], od[i*l.pitch:]
+		for j, v := range src {
+			if j&1 == 0 {
+				e[j>>1] = v
+			} else {
+				o[j>>1] = v
+			}
+		}
 	}
 }
 
 // dwArgs is the geometry one plane kernel sees: a KH×KW filter with
 // strides and dilations over a padded plane pitch floats wide, giving
-// oh×ow outputs.
+// oh×ow outputs; q is the offset of the odd half of a phased row (0 when
+// not phased).
 type dwArgs struct {
 	kh, kw, sh, sw, dh, dw int
 	oh, ow, pitch          int
+	q                      int
 }
 
-// forwardLayout is the padded plane of the forward pass.
-func (p *Im2colPlan) forwardLayout() (dwLayout, dwArgs) {
+// colOff is where, relative to its padded row and output column 0, tap
+// column kw reads, and colStep how far it moves per output column.
+func (a *dwArgs) colOff(kw int) int {
+	if a.q != 0 {
+		return (kw&1)*a.q + kw>>1
+	}
+	return kw * a.dw
+}
+
+func (a *dwArgs) colStep() int {
+	if a.q != 0 {
+		return 1
+	}
+	return a.sw
+}
+
+// forwardLayout is the padded plane of the forward pass, phased when the
+// vector kernels of isa will run it at horizontal stride 2.
+func (p *Im2colPlan) forwardLayout(isa ISA) (dwLayout, dwArgs) {
 	g := p.g
 	l := dwLayout{
 		rows:  (p.oh-1)*g.StrideH + (g.KH-1)*g.DilationH + 1,
 		pitch: (p.ow-1)*g.StrideW + (g.KW-1)*g.DilationW + 1,
 		top:   g.PadTop, left: g.PadLeft, h: g.H, w: g.W,
 	}
-	return l, dwArgs{g.KH, g.KW, g.StrideH, g.StrideW, g.DilationH, g.DilationW, p.oh, p.ow, l.pitch}
+	a := dwArgs{g.KH, g.KW, g.StrideH, g.StrideW, g.DilationH, g.DilationW, p.oh, p.ow, l.pitch, 0}
+	if g.StrideW == 2 && isa != ISAPortable && dwVectorShape(isa, &a) {
+		l.phased = true
+		l.half = (l.pitch + 1) / 2
+		l.pitch = 2 * l.half
+		a.pitch, a.q = l.pitch, l.half
+	}
+	return l, a
 }
 
 // DepthwiseScratch returns how many floats of scratch DepthwiseFused
 // needs.
 func (p *Im2colPlan) DepthwiseScratch() int {
-	l, _ := p.forwardLayout()
-	return l.size()
+	l, _ := p.forwardLayout(ISAPortable)
+	lp := l
+	if lp.pitch%2 == 1 { // a phased plane rounds the row up to even
+		lp.pitch++
+	}
+	return max(l.size(), lp.size())
 }
 
 // DepthwiseFused is DepthwiseRange with the epilogue ep (nil for none)
@@ -159,7 +229,7 @@ func (p *Im2colPlan) depthwiseFused(isa ISA, dst, src, w []float32, multiplier, 
 	if ep != nil && ep.Bias != nil && len(ep.Bias) < m1 {
 		return fmt.Errorf("kernel: depthwise bias has %d values, want at least %d", len(ep.Bias), m1)
 	}
-	l, a := p.forwardLayout()
+	l, a := p.forwardLayout(isa)
 	if len(scratch) < l.size() {
 		return fmt.Errorf("kernel: depthwise scratch has %d values, want %d", len(scratch), l.size())
 	}
@@ -227,7 +297,7 @@ func (p *Im2colPlan) depthwisePlanes(isa ISA, dst, src, w []float32, channels, m
 	case ep != nil && ep.Bias != nil && len(ep.Bias) < m:
 		return fmt.Errorf("kernel: depthwise bias has %d values, want %d", len(ep.Bias), m)
 	}
-	l, a := p.forwardLayout()
+	l, a := p.forwardLayout(isa)
 	if len(scratch) < l.size() {
 		return fmt.Errorf("kernel: depthwise scratch has %d values, want %d", len(scratch), l.size())
 	}
@@ -276,17 +346,18 @@ func dwPlaneGo(a *dwArgs, out, scr, filt []float32, par *[3]float32, accum bool)
 			base := (r*a.sh + kh*a.dh) * a.pitch
 			for kw := 0; kw < a.kw; kw++ {
 				wv := filt[kh*a.kw+kw]
-				off := base + kw*a.dw
-				if a.sw == 1 {
+				off := base + a.colOff(kw)
+				st := a.colStep()
+				if st == 1 {
 					in := scr[off : off+len(o)]
 					for j := range o {
 						o[j] += wv * in[j]
 					}
 					continue
 				}
-				in := scr[off : off+(len(o)-1)*a.sw+1]
+				in := scr[off : off+(len(o)-1)*st+1]
 				for j := range o {
-					o[j] += wv * in[j*a.sw]
+					o[j] += wv * in[j*st]
 				}
 			}
 		}
@@ -340,7 +411,7 @@ func (p *Im2colPlan) backwardLayout() (dwLayout, dwArgs) {
 		left:  (g.KW-1)*g.DilationW - g.PadLeft,
 		h:     p.oh, w: p.ow,
 	}
-	return l, dwArgs{g.KH, g.KW, 1, 1, g.DilationH, g.DilationW, g.H, g.W, l.pitch}
+	return l, dwArgs{g.KH, g.KW, 1, 1, g.DilationH, g.DilationW, g.H, g.W, l.pitch, 0}
 }
 
 // spread writes the output-gradient plane dy into U (see backwardLayout).
@@ -382,7 +453,7 @@ func (p *Im2colPlan) spread(l dwLayout, scr, dy []float32) {
 // DepthwiseBackwardInto needs.
 func (p *Im2colPlan) DepthwiseBackwardScratch() int {
 	lb, _ := p.backwardLayout()
-	lf, _ := p.forwardLayout()
+	lf, _ := p.forwardLayout(ISAPortable)
 	return lb.size() + lf.size() + p.g.KH*p.g.KW
 }
 
@@ -475,7 +546,7 @@ func (p *Im2colPlan) dwBackwardPlanes(isa ISA, dsrc, dw, dy, src, w []float32, i
 	g := p.g
 	hw, ohw, taps := g.H*g.W, p.oh*p.ow, g.KH*g.KW
 	lb, ab := p.backwardLayout()
-	lf, af := p.forwardLayout()
+	lf, af := p.forwardLayout(ISAPortable) // dwFilterGrad reads it unphased
 	if need := lb.size() + lf.size() + taps; len(scratch) < need {
 		return fmt.Errorf("kernel: depthwise backward scratch has %d values, want %d", len(scratch), need)
 	}

@@ -6,56 +6,64 @@ import "golang.org/x/sys/cpu"
 // &dwTailMasks[8-t] is 8 lane masks with the first t lanes set.
 var dwTailMasks = [16]int32{-1, -1, -1, -1, -1, -1, -1, -1}
 
-// dwPlaneSIMD runs the generated kernel for a K×K filter (K = 3, 5) with
-// unit dilation and equal strides of 1 or 2, when isa (ISAAuto: the best
-// the CPU has) provides one. It reports false, having done nothing, for
-// every other shape or when out, scr or filt are too short for the
-// kernel's reads and writes (the caller's Go loop then does the plane).
-func dwPlaneSIMD(isa ISA, a *dwArgs, out, scr, filt []float32, par *[3]float32, accum bool) bool {
+// dwVectorShape reports whether isa (ISAAuto: the best the CPU has) has
+// a plane kernel for the filter of a: K×K with K = 3 or 5, unit dilation
+// and equal strides of 1 or 2.
+func dwVectorShape(isa ISA, a *dwArgs) bool {
 	k, s := a.kh, a.sh
 	if a.kw != k || a.sw != s || a.dh != 1 || a.dw != 1 || (k != 3 && k != 5) || (s != 1 && s != 2) || a.oh <= 0 || a.ow <= 0 {
 		return false
 	}
-	isa, width := dwResolve(isa)
-	if width == 0 {
+	_, width := dwResolve(isa)
+	return width > 0
+}
+
+// dwPlaneSIMD runs the generated kernel for the shape of a when isa has
+// one (see dwVectorShape; stride 2 only on a phased plane). It reports
+// false, having done nothing, for every other shape or when out, scr or
+// filt are too short for the kernel's reads and writes (the caller's Go
+// loop then does the plane).
+func dwPlaneSIMD(isa ISA, a *dwArgs, out, scr, filt []float32, par *[3]float32, accum bool) bool {
+	if !dwVectorShape(isa, a) || (a.sw == 2) != (a.q != 0) {
 		return false
 	}
-	// Furthest float read: the last row's last tap row, plus the whole
-	// vectors (two per tap at stride 2) of the last, rounded-up column
-	// block.
+	k, s := a.kh, a.sh
+	isa, width := dwResolve(isa)
+	// Furthest float read: the last row's last tap row and column, plus
+	// the whole vectors of the last, rounded-up column block.
 	vecs := (a.ow + width - 1) / width
-	reach := ((a.oh-1)*s+k-1)*a.pitch + s*vecs*width + 2*width + k
+	reach := ((a.oh-1)*s+k-1)*a.pitch + max(a.colOff(k-2), a.colOff(k-1)) + vecs*width
 	if len(scr) < reach || len(out) < a.oh*a.ow || len(filt) < k*k {
 		return false
 	}
 	tail := a.ow % width
 	o, sp, w, ep := &out[0], &scr[0], &filt[0], &par[0]
 	acc := b2i(accum)
-	spitch, rowstep := 4*s*a.pitch, 4*a.pitch
+	spitch, rowstep, q := 4*s*a.pitch, 4*a.pitch, 4*a.q
 	if isa == ISAAVX512 {
 		mask := 1<<tail - 1
 		switch {
 		case k == 3 && s == 1:
-			dwK3S1AVX512(o, sp, w, ep, a.oh, a.ow, spitch, rowstep, acc, mask)
+			dwK3S1AVX512(o, sp, w, ep, a.oh, a.ow, spitch, rowstep, q, acc, mask)
 		case k == 3 && s == 2:
-			dwK3S2AVX512(o, sp, w, ep, a.oh, a.ow, spitch, rowstep, acc, mask)
+			dwK3S2AVX512(o, sp, w, ep, a.oh, a.ow, spitch, rowstep, q, acc, mask)
 		case k == 5 && s == 1:
-			dwK5S1AVX512(o, sp, w, ep, a.oh, a.ow, spitch, rowstep, acc, mask)
+			dwK5S1AVX512(o, sp, w, ep, a.oh, a.ow, spitch, rowstep, q, acc, mask)
 		default:
-			dwK5S2AVX512(o, sp, w, ep, a.oh, a.ow, spitch, rowstep, acc, mask)
+			dwK5S2AVX512(o, sp, w, ep, a.oh, a.ow, spitch, rowstep, q, acc, mask)
 		}
 		return true
 	}
 	mask := &dwTailMasks[8-tail]
 	switch {
 	case k == 3 && s == 1:
-		dwK3S1AVX2(o, sp, w, ep, a.oh, a.ow, spitch, rowstep, acc, mask)
+		dwK3S1AVX2(o, sp, w, ep, a.oh, a.ow, spitch, rowstep, q, acc, mask)
 	case k == 3 && s == 2:
-		dwK3S2AVX2(o, sp, w, ep, a.oh, a.ow, spitch, rowstep, acc, mask)
+		dwK3S2AVX2(o, sp, w, ep, a.oh, a.ow, spitch, rowstep, q, acc, mask)
 	case k == 5 && s == 1:
-		dwK5S1AVX2(o, sp, w, ep, a.oh, a.ow, spitch, rowstep, acc, mask)
+		dwK5S1AVX2(o, sp, w, ep, a.oh, a.ow, spitch, rowstep, q, acc, mask)
 	default:
-		dwK5S2AVX2(o, sp, w, ep, a.oh, a.ow, spitch, rowstep, acc, mask)
+		dwK5S2AVX2(o, sp, w, ep, a.oh, a.ow, spitch, rowstep, q, acc, mask)
 	}
 	return true
 }
@@ -93,6 +101,27 @@ func dwFillSIMD(isa ISA, dst, src []float32, rows, n, dpitch, spitch int) bool {
 		dwFillAVX512(&dst[0], &src[0], rows, n, 4*dpitch, 4*spitch, 1<<tail-1)
 	} else {
 		dwFillAVX2(&dst[0], &src[0], rows, n, 4*dpitch, 4*spitch, &dwTailMasks[8-tail])
+	}
+	return true
+}
+
+// dwFillPhasedSIMD de-interleaves rows rows of n floats of src (row pitch
+// spitch): the even-indexed ones to ev, the odd ones to od (both row pitch
+// dpitch), reporting false (and doing nothing) when isa has no vector
+// path or the slices are too short.
+func dwFillPhasedSIMD(isa ISA, ev, od, src []float32, rows, n, dpitch, spitch int) bool {
+	isa, width := dwResolve(isa)
+	ne, no := (n+1)/2, n/2
+	if width == 0 || rows <= 0 || n <= 0 || len(ev) < (rows-1)*dpitch+ne || len(od) < (rows-1)*dpitch+max(no, 1) || len(src) < (rows-1)*spitch+n {
+		return false
+	}
+	r := n % width
+	re, ro := (r+1)/2, r/2
+	if isa == ISAAVX512 {
+		mask := (1<<r - 1) | (1<<re-1)<<16 | (1<<ro-1)<<32
+		dwFillPhasedAVX512(&ev[0], &od[0], &src[0], rows, n, 4*dpitch, 4*spitch, mask)
+	} else {
+		dwFillPhasedAVX2(&ev[0], &od[0], &src[0], rows, n, 4*dpitch, 4*spitch, &dwTailMasks[8-r], &dwTailMasks[8-re], &dwTailMasks[8-ro])
 	}
 	return true
 }

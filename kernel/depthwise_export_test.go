@@ -21,7 +21,7 @@ func (p *Im2colPlan) DepthwiseVectorized(isa ISA) (fwd, bwd bool) {
 		par := [3]float32{}
 		return dwPlaneSIMD(isa, &a, make([]float32, a.oh*a.ow), make([]float32, l.size()), make([]float32, a.kh*a.kw), &par, false)
 	}
-	lf, af := p.forwardLayout()
+	lf, af := p.forwardLayout(isa)
 	lb, ab := p.backwardLayout()
 	return try(lf, af), try(lb, ab)
 }

@@ -2,6 +2,14 @@
 
 package kernel
 
+// dwVectorShape: no vector kernels off amd64.
+func dwVectorShape(isa ISA, a *dwArgs) bool { return false }
+
+// dwFillPhasedSIMD: no vector copy off amd64.
+func dwFillPhasedSIMD(isa ISA, ev, od, src []float32, rows, n, dpitch, spitch int) bool {
+	return false
+}
+
 // dwPlaneSIMD: no vector kernels off amd64; the Go loop does every plane.
 func dwPlaneSIMD(isa ISA, a *dwArgs, out, scr, filt []float32, par *[3]float32, accum bool) bool {
 	return false

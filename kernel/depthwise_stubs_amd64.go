@@ -2,6 +2,16 @@
 
 package kernel
 
+// dwFillPhasedAVX512 de-interleaves rows×n floats into even and odd columns, 16 at a time, the tail under masks.
+//
+//go:noescape
+func dwFillPhasedAVX512(ev *float32, od *float32, src *float32, rows int, n int, dpitch int, spitch int, mask int)
+
+// dwFillPhasedAVX2 de-interleaves rows×n floats into even and odd columns, 8 at a time, the tail under masks.
+//
+//go:noescape
+func dwFillPhasedAVX2(ev *float32, od *float32, src *float32, rows int, n int, dpitch int, spitch int, mload *int32, mev *int32, mod *int32)
+
 // dwFillAVX512 copies rows×n floats between row pitches, 16 lanes at a time, the tail under a mask.
 //
 //go:noescape
@@ -15,39 +25,39 @@ func dwFillAVX2(dst *float32, src *float32, rows int, n int, dpitch int, spitch 
 // dwK3S1AVX512 computes rows×ow outputs of a 3×3 stride-1 depthwise filter from a zero-padded plane, with the bias (or accumulation) and clamp fused; mask holds the tail's k-register bits.
 //
 //go:noescape
-func dwK3S1AVX512(o *float32, s *float32, w *float32, ep *float32, rows int, ow int, spitch int, rowstep int, accum int, mask int)
+func dwK3S1AVX512(o *float32, s *float32, w *float32, ep *float32, rows int, ow int, spitch int, rowstep int, q int, accum int, mask int)
 
 // dwK3S1AVX2 computes rows×ow outputs of a 3×3 stride-1 depthwise filter from a zero-padded plane, with the bias (or accumulation) and clamp fused; mask points to the tail's 8 lane masks.
 //
 //go:noescape
-func dwK3S1AVX2(o *float32, s *float32, w *float32, ep *float32, rows int, ow int, spitch int, rowstep int, accum int, mask *int32)
+func dwK3S1AVX2(o *float32, s *float32, w *float32, ep *float32, rows int, ow int, spitch int, rowstep int, q int, accum int, mask *int32)
 
 // dwK3S2AVX512 computes rows×ow outputs of a 3×3 stride-2 depthwise filter from a zero-padded plane, with the bias (or accumulation) and clamp fused; mask holds the tail's k-register bits.
 //
 //go:noescape
-func dwK3S2AVX512(o *float32, s *float32, w *float32, ep *float32, rows int, ow int, spitch int, rowstep int, accum int, mask int)
+func dwK3S2AVX512(o *float32, s *float32, w *float32, ep *float32, rows int, ow int, spitch int, rowstep int, q int, accum int, mask int)
 
 // dwK3S2AVX2 computes rows×ow outputs of a 3×3 stride-2 depthwise filter from a zero-padded plane, with the bias (or accumulation) and clamp fused; mask points to the tail's 8 lane masks.
 //
 //go:noescape
-func dwK3S2AVX2(o *float32, s *float32, w *float32, ep *float32, rows int, ow int, spitch int, rowstep int, accum int, mask *int32)
+func dwK3S2AVX2(o *float32, s *float32, w *float32, ep *float32, rows int, ow int, spitch int, rowstep int, q int, accum int, mask *int32)
 
 // dwK5S1AVX512 computes rows×ow outputs of a 5×5 stride-1 depthwise filter from a zero-padded plane, with the bias (or accumulation) and clamp fused; mask holds the tail's k-register bits.
 //
 //go:noescape
-func dwK5S1AVX512(o *float32, s *float32, w *float32, ep *float32, rows int, ow int, spitch int, rowstep int, accum int, mask int)
+func dwK5S1AVX512(o *float32, s *float32, w *float32, ep *float32, rows int, ow int, spitch int, rowstep int, q int, accum int, mask int)
 
 // dwK5S1AVX2 computes rows×ow outputs of a 5×5 stride-1 depthwise filter from a zero-padded plane, with the bias (or accumulation) and clamp fused; mask points to the tail's 8 lane masks.
 //
 //go:noescape
-func dwK5S1AVX2(o *float32, s *float32, w *float32, ep *float32, rows int, ow int, spitch int, rowstep int, accum int, mask *int32)
+func dwK5S1AVX2(o *float32, s *float32, w *float32, ep *float32, rows int, ow int, spitch int, rowstep int, q int, accum int, mask *int32)
 
 // dwK5S2AVX512 computes rows×ow outputs of a 5×5 stride-2 depthwise filter from a zero-padded plane, with the bias (or accumulation) and clamp fused; mask holds the tail's k-register bits.
 //
 //go:noescape
-func dwK5S2AVX512(o *float32, s *float32, w *float32, ep *float32, rows int, ow int, spitch int, rowstep int, accum int, mask int)
+func dwK5S2AVX512(o *float32, s *float32, w *float32, ep *float32, rows int, ow int, spitch int, rowstep int, q int, accum int, mask int)
 
 // dwK5S2AVX2 computes rows×ow outputs of a 5×5 stride-2 depthwise filter from a zero-padded plane, with the bias (or accumulation) and clamp fused; mask points to the tail's 8 lane masks.
 //
 //go:noescape
-func dwK5S2AVX2(o *float32, s *float32, w *float32, ep *float32, rows int, ow int, spitch int, rowstep int, accum int, mask *int32)
+func dwK5S2AVX2(o *float32, s *float32, w *float32, ep *float32, rows int, ow int, spitch int, rowstep int, q int, accum int, mask *int32)
