@@ -59,6 +59,17 @@ type arena struct {
 	active, maxActive int
 	peak              int64 // largest Pass.peakBytes reported
 	maxHeld           int   // high-water mark of bytes (for tests)
+
+	// memo holds data Backward derives from the graph's constants (see
+	// derived), outside the byte bound: at most one copy of each constant
+	// an op asks about, made on the first backward pass.
+	memo map[memoKey][]float32
+}
+
+// memoKey names data one operator derived from one graph constant.
+type memoKey struct {
+	c     *tensor.Tensor
+	owner Op
 }
 
 // arenaMaxBytes bounds the memory the free lists hold between passes:
@@ -292,3 +303,33 @@ func freshGrads(op Op) bool {
 }
 
 var debugMiss func(n int)
+
+// derived returns the n floats build derives, for the operator owner, from
+// the graph constant c (Conv's flipped filters, which depend on the node's
+// group count as well as on c), building them on first use and sharing them,
+// read only, with every later pass. c must be a constant of the graph: the
+// memo is keyed by the tensor, whose contents never change. Memory is
+// bounded by one copy of the constants asked about (the convolution
+// weights: 45 MB for ResNet-18). Concurrent first uses may each build;
+// one result is kept.
+func (a *arena) derived(c *tensor.Tensor, owner Op, n int, build func([]float32)) []float32 {
+	k := memoKey{c, owner}
+	a.mu.Lock()
+	d, ok := a.memo[k]
+	a.mu.Unlock()
+	if ok && len(d) == n {
+		return d
+	}
+	d = make([]float32, n)
+	build(d)
+	a.mu.Lock()
+	defer a.mu.Unlock()
+	if a.memo == nil {
+		a.memo = map[memoKey][]float32{}
+	}
+	if old, ok := a.memo[k]; ok && len(old) == n {
+		return old
+	}
+	a.memo[k] = d
+	return d
+}

@@ -198,6 +198,17 @@ func (p *Pass) Backward(ctx context.Context, seeds map[string]*tensor.Tensor, wr
 				}
 			}
 		}
+		if mb, ok := nd.op.(memoBackward); ok && gin == nil && g.arena != nil {
+			gin, err = safeMemo(mb, in, out, gradOut, need, func(i, n int, build func([]float32)) []float32 {
+				if i >= len(nd.in) || nd.in[i] < 0 || g.consts[nd.in[i]] == nil {
+					return nil
+				}
+				return g.arena.derived(g.consts[nd.in[i]], nd.op, n, build)
+			})
+			if err != nil {
+				return nil, fmt.Errorf("engine: Backward: %s: %w", nd.label(), err)
+			}
+		}
 		if gin == nil {
 			gin, err = safeBackward(nd.op, d, in, out, gradOut, need)
 			if err != nil {
@@ -368,4 +379,28 @@ func addTo(dst, src []float32) {
 	for i, x := range src {
 		dst[i] += x
 	}
+}
+
+// memoFunc returns data derived from the op's input i by build (which
+// fills a slice of n floats) and kept for every later pass, or nil when
+// input i is not a constant of the graph (the op then derives it itself).
+// The result is shared: read only.
+type memoFunc func(i, n int, build func([]float32)) []float32
+
+// memoBackward is implemented by ops whose Backward derives something
+// from a constant input that later passes can reuse (Conv's flipped
+// filters). Pass.Backward calls backwardMemo, with the graph's memo,
+// instead of the selective Backward.
+type memoBackward interface {
+	backwardMemo(in, out, gradOut []*tensor.Tensor, need []bool, memo memoFunc) ([]*tensor.Tensor, error)
+}
+
+// safeMemo is safeBackward for memoBackward.
+func safeMemo(mb memoBackward, in, out, gradOut []*tensor.Tensor, need []bool, memo memoFunc) (gin []*tensor.Tensor, err error) {
+	defer func() {
+		if r := recover(); r != nil {
+			gin, err = nil, fmt.Errorf("operator backward panicked: %v", r)
+		}
+	}()
+	return mb.backwardMemo(in, out, gradOut, need, memo)
 }

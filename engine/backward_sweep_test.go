@@ -345,3 +345,52 @@ func TestActivationMasksFromOutput(t *testing.T) {
 		}
 	}
 }
+
+// TestConvBackwardWeightsNotMemoisedWhenVarying: the flipped filters are
+// kept across passes only for constant weights. With W a graph input that
+// changes between passes, the input gradient must follow it. For a 1×1
+// convolution dX[c][p] = Σ_m W[m][c]·dY[m][p] (the chain rule by hand).
+func TestConvBackwardWeightsNotMemoisedWhenVarying(t *testing.T) {
+	m := nnGraphModel([]onnx.ValueInfo{nnIn("x", 1, 2, 3, 3), nnIn("w", 4, 2, 1, 1)}, []string{"y"}, nil,
+		nnNode("c", "Conv", []string{"x", "w"}, []string{"y"}))
+	g, err := Compile(m)
+	if err != nil {
+		t.Fatal(err)
+	}
+	ctx := context.Background()
+	rng := rand.New(rand.NewSource(5))
+	x := tensor.New(1, 2, 3, 3)
+	for i := range x.F32 {
+		x.F32[i] = float32(rng.NormFloat64())
+	}
+	for pass := 0; pass < 3; pass++ {
+		w := tensor.New(4, 2, 1, 1)
+		for i := range w.F32 {
+			w.F32[i] = float32(rng.NormFloat64())
+		}
+		p, err := g.Run(ctx, map[string]*tensor.Tensor{"x": x, "w": w}, RunOptions{Backward: true})
+		if err != nil {
+			t.Fatal(err)
+		}
+		dy := tensor.New(1, 4, 3, 3)
+		for i := range dy.F32 {
+			dy.F32[i] = float32(rng.NormFloat64())
+		}
+		gr, err := p.Backward(ctx, map[string]*tensor.Tensor{"y": dy}, []string{"x"})
+		if err != nil {
+			t.Fatal(err)
+		}
+		p.Release()
+		for c := 0; c < 2; c++ {
+			for q := 0; q < 9; q++ {
+				var want float64
+				for o := 0; o < 4; o++ {
+					want += float64(w.F32[o*2+c]) * float64(dy.F32[o*9+q])
+				}
+				if got := gr["x"].F32[c*9+q]; math.Abs(float64(got)-want) > 1e-5 {
+					t.Fatalf("pass %d: dx[%d][%d] = %v, want %v", pass, c, q, got, want)
+				}
+			}
+		}
+	}
+}
