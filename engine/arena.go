@@ -272,9 +272,20 @@ func (g *Graph) recycle(p *Pass, v int) {
 func (a *arena) zeroed(shape ...int) *tensor.Tensor {
 	t := a.tensor(shape...)
 	if a != nil {
-		clear(t.F32)
+		clearParallel(t.F32)
 	}
 	return t
+}
+
+// clearParallel zeroes s, splitting long slices over the cores: a
+// gradient's zeroing was a serial pass over several megabytes that left
+// the other core idle.
+func clearParallel(s []float32) {
+	const chunk = 1 << 14 // floats; whole chunks keep the splits aligned
+	chunks := (len(s) + chunk - 1) / chunk
+	splitWork(chunks, len(s), func(c0, c1 int) {
+		clear(s[c0*chunk : min(c1*chunk, len(s))])
+	})
 }
 
 // recycleFull returns full, a full-size gradient buffer binaryOp's

@@ -62,7 +62,9 @@ func (op *convOp) backwardFor(in, out, gradOut []*tensor.Tensor, need []bool, me
 		}
 	}
 	if needX {
-		if transposed {
+		if transposed || (op.gemm1 != nil && !s.depthwise()) {
+			// Overwritten, or (col2im) cleared image by image just
+			// before it is scattered into, while that part is cached.
 			dx = op.arena.tensor(x.Shape...)
 		} else {
 			dx = op.arena.zeroed(x.Shape...)
@@ -150,6 +152,9 @@ func (op *convOp) backwardFor(in, out, gradOut []*tensor.Tensor, need []bool, me
 					op.gemm.Sgemm(true, false, kk, ohw, s.mg, 1, wg, kk, dyg, ohw, 0, dxg, ohw)
 				} else {
 					op.gemm.Sgemm(true, false, kk, ohw, s.mg, 1, wg, kk, dyg, ohw, 0, dcol, ohw)
+					if op.gemm1 != nil {
+						clearParallel(dxg)
+					}
 					if perr != nil {
 						col2im(dcol, s.cg, g, dxg)
 					} else if err := planCol2im(plan, dcol, s.cg, g, dxg); err != nil {

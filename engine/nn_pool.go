@@ -261,7 +261,12 @@ func (op *globalPoolOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.T
 	x, dy := in[0], gradOut[0]
 	nc := x.Shape[0] * x.Shape[1]
 	hw := tensor.Numel(x.Shape[2:])
-	dx := op.arena.zeroed(x.Shape...) // the max writes one element per plane
+	var dx *tensor.Tensor
+	if op.max {
+		dx = op.arena.zeroed(x.Shape...) // one element per plane written
+	} else {
+		dx = op.arena.tensor(x.Shape...) // every element written
+	}
 	for p := 0; p < nc; p++ {
 		d := dx.F32[p*hw : (p+1)*hw]
 		if op.max {
