@@ -98,9 +98,11 @@ func TestCompactNetworks(t *testing.T) {
 // HEEDMAP_FULLNETS_DIR=DIR reuses exports already made with
 // export_nets.py --full --out DIR instead of exporting again.
 // Values are held to the compact nets' 1e-4 against the exported graph
-// computed in float64; gradients to the compact nets' bounds widened, per
-// net, to the worst of PyTorch's own float32 evaluations of the same graph
-// (see checkGradF64 for why and how).
+// computed in float64. Gradients are checked twice: against the float64
+// gradient with the compact nets' bounds widened, per net, to the worst of
+// PyTorch's own float32 evaluations of the same graph (checkGradF64), and
+// against the float64 gradient on the ReLU/Clip branches our forward took,
+// with the compact nets' bounds unwidened (checkSameBranch).
 func TestFullSizeNetworks(t *testing.T) {
 	sel := os.Getenv("HEEDMAP_FULLNETS")
 	if sel == "" {

@@ -32,7 +32,9 @@ Rerun (from the repository root; takes about a minute on 2 cores):
 Full-size torchvision architectures (random weights, 224x224 / 299x299;
 hundreds of MB, never committed) for the opt-in test, with goldens of the
 exported graph in float64 and float32 (*_f64.pb, *_g32.pb; see
-float64_goldens):
+float64_goldens) and, in meta.json's "float32_spread", the distance of
+several PyTorch float32 evaluations from the float64 goldens (see
+float32_spread):
     /usr/bin/python3 testdata/reference/export_nets.py --full --out DIR [NAME...]
 Versions used for the committed files: Debian python3-torch 1.13,
 python3-torchvision 0.14, python3-onnx 1.12 (printed into meta.json).
@@ -379,8 +381,10 @@ def float64_goldens(model, capture, x, d, onnx_path):
     so do PyTorch float32 with and without the export's BatchNorm folding).
     A float32 golden of the unfolded model cannot tell a runtime bug from
     rounding. engine/networks_test.go judges our float32 result against the
-    float64 truth, and compares its distance with PyTorch float32's on the
-    same graph."""
+    float64 truth, with gradient bounds widened to the worst of PyTorch's
+    own float32 evaluations (float32_spread, returned for meta.json), and
+    against the float64 gradient on the ReLU branches our own forward took
+    (same_branch_grad.py) at the unwidened bounds."""
     gm = graph_model(model, onnx_path)
     results = {}
     for suffix, m, xx in (("f64", copy.deepcopy(gm).double(), x.detach().double()),
