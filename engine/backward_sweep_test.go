@@ -291,7 +291,7 @@ func TestActivationMasksFromOutput(t *testing.T) {
 	nan := float32(math.NaN())
 	inf := float32(math.Inf(1))
 	neg0 := float32(math.Copysign(0, -1))
-	xs := []float32{-2, neg0, 0, 1e-30, 0.5, 5.999, 6, 7, inf, -inf, nan}
+	xs := []float32{-2, neg0, 0, 1e-30, 0.5, 5.999, 6, 7, inf, -inf, nan, -0.5, 3, 1, -1, 0.75}
 	relu, err := buildRelu(nnNode("r", "Relu", []string{"x"}, []string{"y"}), &Env{Opset: 17})
 	if err != nil {
 		t.Fatal(err)
@@ -300,7 +300,7 @@ func TestActivationMasksFromOutput(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	lo, hi := tensor.FromFloat32([]float32{0}), tensor.FromFloat32([]float32{6})
+	b := func(v float32) *tensor.Tensor { return tensor.FromFloat32([]float32{v}) }
 	for _, tc := range []struct {
 		name   string
 		op     Op
@@ -308,7 +308,12 @@ func TestActivationMasksFromOutput(t *testing.T) {
 		pass   func(x float32) bool
 	}{
 		{"Relu", relu, nil, func(x float32) bool { return x > 0 }},
-		{"Clip", clip, []*tensor.Tensor{lo, hi}, func(x float32) bool { return x > 0 && x < 6 }},
+		{"Clip[0,6]", clip, []*tensor.Tensor{b(0), b(6)}, func(x float32) bool { return x > 0 && x < 6 }},
+		{"Clip[-0,6]", clip, []*tensor.Tensor{b(neg0), b(6)}, func(x float32) bool { return x > 0 && x < 6 }},
+		{"Clip[0.5,inf]", clip, []*tensor.Tensor{b(0.5), b(inf)}, func(x float32) bool { return x > 0.5 && x < inf }},
+		{"Clip[-1,1]", clip, []*tensor.Tensor{b(-1), b(1)}, func(x float32) bool { return x > -1 && x < 1 }},
+		{"Clip[-inf,0]", clip, []*tensor.Tensor{b(-inf), b(0)}, func(x float32) bool { return x > -inf && x < 0 }},
+		{"Clip[3,3]", clip, []*tensor.Tensor{b(3), b(3)}, func(x float32) bool { return false }},
 	} {
 		x := tensor.FromFloat32(append([]float32(nil), xs...), len(xs))
 		in := append([]*tensor.Tensor{x}, tc.bounds...)

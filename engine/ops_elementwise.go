@@ -142,17 +142,47 @@ func (u *unaryOp) grad(dst, g []float32, x, y *tensor.Tensor) {
 // fuse in backward runs too: the pre-activation is then never kept. Long
 // slices are split over the cores.
 func reluMask(dst, g, y []float32) {
+	// y > 0 iff its bits, less one, lie below +Inf's (0 and negatives
+	// wrap around, NaNs lie above).
+	maskBits(dst, g, y, 1, 0x7f800000)
+}
+
+// maskBits writes dst[i] = g[i] where bits(y[i]) − lo < span (unsigned)
+// and +0 elsewhere; dst may be g. For non-negative bounds l < h this is
+// l < y < h (float32 order matches the bits' unsigned order there; NaNs
+// and negatives fall outside). The mask is set with conditional moves: a
+// branch on the sign of activations mispredicts about half the time and
+// cost 6×; unrolled by four for the memory system's sake. Long slices are
+// split over the cores.
+func maskBits(dst, g, y []float32, lo, span uint32) {
 	n := len(y)
 	splitWork(n, n, func(i0, i1 int) {
 		ys, gs, ds := y[i0:i1], g[i0:i1], dst[i0:i1]
 		gs, ds = gs[:len(ys)], ds[:len(ys)]
-		for i, v := range ys {
-			// y > 0 iff its bits, less one, lie below +Inf's (0 and
-			// negatives wrap around, NaNs lie above). The mask is set
-			// with a conditional move: a branch on the sign of
-			// activations mispredicts about half the time, and cost 6×.
+		k := len(ys) &^ 3
+		for i := 0; i < k; i += 4 {
+			y4, g4, d4 := ys[i:i+4:i+4], gs[i:i+4:i+4], ds[i:i+4:i+4]
+			var m0, m1, m2, m3 uint32
+			if math.Float32bits(y4[0])-lo < span {
+				m0 = ^uint32(0)
+			}
+			if math.Float32bits(y4[1])-lo < span {
+				m1 = ^uint32(0)
+			}
+			if math.Float32bits(y4[2])-lo < span {
+				m2 = ^uint32(0)
+			}
+			if math.Float32bits(y4[3])-lo < span {
+				m3 = ^uint32(0)
+			}
+			d4[0] = math.Float32frombits(math.Float32bits(g4[0]) & m0)
+			d4[1] = math.Float32frombits(math.Float32bits(g4[1]) & m1)
+			d4[2] = math.Float32frombits(math.Float32bits(g4[2]) & m2)
+			d4[3] = math.Float32frombits(math.Float32bits(g4[3]) & m3)
+		}
+		for i := k; i < len(ys); i++ {
 			var m uint32
-			if math.Float32bits(v)-1 < 0x7f800000 {
+			if math.Float32bits(ys[i])-lo < span {
 				m = ^uint32(0)
 			}
 			ds[i] = math.Float32frombits(math.Float32bits(gs[i]) & m)
@@ -405,12 +435,21 @@ func (c *clipOp) backwardInPlace(in, out []*tensor.Tensor, g *tensor.Tensor) ([]
 // Long slices are split over the cores.
 func clipMask(dst, g, y []float32, lo, hi float64) {
 	l, h := float32(lo), float32(hi)
+	if l == 0 {
+		l = 0 // −0 as +0: y > −0 iff y > +0
+	}
+	if lb, hb := math.Float32bits(l), math.Float32bits(h); lb>>31 == 0 && hb>>31 == 0 && h > l {
+		// Non-negative bounds (ReLU6 and most clips): one unsigned range
+		// test on the bits.
+		maskBits(dst, g, y, lb+1, hb-lb-1)
+		return
+	}
 	n := len(y)
 	splitWork(n, n, func(i0, i1 int) {
 		ys, gs, ds := y[i0:i1], g[i0:i1], dst[i0:i1]
 		gs, ds = gs[:len(ys)], ds[:len(ys)]
 		for i, v := range ys {
-			// Branch-free, as in reluMask: two conditional moves.
+			// Branch-free, as in maskBits: two conditional moves.
 			var a, b uint32
 			if v > l {
 				a = ^uint32(0)
