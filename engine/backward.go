@@ -373,12 +373,17 @@ func onlyFirst(need []bool) bool {
 	return true
 }
 
-// addTo adds src into dst elementwise (dst[i] += src[i]).
+// addTo adds src into dst elementwise (dst[i] += src[i]), long slices
+// split over the cores.
 func addTo(dst, src []float32) {
-	dst = dst[:len(src)]
-	for i, x := range src {
-		dst[i] += x
-	}
+	n := len(src)
+	splitWork(n, n, func(i0, i1 int) {
+		d, s := dst[i0:i1], src[i0:i1]
+		d = d[:len(s)]
+		for i, x := range s {
+			d[i] += x
+		}
+	})
 }
 
 // memoFunc returns data derived from the op's input i by build (which
