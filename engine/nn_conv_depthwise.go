@@ -63,11 +63,13 @@ func (op *convOp) planDepthwise(p *kernel.Im2colPlan, x, w, y []float32, s convS
 	return firstErr
 }
 
-// planDepthwiseBackward accumulates dx and dw (either may be nil) for the
-// depthwise path. Work is split by input channel so each goroutine owns
-// the dx planes and dw rows it writes; images are summed inside. Each
-// goroutine hands its whole run of channels to one kernel call with one
-// scratch area.
+// planDepthwiseBackward computes dx and accumulates dw (either may be
+// nil) for the depthwise path. dx is overwritten, every value of it, so
+// it need not be zeroed (unlike the direct path, depthwiseBackward, which
+// adds). Work is split by input channel so each goroutine owns the dx
+// planes and dw rows it writes; images are summed inside. Each goroutine
+// hands its whole run of channels to one kernel call with one scratch
+// area.
 func planDepthwiseBackward(p *kernel.Im2colPlan, x, w, dy, dx, dw []float32, s convShape) error {
 	g := s.g
 	ohw, khw := g.oh*g.ow, g.kh*g.kw
@@ -79,7 +81,7 @@ func planDepthwiseBackward(p *kernel.Im2colPlan, x, w, dy, dx, dw []float32, s c
 		if dw != nil { // x is not retained when only dx is wanted
 			xs = x
 		}
-		if err := p.DepthwiseBackwardPlanes(dx, dw, dy, xs, w, s.n, s.c, s.mg, c0, c1, scratch); err != nil {
+		if err := p.DepthwiseBackwardPlanes(dx, dw, dy, xs, w, s.n, s.c, s.mg, c0, c1, scratch, true); err != nil {
 			mu.Lock()
 			firstErr = err
 			mu.Unlock()

@@ -498,7 +498,7 @@ func (p *Im2colPlan) depthwiseBackward(isa ISA, dsrc, dw, dy, src, w []float32, 
 	if dw != nil && len(dw) < g.C*multiplier*taps {
 		return fmt.Errorf("kernel: depthwise filter gradient has %d values, want %d", len(dw), g.C*multiplier*taps)
 	}
-	return p.dwBackwardPlanes(isa, dsrc, dw, dy, src, w, 1, g.C, multiplier, c0, c1, scratch)
+	return p.dwBackwardPlanes(isa, dsrc, dw, dy, src, w, 1, g.C, multiplier, c0, c1, scratch, false)
 }
 
 // DepthwiseBackwardPlanes is DepthwiseBackwardInto over whole
@@ -507,10 +507,12 @@ func (p *Im2colPlan) depthwiseBackward(isa ISA, dsrc, dw, dy, src, w []float32, 
 // all images, dsrc += the input gradient (planes laid out like src) and
 // dw += the filter gradient summed over the images (rows indexed by
 // output channel like w), from dy laid out like the forward output.
-// Either of dsrc and dw may be nil; src is read only for dw. The scratch
-// is cleared once per call, so a goroutine should hand it a run of
-// channels.
-func (p *Im2colPlan) DepthwiseBackwardPlanes(dsrc, dw, dy, src, w []float32, images, channels, multiplier, c0, c1 int, scratch []float32) error {
+// Either of dsrc and dw may be nil; src is read only for dw. With setDX
+// the planes of dsrc are overwritten instead of added to, so the caller
+// need not zero them first (every value of each plane is written). The
+// scratch is cleared once per call, so a goroutine should hand it a run
+// of channels.
+func (p *Im2colPlan) DepthwiseBackwardPlanes(dsrc, dw, dy, src, w []float32, images, channels, multiplier, c0, c1 int, scratch []float32, setDX bool) error {
 	g := p.g
 	hw, ohw, taps := g.H*g.W, p.oh*p.ow, g.KH*g.KW
 	m := channels * multiplier
@@ -536,13 +538,13 @@ func (p *Im2colPlan) DepthwiseBackwardPlanes(dsrc, dw, dy, src, w []float32, ima
 	if p.portable {
 		isa = ISAPortable
 	}
-	return p.dwBackwardPlanes(isa, dsrc, dw, dy, src, w, images, channels, multiplier, c0, c1, scratch)
+	return p.dwBackwardPlanes(isa, dsrc, dw, dy, src, w, images, channels, multiplier, c0, c1, scratch, setDX)
 }
 
 // dwBackwardPlanes does the work of both backward entry points once the
 // sizes are checked: plane (n, ch) of src/dsrc is at (n·channels + ch)·H·W
 // and output channel mo of image n at (n·channels·multiplier + mo)·OH·OW.
-func (p *Im2colPlan) dwBackwardPlanes(isa ISA, dsrc, dw, dy, src, w []float32, images, channels, multiplier, c0, c1 int, scratch []float32) error {
+func (p *Im2colPlan) dwBackwardPlanes(isa ISA, dsrc, dw, dy, src, w []float32, images, channels, multiplier, c0, c1 int, scratch []float32, setDX bool) error {
 	g := p.g
 	hw, ohw, taps := g.H*g.W, p.oh*p.ow, g.KH*g.KW
 	lb, ab := p.backwardLayout()
@@ -577,7 +579,9 @@ func (p *Im2colPlan) dwBackwardPlanes(isa ISA, dsrc, dw, dy, src, w []float32, i
 					for t := range flip {
 						flip[t] = filt[taps-1-t]
 					}
-					dwPlane(isa, &ab, dsrc[pl*hw:(pl+1)*hw], u, flip, &par, true)
+					// The plane's first output channel sets it under setDX.
+					accum := !setDX || mo > ch*multiplier
+					dwPlane(isa, &ab, dsrc[pl*hw:(pl+1)*hw], u, flip, &par, accum)
 				}
 				if dw != nil {
 					dwFilterGrad(&af, dw[mo*taps:(mo+1)*taps], gy, xs)

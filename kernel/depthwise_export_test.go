@@ -32,6 +32,6 @@ func (p *Im2colPlan) DepthwisePlanesISA(isa ISA, dst, src, w []float32, channels
 }
 
 // DepthwiseBackwardPlanesISA is DepthwiseBackwardPlanes on the path isa.
-func (p *Im2colPlan) DepthwiseBackwardPlanesISA(isa ISA, dsrc, dw, dy, src, w []float32, images, channels, multiplier, c0, c1 int) error {
-	return p.dwBackwardPlanes(isa, dsrc, dw, dy, src, w, images, channels, multiplier, c0, c1, make([]float32, p.DepthwiseBackwardScratch()))
+func (p *Im2colPlan) DepthwiseBackwardPlanesISA(isa ISA, dsrc, dw, dy, src, w []float32, images, channels, multiplier, c0, c1 int, setDX bool) error {
+	return p.dwBackwardPlanes(isa, dsrc, dw, dy, src, w, images, channels, multiplier, c0, c1, make([]float32, p.DepthwiseBackwardScratch()), setDX)
 }

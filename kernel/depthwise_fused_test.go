@@ -339,26 +339,34 @@ func TestDepthwiseBackwardPlanesMatchesDefinition(t *testing.T) {
 				}
 			}
 			for _, isa := range dwISAs() {
-				dx, dw := make([]float32, len(x)), make([]float32, len(w))
-				for _, rg := range [][2]int{{0, 2}, {2, 3}, {3, c}} {
-					if err := p.DepthwiseBackwardPlanesISA(isa, dx, dw, dy, x, w, n, c, mult, rg[0], rg[1]); err != nil {
-						t.Fatal(err)
+				// Accumulating onto zeros, and setting dx over garbage.
+				for _, setDX := range []bool{false, true} {
+					dx, dw := make([]float32, len(x)), make([]float32, len(w))
+					if setDX {
+						for j := range dx {
+							dx[j] = float32(math.NaN())
+						}
 					}
-				}
-				if err := closeTo(dx, wantDX, 1e-4, 1e-5); err != nil {
-					t.Fatalf("%+v mult %d %v dx: %v", g, mult, isa, err)
-				}
-				if err := closeTo(dw, wantDW, 1e-4, 1e-4); err != nil {
-					t.Fatalf("%+v mult %d %v dw: %v", g, mult, isa, err)
+					for _, rg := range [][2]int{{0, 2}, {2, 3}, {3, c}} {
+						if err := p.DepthwiseBackwardPlanesISA(isa, dx, dw, dy, x, w, n, c, mult, rg[0], rg[1], setDX); err != nil {
+							t.Fatal(err)
+						}
+					}
+					if err := closeTo(dx, wantDX, 1e-4, 1e-5); err != nil {
+						t.Fatalf("%+v mult %d %v setDX %v dx: %v", g, mult, isa, setDX, err)
+					}
+					if err := closeTo(dw, wantDW, 1e-4, 1e-4); err != nil {
+						t.Fatalf("%+v mult %d %v setDX %v dw: %v", g, mult, isa, setDX, err)
+					}
 				}
 			}
 		}
 	}
 	p, _ := kernel.NewIm2col(kernel.Conv2D{C: 1, H: 4, W: 4, KH: 3, KW: 3})
-	if err := p.DepthwiseBackwardPlanes(make([]float32, 32), nil, make([]float32, 8), nil, make([]float32, 18), 1, 2, 1, 0, 2, make([]float32, 4)); err == nil {
+	if err := p.DepthwiseBackwardPlanes(make([]float32, 32), nil, make([]float32, 8), nil, make([]float32, 18), 1, 2, 1, 0, 2, make([]float32, 4), false); err == nil {
 		t.Error("short scratch accepted")
 	}
-	if err := p.DepthwiseBackwardPlanes(make([]float32, 32), nil, make([]float32, 7), nil, make([]float32, 18), 1, 2, 1, 0, 2, make([]float32, p.DepthwiseBackwardScratch())); err == nil {
+	if err := p.DepthwiseBackwardPlanes(make([]float32, 32), nil, make([]float32, 7), nil, make([]float32, 18), 1, 2, 1, 0, 2, make([]float32, p.DepthwiseBackwardScratch()), false); err == nil {
 		t.Error("short dy accepted")
 	}
 }
