@@ -575,7 +575,11 @@ func (p *Im2colPlan) dwBackwardPlanes(isa ISA, dsrc, dw, dy, src, w []float32, i
 				gy := dy[(n*m+mo)*ohw : (n*m+mo+1)*ohw]
 				filt := w[mo*taps : (mo+1)*taps]
 				if dsrc != nil {
-					p.spread(lb, u, gy)
+					if g.StrideH == 1 && g.StrideW == 1 && lb.top >= 0 && lb.left >= 0 {
+						lb.fill(isa, u, gy) // unspread: a plain padded copy
+					} else {
+						p.spread(lb, u, gy)
+					}
 					for t := range flip {
 						flip[t] = filt[taps-1-t]
 					}
