@@ -66,3 +66,13 @@ func BenchmarkBiasClamp(b *testing.B) {
 		BiasClamp(x, 0.5, 0, 6)
 	}
 }
+
+// BenchmarkBiasClampGo is the scalar reference loop, for comparison with
+// BenchmarkBiasClamp.
+func BenchmarkBiasClampGo(b *testing.B) {
+	x := make([]float32, 56*56)
+	b.SetBytes(int64(8 * len(x)))
+	for b.Loop() {
+		biasClampGo(x, 0.5, 0, 6)
+	}
+}
