@@ -348,7 +348,7 @@ func branchNodes(t *testing.T, model string) []branchNode {
 	if err != nil {
 		t.Fatal(err)
 	}
-	var bs []branchNode
+	bs := []branchNode{} // "[]" in JSON even for a net without Relu or Clip
 	for _, n := range m.Graph.Nodes {
 		if n.OpType == "Relu" || n.OpType == "Clip" {
 			bs = append(bs, branchNode{Op: n.OpType, Output: n.Outputs[0]})

@@ -51,7 +51,7 @@ def main():
     with open(os.path.join(d, "meta.json")) as f:
         name = json.load(f)["name"]
     with open(jpath) as f:
-        index = json.load(f)
+        index = json.load(f) or []  # a net without Relu or Clip nodes
     flat = np.fromfile(bpath, dtype="<f4")
     torch.set_num_threads(2)
     gm, capture, x = R.load_export(d, name)
