@@ -97,12 +97,13 @@ func TestCompactNetworks(t *testing.T) {
 // with torch, torchvision and onnx; several minutes and a few GB of memory).
 // HEEDMAP_FULLNETS_DIR=DIR reuses exports already made with
 // export_nets.py --full --out DIR instead of exporting again.
-// Values are held to the compact nets' 1e-4 against the exported graph
-// computed in float64. Gradients are checked twice: against the float64
-// gradient with the compact nets' bounds widened, per net, to the worst of
-// PyTorch's own float32 evaluations of the same graph (checkGradF64), and
-// against the float64 gradient on the ReLU/Clip branches our forward took,
-// with the compact nets' bounds unwidened (checkSameBranch).
+// Logits are held to the compact nets' 1e-4 against the exported graph
+// computed in float64 (checkValueF64). Gradients are checked twice: against
+// the float64 gradient with the compact nets' bounds widened, per net, to
+// the worst of PyTorch's own float32 evaluations of the same graph
+// (checkGradF64), and against the float64 gradient on the ReLU, Clip and
+// max-pool branches our forward took, with the compact nets' bounds
+// unwidened (checkSameBranch).
 func TestFullSizeNetworks(t *testing.T) {
 	sel := os.Getenv("HEEDMAP_FULLNETS")
 	if sel == "" {
@@ -199,8 +200,8 @@ func checkNetwork(t *testing.T, dir string) {
 		if meta.Spread == nil || len(implementationRuns(meta.Spread)) == 0 {
 			t.Fatalf("meta.json has float64 goldens but no float32_spread implementation runs: re-export with export_nets.py --full")
 		}
-		checkValueF64(t, "logits", logits.F32, want.F32, load("logits_f64.pb").F32, meta.Spread, func(e float32Eval) float64 { return e.LogitsMaxRel })
-		checkValueF64(t, "layer "+meta.Layer+" value", act.F32, wantAct.F32, load("layer_f64.pb").F32, meta.Spread, func(e float32Eval) float64 { return e.LayerMaxRel })
+		checkValueF64(t, "logits", logits.F32, want.F32, load("logits_f64.pb").F32, meta.Spread, false, func(e float32Eval) float64 { return e.LogitsMaxRel })
+		checkValueF64(t, "layer "+meta.Layer+" value", act.F32, wantAct.F32, load("layer_f64.pb").F32, meta.Spread, true, func(e float32Eval) float64 { return e.LayerMaxRel })
 	} else {
 		if e := maxRel(logits.F32, want.F32); e > logitTol {
 			t.Errorf("logits: max|a-b|/max|b| = %.2e > %.0e vs PyTorch", e, logitTol)
@@ -271,9 +272,9 @@ func checkNetwork(t *testing.T, dir string) {
 // cosine ≥ min(0.9999, PyTorch's smallest). Nets without such kinks
 // (ConvNeXt, EfficientNet-B0, MobileNetV3, ViT) keep the issue's bounds
 // because PyTorch stays within them there. The one-ulp input runs are
-// reported, never used for a bound: they evaluate another input. Values
-// (logits, the inner activation) are continuous functions and keep 1e-4
-// against float64 with no widening. Trade-off: the worst of four PyTorch
+// reported, never used for a bound: they evaluate another input. Logits
+// keep 1e-4 against float64 with no widening; the inner activation's value
+// is widened the same way (see checkValueF64). Trade-off: the worst of four PyTorch
 // runs is a sample of a heavy-tailed quantity, so a correct runtime can
 // land just beyond it on an unlucky net; the message prints every run.
 
@@ -288,19 +289,27 @@ func implementationRuns(s *float32Spread) []float32Eval {
 	return runs
 }
 
-// checkValueF64 judges a forward value by max|a−b|/max|b| ≤ logitTol
-// against the float64 truth; PyTorch float32's own errors are printed.
-func checkValueF64(t *testing.T, what string, got, unfolded, truth []float32, spread *float32Spread, pick func(float32Eval) float64) {
+// checkValueF64 judges a forward value by max|a−b|/max|b| against the
+// float64 truth: ≤ logitTol, or with widen ≤ the largest error of PyTorch
+// float32's implementation runs if that is larger. The logits are never
+// widened (PyTorch stays within 1e-4 on all eight nets); the inner
+// activation is, because at 299×299 Inception-v3's Mixed_7c output is off
+// by 1.4e-4 to 2.1e-4 in every PyTorch float32 run.
+func checkValueF64(t *testing.T, what string, got, unfolded, truth []float32, spread *float32Spread, widen bool, pick func(float32Eval) float64) {
 	t.Helper()
 	ours := maxRel(got, truth)
+	need := logitTol
 	var torch []string
 	for _, r := range spread.Runs {
 		torch = append(torch, fmt.Sprintf("%s %.1e", r.Name, pick(r)))
+		if widen && r.Kind == "implementation" {
+			need = math.Max(need, pick(r))
+		}
 	}
-	msg := fmt.Sprintf("%s: max|a-b|/max|b| vs float64 graph = %.2e (PyTorch float32: %s; ours vs PyTorch float32 unfolded: %.2e)",
-		what, ours, strings.Join(torch, ", "), maxRel(got, unfolded))
-	if !(ours <= logitTol) {
-		t.Errorf("%s, need ≤ %.0e", msg, logitTol)
+	msg := fmt.Sprintf("%s: max|a-b|/max|b| vs float64 graph = %.2e (need ≤ %.2e; PyTorch float32: %s; ours vs PyTorch float32 unfolded: %.2e)",
+		what, ours, need, strings.Join(torch, ", "), maxRel(got, unfolded))
+	if !(ours <= need) {
+		t.Errorf("%s", msg)
 	} else {
 		t.Log(msg)
 	}
@@ -332,33 +341,40 @@ func checkGradF64(t *testing.T, name string, got, unfolded, truth []float32, spr
 	}
 }
 
-// branchNode is a Relu or Clip node of a full-size export: the units whose
-// side of a kink decides which piece of the network's piecewise function,
-// and so which gradient, a float32 evaluation computes.
+// branchNode is a Relu, Clip or MaxPool node of a full-size export: the
+// units whose side of a kink (or argmax) decides which piece of the
+// network's piecewise function, and so which gradient, a float32 evaluation
+// computes.
 type branchNode struct {
 	Op     string `json:"op"`
 	Output string `json:"output"`
 	Shape  []int  `json:"shape"`
 }
 
-// branchNodes lists model's Relu and Clip nodes in graph order.
+// branchNodes lists model's Relu, Clip and MaxPool nodes in graph order,
+// each with the tensor that shows the side it took: the output of Relu and
+// Clip, the input of MaxPool (its argmax).
 func branchNodes(t *testing.T, model string) []branchNode {
 	t.Helper()
 	m, err := onnx.Load(model)
 	if err != nil {
 		t.Fatal(err)
 	}
-	bs := []branchNode{} // "[]" in JSON even for a net without Relu or Clip
+	bs := []branchNode{} // "[]" in JSON even for a net without such nodes
 	for _, n := range m.Graph.Nodes {
-		if n.OpType == "Relu" || n.OpType == "Clip" {
+		switch n.OpType {
+		case "Relu", "Clip":
 			bs = append(bs, branchNode{Op: n.OpType, Output: n.Outputs[0]})
+		case "MaxPool": // its argmax is decided on its input
+			bs = append(bs, branchNode{Op: n.OpType, Output: n.Inputs[0]})
 		}
 	}
 	return bs
 }
 
 // checkSameBranch is the steady form of the full-size gradient check. Our
-// float32 forward pass took one side of every ReLU/ReLU6 kink;
+// float32 forward pass took one side of every ReLU/ReLU6 kink and one
+// argmax in every max-pool window;
 // testdata/reference/same_branch_grad.py computes in float64 the gradient
 // of the exported graph on exactly those sides (the piece of the piecewise
 // function we evaluated), and our gradients must match it within the
@@ -366,8 +382,8 @@ func branchNodes(t *testing.T, model string) []branchNode {
 // A wrong operator backward, or a forward value far enough off to change
 // more than a rounding-level decision, still fails here; only the choice of
 // side for units within rounding of a kink is not held against us.
-// Max-pool windows keep float64's argmax (relu_flips.py: no PyTorch float32
-// evaluation moved one), so an argmax flip of ours would fail this check.
+// Max-pool windows route to the argmax of our own input values (Inception-v3
+// has near-ties: with float64's argmax kept, its residual was 2.9e-3).
 func checkSameBranch(t *testing.T, dir string, pass *engine.Pass, branches []branchNode, gotInput, gotLayer *tensor.Tensor) {
 	t.Helper()
 	tmp := t.TempDir()

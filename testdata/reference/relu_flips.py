@@ -52,6 +52,7 @@ class Pattern(TorchFunctionMode):
         super().__init__()
         self.mode, self.ref, self.kinds, self.pats, self.flips, self.units = mode, ref, kinds, [], {}, {}
         self.bounds = []  # (min_val, max_val) of each hardtanh call
+        self.pools = []  # (kernel, stride, padding, dilation, ceil_mode) of each max-pool call
 
     def _next(self, kind, pat):
         i = len(self.pats)
@@ -92,8 +93,9 @@ class Pattern(TorchFunctionMode):
             b.apply_defaults()
             a = dict(b.arguments)
             want_idx = a.pop("return_indices")
-            out, idx = torch._C._nn.max_pool2d_with_indices(
-                a["input"], a["kernel_size"], a["stride"] or a["kernel_size"], a["padding"], a["dilation"], a["ceil_mode"])
+            params = (a["kernel_size"], a["stride"] or a["kernel_size"], a["padding"], a["dilation"], a["ceil_mode"])
+            self.pools.append(params)
+            out, idx = torch._C._nn.max_pool2d_with_indices(a["input"], *params)
             rp = self._next("maxpool", (idx,))
             if self.mode == "force":
                 z = a["input"]

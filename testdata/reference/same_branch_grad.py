@@ -12,15 +12,16 @@ branches a runtime under test took, so that runtime's float32 gradient can
 be held to the issue's own bounds without blaming it for a side choice.
 
 Input (written by engine/networks_test.go): BRANCHES.json, a list of
-{"op": "Relu" | "Clip", "output": name, "shape": [...]} for every Relu and
-Clip node of model.onnx in graph order, and BRANCHES.f32, the runtime's
-values of those outputs concatenated (little-endian float32). The k-th entry
-is matched to the k-th relu/hardtanh call of the torchvision forward pass
-(torch.onnx.export records nodes in call order); shapes must agree and
-every entry must be used, else the script fails. A ReLU is taken as active
-where the runtime's output is > 0; a Clip(lo, hi) as passing where lo <
-output < hi, else clamped to the bound it reached. Max-pool windows keep
-float64's own argmax.
+{"op": "Relu" | "Clip" | "MaxPool", "output": name, "shape": [...]} for
+every Relu, Clip and MaxPool node of model.onnx in graph order (for MaxPool
+the node's input, for the others its output), and BRANCHES.f32, the
+runtime's values of those tensors concatenated (little-endian float32). The
+k-th entry is matched to the k-th relu/hardtanh/max-pool call of the
+torchvision forward pass (torch.onnx.export records nodes in call order);
+shapes must agree and every entry must be used, else the script fails. A
+ReLU is taken as active where the runtime's output is > 0; a Clip(lo, hi)
+as passing where lo < output < hi, else clamped to the bound it reached; a
+max-pool window routes to the argmax of the runtime's input values.
 
 Output: OUT_DIR/grad_input_branch.pb and OUT_DIR/grad_layer_branch.pb
 (float64 TensorProto), the gradients of sum_batch logit[class] on those
@@ -41,7 +42,7 @@ sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
 import export_nets as E  # noqa: E402
 import relu_flips as R  # noqa: E402
 
-KINDS = ("relu", "hardtanh")
+KINDS = ("relu", "hardtanh", "maxpool")
 
 
 def main():
@@ -63,18 +64,25 @@ def main():
     with torch.no_grad(), rec:
         capture(m64, x.double())
     if len(rec.pats) != len(index):
-        raise SystemExit(f"{name}: {len(index)} Relu/Clip nodes in the graph, {len(rec.pats)} relu/hardtanh calls in torch")
+        raise SystemExit(f"{name}: {len(index)} Relu/Clip/MaxPool nodes in the graph, {len(rec.pats)} relu/hardtanh/max-pool calls in torch")
     ref, off = [], 0
-    bounds = iter(rec.bounds)
+    bounds, pools = iter(rec.bounds), iter(rec.pools)
     for i, (ent, (kind, pat)) in enumerate(zip(index, rec.pats)):
         shape = tuple(ent["shape"])
-        want = {"Relu": "relu", "Clip": "hardtanh"}[ent["op"]]
-        if kind != want or tuple(pat[0].shape) != shape:
-            raise SystemExit(f"{name}: node {i} {ent['op']} {ent['output']} {shape} vs torch call {kind} {tuple(pat[0].shape)}")
+        want = {"Relu": "relu", "Clip": "hardtanh", "MaxPool": "maxpool"}[ent["op"]]
         n = int(np.prod(shape))
         y = torch.from_numpy(flat[off:off + n].reshape(shape).astype(np.float64))
         off += n
-        if kind == "relu":
+        if kind == "maxpool":
+            # ent is the pool's input: its argmax taken on the runtime's values
+            # (exact in float64, so the comparisons are the runtime's own).
+            _, idx = torch._C._nn.max_pool2d_with_indices(y, *next(pools))
+            y = idx
+        if kind != want or tuple(pat[0].shape) != tuple(y.shape):
+            raise SystemExit(f"{name}: node {i} {ent['op']} {ent['output']} {shape} vs torch call {kind} {tuple(pat[0].shape)}")
+        if kind == "maxpool":
+            ref.append((kind, (idx,)))
+        elif kind == "relu":
             ref.append((kind, (y > 0,)))
         else:
             lo, hi = next(bounds)
@@ -94,7 +102,7 @@ def main():
     E.tensor_pb(ga.numpy(), "grad_layer", os.path.join(out, "grad_layer_branch.pb"))
     with open(os.path.join(out, "branch_flips.json"), "w") as f:
         json.dump(flips, f)
-    print(f"{name}: {len(index)} Relu/Clip nodes; units on the other side than float64: {flips}", flush=True)
+    print(f"{name}: {len(index)} Relu/Clip/MaxPool nodes; units on the other side than float64: {flips}", flush=True)
 
 
 if __name__ == "__main__":
