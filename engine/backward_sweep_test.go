@@ -399,3 +399,70 @@ func TestConvBackwardWeightsNotMemoisedWhenVarying(t *testing.T) {
 		}
 	}
 }
+
+// TestReleaseKeepsCallerValues: after Release, the graph output and a
+// value named in RunOptions.Keep still hold their data while later passes
+// reuse the released buffers; values kept only for Backward are gone.
+func TestReleaseKeepsCallerValues(t *testing.T) {
+	n := loadCompactNet(t, "resnet18")
+	meta, x, g := n.meta, n.x, n.g
+	ctx := context.Background()
+	in := map[string]*tensor.Tensor{meta.Input: x}
+	// A ReLU output deep in the net: kept for Backward anyway.
+	var layer string
+	for _, nd := range g.nodes {
+		if nd.src.OpType == "Relu" {
+			layer = g.names[nd.out[0]]
+		}
+	}
+	p, err := g.Run(ctx, in, RunOptions{Backward: true, Keep: []string{layer}})
+	if err != nil {
+		t.Fatal(err)
+	}
+	y, _ := p.Value(meta.Output)
+	a, ok := p.Value(layer)
+	if !ok {
+		t.Fatalf("kept value %q missing", layer)
+	}
+	y0, a0 := y.Clone(), a.Clone()
+	var bwdOnly string
+	for v, only := range p.bwdOnly {
+		if only && p.vals[v] != nil && g.producer[v] >= 0 {
+			bwdOnly = g.names[v]
+			break
+		}
+	}
+	if bwdOnly == "" {
+		t.Fatal("no value retained only for Backward")
+	}
+	p.Release()
+	if _, ok := p.Value(bwdOnly); ok {
+		t.Errorf("value %q, retained only for Backward, survived Release", bwdOnly)
+	}
+	for i := 0; i < 3; i++ {
+		x2 := x.Clone()
+		for j := range x2.F32 {
+			x2.F32[j] = -x2.F32[j]
+		}
+		q, err := g.Run(ctx, map[string]*tensor.Tensor{meta.Input: x2}, RunOptions{Backward: true})
+		if err != nil {
+			t.Fatal(err)
+		}
+		q.Release()
+	}
+	y1, _ := p.Value(meta.Output)
+	a1, ok := p.Value(layer)
+	if !ok {
+		t.Fatalf("kept value %q gone after Release", layer)
+	}
+	for i := range y0.F32 {
+		if y1.F32[i] != y0.F32[i] {
+			t.Fatalf("output changed after Release and later passes")
+		}
+	}
+	for i := range a0.F32 {
+		if a1.F32[i] != a0.F32[i] {
+			t.Fatalf("kept value %q changed after Release and later passes", layer)
+		}
+	}
+}
