@@ -51,8 +51,9 @@ func (op *convOp) backwardFor(in, out, gradOut []*tensor.Tensor, need []bool, me
 	var dx, dw *tensor.Tensor
 	plan, perr := op.plans.plan(g)
 	// The input gradient of a unit-stride layer is a forward convolution
-	// of dY with the flipped filters, which overwrites dX; col2im and the
-	// depthwise kernels accumulate into a zeroed one.
+	// of dY with the flipped filters, which overwrites dX, as the planned
+	// depthwise path does; col2im and the direct depthwise loop accumulate
+	// into a zeroed one.
 	var flipped []float32
 	tg, transposed := transposedGeom(g)
 	transposed = transposed && needX && !s.depthwise() && op.gemm1 != nil
@@ -62,7 +63,7 @@ func (op *convOp) backwardFor(in, out, gradOut []*tensor.Tensor, need []bool, me
 		}
 	}
 	if needX {
-		if transposed || (op.gemm1 != nil && !s.depthwise()) {
+		if transposed || (op.gemm1 != nil && !s.depthwise()) || (s.depthwise() && perr == nil) {
 			// Overwritten, or (col2im) cleared image by image just
 			// before it is scattered into, while that part is cached.
 			dx = op.arena.tensor(x.Shape...)
