@@ -141,6 +141,9 @@ func (n *graphNet) Gradient(ctx context.Context, x *tensor.Tensor, seed func(*te
 	if err != nil {
 		return nil, err
 	}
+	// The values kept for Backward go back to the graph's arena once the
+	// gradients are out; the logits and the kept layer stay valid.
+	defer p.Release()
 	l, outShape, err := n.logits(p, x.Shape[0])
 	if err != nil {
 		return nil, err

@@ -478,6 +478,7 @@ func timeHeedmap(ctx context.Context, c config, m *model, b int, bwd bool) (timi
 			seed.F32[i*k+classIndex] = 1
 		}
 		g, err := p.Backward(ctx, map[string]*tensor.Tensor{m.output: seed}, []string{m.input})
+		p.Release() // as explain does: kept values go back to the arena
 		if err != nil {
 			return err
 		}
