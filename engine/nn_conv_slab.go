@@ -141,7 +141,7 @@ func (op *convOp) slabForward(plan *kernel.Im2colPlan, xg []float32, cg int, g g
 		w := j1 - j0
 		buf := poolBuf(&op.slabBufs, kk*((w+nr-1)/nr*nr))
 		defer op.slabBufs.Put(buf)
-		if err := plan.Im2colPanelsPadded(*buf, padded, 1, cg, j0, j1, nr); err != nil {
+		if err := padded.lower(*buf, 1, cg, j0, j1, nr); err != nil {
 			return err
 		}
 		op.gemm1.SgemmPanels(mg, w, kk, wg, kk, *buf, yg[j0:], ohw)
@@ -173,7 +173,7 @@ func (op *convOp) panelForward(plan *kernel.Im2colPlan, xg []float32, cg int, g 
 	fills := min(np, 2*runtime.GOMAXPROCS(0))
 	err = claimTasks(fills, func(t int) error {
 		q0, q1 := np*t/fills, np*(t+1)/fills
-		return plan.Im2colPanelsPadded(panels[q0*kk*nr:q1*kk*nr], padded, 1, cg, q0*nr, min(q1*nr, ohw), nr)
+		return padded.lower(panels[q0*kk*nr:q1*kk*nr], 1, cg, q0*nr, min(q1*nr, ohw), nr)
 	})
 	if err != nil {
 		return err
@@ -193,20 +193,43 @@ func (op *convOp) panelForward(plan *kernel.Im2colPlan, xg []float32, cg int, g 
 	})
 }
 
-// padInput returns the cg channel planes of xg zero-padded as the plan's
-// PaddedShape (xg itself when the plan has no padding), the copy split by
-// channel over the cores, and a function that hands the buffer back.
-func (op *convOp) padInput(plan *kernel.Im2colPlan, xg []float32, cg int) ([]float32, func(), error) {
-	if !plan.NeedsPad() {
-		return xg, func() {}, nil
+// paddedInput is a convolution input laid out for lowering: zero-padded
+// as the plan's PaddedShape and, for a column stride above 1, split by
+// column phase (kernel.Im2colPlan.PadPhased), so every panel row is a
+// unit-stride copy.
+type paddedInput struct {
+	plan   *kernel.Im2colPlan
+	data   []float32
+	phased bool
+}
+
+// lower writes packed panels of columns [j0, j1) from the input.
+func (in paddedInput) lower(dst []float32, images, channels, j0, j1, nr int) error {
+	if in.phased {
+		return in.plan.Im2colPanelsPhased(dst, in.data, images, channels, j0, j1, nr)
+	}
+	return in.plan.Im2colPanelsPadded(dst, in.data, images, channels, j0, j1, nr)
+}
+
+// padInput lays out the cg channel planes of xg for lowering (xg itself
+// when the plan has neither padding nor a column stride), the copy split
+// by channel over the cores, and returns a function that hands the buffer
+// back.
+func (op *convOp) padInput(plan *kernel.Im2colPlan, xg []float32, cg int) (paddedInput, func(), error) {
+	phased := plan.Geometry().StrideW > 1
+	if !plan.NeedsPad() && !phased {
+		return paddedInput{plan: plan, data: xg}, func() {}, nil
 	}
 	ph, pw := plan.PaddedShape()
 	buf := poolBuf(&op.padBufs, cg*ph*pw)
 	chunks := min(cg, 2*runtime.GOMAXPROCS(0))
 	err := claimTasks(chunks, func(t int) error {
+		if phased {
+			return plan.PadPhased(*buf, xg, cg*t/chunks, cg*(t+1)/chunks)
+		}
 		return plan.Pad(*buf, xg, cg*t/chunks, cg*(t+1)/chunks)
 	})
-	return *buf, func() { op.padBufs.Put(buf) }, err
+	return paddedInput{plan: plan, data: *buf, phased: phased}, func() { op.padBufs.Put(buf) }, err
 }
 
 // poolBuf returns a buffer of n floats from p; its contents are arbitrary.

@@ -98,14 +98,26 @@ func TestIm2colPanelsConv(t *testing.T) {
 				if err := plan.Pad(padded, x, 0, tc.c); err != nil {
 					t.Fatal(err)
 				}
+				phased := make([]float32, tc.c*ph*pw)
+				if err := plan.PadPhased(phased, x, 0, tc.c); err != nil {
+					t.Fatal(err)
+				}
 				for _, pl := range []*kernel.Im2colPlan{plan, plan.PortableLoops()} {
-					clear(again)
-					if err := pl.Im2colPanelsPadded(again, padded, 1, tc.c, j0, j1, nr); err != nil {
-						t.Fatal(err)
-					}
-					for k := range again {
-						if again[k] != panels[k] {
-							t.Fatalf("%v case %d slab [%d,%d): padded lowering differs at %d: %v, want %v", isa, i, j0, j1, k, again[k], panels[k])
+					for _, lower := range []struct {
+						name string
+						f    func([]float32) error
+					}{
+						{"padded", func(d []float32) error { return pl.Im2colPanelsPadded(d, padded, 1, tc.c, j0, j1, nr) }},
+						{"phased", func(d []float32) error { return pl.Im2colPanelsPhased(d, phased, 1, tc.c, j0, j1, nr) }},
+					} {
+						clear(again)
+						if err := lower.f(again); err != nil {
+							t.Fatal(err)
+						}
+						for k := range again {
+							if again[k] != panels[k] {
+								t.Fatalf("%v case %d slab [%d,%d): %s lowering differs at %d: %v, want %v", isa, i, j0, j1, lower.name, k, again[k], panels[k])
+							}
 						}
 					}
 				}
@@ -176,6 +188,9 @@ func BenchmarkIm2colPanels(b *testing.B) {
 			{"direct", func(dst []float32, j0, j1 int) error { return plan.Im2colPanels(dst, x, tc.g.C, j0, j1, 32) }},
 			{"padded", func(dst []float32, j0, j1 int) error {
 				return plan.Im2colPanelsPadded(dst, padded, 1, tc.g.C, j0, j1, 32)
+			}},
+			{"phased", func(dst []float32, j0, j1 int) error {
+				return plan.Im2colPanelsPhased(dst, padded, 1, tc.g.C, j0, j1, 32)
 			}},
 		} {
 			lower := v.lower
