@@ -1024,12 +1024,29 @@ func (st *incStep) convPatchPanels(p *incPlan, x *tensor.Tensor, c, ph, pw int) 
 	tmpb := p.buf(st.m * n)
 	defer p.scratch.Put(tmpb)
 	tmp := *tmpb
+	lower := plan.Im2colPanelsPadded
+	src := x.F32
+	if g.sw > 1 {
+		// Split the patches by column phase so strided taps are
+		// unit-stride copies (kernel.Im2colPlan.PadPhased; the plan has
+		// no padding, so this only reorders columns).
+		pb := p.buf(len(x.F32))
+		defer p.scratch.Put(pb)
+		planes := nb * c
+		chunks := min(planes, 2*runtime.GOMAXPROCS(0))
+		if err := claimTasks(chunks, func(t int) error {
+			return plan.PadPhased(*pb, x.F32, planes*t/chunks, planes*(t+1)/chunks)
+		}); err != nil {
+			return nil, false
+		}
+		src, lower = *pb, plan.Im2colPanelsPhased
+	}
 	err = claimTasks((n+width-1)/width, func(s int) error {
 		j0 := s * width
 		j1 := min(j0+width, n)
 		buf := p.buf(kk * ((j1 - j0 + nr - 1) / nr * nr))
 		defer p.scratch.Put(buf)
-		if err := plan.Im2colPanelsPadded(*buf, x.F32, nb, c, j0, j1, nr); err != nil {
+		if err := lower(*buf, src, nb, c, j0, j1, nr); err != nil {
 			return err
 		}
 		st.gemm1.SgemmPanels(st.m, j1-j0, kk, st.w, kk, *buf, tmp[j0:], n)
