@@ -334,6 +334,10 @@ func tapRange(start, d, k, n int) (lo, hi int) {
 // scan order (row-major within the window), as PyTorch does; idx, when not
 // nil, receives off + the flat offset of each window's maximum.
 func maxPlane(src, dst []float32, idx []int64, g geom2, off int64) {
+	if idx == nil && g.kh == 3 && g.kw == 3 && g.dh == 1 && g.dw == 1 {
+		maxPlane3x3(src, dst, g)
+		return
+	}
 	for oy := 0; oy < g.oh; oy++ {
 		y0 := oy*g.sh - g.pt
 		kilo, kihi := tapRange(y0, g.dh, g.kh, g.ih)
@@ -358,5 +362,66 @@ func maxPlane(src, dst []float32, idx []int64, g geom2, off int64) {
 				idx[oy*g.ow+ox] = off + int64(arg)
 			}
 		}
+	}
+}
+
+// maxPlane3x3 is maxPlane for the common undilated 3×3 window without
+// indices: windows that lie wholly inside the image (all but a border of
+// outputs) are scanned with the nine reads written out and no tap-range
+// arithmetic; the rest take the general loop. The scan order, and so the
+// value kept among equal ones, is maxPlane's.
+func maxPlane3x3(src, dst []float32, g geom2) {
+	// Interior output columns: x0 = ox·sw − pl ≥ 0 and x0 + 2 < iw.
+	oxLo := (g.pl + g.sw - 1) / g.sw
+	oxHi := 0
+	if g.iw-3+g.pl >= 0 {
+		oxHi = min(g.ow, (g.iw-3+g.pl)/g.sw+1)
+	}
+	oxHi = max(oxHi, oxLo)
+	for oy := 0; oy < g.oh; oy++ {
+		y0 := oy*g.sh - g.pt
+		out := dst[oy*g.ow : (oy+1)*g.ow]
+		if y0 < 0 || y0+2 >= g.ih || oxLo >= oxHi {
+			maxRow(src, out, g, oy, 0, g.ow)
+			continue
+		}
+		maxRow(src, out, g, oy, 0, oxLo)
+		maxRow(src, out, g, oy, oxHi, g.ow)
+		r0 := src[y0*g.iw : (y0+1)*g.iw]
+		r1 := src[(y0+1)*g.iw : (y0+2)*g.iw]
+		r2 := src[(y0+2)*g.iw : (y0+3)*g.iw]
+		x0 := oxLo*g.sw - g.pl
+		for ox := oxLo; ox < oxHi; ox++ {
+			a, b, c := r0[x0:x0+3], r1[x0:x0+3], r2[x0:x0+3]
+			best := a[0]
+			for _, v := range [8]float32{a[1], a[2], b[0], b[1], b[2], c[0], c[1], c[2]} {
+				if v > best {
+					best = v
+				}
+			}
+			out[ox] = best
+			x0 += g.sw
+		}
+	}
+}
+
+// maxRow is maxPlane's general loop for outputs [ox0, ox1) of row oy.
+func maxRow(src, out []float32, g geom2, oy, ox0, ox1 int) {
+	y0 := oy*g.sh - g.pt
+	kilo, kihi := tapRange(y0, g.dh, g.kh, g.ih)
+	for ox := ox0; ox < ox1; ox++ {
+		x0 := ox*g.sw - g.pl
+		kjlo, kjhi := tapRange(x0, g.dw, g.kw, g.iw)
+		best, found := float32(math.Inf(-1)), false
+		for ki := kilo; ki < kihi; ki++ {
+			row := (y0 + ki*g.dh) * g.iw
+			for kj := kjlo; kj < kjhi; kj++ {
+				if v := src[row+x0+kj*g.dw]; v > best || !found {
+					best, found = v, true
+				}
+			}
+		}
+		out[ox] = best // −Inf when the window lies entirely in padding, as maxPlane
+
 	}
 }
