@@ -392,17 +392,29 @@ func maxPlane3x3(src, dst []float32, g geom2) {
 		r2 := src[(y0+2)*g.iw : (y0+3)*g.iw]
 		x0 := oxLo*g.sw - g.pl
 		for ox := oxLo; ox < oxHi; ox++ {
-			a, b, c := r0[x0:x0+3], r1[x0:x0+3], r2[x0:x0+3]
-			best := a[0]
-			for _, v := range [8]float32{a[1], a[2], b[0], b[1], b[2], c[0], c[1], c[2]} {
-				if v > best {
-					best = v
-				}
-			}
+			_, _, _ = r0[x0+2], r1[x0+2], r2[x0+2]
+			best := r0[x0]
+			best = gt(r0[x0+1], best)
+			best = gt(r0[x0+2], best)
+			best = gt(r1[x0], best)
+			best = gt(r1[x0+1], best)
+			best = gt(r1[x0+2], best)
+			best = gt(r2[x0], best)
+			best = gt(r2[x0+1], best)
+			best = gt(r2[x0+2], best)
 			out[ox] = best
 			x0 += g.sw
 		}
 	}
+}
+
+// gt returns v when v > best, else best: one step of maxPlane's scan (a
+// NaN never replaces, and an equal value never replaces, the kept one).
+func gt(v, best float32) float32 {
+	if v > best {
+		return v
+	}
+	return best
 }
 
 // maxRow is maxPlane's general loop for outputs [ox0, ox1) of row oy.
