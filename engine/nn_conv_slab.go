@@ -83,39 +83,9 @@ func (e *epilogue) forGroup(mOff int) *epilogue {
 // claimTasks runs f(0) … f(tasks−1) on up to GOMAXPROCS goroutines (the
 // caller's included), each taking the next unclaimed task, so a core slowed
 // by other work on a shared machine does fewer tasks instead of holding up
-// the rest. It returns the first error.
+// the rest. It returns the first error. It is claimPhases with one phase.
 func claimTasks(tasks int, f func(t int) error) error {
-	workers := min(runtime.GOMAXPROCS(0), tasks)
-	var next atomic.Int64
-	var mu sync.Mutex
-	var firstErr error
-	work := func() {
-		for {
-			t := int(next.Add(1) - 1)
-			if t >= tasks {
-				return
-			}
-			if err := f(t); err != nil {
-				mu.Lock()
-				if firstErr == nil {
-					firstErr = err
-				}
-				mu.Unlock()
-				return
-			}
-		}
-	}
-	var wg sync.WaitGroup
-	for w := 1; w < workers; w++ {
-		wg.Add(1)
-		go func() {
-			defer wg.Done()
-			work()
-		}()
-	}
-	work()
-	wg.Wait()
-	return firstErr
+	return claimPhases([]int{tasks}, func(_, t int) error { return f(t) })
 }
 
 // slabForward computes one image and group, Yg (mg×ohw) = Wg·col, by
@@ -130,12 +100,12 @@ func (op *convOp) slabForward(plan *kernel.Im2colPlan, xg []float32, cg int, g g
 	nr := op.gemm1.PanelWidth()
 	nb := max(nr, min(512, slabFloats/kk/nr*nr))
 	ep = ep.forGroup(mOff)
-	padded, release, err := op.padInput(plan, xg, cg)
-	if err != nil {
-		return err
-	}
+	padded, padTasks, release := op.padPlan(plan, xg, cg)
 	defer release()
-	return claimTasks((ohw+nb-1)/nb, func(s int) error {
+	return claimPhases([]int{padTasks, (ohw + nb - 1) / nb}, func(phase, s int) error {
+		if phase == 0 {
+			return padded.pad(s, padTasks, xg, cg)
+		}
 		j0 := s * nb
 		j1 := min(j0+nb, ohw)
 		w := j1 - j0
@@ -164,24 +134,21 @@ func (op *convOp) panelForward(plan *kernel.Im2colPlan, xg []float32, cg int, g 
 	buf := poolBuf(&op.slabBufs, kk*np*nr)
 	defer op.slabBufs.Put(buf)
 	panels := *buf
-	padded, release, err := op.padInput(plan, xg, cg)
-	if err != nil {
-		return err
-	}
+	padded, padTasks, release := op.padPlan(plan, xg, cg)
 	defer release()
+	ep = ep.forGroup(mOff)
 	// Fill: about 2 tasks per core, whole panels each.
 	fills := min(np, 2*runtime.GOMAXPROCS(0))
-	err = claimTasks(fills, func(t int) error {
-		q0, q1 := np*t/fills, np*(t+1)/fills
-		return padded.lower(panels[q0*kk*nr:q1*kk*nr], 1, cg, q0*nr, min(q1*nr, ohw), nr)
-	})
-	if err != nil {
-		return err
-	}
-	ep = ep.forGroup(mOff)
 	tiles := (mg + mr - 1) / mr
 	blocks := min(tiles, 3*runtime.GOMAXPROCS(0))
-	return claimTasks(blocks, func(t int) error {
+	return claimPhases([]int{padTasks, fills, blocks}, func(phase, t int) error {
+		switch phase {
+		case 0:
+			return padded.pad(t, padTasks, xg, cg)
+		case 1:
+			q0, q1 := np*t/fills, np*(t+1)/fills
+			return padded.lower(panels[q0*kk*nr:q1*kk*nr], 1, cg, q0*nr, min(q1*nr, ohw), nr)
+		}
 		m0 := min(mg, tiles*t/blocks*mr)
 		m1 := min(mg, tiles*(t+1)/blocks*mr)
 		if m0 == m1 {
@@ -191,6 +158,66 @@ func (op *convOp) panelForward(plan *kernel.Im2colPlan, xg []float32, cg int, g 
 		ep.apply(yg, ohw, m0, m1, 0, ohw)
 		return nil
 	})
+}
+
+// claimPhases runs the tasks of each phase in turn, f(phase, t) for t <
+// counts[phase], on up to GOMAXPROCS goroutines (the caller's included):
+// every goroutine claims tasks of the current phase until none is left,
+// waits until all of them have finished, then moves to the next phase.
+// One team serves all of a convolution's phases (pad, lower, multiply), so
+// the cost of waking a second goroutine is paid once per convolution
+// instead of once per phase; with short phases a freshly started helper
+// used to arrive after the caller had done most of the work alone. It
+// returns the first error, after which no further task starts.
+func claimPhases(counts []int, f func(phase, t int) error) error {
+	most := 0
+	for _, c := range counts {
+		most = max(most, c)
+	}
+	if most == 0 {
+		return nil
+	}
+	next := make([]atomic.Int64, len(counts))
+	done := make([]atomic.Int64, len(counts))
+	var failed atomic.Bool
+	var mu sync.Mutex
+	var firstErr error
+	work := func() {
+		for p, c := range counts {
+			for {
+				t := int(next[p].Add(1) - 1)
+				if t >= c {
+					break
+				}
+				if !failed.Load() {
+					if err := f(p, t); err != nil {
+						mu.Lock()
+						if firstErr == nil {
+							firstErr = err
+						}
+						mu.Unlock()
+						failed.Store(true)
+					}
+				}
+				done[p].Add(1)
+			}
+			for done[p].Load() < int64(c) {
+				runtime.Gosched() // the other goroutine is finishing a task of this phase
+			}
+		}
+	}
+	workers := min(runtime.GOMAXPROCS(0), most)
+	var wg sync.WaitGroup
+	for w := 1; w < workers; w++ {
+		wg.Add(1)
+		go func() {
+			defer wg.Done()
+			work()
+		}()
+	}
+	work()
+	wg.Wait()
+	return firstErr
 }
 
 // paddedInput is a convolution input laid out for lowering: zero-padded
@@ -211,25 +238,28 @@ func (in paddedInput) lower(dst []float32, images, channels, j0, j1, nr int) err
 	return in.plan.Im2colPanelsPadded(dst, in.data, images, channels, j0, j1, nr)
 }
 
-// padInput lays out the cg channel planes of xg for lowering (xg itself
-// when the plan has neither padding nor a column stride), the copy split
-// by channel over the cores, and returns a function that hands the buffer
-// back.
-func (op *convOp) padInput(plan *kernel.Im2colPlan, xg []float32, cg int) (paddedInput, func(), error) {
+// padPlan prepares the lowering input of the cg channel planes of xg:
+// xg itself when the plan has neither padding nor a column stride (tasks
+// is then 0), else a pooled buffer that the returned number of pad tasks
+// fill (paddedInput.pad), and a function that hands the buffer back.
+func (op *convOp) padPlan(plan *kernel.Im2colPlan, xg []float32, cg int) (in paddedInput, tasks int, release func()) {
 	phased := plan.Geometry().StrideW > 1
 	if !plan.NeedsPad() && !phased {
-		return paddedInput{plan: plan, data: xg}, func() {}, nil
+		return paddedInput{plan: plan, data: xg}, 0, func() {}
 	}
 	ph, pw := plan.PaddedShape()
 	buf := poolBuf(&op.padBufs, cg*ph*pw)
-	chunks := min(cg, 2*runtime.GOMAXPROCS(0))
-	err := claimTasks(chunks, func(t int) error {
-		if phased {
-			return plan.PadPhased(*buf, xg, cg*t/chunks, cg*(t+1)/chunks)
-		}
-		return plan.Pad(*buf, xg, cg*t/chunks, cg*(t+1)/chunks)
-	})
-	return paddedInput{plan: plan, data: *buf, phased: phased}, func() { op.padBufs.Put(buf) }, err
+	tasks = min(cg, 2*runtime.GOMAXPROCS(0))
+	return paddedInput{plan: plan, data: *buf, phased: phased}, tasks, func() { op.padBufs.Put(buf) }
+}
+
+// pad runs pad task t of tasks: a share of the cg channels of xg.
+func (in paddedInput) pad(t, tasks int, xg []float32, cg int) error {
+	c0, c1 := cg*t/tasks, cg*(t+1)/tasks
+	if in.phased {
+		return in.plan.PadPhased(in.data, xg, c0, c1)
+	}
+	return in.plan.Pad(in.data, xg, c0, c1)
 }
 
 // poolBuf returns a buffer of n floats from p; its contents are arbitrary.
