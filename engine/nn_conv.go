@@ -169,7 +169,16 @@ func (op *convOp) forward(in []*tensor.Tensor, act actKind, lo, hi float32) ([]*
 			defer op.cols.Put(buf)
 			col = *buf
 		}
-		for n := 0; n < s.n; n++ {
+		images := s.n
+		if panels && !slabs && s.n > 1 && op.group == 1 {
+			// Several images with small output maps: one product over
+			// the images' columns side by side (nn_conv_slab.go).
+			if err := op.batchForward(plan, x.F32, s.n, s.cg, g, w.F32, s.m, kk, y.F32, ep); err != nil {
+				return nil, err
+			}
+			images = 0
+		}
+		for n := 0; n < images; n++ {
 			for gi := 0; gi < op.group; gi++ {
 				xg := x.F32[(n*s.c+gi*s.cg)*ihw : (n*s.c+(gi+1)*s.cg)*ihw]
 				yg := y.F32[(n*s.m+gi*s.mg)*ohw : (n*s.m+(gi+1)*s.mg)*ohw]

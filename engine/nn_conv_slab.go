@@ -160,6 +160,54 @@ func (op *convOp) panelForward(plan *kernel.Im2colPlan, xg []float32, cg int, g 
 	})
 }
 
+// batchForward computes a one-group convolution of nImg images whose
+// output maps are small (the layers panelForward takes one image at a
+// time): the images' columns are lowered side by side
+// (Im2colPanelsPadded over several images) in slabs wide enough that the
+// weights are streamed only a few times, each slab multiplied at once into
+// a scratch block and copied to its images' output planes with the
+// epilogue. With 7×7 maps a single image fills only 49 of the 64 columns
+// of its two 32-wide panels; a batch of them wastes almost nothing.
+func (op *convOp) batchForward(plan *kernel.Im2colPlan, x []float32, nImg, c int, g geom2, w []float32, m, kk int, y []float32, ep *epilogue) error {
+	ohw := g.oh * g.ow
+	cols := nImg * ohw
+	nr := op.gemm1.PanelWidth()
+	workers := runtime.GOMAXPROCS(0)
+	nb := min(1024, max(nr, (cols+3*workers-1)/(3*workers)))
+	nb = (nb + nr - 1) / nr * nr
+	padded, padTasks, release := op.padPlan(plan, x, nImg*c)
+	defer release()
+	return claimPhases([]int{padTasks, (cols + nb - 1) / nb}, func(phase, s int) error {
+		if phase == 0 {
+			return padded.pad(s, padTasks, x, nImg*c)
+		}
+		j0 := s * nb
+		j1 := min(j0+nb, cols)
+		wd := j1 - j0
+		buf := poolBuf(&op.slabBufs, kk*((wd+nr-1)/nr*nr))
+		defer op.slabBufs.Put(buf)
+		if err := padded.lower(*buf, nImg, c, j0, j1, nr); err != nil {
+			return err
+		}
+		cb := poolBuf(&op.slabBufs, m*wd)
+		defer op.slabBufs.Put(cb)
+		op.gemm1.SgemmPanels(m, wd, kk, w, kk, *buf, *cb, wd)
+		// Scatter: column j of the block is output position (j0+j) mod
+		// ohw of image (j0+j) / ohw.
+		for j := j0; j < j1; {
+			img, o := j/ohw, j%ohw
+			end := min(j1, (img+1)*ohw)
+			yi := y[img*m*ohw:]
+			for mo := 0; mo < m; mo++ {
+				copy(yi[mo*ohw+o:mo*ohw+o+end-j], (*cb)[mo*wd+j-j0:mo*wd+end-j0])
+			}
+			ep.apply(yi, ohw, 0, m, o, o+end-j)
+			j = end
+		}
+		return nil
+	})
+}
+
 // claimPhases runs the tasks of each phase in turn, f(phase, t) for t <
 // counts[phase], on up to GOMAXPROCS goroutines (the caller's included):
 // every goroutine claims tasks of the current phase until none is left,
