@@ -117,6 +117,18 @@ func (op *convOp) backwardFor(in, out, gradOut []*tensor.Tensor, need []bool, me
 			defer op.cols.Put(b)
 			dcol = *b
 		}
+		batchedX := false
+		if needX && transposed && op.group == 1 && s.n > 1 && op.gemm1 != nil {
+			// Several images with small maps: their input gradients as one
+			// batched transposed convolution (see batchForward).
+			tkk := s.m * tg.kh * tg.kw
+			if tplan, err := op.tplans.plan(tg); err == nil && !op.useSlabs(tkk, tg.oh*tg.ow) {
+				if err := op.batchForward(tplan, dy.F32, s.n, s.m, tg, flipped, s.c, tkk, dx.F32, nil); err != nil {
+					return nil, err
+				}
+				batchedX = true
+			}
+		}
 		for n := 0; n < s.n; n++ {
 			for gi := 0; gi < op.group; gi++ {
 				off := (n*s.c + gi*s.cg) * ihw
@@ -136,7 +148,7 @@ func (op *convOp) backwardFor(in, out, gradOut []*tensor.Tensor, need []bool, me
 					dwg := dw.F32[gi*s.mg*kk : (gi+1)*s.mg*kk]
 					op.gemm.Sgemm(false, true, s.mg, kk, ohw, 1, dyg, ohw, src, ohw, 1, dwg, kk)
 				}
-				if !needX {
+				if !needX || batchedX {
 					continue
 				}
 				dxg := dx.F32[off : off+s.cg*ihw]

@@ -75,7 +75,8 @@ func TestConvSlabPathMatchesReference(t *testing.T) {
 }
 
 // TestConvTransposedBackwardMatchesReference checks the input gradient of
-// unit-stride convolutions large enough for the transposed slab path
+// unit-stride convolutions through the transposed paths (slabs for large
+// maps, the batched product for several images with small ones)
 // against the adjoint identity ⟨conv(x), dy⟩ = ⟨x, dx⟩ (without bias the
 // convolution is linear in x) and against the operator built on
 // kernel.Naive, which takes the Wᵀ·dY + col2im path.
@@ -88,6 +89,10 @@ func TestConvTransposedBackwardMatchesReference(t *testing.T) {
 		{6, 33, 40, 8, 3, 1, 2},
 		{4, 30, 30, 6, 5, 2, 1},
 		{3, 32, 32, 4, 3, 0, 1},
+		// small maps, several images: the batched transposed product
+		{16, 7, 7, 20, 3, 1, 1},
+		{8, 14, 14, 12, 3, 1, 1},
+		{9, 6, 5, 13, 1, 0, 1},
 	} {
 		x := nnRand(rng, 2, tc.c, tc.h, tc.w)
 		wt := nnRand(rng, tc.m, tc.c/tc.group, tc.k, tc.k)
@@ -104,7 +109,7 @@ func TestConvTransposedBackwardMatchesReference(t *testing.T) {
 		}
 		fc := fast.(*convOp)
 		s, _ := fc.shape(x, wt)
-		if _, ok := transposedGeom(s.g); !ok || !fc.useSlabs(s.mg*tc.k*tc.k, tc.h*tc.w) {
+		if _, ok := transposedGeom(s.g); !ok {
 			t.Fatalf("case %d: transposed path not taken", i)
 		}
 		in := []*tensor.Tensor{x, wt}
