@@ -132,7 +132,7 @@ func Compile(m *onnx.Model, opts ...Option) (*Graph, error) {
 	// Build every supported node, collecting all problems before failing.
 	var unsupported, rejected []string
 	g.arena = newArena()
-	env := &Env{GEMM: cfg.gemm, Opset: opset, arena: g.arena}
+	env := &Env{GEMM: cfg.gemm, Opset: opset, arena: g.arena, team: newTeam()}
 	built := make([]Op, len(order))
 	for k, n := range order {
 		if n.Domain != "" && n.Domain != "ai.onnx" {

@@ -36,6 +36,7 @@ type convOp struct {
 	gemm1    *kernel.Packed
 	slabBufs sync.Pool
 	padBufs  sync.Pool // zero-padded inputs of the panel paths
+	team     *team     // helper goroutines shared by the Graph's convolutions; may be nil
 	// tplans caches the plans of the transposed convolutions that give
 	// the input gradient (nn_conv_slab.go).
 	tplans planCache
@@ -67,7 +68,7 @@ func buildConv(n *onnx.Node, env *Env) (Op, error) {
 	if len(n.Inputs) < 2 {
 		return nil, fmt.Errorf("Conv needs X and W, got %d inputs", len(n.Inputs))
 	}
-	op := &convOp{win: w, group: int(g), gemm: env.GEMM, arena: env.arena}
+	op := &convOp{win: w, group: int(g), gemm: env.GEMM, arena: env.arena, team: env.team}
 	if p, ok := env.GEMM.(*kernel.Packed); ok {
 		if p1, err := kernel.New(kernel.Options{ISA: p.ISA(), Threads: 1}); err == nil {
 			op.gemm1 = p1

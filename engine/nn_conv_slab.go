@@ -4,7 +4,6 @@ import (
 	"math"
 	"runtime"
 	"sync"
-	"sync/atomic"
 
 	"heedmap/kernel"
 )
@@ -85,7 +84,7 @@ func (e *epilogue) forGroup(mOff int) *epilogue {
 // by other work on a shared machine does fewer tasks instead of holding up
 // the rest. It returns the first error. It is claimPhases with one phase.
 func claimTasks(tasks int, f func(t int) error) error {
-	return claimPhases([]int{tasks}, func(_, t int) error { return f(t) })
+	return (*team)(nil).run([]int{tasks}, func(_, t int) error { return f(t) })
 }
 
 // slabForward computes one image and group, Yg (mg×ohw) = Wg·col, by
@@ -102,7 +101,7 @@ func (op *convOp) slabForward(plan *kernel.Im2colPlan, xg []float32, cg int, g g
 	ep = ep.forGroup(mOff)
 	padded, padTasks, release := op.padPlan(plan, xg, cg)
 	defer release()
-	return claimPhases([]int{padTasks, (ohw + nb - 1) / nb}, func(phase, s int) error {
+	return op.team.run([]int{padTasks, (ohw + nb - 1) / nb}, func(phase, s int) error {
 		if phase == 0 {
 			return padded.pad(s, padTasks, xg, cg)
 		}
@@ -141,7 +140,7 @@ func (op *convOp) panelForward(plan *kernel.Im2colPlan, xg []float32, cg int, g 
 	fills := min(np, 2*runtime.GOMAXPROCS(0))
 	tiles := (mg + mr - 1) / mr
 	blocks := min(tiles, 3*runtime.GOMAXPROCS(0))
-	return claimPhases([]int{padTasks, fills, blocks}, func(phase, t int) error {
+	return op.team.run([]int{padTasks, fills, blocks}, func(phase, t int) error {
 		switch phase {
 		case 0:
 			return padded.pad(t, padTasks, xg, cg)
@@ -177,7 +176,7 @@ func (op *convOp) batchForward(plan *kernel.Im2colPlan, x []float32, nImg, c int
 	nb = (nb + nr - 1) / nr * nr
 	padded, padTasks, release := op.padPlan(plan, x, nImg*c)
 	defer release()
-	return claimPhases([]int{padTasks, (cols + nb - 1) / nb}, func(phase, s int) error {
+	return op.team.run([]int{padTasks, (cols + nb - 1) / nb}, func(phase, s int) error {
 		if phase == 0 {
 			return padded.pad(s, padTasks, x, nImg*c)
 		}
@@ -206,66 +205,6 @@ func (op *convOp) batchForward(plan *kernel.Im2colPlan, x []float32, nImg, c int
 		}
 		return nil
 	})
-}
-
-// claimPhases runs the tasks of each phase in turn, f(phase, t) for t <
-// counts[phase], on up to GOMAXPROCS goroutines (the caller's included):
-// every goroutine claims tasks of the current phase until none is left,
-// waits until all of them have finished, then moves to the next phase.
-// One team serves all of a convolution's phases (pad, lower, multiply), so
-// the cost of waking a second goroutine is paid once per convolution
-// instead of once per phase; with short phases a freshly started helper
-// used to arrive after the caller had done most of the work alone. It
-// returns the first error, after which no further task starts.
-func claimPhases(counts []int, f func(phase, t int) error) error {
-	most := 0
-	for _, c := range counts {
-		most = max(most, c)
-	}
-	if most == 0 {
-		return nil
-	}
-	next := make([]atomic.Int64, len(counts))
-	done := make([]atomic.Int64, len(counts))
-	var failed atomic.Bool
-	var mu sync.Mutex
-	var firstErr error
-	work := func() {
-		for p, c := range counts {
-			for {
-				t := int(next[p].Add(1) - 1)
-				if t >= c {
-					break
-				}
-				if !failed.Load() {
-					if err := f(p, t); err != nil {
-						mu.Lock()
-						if firstErr == nil {
-							firstErr = err
-						}
-						mu.Unlock()
-						failed.Store(true)
-					}
-				}
-				done[p].Add(1)
-			}
-			for done[p].Load() < int64(c) {
-				runtime.Gosched() // the other goroutine is finishing a task of this phase
-			}
-		}
-	}
-	workers := min(runtime.GOMAXPROCS(0), most)
-	var wg sync.WaitGroup
-	for w := 1; w < workers; w++ {
-		wg.Add(1)
-		go func() {
-			defer wg.Done()
-			work()
-		}()
-	}
-	work()
-	wg.Wait()
-	return firstErr
 }
 
 // paddedInput is a convolution input laid out for lowering: zero-padded

@@ -31,6 +31,8 @@ type Env struct {
 	Opset int64
 	// arena, when set, supplies reusable output buffers (see arena.go).
 	arena *arena
+	// team, when set, runs convolutions' parallel phases (team.go).
+	team *team
 }
 
 // Builder compiles one node, validating its attributes.
