@@ -107,6 +107,7 @@ type incStep struct {
 	w, b         []float32
 	gemm         kernel.GEMM
 	gemm1        *kernel.Packed // single-threaded, for the panel path; may be nil
+	team         *team          // the Conv's helper team; may be nil
 	// pools
 	patchOp Op
 	fill    float32
@@ -290,7 +291,7 @@ func (p *incPlan) classify(nd *node, st *incStep, nSpatial int) (incKind, string
 		if err != nil {
 			return incFull, err.Error()
 		}
-		st.g, st.gemm, st.gemm1 = geo, gemm, convGEMM1(nd.op)
+		st.g, st.gemm, st.gemm1, st.team = geo, gemm, convGEMM1(nd.op), convTeam(nd.op)
 		st.group = int(src.Int("group", 1))
 		st.m, st.cg = w.Shape[0], w.Shape[1]
 		st.w = w.F32
@@ -1034,14 +1035,14 @@ func (st *incStep) convPatchPanels(p *incPlan, x *tensor.Tensor, c, ph, pw int) 
 		defer p.scratch.Put(pb)
 		planes := nb * c
 		chunks := min(planes, 2*runtime.GOMAXPROCS(0))
-		if err := claimTasks(chunks, func(t int) error {
+		if err := st.team.run([]int{chunks}, func(_, t int) error {
 			return plan.PadPhased(*pb, x.F32, planes*t/chunks, planes*(t+1)/chunks)
 		}); err != nil {
 			return nil, false
 		}
 		src, lower = *pb, plan.Im2colPanelsPhased
 	}
-	err = claimTasks((n+width-1)/width, func(s int) error {
+	err = st.team.run([]int{(n + width - 1) / width}, func(_, s int) error {
 		j0 := s * width
 		j1 := min(j0+width, n)
 		buf := p.buf(kk * ((j1 - j0 + nr - 1) / nr * nr))

@@ -24,3 +24,13 @@ func convGEMM1(op Op) *kernel.Packed {
 	}
 	return nil
 }
+
+// convTeam returns the helper team a compiled Conv runs its parallel
+// phases on (nil when it has none), so the incremental path's patch
+// products use the same warm helpers as Run.
+func convTeam(op Op) *team {
+	if c, ok := op.(*convOp); ok {
+		return c.team
+	}
+	return nil
+}
