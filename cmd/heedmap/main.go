@@ -23,6 +23,7 @@ import (
 	"io"
 	"os"
 	"os/signal"
+	"runtime/debug"
 	"syscall"
 )
 
@@ -62,6 +63,7 @@ func main() {
 		stop()
 		fmt.Fprintln(os.Stderr, "\nstopping: finished images are kept, those in progress are redone on the next run (Ctrl-C again to quit at once)")
 	}()
+	setMemoryLimit()
 	code := dispatch(ctx, os.Args[1:], os.Stdout, os.Stderr)
 	close(finished)
 	stop()
@@ -143,4 +145,20 @@ func cmdVersion(ctx context.Context, args []string, stdout, stderr io.Writer) in
 	}
 	fmt.Fprintf(stdout, "heedmap %s (%s)\n", version, goInfo())
 	return exitOK
+}
+
+// defaultMemoryLimit is the Go runtime's soft memory limit when the
+// environment sets none (GOMEMLIMIT). The report of a large batch holds
+// every image's measures at once (about 60 KB live per image); without a
+// limit the collector lets the heap grow to twice that, and a 10,000-image
+// run peaked at 1.24 GB RSS (live heap 300–660 MB). The limit makes the
+// collector run before the heap reaches it, so the 1 GB budget holds; a
+// live heap above it still works, with the collector running more often.
+const defaultMemoryLimit = 900 << 20
+
+// setMemoryLimit applies defaultMemoryLimit unless GOMEMLIMIT is set.
+func setMemoryLimit() {
+	if os.Getenv("GOMEMLIMIT") == "" {
+		debug.SetMemoryLimit(defaultMemoryLimit)
+	}
 }
