@@ -13,26 +13,37 @@ import (
 func genEpilogue(zmm, ymm []reg.VecPhysical) {
 	genBiasClamp("biasClampAVX512", zmm, 16)
 	genBiasClamp("biasClampAVX2", ymm, 8)
-	genPanelRows()
-	genPanelRowsGather()
+	genPanelRows(false)
+	genPanelRows(true)
 }
 
 // genPanelRows emits the row loop of Im2colPlan.Im2colPanelsPadded for
-// 32-wide panels and unit column stride: for each of rows panel rows, the
-// row's 32 values are assembled in two zmm registers from up to nseg
-// segments of the zero-padded input, each a merge-masked load (lanes
-// outside the segment keep what earlier segments put there, and a masked
-// lane never faults, so the load address may run off either end of the
-// segment), then stored with two full-width stores. Lanes no segment
-// covers stay zero: the zero padding of a partial last panel.
+// 32-wide panels: for each of rows panel rows, the row's 32 values are
+// assembled in two zmm registers from up to nseg segments of the padded
+// input, then stored with two full-width stores. Lanes no segment covers
+// stay zero: the zero padding of a partial last panel.
 //
 // segs[s] packs one segment: bits 0–31 the signed shift, in floats, from
 // the row's tap base to the input value of panel lane 0; bits 32–47 the
 // lane mask of the first 16 lanes; bits 48–63 that of the last 16.
-func genPanelRows() {
-	const name = "panelRowsAVX512"
-	TEXT(name, NOSPLIT, "func(rows int, dst, base *float32, offs *int32, segs *uint64, nseg int)")
-	Doc(name + " writes rows 32-wide panel rows of dst from the padded input at base: row r takes segments segs[0:nseg] relative to base+offs[r].")
+//
+// With gather false (unit column stride) each half is one merge-masked
+// load: lanes outside the segment keep what earlier segments put there,
+// and a masked lane never faults, so the load address may run off either
+// end of the segment. With gather true (panelRowsGatherAVX512, for a
+// column stride other than 1) lane j reads shift + lanes[j] (lanes holds
+// j·stride) with one merge-masked gather per half.
+func genPanelRows(gather bool) {
+	name := "panelRowsAVX512"
+	sig := "func(rows int, dst, base *float32, offs *int32, segs *uint64, nseg int)"
+	doc := name + " writes rows 32-wide panel rows of dst from the padded input at base: row r takes segments segs[0:nseg] relative to base+offs[r]."
+	if gather {
+		name = "panelRowsGatherAVX512"
+		sig = "func(rows int, dst, base *float32, offs *int32, segs *uint64, nseg int, lanes *int32)"
+		doc = name + " is panelRowsAVX512 for strided columns: lane j of a segment reads base+offs[r]+shift+lanes[j]."
+	}
+	TEXT(name, NOSPLIT, sig)
+	Doc(doc)
 	Pragma("noescape")
 	rows := Load(Param("rows"), GP64())
 	dst := Load(Param("dst"), GP64())
@@ -40,8 +51,18 @@ func genPanelRows() {
 	offs := Load(Param("offs"), GP64())
 	segs := Load(Param("segs"), GP64())
 	nseg := Load(Param("nseg"), GP64())
-	rowBase, sp, sn, w, shift := GP64(), GP64(), GP64(), GP64(), GP64()
-	lo, hi := reg.Z0, reg.Z1
+	laneLo, laneHi := reg.Z2, reg.Z3
+	if gather {
+		lanes := Load(Param("lanes"), GP64())
+		VMOVDQU32(Mem{Base: lanes}, laneLo)
+		VMOVDQU32(Mem{Base: lanes, Disp: 64}, laneHi)
+	}
+	rowBase, sp, sn, w := GP64(), GP64(), GP64(), GP64()
+	var shift reg.GPVirtual
+	if !gather {
+		shift = GP64()
+	}
+	lo, hi, sh, idxLo, idxHi := reg.Z0, reg.Z1, reg.Z4, reg.Z5, reg.Z6
 	Label(name + "_row")
 	TESTQ(rows, rows)
 	JZ(LabelRef(name + "_done"))
@@ -55,13 +76,24 @@ func genPanelRows() {
 	TESTQ(sn, sn)
 	JZ(LabelRef(name + "_store"))
 	MOVQ(Mem{Base: sp}, w)
-	MOVLQSX(w.As32(), shift)
+	if gather {
+		VPBROADCASTD(w.As32(), sh)
+		VPADDD(laneLo, sh, idxLo)
+		VPADDD(laneHi, sh, idxHi)
+	} else {
+		MOVLQSX(w.As32(), shift)
+	}
 	SHRQ(U8(32), w)
 	KMOVW(w.As32(), reg.K1)
 	SHRQ(U8(16), w)
 	KMOVW(w.As32(), reg.K2)
-	VMOVUPS(Mem{Base: rowBase, Index: shift, Scale: 4}, reg.K1, lo)
-	VMOVUPS(Mem{Base: rowBase, Index: shift, Scale: 4, Disp: 64}, reg.K2, hi)
+	if gather {
+		VGATHERDPS(Mem{Base: rowBase, Index: idxLo, Scale: 4}, reg.K1, lo)
+		VGATHERDPS(Mem{Base: rowBase, Index: idxHi, Scale: 4}, reg.K2, hi)
+	} else {
+		VMOVUPS(Mem{Base: rowBase, Index: shift, Scale: 4}, reg.K1, lo)
+		VMOVUPS(Mem{Base: rowBase, Index: shift, Scale: 4, Disp: 64}, reg.K2, hi)
+	}
 	ADDQ(U8(8), sp)
 	DECQ(sn)
 	JMP(LabelRef(name + "_seg"))
@@ -125,64 +157,6 @@ func genBiasClamp(name string, vec []reg.VecPhysical, width int) {
 	ADDQ(U32(4*width), x)
 	SUBQ(Imm(uint64(width)), n)
 	JMP(LabelRef(name + "_loop1"))
-	Label(name + "_done")
-	VZEROUPPER()
-	RET()
-}
-
-// genPanelRowsGather is genPanelRows for a column stride other than 1:
-// panel lane j of a segment reads the input at shift + lanes[j] (lanes
-// holds j·StrideW), so each 16-lane half is one merge-masked gather.
-// segs packs segments as for genPanelRows.
-func genPanelRowsGather() {
-	const name = "panelRowsGatherAVX512"
-	TEXT(name, NOSPLIT, "func(rows int, dst, base *float32, offs *int32, segs *uint64, nseg int, lanes *int32)")
-	Doc(name + " is panelRowsAVX512 for strided columns: lane j of a segment reads base+offs[r]+shift+lanes[j].")
-	Pragma("noescape")
-	rows := Load(Param("rows"), GP64())
-	dst := Load(Param("dst"), GP64())
-	base := Load(Param("base"), GP64())
-	offs := Load(Param("offs"), GP64())
-	segs := Load(Param("segs"), GP64())
-	nseg := Load(Param("nseg"), GP64())
-	lanes := Load(Param("lanes"), GP64())
-	laneLo, laneHi := reg.Z2, reg.Z3
-	VMOVDQU32(Mem{Base: lanes}, laneLo)
-	VMOVDQU32(Mem{Base: lanes, Disp: 64}, laneHi)
-	rowBase, sp, sn, w := GP64(), GP64(), GP64(), GP64()
-	lo, hi, sh, idxLo, idxHi := reg.Z0, reg.Z1, reg.Z4, reg.Z5, reg.Z6
-	Label(name + "_row")
-	TESTQ(rows, rows)
-	JZ(LabelRef(name + "_done"))
-	MOVLQSX(Mem{Base: offs}, rowBase)
-	LEAQ(Mem{Base: base, Index: rowBase, Scale: 4}, rowBase)
-	VPXORD(lo, lo, lo)
-	VPXORD(hi, hi, hi)
-	MOVQ(segs, sp)
-	MOVQ(nseg, sn)
-	Label(name + "_seg")
-	TESTQ(sn, sn)
-	JZ(LabelRef(name + "_store"))
-	MOVQ(Mem{Base: sp}, w)
-	VPBROADCASTD(w.As32(), sh)
-	VPADDD(laneLo, sh, idxLo)
-	VPADDD(laneHi, sh, idxHi)
-	SHRQ(U8(32), w)
-	KMOVW(w.As32(), reg.K1)
-	SHRQ(U8(16), w)
-	KMOVW(w.As32(), reg.K2)
-	VGATHERDPS(Mem{Base: rowBase, Index: idxLo, Scale: 4}, reg.K1, lo)
-	VGATHERDPS(Mem{Base: rowBase, Index: idxHi, Scale: 4}, reg.K2, hi)
-	ADDQ(U8(8), sp)
-	DECQ(sn)
-	JMP(LabelRef(name + "_seg"))
-	Label(name + "_store")
-	VMOVUPS(lo, Mem{Base: dst})
-	VMOVUPS(hi, Mem{Base: dst, Disp: 64})
-	ADDQ(U32(128), dst)
-	ADDQ(U8(4), offs)
-	DECQ(rows)
-	JMP(LabelRef(name + "_row"))
 	Label(name + "_done")
 	VZEROUPPER()
 	RET()
