@@ -1,6 +1,9 @@
 package kernel
 
-import "fmt"
+import (
+	"fmt"
+	"sync"
+)
 
 // Conv2D is the geometry of a 2-D convolution of one image and one group of
 // channels, in the terms of the ONNX Conv operator: the input is C×H×W
@@ -37,6 +40,10 @@ type Im2colPlan struct {
 	// portable makes Depthwise use only the pure-Go loops (see
 	// PortableLoops).
 	portable bool
+	// taps caches the tap-offset tables of Im2colPanelsPadded and
+	// Im2colPanelsPhased (tapKey → []int32); shared by PortableLoops
+	// copies, whose tables are the same.
+	taps *sync.Map
 }
 
 // PortableLoops returns a copy of the plan whose depthwise loops use no
@@ -79,9 +86,10 @@ func NewIm2col(g Conv2D) (*Im2colPlan, error) {
 		return nil, fmt.Errorf("kernel: im2col kernel span %dx%d exceeds padded input %dx%d", spanH, spanW, inH, inW)
 	}
 	p := &Im2colPlan{
-		g:  g,
-		oh: (inH-spanH)/g.StrideH + 1,
-		ow: (inW-spanW)/g.StrideW + 1,
+		g:    g,
+		taps: new(sync.Map),
+		oh:   (inH-spanH)/g.StrideH + 1,
+		ow:   (inW-spanW)/g.StrideW + 1,
 	}
 	p.ohLo, p.ohHi = validRange(g.KH, p.oh, g.StrideH, g.DilationH, g.PadTop, g.H)
 	p.owLo, p.owHi = validRange(g.KW, p.ow, g.StrideW, g.DilationW, g.PadLeft, g.W)

@@ -155,25 +155,10 @@ func (p *Im2colPlan) im2colPanels(dst, padded []float32, images, channels, j0, j
 	// colStep is how far one output column moves along a stored row:
 	// the stride, or 1 within a phase plane.
 	colStep := g.StrideW
-	var po []int
 	if phased {
 		colStep = 1
-		po = phaseOffsets(pw, g.StrideW)
 	}
-	offs := make([]int32, rows)
-	r := 0
-	for c := 0; c < channels; c++ {
-		for kh := 0; kh < g.KH; kh++ {
-			for kw := 0; kw < g.KW; kw++ {
-				col := kw * g.DilationW
-				if phased {
-					col = po[col%g.StrideW] + col/g.StrideW
-				}
-				offs[r] = int32(c*ph*pw + kh*g.DilationH*pw + col)
-				r++
-			}
-		}
-	}
+	offs := p.tapOffsets(channels, phased)
 	vector := nr == 32 && !p.portable && panelRowsSIMD()
 	var lanes [32]int32 // lane j of a segment reads shift + j·colStep
 	for j := range lanes {
@@ -224,4 +209,42 @@ func (p *Im2colPlan) im2colPanels(dst, padded []float32, images, channels, j0, j
 		}
 	}
 	return nil
+}
+
+// tapKey names one table of tap offsets: the channel count and layout.
+type tapKey struct {
+	channels int
+	phased   bool
+}
+
+// tapOffsets returns, for each column-matrix row (c, kh, kw), the offset
+// of that tap's first input value in the padded (or phased) layout. The
+// table depends only on the plan, the channel count and the layout, so it
+// is made once and kept in the plan (read-only afterwards; the slab paths
+// lower hundreds of slabs per pass from the same tables).
+func (p *Im2colPlan) tapOffsets(channels int, phased bool) []int32 {
+	key := tapKey{channels, phased}
+	if t, ok := p.taps.Load(key); ok {
+		return t.([]int32)
+	}
+	g := p.g
+	ph, pw := p.PaddedShape()
+	var po []int
+	if phased {
+		po = phaseOffsets(pw, g.StrideW)
+	}
+	offs := make([]int32, 0, channels*g.KH*g.KW)
+	for c := 0; c < channels; c++ {
+		for kh := 0; kh < g.KH; kh++ {
+			for kw := 0; kw < g.KW; kw++ {
+				col := kw * g.DilationW
+				if phased {
+					col = po[col%g.StrideW] + col/g.StrideW
+				}
+				offs = append(offs, int32(c*ph*pw+kh*g.DilationH*pw+col))
+			}
+		}
+	}
+	t, _ := p.taps.LoadOrStore(key, offs)
+	return t.([]int32)
 }
