@@ -339,29 +339,11 @@ func maxPlane(src, dst []float32, idx []int64, g geom2, off int64) {
 		return
 	}
 	for oy := 0; oy < g.oh; oy++ {
-		y0 := oy*g.sh - g.pt
-		kilo, kihi := tapRange(y0, g.dh, g.kh, g.ih)
-		for ox := 0; ox < g.ow; ox++ {
-			x0 := ox*g.sw - g.pl
-			kjlo, kjhi := tapRange(x0, g.dw, g.kw, g.iw)
-			best, arg := float32(math.Inf(-1)), -1
-			for ki := kilo; ki < kihi; ki++ {
-				row := (y0 + ki*g.dh) * g.iw
-				for kj := kjlo; kj < kjhi; kj++ {
-					j := row + x0 + kj*g.dw
-					if v := src[j]; v > best || arg < 0 {
-						best, arg = v, j
-					}
-				}
-			}
-			if arg < 0 { // window entirely in padding
-				arg = 0
-			}
-			dst[oy*g.ow+ox] = best
-			if idx != nil {
-				idx[oy*g.ow+ox] = off + int64(arg)
-			}
+		var rowIdx []int64
+		if idx != nil {
+			rowIdx = idx[oy*g.ow : (oy+1)*g.ow]
 		}
+		maxRow(src, dst[oy*g.ow:(oy+1)*g.ow], rowIdx, g, off, oy, 0, g.ow)
 	}
 }
 
@@ -382,11 +364,11 @@ func maxPlane3x3(src, dst []float32, g geom2) {
 		y0 := oy*g.sh - g.pt
 		out := dst[oy*g.ow : (oy+1)*g.ow]
 		if y0 < 0 || y0+2 >= g.ih || oxLo >= oxHi {
-			maxRow(src, out, g, oy, 0, g.ow)
+			maxRow(src, out, nil, g, 0, oy, 0, g.ow)
 			continue
 		}
-		maxRow(src, out, g, oy, 0, oxLo)
-		maxRow(src, out, g, oy, oxHi, g.ow)
+		maxRow(src, out, nil, g, 0, oy, 0, oxLo)
+		maxRow(src, out, nil, g, 0, oy, oxHi, g.ow)
 		r0 := src[y0*g.iw : (y0+1)*g.iw]
 		r1 := src[(y0+1)*g.iw : (y0+2)*g.iw]
 		r2 := src[(y0+2)*g.iw : (y0+3)*g.iw]
@@ -417,23 +399,28 @@ func gt(v, best float32) float32 {
 	return best
 }
 
-// maxRow is maxPlane's general loop for outputs [ox0, ox1) of row oy.
-func maxRow(src, out []float32, g geom2, oy, ox0, ox1 int) {
+// maxRow is maxPlane's general loop for outputs [ox0, ox1) of row oy:
+// out and idx (nil for no indices) hold the row's outputs. A window
+// entirely in padding gives −Inf at offset 0.
+func maxRow(src, out []float32, idx []int64, g geom2, off int64, oy, ox0, ox1 int) {
 	y0 := oy*g.sh - g.pt
 	kilo, kihi := tapRange(y0, g.dh, g.kh, g.ih)
 	for ox := ox0; ox < ox1; ox++ {
 		x0 := ox*g.sw - g.pl
 		kjlo, kjhi := tapRange(x0, g.dw, g.kw, g.iw)
-		best, found := float32(math.Inf(-1)), false
+		best, arg := float32(math.Inf(-1)), -1
 		for ki := kilo; ki < kihi; ki++ {
 			row := (y0 + ki*g.dh) * g.iw
 			for kj := kjlo; kj < kjhi; kj++ {
-				if v := src[row+x0+kj*g.dw]; v > best || !found {
-					best, found = v, true
+				j := row + x0 + kj*g.dw
+				if v := src[j]; v > best || arg < 0 {
+					best, arg = v, j
 				}
 			}
 		}
-		out[ox] = best // −Inf when the window lies entirely in padding, as maxPlane
-
+		out[ox] = best
+		if idx != nil {
+			idx[ox] = off + int64(max(arg, 0))
+		}
 	}
 }
