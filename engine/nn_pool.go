@@ -290,29 +290,14 @@ func (op *globalPoolOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.T
 // maxPlaneBackward adds each window's output gradient dy into dx (one
 // channel plane) at the position maxPlane routes it to: the window's
 // maximum, the first in scan order on ties, offset 0 for a window entirely
-// in padding. It recomputes the argmax from x instead of materialising
-// Indices, so a backward pass allocates nothing for it.
+// in padding. It recomputes the argmax from x with maxRow, one output row
+// at a time, instead of materialising Indices for the whole plane.
 func maxPlaneBackward(src, dy, dx []float32, g geom2) {
+	val, arg := make([]float32, g.ow), make([]int64, g.ow)
 	for oy := 0; oy < g.oh; oy++ {
-		y0 := oy*g.sh - g.pt
-		kilo, kihi := tapRange(y0, g.dh, g.kh, g.ih)
-		for ox := 0; ox < g.ow; ox++ {
-			x0 := ox*g.sw - g.pl
-			kjlo, kjhi := tapRange(x0, g.dw, g.kw, g.iw)
-			best, arg := float32(math.Inf(-1)), -1
-			for ki := kilo; ki < kihi; ki++ {
-				row := (y0 + ki*g.dh) * g.iw
-				for kj := kjlo; kj < kjhi; kj++ {
-					j := row + x0 + kj*g.dw
-					if v := src[j]; v > best || arg < 0 {
-						best, arg = v, j
-					}
-				}
-			}
-			if arg < 0 { // window entirely in padding
-				arg = 0
-			}
-			dx[arg] += dy[oy*g.ow+ox]
+		maxRow(src, val, arg, g, 0, oy, 0, g.ow)
+		for ox, a := range arg {
+			dx[a] += dy[oy*g.ow+ox]
 		}
 	}
 }
