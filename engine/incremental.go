@@ -106,8 +106,7 @@ type incStep struct {
 	group, m, cg int
 	w, b         []float32
 	gemm         kernel.GEMM
-	gemm1        *kernel.Packed // single-threaded, for the panel path; may be nil
-	team         *team          // the Conv's helper team; may be nil
+	conv         *convOp // the compiled Conv, for its panel path; nil when it has none
 	// pools
 	patchOp Op
 	fill    float32
@@ -291,7 +290,7 @@ func (p *incPlan) classify(nd *node, st *incStep, nSpatial int) (incKind, string
 		if err != nil {
 			return incFull, err.Error()
 		}
-		st.g, st.gemm, st.gemm1, st.team = geo, gemm, convGEMM1(nd.op), convTeam(nd.op)
+		st.g, st.gemm, st.conv = geo, gemm, panelConv(nd.op)
 		st.group = int(src.Int("group", 1))
 		st.m, st.cg = w.Shape[0], w.Shape[1]
 		st.w = w.F32
@@ -952,8 +951,8 @@ func (st *incStep) convPatch(p *incPlan, x *tensor.Tensor, c, ph, pw int) *tenso
 	}
 	kk := st.cg * g.kh * g.kw
 	n := nb * pq
-	if st.group == 1 && st.gemm1 != nil {
-		if y, ok := st.convPatchPanels(p, x, c, ph, pw); ok {
+	if st.group == 1 && st.conv != nil {
+		if y, ok := st.convPatchPanels(x, c, ph, pw); ok {
 			return y
 		}
 	}
@@ -998,13 +997,12 @@ func (st *incStep) convPatch(p *incPlan, x *tensor.Tensor, c, ph, pw int) *tenso
 }
 
 // convPatchPanels is convPatch for one group through packed panels: the
-// columns of all windows side by side are lowered slab by slab straight
-// into the GEMM's panel layout (Im2colPanelsPadded over the batch of
-// patches, whose padding is already in place) and multiplied with the
-// single-threaded SgemmPanels, the slabs shared out over the cores, as
-// Run's slab path does. ok is false when the patch geometry does not give
-// a plan of the expected size; the caller then takes the general path.
-func (st *incStep) convPatchPanels(p *incPlan, x *tensor.Tensor, c, ph, pw int) (*tensor.Tensor, bool) {
+// batch of window patches (padding already in place) is one batched
+// convolution, lowered side by side and multiplied slab by slab on the
+// Conv's helper team (convOp.batchForward, the path Run takes for several
+// small images). ok is false when the patch geometry does not give a plan
+// of the expected size; the caller then takes the general path.
+func (st *incStep) convPatchPanels(x *tensor.Tensor, c, ph, pw int) (*tensor.Tensor, bool) {
 	nb, ih, iw := x.Shape[0], x.Shape[2], x.Shape[3]
 	g := st.g
 	plan, err := kernel.NewIm2col(kernel.Conv2D{
@@ -1017,47 +1015,17 @@ func (st *incStep) convPatchPanels(p *incPlan, x *tensor.Tensor, c, ph, pw int) 
 	if oh, ow := plan.Out(); oh != ph || ow != pw {
 		return nil, false
 	}
-	pq := ph * pw
-	n := nb * pq
-	kk := c * g.kh * g.kw
-	nr := st.gemm1.PanelWidth()
-	width := max(nr, min(512, slabFloats/kk/nr*nr))
-	tmpb := p.buf(st.m * n)
-	defer p.scratch.Put(tmpb)
-	tmp := *tmpb
-	lower := plan.Im2colPanelsPadded
-	src := x.F32
-	if g.sw > 1 {
-		// Split the patches by column phase so strided taps are
-		// unit-stride copies (kernel.Im2colPlan.PadPhased; the plan has
-		// no padding, so this only reorders columns).
-		pb := p.buf(len(x.F32))
-		defer p.scratch.Put(pb)
-		planes := nb * c
-		chunks := min(planes, 2*runtime.GOMAXPROCS(0))
-		if err := st.team.run([]int{chunks}, func(_, t int) error {
-			return plan.PadPhased(*pb, x.F32, planes*t/chunks, planes*(t+1)/chunks)
-		}); err != nil {
-			return nil, false
-		}
-		src, lower = *pb, plan.Im2colPanelsPhased
+	// The bias is always added (zero when the node has none), as scatter
+	// does, so a −0 product comes out +0 on either path.
+	bias := st.b
+	if bias == nil {
+		bias = make([]float32, st.m)
 	}
-	err = st.team.run([]int{(n + width - 1) / width}, func(_, s int) error {
-		j0 := s * width
-		j1 := min(j0+width, n)
-		buf := p.buf(kk * ((j1 - j0 + nr - 1) / nr * nr))
-		defer p.scratch.Put(buf)
-		if err := lower(*buf, src, nb, c, j0, j1, nr); err != nil {
-			return err
-		}
-		st.gemm1.SgemmPanels(st.m, j1-j0, kk, st.w, kk, *buf, tmp[j0:], n)
-		return nil
-	})
+	y := tensor.New(nb, st.m, ph, pw)
+	err = st.conv.batchForward(plan, x.F32, nb, c, geom2{oh: ph, ow: pw}, st.w, st.m, c*g.kh*g.kw, y.F32, &epilogue{bias: bias})
 	if err != nil {
 		return nil, false
 	}
-	y := tensor.New(nb, st.m, ph, pw)
-	st.scatter(tmp, y.F32, 0, st.m, nb, pq)
 	return y, true
 }
 

@@ -15,22 +15,13 @@ func convGEMM(op Op) (kernel.GEMM, bool) {
 	return c.gemm, true
 }
 
-// convGEMM1 returns the single-threaded packed GEMM a compiled Conv keeps
-// for its panel paths (nil when it has none), so the incremental path can
-// lower patches straight into packed panels as Run does.
-func convGEMM1(op Op) *kernel.Packed {
-	if c, ok := op.(*convOp); ok {
-		return c.gemm1
-	}
-	return nil
-}
-
-// convTeam returns the helper team a compiled Conv runs its parallel
-// phases on (nil when it has none), so the incremental path's patch
-// products use the same warm helpers as Run.
-func convTeam(op Op) *team {
-	if c, ok := op.(*convOp); ok {
-		return c.team
+// panelConv returns a compiled Conv that has the packed-panel path (a
+// single-threaded packed GEMM), nil otherwise, so the incremental path can
+// lower its batches of window patches side by side as Run does
+// (convOp.batchForward).
+func panelConv(op Op) *convOp {
+	if c, ok := op.(*convOp); ok && c.gemm1 != nil {
+		return c
 	}
 	return nil
 }

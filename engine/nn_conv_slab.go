@@ -161,7 +161,8 @@ func (op *convOp) panelForward(plan *kernel.Im2colPlan, xg []float32, cg int, g 
 
 // batchForward computes a one-group convolution of nImg images whose
 // output maps are small (the layers panelForward takes one image at a
-// time): the images' columns are lowered side by side
+// time, and the incremental evaluator's batches of window patches): the
+// images' columns are lowered side by side
 // (Im2colPanelsPadded over several images) in slabs wide enough that the
 // weights are streamed only a few times, each slab multiplied at once into
 // a scratch block and copied to its images' output planes with the
