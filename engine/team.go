@@ -7,17 +7,27 @@ import (
 	"time"
 )
 
-// team runs the phased tasks of a Graph's convolutions on the caller's
-// goroutine and helper goroutines that outlive one call. A convolution's
-// phases last tens to hundreds of microseconds, about as long as waking a
-// parked goroutine on another core takes, so with a fresh helper per call
-// the caller did most of the work alone (measured on ResNet-18 forward at
-// batch 1: the helper ran 30 % of the tasks, and one goroutine ran alone
-// for 43 % of the wall time). A helper that has just finished a job
-// therefore spins briefly for the next one before it parks, and a parked
-// helper exits after a second without work, so a Graph that is no longer
-// used leaves no goroutines behind. The zero team is usable: a nil *team
-// starts a fresh helper per call.
+// team runs the phased tasks of a Graph's convolutions (and the element-wise
+// and pooling loops between them) on the caller's goroutine and helper
+// goroutines that outlive one call. A convolution's phases last tens to
+// hundreds of microseconds, about as long as waking a parked goroutine on
+// another core takes, so with a fresh helper per call the caller did most
+// of the work alone (measured on ResNet-18 forward at batch 1: the helper
+// ran 30 % of the tasks, and one goroutine ran alone for 43 % of the wall
+// time). A helper that has just finished a job therefore spins briefly for
+// the next one before it parks, and a parked helper exits after a second
+// without work, so a Graph that is no longer used leaves no goroutines
+// behind. The zero team is usable: a nil *team starts a fresh helper per
+// call.
+//
+// Waiting spins on atomic loads, not runtime.Gosched: every Gosched takes
+// the scheduler's global run-queue lock and wakes an idle P, and on a
+// machine shared with other processes (a core taken away mid-task leaves
+// the other goroutine waiting at a phase barrier) that cost more than half
+// of ResNet-18's batch-1 CPU time in runtime lock2/unlock2/findRunnable.
+// A spinner still yields to the Go scheduler every yieldEvery so that
+// goroutines queued on its P (a splitWork chunk, a GC worker) run, and a
+// phase barrier parks on a channel once it has spun barrierSpin.
 type team struct {
 	offer    atomic.Pointer[phaseJob] // a job waiting for a spinning helper
 	spinning atomic.Int32             // helpers polling offer
@@ -30,6 +40,15 @@ type team struct {
 // Graph stops using the CPU at once.
 const spinFor = 200 * time.Microsecond
 
+// barrierSpin is how long a goroutine that has run out of tasks of a phase
+// polls for the others to finish before it parks. Tasks are sized at tens
+// of microseconds; a longer wait means the other goroutine lost its core.
+const barrierSpin = 50 * time.Microsecond
+
+// yieldEvery is how often a spinning goroutine lets the Go scheduler run
+// whatever is queued on its P.
+const yieldEvery = 20 * time.Microsecond
+
 // parkFor is how long a parked helper waits for a job before it exits.
 const parkFor = time.Second
 
@@ -37,21 +56,33 @@ func newTeam() *team { return &team{parked: make(chan *phaseJob)} }
 
 // phaseJob is one run call: the tasks of each phase, claimed in turn.
 type phaseJob struct {
-	counts   []int
-	f        func(phase, t int) error
-	next     []atomic.Int64
-	done     []atomic.Int64
+	counts []int
+	f      func(phase, t int) error
+	phases []phaseState
+	// failed is set after the first error; no task starts after it.
 	failed   atomic.Bool
 	mu       sync.Mutex
 	firstErr error
-	helpers  sync.WaitGroup
+	// taken is set by the helper that accepts an offered job, so the
+	// caller knows whether to withdraw the offer.
+	taken atomic.Bool
+}
+
+// phaseState counts one phase's claimed and finished tasks; released is
+// closed by the goroutine that finishes its last task, for waiters that
+// stopped spinning.
+type phaseState struct {
+	next, done atomic.Int64
+	released   chan struct{}
+	_          [40]byte // keep the counters of adjacent phases on separate cache lines
 }
 
 // run runs the tasks of each phase in turn, f(phase, t) for t <
 // counts[phase], on the caller's goroutine and up to GOMAXPROCS−1 helpers:
 // every goroutine claims tasks of the current phase until none is left,
 // waits until all of them have finished, then moves to the next phase. It
-// returns the first error, after which no further task starts.
+// returns the first error, after which no further task starts. run returns
+// once every task has finished; a helper may still be leaving the job.
 func (tm *team) run(counts []int, f func(phase, t int) error) error {
 	most := 0
 	for _, c := range counts {
@@ -60,19 +91,18 @@ func (tm *team) run(counts []int, f func(phase, t int) error) error {
 	if most == 0 {
 		return nil
 	}
-	j := &phaseJob{counts: counts, f: f, next: make([]atomic.Int64, len(counts)), done: make([]atomic.Int64, len(counts))}
+	j := &phaseJob{counts: counts, f: f, phases: make([]phaseState, len(counts))}
+	for p := range j.phases {
+		j.phases[p].released = make(chan struct{})
+	}
 	helpers := min(runtime.GOMAXPROCS(0), most) - 1
-	var offered bool
 	for h := 0; h < helpers; h++ {
-		j.helpers.Add(1)
 		switch {
 		case tm == nil:
-			go func() {
-				defer j.helpers.Done()
-				j.work()
-			}()
+			go j.work(false)
 		case h == 0 && tm.spinning.Load() > 0 && tm.offer.CompareAndSwap(nil, j):
-			offered = true
+			// A spinning helper takes it; if none does before the
+			// caller has finished, the caller withdraws it below.
 		default:
 			select {
 			case tm.parked <- j:
@@ -81,11 +111,10 @@ func (tm *team) run(counts []int, f func(phase, t int) error) error {
 			}
 		}
 	}
-	j.work()
-	if offered && tm.offer.CompareAndSwap(j, nil) {
-		j.helpers.Done() // no helper took the offer; the caller did it all
+	j.work(true)
+	if tm != nil {
+		tm.offer.CompareAndSwap(j, nil)
 	}
-	j.helpers.Wait()
 	return j.firstErr
 }
 
@@ -93,8 +122,7 @@ func (tm *team) run(counts []int, f func(phase, t int) error) error {
 // spinning spinFor and then parking for up to parkFor between jobs.
 func (tm *team) helper(j *phaseJob) {
 	for j != nil {
-		j.work()
-		j.helpers.Done()
+		j.work(false)
 		j = tm.next()
 	}
 }
@@ -103,20 +131,28 @@ func (tm *team) helper(j *phaseJob) {
 // nil when none came within spinFor + parkFor.
 func (tm *team) next() *phaseJob {
 	tm.spinning.Add(1)
-	deadline := time.Now().Add(spinFor)
+	start := time.Now()
+	lastYield := start
 	for i := 0; ; i++ {
 		if j := tm.offer.Load(); j != nil && tm.offer.CompareAndSwap(j, nil) {
 			tm.spinning.Add(-1)
 			return j
 		}
-		if i%64 == 63 && time.Now().After(deadline) {
-			break
+		if i%64 == 63 {
+			now := time.Now()
+			if now.Sub(start) > spinFor {
+				break
+			}
+			if now.Sub(lastYield) > yieldEvery {
+				runtime.Gosched()
+				lastYield = now
+			}
 		}
-		runtime.Gosched()
 	}
 	tm.spinning.Add(-1)
-	// An offer made just before the counter dropped is taken back by
-	// its caller (run's CompareAndSwap), so nothing is stranded here.
+	// An offer made just before the counter dropped is withdrawn by its
+	// caller (run's CompareAndSwap) once it has done the work itself, so
+	// nothing is stranded here.
 	timer := time.NewTimer(parkFor)
 	defer timer.Stop()
 	select {
@@ -127,11 +163,14 @@ func (tm *team) next() *phaseJob {
 	}
 }
 
-// work claims tasks phase by phase until none is left.
-func (j *phaseJob) work() {
+// work claims tasks phase by phase until none is left. The caller waits
+// for the last phase to finish; a helper leaves as soon as it finds no
+// task to claim in it.
+func (j *phaseJob) work(caller bool) {
 	for p, c := range j.counts {
+		ps := &j.phases[p]
 		for {
-			t := int(j.next[p].Add(1) - 1)
+			t := int(ps.next.Add(1) - 1)
 			if t >= c {
 				break
 			}
@@ -145,10 +184,34 @@ func (j *phaseJob) work() {
 					j.failed.Store(true)
 				}
 			}
-			j.done[p].Add(1)
+			if ps.done.Add(1) == int64(c) {
+				close(ps.released)
+			}
 		}
-		for j.done[p].Load() < int64(c) {
-			runtime.Gosched() // another goroutine is finishing a task of this phase
+		if p == len(j.counts)-1 && !caller {
+			return
+		}
+		if c > 0 {
+			ps.wait(int64(c))
 		}
 	}
+}
+
+// wait returns once all c tasks of the phase have finished: it polls the
+// counter for barrierSpin, then parks until the last task's goroutine
+// closes released.
+func (ps *phaseState) wait(c int64) {
+	if ps.done.Load() >= c {
+		return
+	}
+	start := time.Now()
+	for i := 0; ; i++ {
+		if ps.done.Load() >= c {
+			return
+		}
+		if i%64 == 63 && time.Since(start) > barrierSpin {
+			break
+		}
+	}
+	<-ps.released
 }
