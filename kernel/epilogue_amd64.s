@@ -96,6 +96,116 @@ biasClampAVX2_done:
 	VZEROUPPER
 	RET
 
+// func biasAddClampAVX512(n int, x *float32, r *float32, bias float32, lo float32, hi float32)
+// Requires: AVX, AVX512F
+TEXT ·biasAddClampAVX512(SB), NOSPLIT, $0-36
+	MOVQ         n+0(FP), AX
+	MOVQ         x+8(FP), CX
+	MOVQ         r+16(FP), DX
+	VBROADCASTSS bias+24(FP), Z0
+	VBROADCASTSS lo+28(FP), Z1
+	VBROADCASTSS hi+32(FP), Z2
+
+biasAddClampAVX512_loop4:
+	CMPQ    AX, $0x40
+	JL      biasAddClampAVX512_loop1
+	VADDPS  (CX), Z0, Z3
+	VADDPS  64(CX), Z0, Z4
+	VADDPS  128(CX), Z0, Z5
+	VADDPS  192(CX), Z0, Z6
+	VADDPS  (DX), Z3, Z3
+	VADDPS  64(DX), Z4, Z4
+	VADDPS  128(DX), Z5, Z5
+	VADDPS  192(DX), Z6, Z6
+	VMAXPS  Z3, Z1, Z3
+	VMAXPS  Z4, Z1, Z4
+	VMAXPS  Z5, Z1, Z5
+	VMAXPS  Z6, Z1, Z6
+	VMINPS  Z3, Z2, Z3
+	VMINPS  Z4, Z2, Z4
+	VMINPS  Z5, Z2, Z5
+	VMINPS  Z6, Z2, Z6
+	VMOVUPS Z3, (CX)
+	VMOVUPS Z4, 64(CX)
+	VMOVUPS Z5, 128(CX)
+	VMOVUPS Z6, 192(CX)
+	ADDQ    $0x00000100, CX
+	ADDQ    $0x00000100, DX
+	SUBQ    $0x40, AX
+	JMP     biasAddClampAVX512_loop4
+
+biasAddClampAVX512_loop1:
+	CMPQ    AX, $0x10
+	JL      biasAddClampAVX512_done
+	VADDPS  (CX), Z0, Z3
+	VADDPS  (DX), Z3, Z3
+	VMAXPS  Z3, Z1, Z3
+	VMINPS  Z3, Z2, Z3
+	VMOVUPS Z3, (CX)
+	ADDQ    $0x00000040, CX
+	ADDQ    $0x00000040, DX
+	SUBQ    $0x10, AX
+	JMP     biasAddClampAVX512_loop1
+
+biasAddClampAVX512_done:
+	VZEROUPPER
+	RET
+
+// func biasAddClampAVX2(n int, x *float32, r *float32, bias float32, lo float32, hi float32)
+// Requires: AVX
+TEXT ·biasAddClampAVX2(SB), NOSPLIT, $0-36
+	MOVQ         n+0(FP), AX
+	MOVQ         x+8(FP), CX
+	MOVQ         r+16(FP), DX
+	VBROADCASTSS bias+24(FP), Y0
+	VBROADCASTSS lo+28(FP), Y1
+	VBROADCASTSS hi+32(FP), Y2
+
+biasAddClampAVX2_loop4:
+	CMPQ    AX, $0x20
+	JL      biasAddClampAVX2_loop1
+	VADDPS  (CX), Y0, Y3
+	VADDPS  32(CX), Y0, Y4
+	VADDPS  64(CX), Y0, Y5
+	VADDPS  96(CX), Y0, Y6
+	VADDPS  (DX), Y3, Y3
+	VADDPS  32(DX), Y4, Y4
+	VADDPS  64(DX), Y5, Y5
+	VADDPS  96(DX), Y6, Y6
+	VMAXPS  Y3, Y1, Y3
+	VMAXPS  Y4, Y1, Y4
+	VMAXPS  Y5, Y1, Y5
+	VMAXPS  Y6, Y1, Y6
+	VMINPS  Y3, Y2, Y3
+	VMINPS  Y4, Y2, Y4
+	VMINPS  Y5, Y2, Y5
+	VMINPS  Y6, Y2, Y6
+	VMOVUPS Y3, (CX)
+	VMOVUPS Y4, 32(CX)
+	VMOVUPS Y5, 64(CX)
+	VMOVUPS Y6, 96(CX)
+	ADDQ    $0x00000080, CX
+	ADDQ    $0x00000080, DX
+	SUBQ    $0x20, AX
+	JMP     biasAddClampAVX2_loop4
+
+biasAddClampAVX2_loop1:
+	CMPQ    AX, $0x08
+	JL      biasAddClampAVX2_done
+	VADDPS  (CX), Y0, Y3
+	VADDPS  (DX), Y3, Y3
+	VMAXPS  Y3, Y1, Y3
+	VMINPS  Y3, Y2, Y3
+	VMOVUPS Y3, (CX)
+	ADDQ    $0x00000020, CX
+	ADDQ    $0x00000020, DX
+	SUBQ    $0x08, AX
+	JMP     biasAddClampAVX2_loop1
+
+biasAddClampAVX2_done:
+	VZEROUPPER
+	RET
+
 // func panelRowsAVX512(rows int, dst *float32, base *float32, offs *int32, segs *uint64, nseg int)
 // Requires: AVX, AVX512F
 TEXT ·panelRowsAVX512(SB), NOSPLIT, $0-48

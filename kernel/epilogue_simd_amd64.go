@@ -18,3 +18,20 @@ func biasClampSIMD(x []float32, bias, lo, hi float32) int {
 	}
 	return 0
 }
+
+// biasAddClampSIMD runs the vector part of BiasAddClamp and returns how
+// many leading values of x it did (0 without AVX-512F or AVX2).
+func biasAddClampSIMD(x, r []float32, bias, lo, hi float32) int {
+	n := len(x)
+	switch {
+	case n >= 16 && cpu.X86.HasAVX512F:
+		n &^= 15
+		biasAddClampAVX512(n, &x[0], &r[0], bias, lo, hi)
+		return n
+	case n >= 8 && cpu.X86.HasAVX2:
+		n &^= 7
+		biasAddClampAVX2(n, &x[0], &r[0], bias, lo, hi)
+		return n
+	}
+	return 0
+}

@@ -4,3 +4,6 @@ package kernel
 
 // biasClampSIMD: no vector path off amd64; the Go loop does every value.
 func biasClampSIMD(x []float32, bias, lo, hi float32) int { return 0 }
+
+// biasAddClampSIMD: no vector path off amd64.
+func biasAddClampSIMD(x, r []float32, bias, lo, hi float32) int { return 0 }

@@ -12,6 +12,16 @@ func biasClampAVX512(n int, x *float32, bias float32, lo float32, hi float32)
 //go:noescape
 func biasClampAVX2(n int, x *float32, bias float32, lo float32, hi float32)
 
+// biasAddClampAVX512 sets x[j] = min(hi, max(lo, (x[j]+bias)+r[j])) for j < n rounded down to 16.
+//
+//go:noescape
+func biasAddClampAVX512(n int, x *float32, r *float32, bias float32, lo float32, hi float32)
+
+// biasAddClampAVX2 sets x[j] = min(hi, max(lo, (x[j]+bias)+r[j])) for j < n rounded down to 8.
+//
+//go:noescape
+func biasAddClampAVX2(n int, x *float32, r *float32, bias float32, lo float32, hi float32)
+
 // panelRowsAVX512 writes rows 32-wide panel rows of dst from the padded input at base: row r takes segments segs[0:nseg] relative to base+offs[r].
 //
 //go:noescape
