@@ -315,15 +315,29 @@ func writeJSON(path string, v any) error {
 }
 
 // Records returns the records listed in idx that exist in out, in index
-// order (by id).
+// order (by id). It holds every record at once; EachRecord does not.
 func Records(out string, idx Index) []Record {
 	var recs []Record
+	_ = EachRecord(out, idx, func(r Record) error { // f never fails
+		recs = append(recs, r)
+		return nil
+	})
+	return recs
+}
+
+// EachRecord calls f with each record listed in idx that exists in out, in
+// index order, reading one record at a time so that memory stays flat
+// however many images the batch has. It stops at f's first error and
+// returns it.
+func EachRecord(out string, idx Index, f func(Record) error) error {
 	for _, e := range idx.Items {
 		if r, ok := readRecord(out, e.Key); ok {
-			recs = append(recs, r)
+			if err := f(r); err != nil {
+				return err
+			}
 		}
 	}
-	return recs
+	return nil
 }
 
 // ReadIndex reads OUT/index.json.

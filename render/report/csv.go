@@ -83,13 +83,21 @@ func num(x float64) string { return strconv.FormatFloat(x, 'g', 6, 64) }
 // artefactCategories lists every category in the records, sorted.
 func artefactCategories(images []ImageRecord) []string {
 	set := map[string]bool{}
-	for _, im := range images {
-		for _, r := range im.Results {
-			for k := range r.ArtefactMass {
-				set[k] = true
-			}
+	for i := range images {
+		addCategories(set, &images[i])
+	}
+	return sortedKeys(set)
+}
+
+func addCategories(set map[string]bool, im *ImageRecord) {
+	for _, r := range im.Results {
+		for k := range r.ArtefactMass {
+			set[k] = true
 		}
 	}
+}
+
+func sortedKeys(set map[string]bool) []string {
 	out := make([]string, 0, len(set))
 	for k := range set {
 		out = append(out, k)
@@ -101,7 +109,11 @@ func artefactCategories(images []ImageRecord) []string {
 // WriteCSV writes metrics.csv.
 func WriteCSV(w io.Writer, r *Report) error {
 	cw := csv.NewWriter(w)
-	cats := artefactCategories(r.Images)
+	set := map[string]bool{}
+	if err := r.eachImage(func(im *ImageRecord) error { addCategories(set, im); return nil }); err != nil {
+		return err
+	}
+	cats := sortedKeys(set)
 	head := make([]string, 0, len(columns)+len(cats))
 	for _, c := range columns {
 		head = append(head, c.Name)
@@ -116,7 +128,7 @@ func WriteCSV(w io.Writer, r *Report) error {
 	if r.Summary != nil {
 		opt = r.Summary.Options
 	}
-	for _, im := range r.Images {
+	err := r.eachImage(func(im *ImageRecord) error {
 		for i := range im.Results {
 			res := &im.Results[i]
 			var reasons []string
@@ -181,6 +193,10 @@ func WriteCSV(w io.Writer, r *Report) error {
 				return err
 			}
 		}
+		return nil
+	})
+	if err != nil {
+		return err
 	}
 	cw.Flush()
 	return cw.Error()

@@ -127,11 +127,23 @@ type pageData struct {
 // browser opens quickly; the table lists every image.
 const maxGallery = 48
 
-// WriteHTML writes report.html.
+// WriteHTML writes report.html. With a Source, the page is built from a
+// trimmed copy of each record (see pageRecord), read in one pass.
 func WriteHTML(w io.Writer, r *Report) error {
-	if r.Caution == "" {
+	if r.Caution == "" || r.Source != nil {
 		c := *r
-		c.Caution = Caution
+		if c.Caution == "" {
+			c.Caution = Caution
+		}
+		if c.Source != nil {
+			c.Images, c.Source = nil, nil
+			if err := r.Source.EachImage(func(im *ImageRecord) error {
+				c.Images = append(c.Images, pageRecord(im))
+				return nil
+			}); err != nil {
+				return err
+			}
+		}
 		r = &c
 	}
 	d := pageData{Report: r, Methods: methodNames(r), Columns: ColumnDocs(), Statistics: measure.Statistics(), MaxGallery: maxGallery,
@@ -227,6 +239,22 @@ func WriteHTML(w io.Writer, r *Report) error {
 		d.Gallery = d.Gallery[:maxGallery]
 	}
 	return page.Execute(w, d)
+}
+
+// pageRecord is the part of a record the page shows: everything but the
+// hot-region lists and the method parameters, which only report.json and
+// metrics.csv carry.
+func pageRecord(im *ImageRecord) ImageRecord {
+	c := *im
+	c.Results = append([]measure.Result(nil), im.Results...)
+	for i := range c.Results {
+		c.Results[i].HotRegions = nil
+	}
+	c.Attributions = append([]Attribution(nil), im.Attributions...)
+	for i := range c.Attributions {
+		c.Attributions[i].Params = nil
+	}
+	return c
 }
 
 type breakdownGroup struct {

@@ -159,7 +159,7 @@ func (r *Report) HashInputs() error {
 		*list = append(*list, d)
 		return nil
 	}
-	for _, im := range r.Images {
+	err := r.eachImage(func(im *ImageRecord) error {
 		if err := add(&imgs, im.File, ""); err != nil {
 			return err
 		}
@@ -176,6 +176,10 @@ func (r *Report) HashInputs() error {
 				return err
 			}
 		}
+		return nil
+	})
+	if err != nil {
+		return err
 	}
 	r.Provenance.Images, r.Provenance.Masks = imgs, masks
 	return nil

@@ -38,17 +38,44 @@ const Caution = "Research and quality-assurance tool, not a diagnostic device; r
 // Every measured number is encoded as {"value": x} or, when undefined,
 // {"value": null, "reason": "..."}.
 type Report struct {
-	Schema       string                 `json:"schema"`
-	Caution      string                 `json:"caution"`
-	Title        string                 `json:"title"`
-	Provenance   Provenance             `json:"provenance"`
-	Images       []ImageRecord          `json:"images"`
+	Schema     string        `json:"schema"`
+	Caution    string        `json:"caution"`
+	Title      string        `json:"title"`
+	Provenance Provenance    `json:"provenance"`
+	Images     []ImageRecord `json:"images"`
+	// Source, when set, yields the per-image records in place of Images;
+	// see ImageSource.
+	Source       ImageSource            `json:"-"`
 	Failures     []Failure              `json:"failures"`
 	Summary      *measure.Summary       `json:"summary"`
 	CriteriaFile string                 `json:"criteria_file,omitempty"`
 	Verdicts     []measure.Verdict      `json:"verdicts"`
 	ColumnDocs   []Column               `json:"-"`
 	Statistics   []measure.StatisticDoc `json:"-"`
+}
+
+// ImageSource yields a report's per-image records in order. The writers
+// walk it (metrics.csv twice, report.json and report.html once each)
+// instead of holding every record, so a source that decodes the records
+// from disk one at a time writes a report of any size in flat memory; the
+// page keeps only a trimmed copy of each record (no hot-region lists, no
+// method parameters). Each record passed to f is f's to keep: a source
+// must not reuse it. EachImage stops at f's first error and returns it.
+type ImageSource interface {
+	EachImage(f func(*ImageRecord) error) error
+}
+
+// eachImage walks the report's images: Source when set, else Images.
+func (r *Report) eachImage(f func(*ImageRecord) error) error {
+	if r.Source != nil {
+		return r.Source.EachImage(f)
+	}
+	for i := range r.Images {
+		if err := f(&r.Images[i]); err != nil {
+			return err
+		}
+	}
+	return nil
 }
 
 // ImageRecord is one image's measurements plus where its files are.

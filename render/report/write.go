@@ -1,6 +1,8 @@
 package report
 
 import (
+	"bufio"
+	"bytes"
 	"encoding/json"
 	"fmt"
 	"io"
@@ -10,7 +12,9 @@ import (
 	"heedmap/explain/measure"
 )
 
-// WriteJSON writes report.json, indented for diffing.
+// WriteJSON writes report.json, indented for diffing. The images are
+// encoded one at a time (see ImageSource); the bytes are those
+// encoding/json's indenting Encoder writes for the whole report.
 func WriteJSON(w io.Writer, r *Report) error {
 	out := *r
 	if out.Schema == "" {
@@ -25,9 +29,46 @@ func WriteJSON(w io.Writer, r *Report) error {
 	if out.Verdicts == nil {
 		out.Verdicts = []measure.Verdict{}
 	}
-	enc := json.NewEncoder(w)
+	out.Images, out.Source = []ImageRecord{}, nil
+	var frame bytes.Buffer
+	enc := json.NewEncoder(&frame)
 	enc.SetIndent("", "  ")
-	return enc.Encode(&out)
+	if err := enc.Encode(&out); err != nil {
+		return err
+	}
+	// The images array is the only top-level key at two spaces' indent
+	// with an empty array; nested keys are indented further and string
+	// values cannot hold a raw newline.
+	const slot = "\n  \"images\": ["
+	at := bytes.Index(frame.Bytes(), []byte(slot+"]"))
+	if at < 0 {
+		return fmt.Errorf("report: encoding report.json: no images slot")
+	}
+	head, tail := frame.Bytes()[:at+len(slot)], frame.Bytes()[at+len(slot):]
+	bw := bufio.NewWriterSize(w, 1<<16)
+	bw.Write(head)
+	n := 0
+	err := r.eachImage(func(im *ImageRecord) error {
+		b, err := json.MarshalIndent(im, "    ", "  ")
+		if err != nil {
+			return fmt.Errorf("report: encoding image %s: %w", im.ID, err)
+		}
+		if n > 0 {
+			bw.WriteByte(',')
+		}
+		n++
+		bw.WriteString("\n    ")
+		_, err = bw.Write(b)
+		return err
+	})
+	if err != nil {
+		return err
+	}
+	if n > 0 {
+		bw.WriteString("\n  ")
+	}
+	bw.Write(tail)
+	return bw.Flush()
 }
 
 // WriteAll writes metrics.csv, report.json and report.html into dir (which
