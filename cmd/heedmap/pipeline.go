@@ -682,6 +682,10 @@ func summaryOptions(cfg Config) (measure.SummaryOptions, error) {
 	return o, nil
 }
 
+// buildReport reads OUT's records once to summarise them and returns a
+// report whose images come from a recordSource, so the writers read the
+// records again one at a time: memory holds each image's summary numbers,
+// not its full record, however large the batch.
 func buildReport(ctx context.Context, cfg Config, out string, start time.Time) (*report.Report, bool, error) {
 	idx, err := batch.ReadIndex(out)
 	if err != nil {
@@ -692,21 +696,31 @@ func buildReport(ctx context.Context, cfg Config, out string, start time.Time) (
 		return nil, false, err
 	}
 	var images []measure.Image
-	var details []detail
-	r := &report.Report{Title: cfg.reportTitle()}
-	for _, rec := range batch.Records(out, idx) {
-		if rec.Status != batch.StatusOK {
-			r.Failures = append(r.Failures, report.Failure{File: rec.Image, Stage: "image", Reason: rec.Error})
-			continue
+	var inputs inputSet
+	var pre *preprocess.Config
+	r := &report.Report{Title: cfg.reportTitle(), Source: recordSource{out: out, idx: idx}}
+	err = batch.EachRecord(out, idx, func(rec batch.Record) error {
+		if err := ctx.Err(); err != nil {
+			return err
 		}
-		var d detail
-		if err := json.Unmarshal(rec.Detail, &d); err != nil {
+		d, err := recordDetail(rec)
+		if err != nil {
 			r.Failures = append(r.Failures, report.Failure{File: rec.Image, Stage: "record", Reason: err.Error()})
-			continue
+			return nil
 		}
-		images = append(images, d.Image)
-		r.Images = append(r.Images, report.ImageRecord{Image: d.Image, File: rec.Image, MaskFile: rec.Mask, ArtefactFiles: d.Artefacts, Overlays: d.Overlays, Panel: d.Panel, Attributions: d.Attributions})
-		details = append(details, d)
+		if d == nil {
+			r.Failures = append(r.Failures, report.Failure{File: rec.Image, Stage: "image", Reason: rec.Error})
+			return nil
+		}
+		images = append(images, summaryImage(d.Image))
+		inputs.add(d.Inputs)
+		if pre == nil {
+			pre = d.Preprocess
+		}
+		return nil
+	})
+	if err != nil {
+		return nil, false, err
 	}
 	pass := true
 	if len(images) > 0 {
@@ -744,45 +758,93 @@ func buildReport(ctx context.Context, cfg Config, out string, start time.Time) (
 	p.Seeds["bootstrap"] = opt.Seed
 	p.Measure = measure.DefaultParams()
 	p.Methods = methodSettings(cfg)
-	for _, d := range details {
-		if d.Preprocess != nil {
-			p.Preprocessing = d.Preprocess
-			break
-		}
-	}
+	p.Preprocessing = pre
 	r.Provenance = p
-	if err := inputProvenance(r, details); err != nil {
-		return nil, false, err
+	if inputs.legacy {
+		// Records written before workers stored digests: hash the inputs
+		// now, from their paths.
+		if err := r.HashInputs(); err != nil {
+			return nil, false, err
+		}
+	} else {
+		r.Provenance.Images, r.Provenance.Masks = inputs.images, inputs.masks
 	}
 	return r, pass, nil
 }
 
-// inputProvenance fills the report's image and mask digests from the
-// digests the workers stored in the records, which hold wherever the report
-// is built (a merge may not see the shards' input paths). Records written
-// before workers stored digests are hashed now from their paths.
-func inputProvenance(r *report.Report, details []detail) error {
-	seen := map[string]bool{}
-	var imgs, masks []report.FileDigest
-	for _, d := range details {
-		if len(d.Inputs) == 0 {
-			return r.HashInputs()
+// recordDetail decodes an ok record's detail; it returns nil, nil for a
+// record of a failed image.
+func recordDetail(rec batch.Record) (*detail, error) {
+	if rec.Status != batch.StatusOK {
+		return nil, nil
+	}
+	d := new(detail)
+	if err := json.Unmarshal(rec.Detail, d); err != nil {
+		return nil, err
+	}
+	return d, nil
+}
+
+// summaryImage is the part of an image's measures the dataset summary
+// reads: everything but the hot-region lists, which are most of a record
+// and which only report.json and metrics.csv show.
+func summaryImage(im measure.Image) measure.Image {
+	im.Results = append([]measure.Result(nil), im.Results...)
+	for i := range im.Results {
+		im.Results[i].HotRegions = nil
+	}
+	return im
+}
+
+// recordSource yields the report's per-image records from OUT's record
+// files, decoding one at a time (report.ImageSource). Records that fail to
+// decode are skipped here; buildReport lists them as failures.
+type recordSource struct {
+	out string
+	idx batch.Index
+}
+
+func (s recordSource) EachImage(f func(*report.ImageRecord) error) error {
+	return batch.EachRecord(s.out, s.idx, func(rec batch.Record) error {
+		d, err := recordDetail(rec)
+		if d == nil || err != nil {
+			return nil
 		}
-		for _, f := range d.Inputs {
-			k := f.Role + "\x00" + f.Path
-			if seen[k] {
-				continue
-			}
-			seen[k] = true
-			if f.Role == "" {
-				imgs = append(imgs, f)
-			} else {
-				masks = append(masks, f)
-			}
+		return f(&report.ImageRecord{Image: d.Image, File: rec.Image, MaskFile: rec.Mask, ArtefactFiles: d.Artefacts, Overlays: d.Overlays, Panel: d.Panel, Attributions: d.Attributions})
+	})
+}
+
+// inputSet collects the report's image and mask digests from the digests
+// the workers stored in the records, which hold wherever the report is
+// built (a merge may not see the shards' input paths), each file once.
+type inputSet struct {
+	seen          map[string]bool
+	images, masks []report.FileDigest
+	// legacy is set when a record holds no digests (written before
+	// workers stored them).
+	legacy bool
+}
+
+func (s *inputSet) add(fs []report.FileDigest) {
+	if len(fs) == 0 {
+		s.legacy = true
+		return
+	}
+	if s.seen == nil {
+		s.seen = map[string]bool{}
+	}
+	for _, f := range fs {
+		k := f.Role + "\x00" + f.Path
+		if s.seen[k] {
+			continue
+		}
+		s.seen[k] = true
+		if f.Role == "" {
+			s.images = append(s.images, f)
+		} else {
+			s.masks = append(s.masks, f)
 		}
 	}
-	r.Provenance.Images, r.Provenance.Masks = imgs, masks
-	return nil
 }
 
 // methodSettings is each configured method's settings as given (option
