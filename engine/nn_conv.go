@@ -118,13 +118,30 @@ func (s convShape) pointwise() bool {
 }
 
 func (op *convOp) Forward(in []*tensor.Tensor) ([]*tensor.Tensor, error) {
-	return op.forward(in, actNone, 0, 0)
+	return op.forwardEp(in, nil, actNone, 0, 0)
 }
 
 // forward computes the convolution followed by the activation act (fused
-// Relu or Clip to [lo, hi], see fuse.go); the bias and the activation are
-// applied per slab while it is in cache when the slab path runs.
+// Relu or Clip to [lo, hi], see fuse.go).
 func (op *convOp) forward(in []*tensor.Tensor, act actKind, lo, hi float32) ([]*tensor.Tensor, error) {
+	return op.forwardEp(in, nil, act, lo, hi)
+}
+
+// outShape returns the output shape for inputs X and W, or nil when they
+// do not fit together (Forward then reports why).
+func (op *convOp) outShape(x, w *tensor.Tensor) []int {
+	s, err := op.shape(x, w)
+	if err != nil {
+		return nil
+	}
+	return s.g.outShape(s.n, s.m, s.spatial)
+}
+
+// forwardEp computes the convolution, adds res (a residual of the
+// output's shape, nil for none) and applies the activation act (fused
+// Relu or Clip to [lo, hi], see fuse.go); bias, residual and activation
+// are applied per block while it is in cache on the panel paths.
+func (op *convOp) forwardEp(in []*tensor.Tensor, res []float32, act actKind, lo, hi float32) ([]*tensor.Tensor, error) {
 	x, w := in[0], in[1]
 	if err := wantFloat(x, "X", 3); err != nil {
 		return nil, err
@@ -152,11 +169,28 @@ func (op *convOp) forward(in []*tensor.Tensor, act actKind, lo, hi float32) ([]*
 	y := op.arena.tensor(g.outShape(s.n, s.m, s.spatial)...)
 	ihw, ohw := g.ih*g.iw, g.oh*g.ow
 	plan, perr := op.plans.plan(g)
-	ep := &epilogue{bias: b, act: act, lo: lo, hi: hi}
+	if res != nil && len(res) != len(y.F32) {
+		return nil, fmt.Errorf("residual of %d values for output %v", len(res), y.Shape)
+	}
+	ep := &epilogue{bias: b, act: act, lo: lo, hi: hi, res: res}
 	epDone := false
 	if s.depthwise() {
-		if epDone, err = op.depthwiseForwardPlanned(plan, perr, x.F32, w.F32, y.F32, s, ep); err != nil {
+		dwEp := ep
+		if res != nil {
+			// The depthwise kernels clamp as they store; the residual
+			// must come first, so they add only the bias and one pass
+			// below adds the residual and clamps.
+			dwEp, ep = &epilogue{bias: b}, &epilogue{act: act, lo: lo, hi: hi, res: res}
+		}
+		done, err := op.depthwiseForwardPlanned(plan, perr, x.F32, w.F32, y.F32, s, dwEp)
+		if err != nil {
 			return nil, err
+		}
+		switch {
+		case !done && res != nil:
+			ep.bias = b // nothing applied yet: all of it below
+		case done:
+			epDone = res == nil
 		}
 	} else {
 		kk := s.cg * g.kh * g.kw
@@ -184,11 +218,12 @@ func (op *convOp) forward(in []*tensor.Tensor, act actKind, lo, hi float32) ([]*
 				xg := x.F32[(n*s.c+gi*s.cg)*ihw : (n*s.c+(gi+1)*s.cg)*ihw]
 				yg := y.F32[(n*s.m+gi*s.mg)*ohw : (n*s.m+(gi+1)*s.mg)*ohw]
 				wg := w.F32[gi*s.mg*kk : (gi+1)*s.mg*kk]
+				epg := ep.at((n*s.m + gi*s.mg) * ohw)
 				switch {
 				case slabs:
-					err = op.slabForward(plan, xg, s.cg, g, wg, s.mg, kk, yg, ep, gi*s.mg)
+					err = op.slabForward(plan, xg, s.cg, g, wg, s.mg, kk, yg, epg, gi*s.mg)
 				case panels:
-					err = op.panelForward(plan, xg, s.cg, g, wg, s.mg, kk, yg, ep, gi*s.mg)
+					err = op.panelForward(plan, xg, s.cg, g, wg, s.mg, kk, yg, epg, gi*s.mg)
 				}
 				if err != nil {
 					return nil, err
@@ -210,13 +245,13 @@ func (op *convOp) forward(in []*tensor.Tensor, act actKind, lo, hi float32) ([]*
 		}
 		epDone = panels
 	}
-	if !epDone && (b != nil || act != actNone) {
-		// One pass over the output for bias and activation, split by
-		// output plane.
+	if !epDone && !ep.empty() {
+		// One pass over the output for bias, residual and activation,
+		// split by output plane.
 		splitWork(s.n*s.m, s.n*s.m*ohw, func(p0, p1 int) {
 			for p := p0; p < p1; p++ {
 				n, m := p/s.m, p%s.m
-				ep.apply(y.F32[n*s.m*ohw:(n+1)*s.m*ohw], ohw, m, m+1, 0, ohw)
+				ep.at(n*s.m*ohw).apply(y.F32[n*s.m*ohw:(n+1)*s.m*ohw], ohw, m, m+1, 0, ohw)
 			}
 		})
 	}

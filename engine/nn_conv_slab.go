@@ -14,6 +14,9 @@ type epilogue struct {
 	bias   []float32 // per output channel; nil for none
 	act    actKind
 	lo, hi float32 // Clip bounds
+	// res, when set, is added before the activation (a fused residual
+	// Add, fuse.go); it is laid out like the output slice apply is given.
+	res []float32
 }
 
 type actKind uint8
@@ -29,10 +32,22 @@ const (
 // loop: Relu is max(v, 0) and Clip min(hi, max(lo, v)) exactly as those
 // operators' forward kernels compute them.
 func (e *epilogue) apply(y []float32, n, m0, m1, j0, j1 int) {
-	if e == nil || (e.bias == nil && e.act == actNone) {
+	if e.empty() {
 		return
 	}
 	lo, hi := e.bounds()
+	if e.res != nil {
+		for m := m0; m < m1; m++ {
+			// −0 is the additive identity (x + −0 = x, −0 included), so
+			// a convolution without bias keeps its exact output.
+			bv := float32(math.Copysign(0, -1))
+			if e.bias != nil {
+				bv = e.bias[m]
+			}
+			kernel.BiasAddClamp(y[m*n+j0:m*n+j1], e.res[m*n+j0:m*n+j1], bv, lo, hi)
+		}
+		return
+	}
 	for m := m0; m < m1; m++ {
 		var bv float32
 		if e.bias != nil {
@@ -40,6 +55,22 @@ func (e *epilogue) apply(y []float32, n, m0, m1, j0, j1 int) {
 		}
 		kernel.BiasClamp(y[m*n+j0:m*n+j1], bv, lo, hi)
 	}
+}
+
+// empty reports whether the epilogue changes nothing.
+func (e *epilogue) empty() bool {
+	return e == nil || (e.bias == nil && e.act == actNone && e.res == nil)
+}
+
+// at returns the epilogue for an output slice that starts off values into
+// the output its residual was laid out for.
+func (e *epilogue) at(off int) *epilogue {
+	if e == nil || e.res == nil || off == 0 {
+		return e
+	}
+	sub := *e
+	sub.res = sub.res[off:]
+	return &sub
 }
 
 // bounds returns the clamp interval of the activation.
@@ -201,7 +232,7 @@ func (op *convOp) batchForward(plan *kernel.Im2colPlan, x []float32, nImg, c int
 			for mo := 0; mo < m; mo++ {
 				copy(yi[mo*ohw+o:mo*ohw+o+end-j], (*cb)[mo*wd+j-j0:mo*wd+end-j0])
 			}
-			ep.apply(yi, ohw, 0, m, o, o+end-j)
+			ep.at(img*m*ohw).apply(yi, ohw, 0, m, o, o+end-j)
 			j = end
 		}
 		return nil

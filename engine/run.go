@@ -138,7 +138,9 @@ func (g *Graph) Run(ctx context.Context, inputs map[string]*tensor.Tensor, opt R
 			}
 			in = append(in, p.vals[v])
 		}
-		out, err := safeForward(g.fusedOp(k, keep), in)
+		op := g.fusedOp(k, keep)
+		in = fusedInputs(op, in, p.vals)
+		out, err := safeForward(op, in)
 		if err != nil {
 			return nil, fmt.Errorf("engine: %s: %w", nd.label(), err)
 		}
