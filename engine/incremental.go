@@ -70,20 +70,28 @@ type incPlan struct {
 	shapes    [][]int
 	steps     []incStep // parallel to g.nodes
 	fallbacks []string
-	// scratch recycles the gathered-input, column and product buffers
-	// (*[]float32) of patch convolutions: allocating them fresh cost as
-	// much in zeroing as the copies that fill them.
-	scratch sync.Pool
+	// bufs recycles every buffer a batch creates: patches, gathered
+	// inputs, panels and products (see incBufs).
+	bufs incBufs
+	// team runs the parallel phases of patch operators (team.go): the
+	// same helpers for every node of every batch, so no goroutine is
+	// started per node.
+	team *team
 }
 
-// buf returns n floats of arbitrary contents from the scratch pool.
+// buf returns n floats of arbitrary contents from the plan's free lists.
 func (p *incPlan) buf(n int) *[]float32 {
-	if b, ok := p.scratch.Get().(*[]float32); ok && cap(*b) >= n {
-		*b = (*b)[:n]
-		return b
-	}
-	b := make([]float32, n)
+	b := p.bufs.get(n)
 	return &b
+}
+
+// release hands a buffer from buf back.
+func (p *incPlan) release(b *[]float32) { p.bufs.put(*b) }
+
+// patchTensor returns a [nb, c, ph, pw] tensor with arbitrary contents
+// from the plan's free lists; the caller writes every element.
+func (p *incPlan) patchTensor(nb, c, ph, pw int) *tensor.Tensor {
+	return tensor.FromFloat32(p.bufs.get(nb*c*ph*pw), nb, c, ph, pw)
 }
 
 type incKind int
@@ -115,6 +123,14 @@ type incStep struct {
 	// MAC count of one full evaluation (Conv, Gemm, MatMul), per image.
 	fullMACs int64
 	reason   string // why a node that reads a patch is recomputed in full
+	// Activation fusion (incremental_fuse.go): act is the activation a
+	// Conv or Add applies to its patch on behalf of node actNode, the
+	// only reader of its output; fusedTail marks such activation nodes.
+	act       actKind
+	lo, hi    float32
+	actNode   int
+	fusedTail bool
+	plans     *incPanelPlans // im2col plans by patch size (panel Convs)
 }
 
 // NewIncremental runs x [1, C, H, W] (the graph input named input) through
@@ -136,7 +152,7 @@ func NewIncremental(ctx context.Context, g *Graph, input, output string, x *tens
 	if err != nil {
 		return nil, err
 	}
-	p := &incPlan{g: g, in: in, out: out, shapes: shapes}
+	p := &incPlan{g: g, in: in, out: out, shapes: shapes, team: newTeam()}
 	p.analyse()
 	return &Incremental{plan: p, base: base}, nil
 }
@@ -258,6 +274,7 @@ func (p *incPlan) analyse() {
 			p.fallbacks = append(p.fallbacks, fmt.Sprintf("%s: %s", nd.label(), st.reason))
 		}
 	}
+	p.planFusion()
 }
 
 func (p *incPlan) classify(nd *node, st *incStep, nSpatial int) (incKind, string) {
@@ -291,6 +308,7 @@ func (p *incPlan) classify(nd *node, st *incStep, nSpatial int) (incKind, string
 			return incFull, err.Error()
 		}
 		st.g, st.gemm, st.conv = geo, gemm, panelConv(nd.op)
+		st.plans = &incPanelPlans{}
 		st.group = int(src.Int("group", 1))
 		st.m, st.cg = w.Shape[0], w.Shape[1]
 		st.w = w.F32
@@ -466,6 +484,9 @@ type incGeo struct {
 type incVal struct {
 	incGeo
 	t *tensor.Tensor
+	// owned marks data from the plan's free lists that no other value
+	// shares; it goes back to them at the value's last use.
+	owned bool
 }
 
 // incPlace fixes a batch's patch size as the largest changed rectangle and
@@ -594,8 +615,17 @@ func (inc *Incremental) Occlude(ctx context.Context, fill *tensor.Tensor, rects 
 		chg[b] = Rect{max(r.X0, 0), max(r.Y0, 0), min(r.X1, w), min(r.Y1, h)}
 	}
 	vals := make([]*incVal, len(p.g.names))
-	x0 := &incVal{incGeo: incPlace(chg, h, w)}
-	x0.t = tensor.New(len(rects), xs[1], x0.p, x0.q)
+	// Whatever the batch still owns when it ends (an error, a cancelled
+	// context) goes back to the free lists; the output is handed over.
+	defer func() {
+		for v, s := range vals {
+			if v != p.out && s != nil && s.owned {
+				p.bufs.put(s.t.F32)
+			}
+		}
+	}()
+	x0 := &incVal{incGeo: incPlace(chg, h, w), owned: true}
+	x0.t = p.patchTensor(len(rects), xs[1], x0.p, x0.q)
 	for b := range rects {
 		dst := x0.t.F32[b*xs[1]*x0.p*x0.q : (b+1)*xs[1]*x0.p*x0.q]
 		incGatherPlane(inc.base[p.in].F32, xs[1], h, w, x0.oy[b], x0.ox[b], x0.p, x0.q, 0, dst, x0.p*x0.q)
@@ -616,12 +646,17 @@ func (inc *Incremental) Occlude(ctx context.Context, fill *tensor.Tensor, rects 
 			return nil, err
 		}
 		st := &p.steps[k]
+		if st.fusedTail && vals[nd.out[0]] != nil {
+			// The producer applied this activation to its patch.
+			inc.dropInputs(vals, k)
+			continue
+		}
 		geos = geos[:0]
 		reached := false
 		for i, v := range nd.in {
 			if v >= 0 && st.spatial[i] {
 				if vals[v] == nil {
-					vals[v] = &incVal{incGeo: incGeo{full: true}, t: inc.materialize(v, nil, nb)}
+					vals[v] = &incVal{incGeo: incGeo{full: true}, t: inc.materialize(v, nil, nb), owned: true}
 				}
 				geos = append(geos, &vals[v].incGeo)
 				reached = true
@@ -636,8 +671,9 @@ func (inc *Incremental) Occlude(ctx context.Context, fill *tensor.Tensor, rects 
 				err = inc.runFull(k, vals, nb)
 			} else {
 				var out *incVal
-				if out, err = inc.runPatch(k, gm, vals, nb); err == nil {
-					vals[nd.out[0]] = out
+				var ov int
+				if out, ov, err = inc.runPatch(k, gm, vals, nb); err == nil {
+					vals[ov] = out
 				}
 			}
 		} else {
@@ -646,20 +682,32 @@ func (inc *Incremental) Occlude(ctx context.Context, fill *tensor.Tensor, rects 
 		if err != nil {
 			return nil, fmt.Errorf("engine: incremental: %s: %w", nd.label(), err)
 		}
-		for _, v := range nd.in {
-			if v >= 0 && p.g.lastUse[v] == k && v != p.out {
-				vals[v] = nil
-			}
-		}
+		inc.dropInputs(vals, k)
 	}
 	o := vals[p.out]
 	if o == nil {
 		return nil, fmt.Errorf("engine: incremental: output %q not computed", p.g.names[p.out])
 	}
 	if o.full {
+		vals[p.out] = nil
 		return o.t, nil
 	}
 	return inc.materialize(p.out, o, nb), nil
+}
+
+// dropInputs ends the values node k reads last, handing owned buffers
+// back to the free lists.
+func (inc *Incremental) dropInputs(vals []*incVal, k int) {
+	p := inc.plan
+	for _, v := range p.g.nodes[k].in {
+		if v < 0 || p.g.lastUse[v] != k || v == p.out {
+			continue
+		}
+		if s := vals[v]; s != nil && s.owned {
+			p.bufs.put(s.t.F32)
+		}
+		vals[v] = nil
+	}
 }
 
 // materialize returns value v in full for every window: the kept value
@@ -673,7 +721,7 @@ func (inc *Incremental) materialize(v int, s *incVal, nb int) *tensor.Tensor {
 		return s.t
 	}
 	shape := append([]int{nb}, base.Shape[1:]...)
-	t := tensor.New(shape...)
+	t := tensor.FromFloat32(inc.plan.bufs.get(nb*base.Len()), shape...)
 	n := base.Len()
 	for b := 0; b < nb; b++ {
 		copy(t.F32[b*n:(b+1)*n], base.F32)
@@ -711,8 +759,12 @@ func (inc *Incremental) runFull(k int, vals []*incVal, nb int) error {
 				return fmt.Errorf("input %q not available", p.g.names[v])
 			}
 			if !s.full {
-				s = &incVal{incGeo: incGeo{full: true}, t: inc.materialize(v, s, nb)}
+				old := s
+				s = &incVal{incGeo: incGeo{full: true}, t: inc.materialize(v, s, nb), owned: true}
 				vals[v] = s
+				if old.owned {
+					p.bufs.put(old.t.F32)
+				}
 			}
 			in[i] = s.t
 		}
@@ -783,15 +835,51 @@ func (inc *Incremental) gather(v int, s *incVal, b, y0, x0, ph, pw int, fill flo
 	}
 }
 
-// runPatch computes node k's output patch for geometry gm.
-func (inc *Incremental) runPatch(k int, gm incGeo, vals []*incVal, nb int) (*incVal, error) {
+// runPatch computes node k's output patch for geometry gm. It returns the
+// patch and the value it belongs to: node k's output, or the output of the
+// activation node fused into it (incremental_fuse.go).
+func (inc *Incremental) runPatch(k int, gm incGeo, vals []*incVal, nb int) (*incVal, int, error) {
+	p := inc.plan
+	st := &p.steps[k]
+	nd := p.g.nodes[k]
+	if out, v, ok, err := inc.runFused(k, gm, vals, nb); ok || err != nil {
+		return out, v, err
+	}
+	out, err := inc.runPatchOp(k, gm, vals, nb)
+	if err != nil {
+		return nil, 0, err
+	}
+	want := []int{nb, p.shapes[nd.out[0]][1], gm.p, gm.q}
+	if !shapeEq(out.t.Shape, want) {
+		return nil, 0, fmt.Errorf("patch output %v, want %v", out.t.Shape, want)
+	}
+	// An operator may hand back an input unchanged (Identity, Dropout):
+	// the data then changes hands rather than being shared.
+	for i, v := range nd.in {
+		if v < 0 || !st.spatial[i] {
+			continue
+		}
+		if s := vals[v]; s != nil && s.owned && !out.owned && backing(s.t.F32) == backing(out.t.F32) {
+			s.owned, out.owned = false, true
+		}
+	}
+	if st.kind != incPad {
+		inc.restore(nd.out[0], out)
+	}
+	return out, nd.out[0], nil
+}
+
+// runPatchOp is runPatch for the operators without a fused form here.
+func (inc *Incremental) runPatchOp(k int, gm incGeo, vals []*incVal, nb int) (*incVal, error) {
 	p := inc.plan
 	st := &p.steps[k]
 	nd := p.g.nodes[k]
 	out := &incVal{incGeo: gm}
 	switch st.kind {
 	case incPad:
-		out.t = vals[nd.in[0]].t
+		in := vals[nd.in[0]]
+		out.t, out.owned = in.t, in.owned
+		in.owned = false
 		return out, nil
 	case incPointwise:
 		in := make([]*tensor.Tensor, len(nd.in))
@@ -816,7 +904,8 @@ func (inc *Incremental) runPatch(k int, gm incGeo, vals []*incVal, nb int) (*inc
 			case v < 0:
 			case st.spatial[i]:
 				c := p.shapes[v][1]
-				t := tensor.New(nb, c, gm.p, gm.q)
+				t := p.patchTensor(nb, c, gm.p, gm.q)
+				defer p.bufs.put(t.F32)
 				for b := 0; b < nb; b++ {
 					inc.gather(v, vals[v], b, gm.oy[b], gm.ox[b], gm.p, gm.q, 0, t.F32[b*c*gm.p*gm.q:(b+1)*c*gm.p*gm.q], gm.p*gm.q)
 				}
@@ -842,15 +931,15 @@ func (inc *Incremental) runPatch(k int, gm incGeo, vals []*incVal, nb int) (*inc
 			// skip im2col.
 			pq := gm.p * gm.q
 			cb := p.buf(c * nb * pq)
-			defer p.scratch.Put(cb)
+			defer p.release(cb)
 			incParallel(nb, func(b int) {
 				inc.gather(v, vals[v], b, gm.oy[b]-g.pt, gm.ox[b]-g.pl, gm.p, gm.q, 0, (*cb)[b*pq:], nb*pq)
 			})
-			out.t = st.convCols(p, *cb, nb, gm.p, gm.q)
+			out.t, out.owned = st.convCols(p, *cb, nb, gm.p, gm.q), true
 			break
 		}
 		xb := p.buf(nb * c * ih * iw)
-		defer p.scratch.Put(xb)
+		defer p.release(xb)
 		xt := tensor.FromFloat32(*xb, nb, c, ih, iw)
 		incParallel(nb, func(b int) {
 			inc.gather(v, vals[v], b, gm.oy[b]*g.sh-g.pt, gm.ox[b]*g.sw-g.pl, ih, iw, st.fill, xt.F32[b*c*ih*iw:(b+1)*c*ih*iw], ih*iw)
@@ -869,16 +958,11 @@ func (inc *Incremental) runPatch(k int, gm incGeo, vals []*incVal, nb int) (*inc
 			}
 			out.t = r[0]
 		} else {
-			out.t = st.convPatch(p, xt, c, gm.p, gm.q)
+			out.t, out.owned = st.convPatch(p, xt, c, gm.p, gm.q), true
 		}
 	default:
 		return nil, fmt.Errorf("no patch form")
 	}
-	want := []int{nb, p.shapes[nd.out[0]][1], gm.p, gm.q}
-	if !shapeEq(out.t.Shape, want) {
-		return nil, fmt.Errorf("patch output %v, want %v", out.t.Shape, want)
-	}
-	inc.restore(nd.out[0], out)
 	return out, nil
 }
 
@@ -917,7 +1001,7 @@ func (inc *Incremental) restore(v int, s *incVal) {
 func (st *incStep) convPatch(p *incPlan, x *tensor.Tensor, c, ph, pw int) *tensor.Tensor {
 	nb, ih, iw := x.Shape[0], x.Shape[2], x.Shape[3]
 	g := st.g
-	y := tensor.New(nb, st.m, ph, pw)
+	y := p.patchTensor(nb, st.m, ph, pw)
 	pq := ph * pw
 	mg := st.m / st.group
 	if st.cg == 1 && st.group == c {
@@ -951,14 +1035,9 @@ func (st *incStep) convPatch(p *incPlan, x *tensor.Tensor, c, ph, pw int) *tenso
 	}
 	kk := st.cg * g.kh * g.kw
 	n := nb * pq
-	if st.group == 1 && st.conv != nil {
-		if y, ok := st.convPatchPanels(x, c, ph, pw); ok {
-			return y
-		}
-	}
 	colb, tmpb := p.buf(kk*n), p.buf(mg*n)
-	defer p.scratch.Put(colb)
-	defer p.scratch.Put(tmpb)
+	defer p.release(colb)
+	defer p.release(tmpb)
 	col, tmp := *colb, *tmpb
 	for gi := 0; gi < st.group; gi++ {
 		// col[r, b·pq + o] = x[b, gi·cg + ch, oy·sh + ki·dh, ox·sw + kj·dw]
@@ -996,48 +1075,15 @@ func (st *incStep) convPatch(p *incPlan, x *tensor.Tensor, c, ph, pw int) *tenso
 	return y
 }
 
-// convPatchPanels is convPatch for one group through packed panels: the
-// batch of window patches (padding already in place) is one batched
-// convolution, lowered side by side and multiplied slab by slab on the
-// Conv's helper team (convOp.batchForward, the path Run takes for several
-// small images). ok is false when the patch geometry does not give a plan
-// of the expected size; the caller then takes the general path.
-func (st *incStep) convPatchPanels(x *tensor.Tensor, c, ph, pw int) (*tensor.Tensor, bool) {
-	nb, ih, iw := x.Shape[0], x.Shape[2], x.Shape[3]
-	g := st.g
-	plan, err := kernel.NewIm2col(kernel.Conv2D{
-		C: c, H: ih, W: iw, KH: g.kh, KW: g.kw,
-		StrideH: g.sh, StrideW: g.sw, DilationH: g.dh, DilationW: g.dw,
-	})
-	if err != nil {
-		return nil, false
-	}
-	if oh, ow := plan.Out(); oh != ph || ow != pw {
-		return nil, false
-	}
-	// The bias is always added (zero when the node has none), as scatter
-	// does, so a −0 product comes out +0 on either path.
-	bias := st.b
-	if bias == nil {
-		bias = make([]float32, st.m)
-	}
-	y := tensor.New(nb, st.m, ph, pw)
-	err = st.conv.batchForward(plan, x.F32, nb, c, geom2{oh: ph, ow: pw}, st.w, st.m, c*g.kh*g.kw, y.F32, &epilogue{bias: bias})
-	if err != nil {
-		return nil, false
-	}
-	return y, true
-}
-
 // convCols multiplies the weights of a one-group convolution by ready
 // columns [C·kh·kw, B·P·Q] into [B, M, P, Q].
 func (st *incStep) convCols(p *incPlan, col []float32, nb, ph, pw int) *tensor.Tensor {
 	pq := ph * pw
 	n := nb * pq
 	kk := len(st.w) / st.m
-	y := tensor.New(nb, st.m, ph, pw)
+	y := p.patchTensor(nb, st.m, ph, pw)
 	tmpb := p.buf(st.m * n)
-	defer p.scratch.Put(tmpb)
+	defer p.release(tmpb)
 	st.gemm.Sgemm(false, false, st.m, n, kk, 1, st.w, kk, col[:kk*n], n, 0, *tmpb, n)
 	st.scatter(*tmpb, y.F32, 0, st.m, nb, pq)
 	return y

@@ -25,3 +25,20 @@ func panelConv(op Op) *convOp {
 	}
 	return nil
 }
+
+// convActivation reports the activation Run fuses into the Conv of node k
+// (fuse.go): a Relu, or a Clip with its constant bounds, that is node
+// k+1 and the Conv output's only reader.
+func convActivation(g *Graph, k int) (act actKind, lo, hi float32, ok bool) {
+	if g.fusion == nil {
+		return actNone, 0, 0, false
+	}
+	f, ok := g.fusion.head[k]
+	switch {
+	case !ok:
+		return actNone, 0, 0, false
+	case f.relu:
+		return actRelu, 0, 0, true
+	}
+	return actClip, f.lo, f.hi, true
+}
