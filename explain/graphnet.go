@@ -3,6 +3,7 @@ package explain
 import (
 	"context"
 	"fmt"
+	"sync/atomic"
 
 	"heedmap/engine"
 	"heedmap/tensor"
@@ -23,7 +24,18 @@ type GraphOptions struct {
 	// in NCHW (Network's contract); the adapter transposes on the way in and
 	// transposes gradients back.
 	NHWC bool
+	// ActivationBudget is the most activation data, in bytes, one pass may
+	// hold when the methods choose their batch sizes (see BatchSizer); 0 =
+	// DefaultActivationBudget.
+	ActivationBudget int64
 }
+
+// DefaultActivationBudget bounds one pass's activations at 384 MiB (our
+// choice). Measured per image at 224² for a gradient: ResNet-18 8.9 MiB and
+// MobileNetV2 24 MiB keep the default batch of 16; DenseNet-121 and
+// EfficientNet-B0 (64 MiB) run 6 at a time, ConvNeXt-Tiny (128 MiB) 3 and
+// ViT-B/16 (192 MiB) 2, where batches of 16 would hold 1–3 GB.
+const DefaultActivationBudget = 384 << 20
 
 // graphNet adapts a compiled ONNX graph to Network.
 type graphNet struct {
@@ -32,13 +44,48 @@ type graphNet struct {
 	shape         []int // NCHW, -1 for dynamic
 	nhwc          bool
 	keep          []string // the output, when it is an inner value
+	budget        int64
+	// perImage holds the most activation bytes per image measured so far
+	// in a forward-only pass [0] and in a pass run for a gradient [1].
+	perImage [2]atomic.Int64
+}
+
+// MaxBatch implements BatchSizer from the passes measured so far.
+func (n *graphNet) MaxBatch(backward bool) int {
+	k := 0
+	if backward {
+		k = 1
+	}
+	per := n.perImage[k].Load()
+	if per <= 0 {
+		return 0
+	}
+	return int(max(1, n.budget/per))
+}
+
+// measured records a pass's activation bytes per image.
+func (n *graphNet) measured(p *engine.Pass, batch int, backward bool) {
+	k := 0
+	if backward {
+		k = 1
+	}
+	per := (p.PeakBytes() + int64(batch) - 1) / int64(max(batch, 1))
+	for {
+		old := n.perImage[k].Load()
+		if per <= old || n.perImage[k].CompareAndSwap(old, per) {
+			return
+		}
+	}
 }
 
 // FromGraph wraps a compiled graph as a Network. The output must hold one
 // row of logits per image (any shape whose leading dimension is the batch).
 func FromGraph(g *engine.Graph, opts GraphOptions) (Network, error) {
 	ins, outs := g.Inputs(), g.Outputs()
-	n := &graphNet{g: g, input: opts.Input, output: opts.Output, nhwc: opts.NHWC}
+	n := &graphNet{g: g, input: opts.Input, output: opts.Output, nhwc: opts.NHWC, budget: opts.ActivationBudget}
+	if n.budget <= 0 {
+		n.budget = DefaultActivationBudget
+	}
 	if n.input == "" {
 		if len(ins) != 1 {
 			return nil, fmt.Errorf("explain: the model has %d inputs; name the image input", len(ins))
@@ -122,6 +169,7 @@ func (n *graphNet) Forward(ctx context.Context, x *tensor.Tensor) (*tensor.Tenso
 	if err != nil {
 		return nil, err
 	}
+	n.measured(p, x.Shape[0], false)
 	l, _, err := n.logits(p, x.Shape[0])
 	return l, err
 }
@@ -141,6 +189,7 @@ func (n *graphNet) Gradient(ctx context.Context, x *tensor.Tensor, seed func(*te
 	if err != nil {
 		return nil, err
 	}
+	n.measured(p, x.Shape[0], true)
 	// The values kept for Backward go back to the graph's arena once the
 	// gradients are out; the logits and the kept layer stay valid.
 	defer p.Release()

@@ -110,9 +110,9 @@ func geometry(net Network, x *tensor.Tensor) (c, h, w int, err error) {
 	return x.Shape[1], x.Shape[2], x.Shape[3], nil
 }
 
-// batchSize is the batch to use: the network's fixed batch if it has one,
-// else the requested size (default 16).
-func batchSize(net Network, want int) int {
+// requestedBatch is the batch asked for: the network's fixed batch if it
+// has one, else the requested size (default 16).
+func requestedBatch(net Network, want int) int {
 	if n := net.InputShape()[0]; n > 0 {
 		return n
 	}
@@ -122,28 +122,91 @@ func batchSize(net Network, want int) int {
 	return want
 }
 
+// BatchSizer is implemented by networks that measure how much memory one
+// image takes in a pass. MaxBatch is the largest batch whose activations
+// fit the network's budget (at least 1), or 0 while no pass of that kind
+// (forward only, or forward for a gradient) has been measured.
+type BatchSizer interface {
+	MaxBatch(backward bool) int
+}
+
+// batchSize is the batch to use: requestedBatch, capped by what a
+// BatchSizer network says fits its budget. A network with a fixed batch
+// keeps it. When the network sizes batches but has not measured a pass of
+// this kind, batchSize returns 1 and probe: the caller runs one image and
+// asks again with probe false, which then falls back to the request.
+func batchSize(net Network, want int, backward, probe bool) (int, bool) {
+	b := requestedBatch(net, want)
+	s, ok := net.(BatchSizer)
+	if !ok || net.InputShape()[0] > 0 {
+		return b, false
+	}
+	switch m := s.MaxBatch(backward); {
+	case m > 0:
+		return min(b, m), false
+	case probe && b > 1:
+		return 1, true
+	}
+	return b, false
+}
+
+// batcher hands out the input batches of one method's n evaluations:
+// batchSize's size, probed with one image first when the network sizes its
+// batches, in one buffer reused from batch to batch.
+type batcher struct {
+	net      Network
+	want     int
+	backward bool
+	img      []int
+	size     int
+	b, m     int // batch size; images in the last batch handed out
+	probe    bool
+	buf      *tensor.Tensor
+}
+
+func newBatcher(net Network, img []int, want int, backward bool) *batcher {
+	bt := &batcher{net: net, want: want, backward: backward, img: img, size: tensor.Numel(img)}
+	bt.b, bt.probe = batchSize(net, want, backward, true)
+	return bt
+}
+
+// next fills the batch of images start, start+1, ... (at most n in all)
+// with fill and returns it with the number of real images in it. A network
+// with a fixed batch gets the last image repeated to fill it.
+func (bt *batcher) next(start, n int, fill func(i int, dst []float32)) (*tensor.Tensor, int) {
+	if bt.m > 0 && bt.probe {
+		bt.b, bt.probe = batchSize(bt.net, bt.want, bt.backward, false)
+	}
+	if bt.buf == nil || bt.buf.Shape[0] < bt.b {
+		bt.buf = tensor.New(append([]int{bt.b}, bt.img...)...)
+	}
+	m := min(bt.b, n-start)
+	x := bt.buf
+	if bt.net.InputShape()[0] <= 0 && x.Shape[0] != m {
+		x = tensor.FromFloat32(bt.buf.F32[:m*bt.size], append([]int{m}, bt.img...)...)
+	}
+	for j := 0; j < x.Shape[0]; j++ {
+		fill(start+min(j, m-1), x.F32[j*bt.size:(j+1)*bt.size])
+	}
+	bt.m = m
+	return x, m
+}
+
+// ran is the number of images in the last batch handed out.
+func (bt *batcher) ran() int { return bt.m }
+
 // ForwardScores evaluates n inputs of one image's shape img = (C, H, W),
 // written by fill(i, dst), through net.Forward in batches, and returns the
 // target's score for each. Batches of a network with a fixed batch size are
 // padded with copies of the last input. target must be resolved.
 func ForwardScores(ctx context.Context, net Network, n int, img []int, batch int, fill func(i int, dst []float32), target Target) ([]float64, error) {
-	shape := net.InputShape()
-	b := batchSize(net, batch)
+	bt := newBatcher(net, img, batch, false)
 	out := make([]float64, 0, n)
-	size := tensor.Numel(img)
-	buf := tensor.New(append([]int{b}, img...)...)
-	for start := 0; start < n; start += b {
+	for start := 0; start < n; start += bt.ran() {
 		if err := ctx.Err(); err != nil {
 			return nil, err
 		}
-		m := min(b, n-start)
-		x := buf
-		if m < b && shape[0] <= 0 {
-			x = tensor.FromFloat32(buf.F32[:m*size], append([]int{m}, buf.Shape[1:]...)...)
-		}
-		for j := 0; j < x.Shape[0]; j++ {
-			fill(start+min(j, m-1), x.F32[j*size:(j+1)*size])
-		}
+		x, m := bt.next(start, n, fill)
 		logits, err := net.Forward(ctx, x)
 		if err != nil {
 			return nil, err
@@ -165,23 +228,14 @@ func ForwardScores(ctx context.Context, net Network, n int, img []int, batch int
 // valid only during the call). target must be resolved.
 func gradients(ctx context.Context, net Network, n int, img []int, batch int, fill func(i int, dst []float32), target Target, layer string,
 	visit func(i int, logits, grad, act, actGrad []float32) error) error {
-	shape := net.InputShape()
-	b := batchSize(net, batch)
+	bt := newBatcher(net, img, batch, true)
 	size := tensor.Numel(img)
-	buf := tensor.New(append([]int{b}, img...)...)
 	seed := target.Seed()
-	for start := 0; start < n; start += b {
+	for start := 0; start < n; start += bt.ran() {
 		if err := ctx.Err(); err != nil {
 			return err
 		}
-		m := min(b, n-start)
-		x := buf
-		if m < b && shape[0] <= 0 {
-			x = tensor.FromFloat32(buf.F32[:m*size], append([]int{m}, buf.Shape[1:]...)...)
-		}
-		for j := 0; j < x.Shape[0]; j++ {
-			fill(start+min(j, m-1), x.F32[j*size:(j+1)*size])
-		}
+		x, m := bt.next(start, n, fill)
 		g, err := net.Gradient(ctx, x, seed, layer)
 		if err != nil {
 			return err

@@ -100,7 +100,7 @@ func (r RISE) Attribute(ctx context.Context, net Network, x *tensor.Tensor, targ
 	if err != nil {
 		return nil, err
 	}
-	b := batchSize(net, r.BatchSize)
+	b := requestedBatch(net, r.BatchSize)
 	hw := h * w
 	masks := make([]float32, b*hw) // masks of the current batch
 	acc := make([]float64, hw)
