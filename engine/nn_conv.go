@@ -248,7 +248,7 @@ func (op *convOp) forwardEp(in []*tensor.Tensor, res []float32, act actKind, lo,
 	if !epDone && !ep.empty() {
 		// One pass over the output for bias, residual and activation,
 		// split by output plane.
-		splitWork(s.n*s.m, s.n*s.m*ohw, func(p0, p1 int) {
+		op.team.split(s.n*s.m, s.n*s.m*ohw, func(p0, p1 int) {
 			for p := p0; p < p1; p++ {
 				n, m := p/s.m, p%s.m
 				ep.at(n*s.m*ohw).apply(y.F32[n*s.m*ohw:(n+1)*s.m*ohw], ohw, m, m+1, 0, ohw)

@@ -71,6 +71,16 @@ func (op *convOp) backwardFor(in, out, gradOut []*tensor.Tensor, need []bool, me
 			dx = op.arena.zeroed(x.Shape...)
 		}
 	}
+	// wt holds each group's Wᵀ (kk×mg) for the strided input gradient's
+	// Wᵀ·dY, made once per graph through the memo: the GEMM then reads it
+	// in place (its direct kernels) instead of packing a transposed A on
+	// every call. It is one value longer than W, so the memo, keyed by
+	// the weight tensor, never hands it out as the flipped filters (a
+	// length mismatch rebuilds).
+	var wt []float32
+	if needX && !transposed && !s.depthwise() && op.gemm1 != nil && memo != nil {
+		wt = memo(1, len(w.F32)+1, func(f []float32) { transposeGroups(f, w.F32, op.group, s.mg, s.cg*g.kh*g.kw) })
+	}
 	if transposed {
 		build := func(f []float32) { flipFilters(f, w.F32, op.group, s.mg, s.cg, g.kh*g.kw) }
 		if memo != nil {
@@ -97,7 +107,7 @@ func (op *convOp) backwardFor(in, out, gradOut []*tensor.Tensor, need []bool, me
 			if dw != nil {
 				dws = dw.F32
 			}
-			if err := planDepthwiseBackward(plan, x.F32, w.F32, dy.F32, dxs, dws, s); err != nil {
+			if err := op.planDepthwiseBackward(plan, x.F32, w.F32, dy.F32, dxs, dws, s); err != nil {
 				return nil, err
 			}
 		}
@@ -161,16 +171,28 @@ func (op *convOp) backwardFor(in, out, gradOut []*tensor.Tensor, need []bool, me
 				// dcol = W_gᵀ · dY_g, scattered back onto dX. (Handing the
 				// GEMM a transposed copy of W measured no faster.)
 				wg := w.F32[gi*s.mg*kk : (gi+1)*s.mg*kk]
+				dst := dcol
 				if pw {
-					op.gemm.Sgemm(true, false, kk, ohw, s.mg, 1, wg, kk, dyg, ohw, 0, dxg, ohw)
+					dst = dxg
+				}
+				if wt != nil {
+					op.gemm.Sgemm(false, false, kk, ohw, s.mg, 1, wt[gi*s.mg*kk:(gi+1)*s.mg*kk], s.mg, dyg, ohw, 0, dst, ohw)
 				} else {
-					op.gemm.Sgemm(true, false, kk, ohw, s.mg, 1, wg, kk, dyg, ohw, 0, dcol, ohw)
+					op.gemm.Sgemm(true, false, kk, ohw, s.mg, 1, wg, kk, dyg, ohw, 0, dst, ohw)
+				}
+				if pw {
+					continue
+				}
+				switch {
+				case perr != nil:
 					if op.gemm1 != nil {
 						clearParallel(dxg)
 					}
-					if perr != nil {
-						col2im(dcol, s.cg, g, dxg)
-					} else if err := planCol2im(plan, dcol, s.cg, g, dxg); err != nil {
+					col2im(dcol, s.cg, g, dxg)
+				default:
+					// dX was zeroed when allocated unless the packed
+					// path took an unzeroed buffer (see above).
+					if err := planCol2im(op.team, plan, dcol, s.cg, g, dxg, op.gemm1 != nil); err != nil {
 						return nil, err
 					}
 				}
@@ -262,4 +284,24 @@ func (op *convOp) transposedBackwardX(tg geom2, fg []float32, cg, mg int, dyg, d
 		return op.slabForward(plan, dyg, mg, tg, fg, cg, kk, dxg, nil, 0)
 	}
 	return op.panelForward(plan, dyg, mg, tg, fg, cg, kk, dxg, nil, 0)
+}
+
+// transposeGroups writes each group's weight matrix transposed:
+// wt[g][r][m] = w[g][m][r] for the mg×kk matrix of group g, by 16×16 tiles
+// so reads and writes both stay within a few cache lines.
+func transposeGroups(wt, w []float32, groups, mg, kk int) {
+	const tile = 16
+	for gi := 0; gi < groups; gi++ {
+		src := w[gi*mg*kk : (gi+1)*mg*kk]
+		dst := wt[gi*mg*kk : (gi+1)*mg*kk]
+		for m0 := 0; m0 < mg; m0 += tile {
+			for r0 := 0; r0 < kk; r0 += tile {
+				for m := m0; m < min(m0+tile, mg); m++ {
+					for r := r0; r < min(r0+tile, kk); r++ {
+						dst[r*mg+m] = src[m*kk+r]
+					}
+				}
+			}
+		}
+	}
 }

@@ -51,7 +51,7 @@ func (op *convOp) planDepthwise(p *kernel.Im2colPlan, x, w, y []float32, s convS
 	kep := kernelEpilogue(ep)
 	var firstErr error
 	var mu sync.Mutex
-	splitWork(planes, planes*s.mg*ohw*khw, func(p0, p1 int) {
+	op.team.split(planes, planes*s.mg*ohw*khw, func(p0, p1 int) {
 		buf := poolBuf(&op.slabBufs, p.DepthwiseScratch())
 		defer op.slabBufs.Put(buf)
 		if err := p.DepthwisePlanes(y, x, w, s.c, s.mg, p0, p1, &kep, *buf); err != nil {
@@ -69,14 +69,16 @@ func (op *convOp) planDepthwise(p *kernel.Im2colPlan, x, w, y []float32, s convS
 // adds). Work is split by input channel so each goroutine owns the dx
 // planes and dw rows it writes; images are summed inside. Each goroutine
 // hands its whole run of channels to one kernel call with one scratch
-// area.
-func planDepthwiseBackward(p *kernel.Im2colPlan, x, w, dy, dx, dw []float32, s convShape) error {
+// area from the convolution's pool.
+func (op *convOp) planDepthwiseBackward(p *kernel.Im2colPlan, x, w, dy, dx, dw []float32, s convShape) error {
 	g := s.g
 	ohw, khw := g.oh*g.ow, g.kh*g.kw
 	var firstErr error
 	var mu sync.Mutex
-	splitWork(s.c, s.n*s.m*ohw*khw, func(c0, c1 int) {
-		scratch := make([]float32, p.DepthwiseBackwardScratch())
+	op.team.split(s.c, s.n*s.m*ohw*khw, func(c0, c1 int) {
+		buf := poolBuf(&op.slabBufs, p.DepthwiseBackwardScratch())
+		defer op.slabBufs.Put(buf)
+		scratch := *buf
 		var xs []float32
 		if dw != nil { // x is not retained when only dx is wanted
 			xs = x

@@ -63,16 +63,23 @@ func planIm2col(p *kernel.Im2colPlan, x []float32, c int, g geom2, col []float32
 	return firstErr
 }
 
-// planCol2im adds the column gradients col back onto the c-channel image
-// dx (the adjoint of planIm2col), splitting channels over goroutines; each
-// goroutine owns the planes it writes.
-func planCol2im(p *kernel.Im2colPlan, col []float32, c int, g geom2, dx []float32) error {
+// planCol2im writes the column gradients col back onto the c-channel image
+// dx (the adjoint of planIm2col), splitting channels over the team; each
+// goroutine owns the planes it writes. With overwrite each plane is
+// cleared just before it is accumulated into, while it is in that core's
+// cache, instead of in a separate pass over dx; otherwise the values are
+// added to what dx holds.
+func planCol2im(tm *team, p *kernel.Im2colPlan, col []float32, c int, g geom2, dx []float32, overwrite bool) error {
 	ihw, ohw, kk := g.ih*g.iw, g.oh*g.ow, g.kh*g.kw
 	var firstErr error
 	var mu sync.Mutex
-	splitWork(c, c*kk*ohw, func(c0, c1 int) {
+	tm.split(c, c*kk*ohw, func(c0, c1 int) {
 		for ch := c0; ch < c1; ch++ {
-			if err := p.Col2im(dx[ch*ihw:(ch+1)*ihw], col[ch*kk*ohw:(ch+1)*kk*ohw]); err != nil {
+			plane := dx[ch*ihw : (ch+1)*ihw]
+			if overwrite {
+				clear(plane)
+			}
+			if err := p.Col2im(plane, col[ch*kk*ohw:(ch+1)*kk*ohw]); err != nil {
 				mu.Lock()
 				firstErr = err
 				mu.Unlock()

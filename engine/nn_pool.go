@@ -24,14 +24,26 @@ type poolOp struct {
 	kernel       []int
 	hasIndices   bool   // the node exposes MaxPool's Indices output
 	arena        *arena // output buffers; nil allocates
+	team         *team  // the Graph's helper goroutines; nil starts fresh ones
 }
 
 func buildMaxPool(n *onnx.Node, env *Env) (Op, error) {
-	return buildPool(n, true)
+	return teamPool(env)(buildPool(n, true))
 }
 
 func buildAveragePool(n *onnx.Node, env *Env) (Op, error) {
-	return buildPool(n, false)
+	return teamPool(env)(buildPool(n, false))
+}
+
+// teamPool returns a function that gives a built pooling operator the
+// Graph's helper team.
+func teamPool(env *Env) func(Op, error) (Op, error) {
+	return func(op Op, err error) (Op, error) {
+		if p, ok := op.(*poolOp); ok && env != nil {
+			p.team = env.team
+		}
+		return op, err
+	}
 }
 
 func buildPool(n *onnx.Node, isMax bool) (Op, error) {
@@ -92,7 +104,7 @@ func (op *poolOp) forward(x *tensor.Tensor, wantIdx bool) ([]*tensor.Tensor, err
 	if op.max && wantIdx {
 		idx = tensor.NewInt64(y.Shape...)
 	}
-	splitWork(nc, nc*ohw*g.kh*g.kw, func(p0, p1 int) {
+	op.team.split(nc, nc*ohw*g.kh*g.kw, func(p0, p1 int) {
 		for p := p0; p < p1; p++ {
 			src := x.F32[p*ihw : (p+1)*ihw]
 			dst := y.F32[p*ohw : (p+1)*ohw]
@@ -173,7 +185,7 @@ func (op *poolOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor,
 	// Every plane is cleared by the goroutine that accumulates into it,
 	// while it is in that core's cache, instead of in one serial pass.
 	dx := op.arena.tensor(x.Shape...)
-	splitWork(nc, nc*ohw*g.kh*g.kw, func(p0, p1 int) {
+	op.team.split(nc, nc*ohw*g.kh*g.kw, func(p0, p1 int) {
 		for p := p0; p < p1; p++ {
 			dsrc := dx.F32[p*ihw : (p+1)*ihw]
 			clear(dsrc)
