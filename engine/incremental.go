@@ -773,6 +773,17 @@ func (inc *Incremental) runFull(k int, vals []*incVal, nb int) error {
 	if err != nil {
 		return err
 	}
+	// An output that is a view of a materialised input (Identity,
+	// Reshape) keeps that buffer alive: it leaves the free lists' care.
+	for _, v := range nd.in {
+		if s := vals[max(v, 0)]; v >= 0 && s != nil && s.owned {
+			for _, o := range out {
+				if o != nil && o.DType == tensor.Float32 && backing(o.F32) == backing(s.t.F32) {
+					s.owned = false
+				}
+			}
+		}
+	}
 	for i, v := range nd.out {
 		if v < 0 {
 			continue
@@ -875,6 +886,18 @@ func (inc *Incremental) runPatchOp(k int, gm incGeo, vals []*incVal, nb int) (*i
 	st := &p.steps[k]
 	nd := p.g.nodes[k]
 	out := &incVal{incGeo: gm}
+	// Gathered operands go back to the free lists at the end, unless the
+	// operator handed one back as its output (a Sum of one input, say).
+	var temps [][]float32
+	defer func() {
+		for _, b := range temps {
+			if out.t != nil && backing(b) == backing(out.t.F32) {
+				out.owned = true
+				continue
+			}
+			p.bufs.put(b)
+		}
+	}()
 	switch st.kind {
 	case incPad:
 		in := vals[nd.in[0]]
@@ -905,7 +928,7 @@ func (inc *Incremental) runPatchOp(k int, gm incGeo, vals []*incVal, nb int) (*i
 			case st.spatial[i]:
 				c := p.shapes[v][1]
 				t := p.patchTensor(nb, c, gm.p, gm.q)
-				defer p.bufs.put(t.F32)
+				temps = append(temps, t.F32)
 				for b := 0; b < nb; b++ {
 					inc.gather(v, vals[v], b, gm.oy[b], gm.ox[b], gm.p, gm.q, 0, t.F32[b*c*gm.p*gm.q:(b+1)*c*gm.p*gm.q], gm.p*gm.q)
 				}
@@ -939,7 +962,7 @@ func (inc *Incremental) runPatchOp(k int, gm incGeo, vals []*incVal, nb int) (*i
 			break
 		}
 		xb := p.buf(nb * c * ih * iw)
-		defer p.release(xb)
+		temps = append(temps, *xb)
 		xt := tensor.FromFloat32(*xb, nb, c, ih, iw)
 		incParallel(nb, func(b int) {
 			inc.gather(v, vals[v], b, gm.oy[b]*g.sh-g.pt, gm.ox[b]*g.sw-g.pl, ih, iw, st.fill, xt.F32[b*c*ih*iw:(b+1)*c*ih*iw], ih*iw)

@@ -14,7 +14,7 @@ import (
 // of an occlusion map's CPU time, and more inside the benchmark driver).
 //
 // Patch sizes differ from batch to batch, so buffers are kept by size
-// class (four classes per power of two, at most 19 % larger than asked)
+// class (four classes per power of two, at most 25 % larger than asked)
 // rather than by exact length. Buffers are not zeroed: every caller
 // overwrites all it reads. Unlike a sync.Pool, the lists survive garbage
 // collections, which would otherwise empty them once per few batches; the
