@@ -304,3 +304,49 @@ panelRowsGatherAVX512_store:
 panelRowsGatherAVX512_done:
 	VZEROUPPER
 	RET
+
+// func panelRowsNarrowAVX512(rows int, dst *float32, base *float32, offs *int32, segs *uint64, nseg int, width int, mask uint16)
+// Requires: AVX, AVX512F
+TEXT ·panelRowsNarrowAVX512(SB), NOSPLIT, $0-58
+	MOVQ    rows+0(FP), AX
+	MOVQ    dst+8(FP), CX
+	MOVQ    base+16(FP), DX
+	MOVQ    offs+24(FP), BX
+	MOVQ    segs+32(FP), SI
+	MOVQ    nseg+40(FP), DI
+	MOVQ    width+48(FP), R8
+	MOVWLZX mask+56(FP), R9
+	KMOVW   R9, K3
+	SHLQ    $0x02, R8
+
+panelRowsNarrowAVX512_row:
+	TESTQ   AX, AX
+	JZ      panelRowsNarrowAVX512_done
+	MOVLQSX (BX), R9
+	LEAQ    (DX)(R9*4), R9
+	VPXORD  Z0, Z0, Z0
+	MOVQ    SI, R10
+	MOVQ    DI, R11
+
+panelRowsNarrowAVX512_seg:
+	TESTQ   R11, R11
+	JZ      panelRowsNarrowAVX512_store
+	MOVQ    (R10), R12
+	MOVLQSX R12, R13
+	SHRQ    $0x20, R12
+	KMOVW   R12, K1
+	VMOVUPS (R9)(R13*4), K1, Z0
+	ADDQ    $0x08, R10
+	DECQ    R11
+	JMP     panelRowsNarrowAVX512_seg
+
+panelRowsNarrowAVX512_store:
+	VMOVUPS Z0, K3, (CX)
+	ADDQ    R8, CX
+	ADDQ    $0x04, BX
+	DECQ    AX
+	JMP     panelRowsNarrowAVX512_row
+
+panelRowsNarrowAVX512_done:
+	VZEROUPPER
+	RET

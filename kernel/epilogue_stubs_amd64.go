@@ -31,3 +31,8 @@ func panelRowsAVX512(rows int, dst *float32, base *float32, offs *int32, segs *u
 //
 //go:noescape
 func panelRowsGatherAVX512(rows int, dst *float32, base *float32, offs *int32, segs *uint64, nseg int, lanes *int32)
+
+// panelRowsNarrowAVX512 writes rows panel rows of width <= 16 floats to dst (rows width apart, stored under mask = 1<<width - 1) from the padded input at base: row r takes segments segs[0:nseg] relative to base+offs[r].
+//
+//go:noescape
+func panelRowsNarrowAVX512(rows int, dst *float32, base *float32, offs *int32, segs *uint64, nseg int, width int, mask uint16)

@@ -159,7 +159,11 @@ func (p *Im2colPlan) im2colPanels(dst, padded []float32, images, channels, j0, j
 		colStep = 1
 	}
 	offs := p.tapOffsets(channels, phased)
-	vector := nr == 32 && !p.portable && panelRowsSIMD()
+	// The vector loops take 32-wide panels (any column stride) and
+	// panels up to 16 wide at unit stride (packed A operands, see
+	// Packed.SgemmRowPanels).
+	narrow := nr <= 16 && colStep == 1
+	vector := (nr == 32 || narrow) && !p.portable && panelRowsSIMD()
 	var lanes [32]int32 // lane j of a segment reads shift + j·colStep
 	for j := range lanes {
 		lanes[j] = int32(j * colStep)
@@ -186,6 +190,10 @@ func (p *Im2colPlan) im2colPanels(dst, padded []float32, images, channels, j0, j
 				mask := uint32(((uint64(1) << s.ow1) - 1) << s.off)
 				shift := int32(s.ow0 - s.off*colStep)
 				packed[i] = uint64(uint32(shift)) | uint64(mask)<<32
+			}
+			if narrow {
+				panelRowsNarrow(rows, panel, padded, offs, packed[:len(segs)], nr)
+				continue
 			}
 			panelRows(rows, panel, padded, offs, packed[:len(segs)], colStep, &lanes)
 			continue

@@ -16,3 +16,13 @@ func panelRows(rows int, panel, padded []float32, offs []int32, segs []uint64, s
 	}
 	panelRowsGatherAVX512(rows, &panel[0], &padded[0], &offs[0], &segs[0], len(segs), &lanes[0])
 }
+
+// panelRowsNarrow runs the AVX-512 loop for panels nr <= 16 wide at unit
+// column stride.
+func panelRowsNarrow(rows int, panel, padded []float32, offs []int32, segs []uint64, nr int) {
+	if rows == 0 {
+		return
+	}
+	_ = panel[rows*nr-1]
+	panelRowsNarrowAVX512(rows, &panel[0], &padded[0], &offs[0], &segs[0], len(segs), nr, uint16(1)<<nr-1)
+}

@@ -17,6 +17,7 @@ func genEpilogue(zmm, ymm []reg.VecPhysical) {
 	genBiasAddClamp("biasAddClampAVX2", ymm, 8)
 	genPanelRows(false)
 	genPanelRows(true)
+	genPanelRowsNarrow()
 }
 
 // genPanelRows emits the row loop of Im2colPlan.Im2colPanelsPadded for
@@ -219,6 +220,60 @@ func genBiasAddClamp(name string, vec []reg.VecPhysical, width int) {
 	ADDQ(U32(4*width), r)
 	SUBQ(Imm(uint64(width)), n)
 	JMP(LabelRef(name + "_loop1"))
+	Label(name + "_done")
+	VZEROUPPER()
+	RET()
+}
+
+// genPanelRowsNarrow emits panelRowsAVX512 for panels at most 16 wide
+// (the 12- and 4-row panels of a packed A operand, see
+// Packed.SgemmRowPanels) at unit column stride: each row is assembled in
+// one zmm register from merge-masked loads (segment masks in bits 32–47
+// of segs, as for the wide loop) and stored under the mask of the
+// panel's width lanes, rows width floats apart.
+func genPanelRowsNarrow() {
+	name := "panelRowsNarrowAVX512"
+	TEXT(name, NOSPLIT, "func(rows int, dst, base *float32, offs *int32, segs *uint64, nseg int, width int, mask uint16)")
+	Doc(name + " writes rows panel rows of width <= 16 floats to dst (rows width apart, stored under mask = 1<<width - 1) from the padded input at base: row r takes segments segs[0:nseg] relative to base+offs[r].")
+	Pragma("noescape")
+	rows := Load(Param("rows"), GP64())
+	dst := Load(Param("dst"), GP64())
+	base := Load(Param("base"), GP64())
+	offs := Load(Param("offs"), GP64())
+	segs := Load(Param("segs"), GP64())
+	nseg := Load(Param("nseg"), GP64())
+	width := Load(Param("width"), GP64())
+	// K3 holds the store mask; width becomes the row stride in bytes.
+	m := Load(Param("mask"), GP32())
+	KMOVW(m, reg.K3)
+	SHLQ(U8(2), width)
+	rowBase, sp, sn, w, shift := GP64(), GP64(), GP64(), GP64(), GP64()
+	lo := reg.Z0
+	Label(name + "_row")
+	TESTQ(rows, rows)
+	JZ(LabelRef(name + "_done"))
+	MOVLQSX(Mem{Base: offs}, rowBase)
+	LEAQ(Mem{Base: base, Index: rowBase, Scale: 4}, rowBase)
+	VPXORD(lo, lo, lo)
+	MOVQ(segs, sp)
+	MOVQ(nseg, sn)
+	Label(name + "_seg")
+	TESTQ(sn, sn)
+	JZ(LabelRef(name + "_store"))
+	MOVQ(Mem{Base: sp}, w)
+	MOVLQSX(w.As32(), shift)
+	SHRQ(U8(32), w)
+	KMOVW(w.As32(), reg.K1)
+	VMOVUPS(Mem{Base: rowBase, Index: shift, Scale: 4}, reg.K1, lo)
+	ADDQ(U8(8), sp)
+	DECQ(sn)
+	JMP(LabelRef(name + "_seg"))
+	Label(name + "_store")
+	VMOVUPS(lo, reg.K3, Mem{Base: dst})
+	ADDQ(width, dst)
+	ADDQ(U8(4), offs)
+	DECQ(rows)
+	JMP(LabelRef(name + "_row"))
 	Label(name + "_done")
 	VZEROUPPER()
 	RET()

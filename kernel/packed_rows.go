@@ -1,0 +1,144 @@
+package kernel
+
+import "fmt"
+
+// RowPanels says how SgemmRowPanels wants the m rows of its A operand
+// packed: full panels of mr rows each, then, when mr does not divide m,
+// one panel edge rows wide for the remaining rows (the smallest edge tile
+// that covers them, or mr when the path has none). Panel i holds rows
+// i·mr … as k×width values with the row index fastest: for a convolution
+// whose output positions are the rows, that is Im2colPanelsPadded's
+// layout with nr = mr (and the tail lowered with nr = edge).
+func (g *Packed) RowPanels(m int) (mr, full, edge int) {
+	cfg := g.conf()
+	mr = cfg.mr
+	full = m / mr
+	if rem := m - full*mr; rem > 0 {
+		edge = mr
+		if e, ok := cfg.edgeFor(rem); ok {
+			edge = e.mr
+		}
+	}
+	return mr, full, edge
+}
+
+// RowPanelsLen is the number of floats of the packed A operand
+// RowPanels(m) describes, for depth k.
+func (g *Packed) RowPanelsLen(m, k int) int {
+	mr, full, edge := g.RowPanels(m)
+	return (full*mr + edge) * k
+}
+
+// PackColumnPanels packs the transpose of the row-major n×k matrix w (row
+// stride ldw) as SgemmPanels' and SgemmRowPanels' packed B, so the rows of
+// w become its columns: ⌈n/nr⌉ panels of k×nr values,
+// entry (r, j) of panel q at q·k·nr + r·nr + j holding w[(q·nr+j)·ldw+r],
+// the last panel zero-padded. A convolution's weight matrix (output
+// channels × K) packed this way is the B operand of the product that
+// computes the output transposed (positions × channels); packed once, it
+// is streamed contiguously instead of as nr separate rows.
+func (g *Packed) PackColumnPanels(dst, w []float32, n, k, ldw int) {
+	nr := g.conf().nr
+	np := (n + nr - 1) / nr
+	if len(dst) < np*k*nr {
+		panic(fmt.Sprintf("kernel: PackColumnPanels dst has %d values, want %d", len(dst), np*k*nr))
+	}
+	checkMat("W", w, n, k, ldw)
+	for q := 0; q < np; q++ {
+		panel := dst[q*k*nr : (q+1)*k*nr]
+		clear(panel)
+		for j := 0; j < min(nr, n-q*nr); j++ {
+			row := w[(q*nr+j)*ldw : (q*nr+j)*ldw+k]
+			for r, v := range row {
+				panel[r*nr+j] = v
+			}
+		}
+	}
+}
+
+// SgemmRowPanels computes C = A·B (m×n, row stride ldc, overwritten) with
+// both operands packed: A as RowPanels(m) describes, B as SgemmPanels takes
+// it. It suits a convolution layer with few output positions, computed
+// transposed (positions × channels): at batch 1 a late layer has 49 or
+// 196 positions, which as columns fill 49 of 64 and 196 of 224 panel
+// columns, but as rows fill 12-row tiles and one 4-row edge tile (52 and
+// 196 rows computed); and the weights, packed once, are read as
+// contiguous panels. Measured on m512 k4608 n49 and m256 k2304 n196 (the
+// 7×7 and 14×14 ResNet layers, one core, interleaved runs): 133 → 155 and
+// 169 → 196 GFLOP/s median against SgemmPanels over the same product. It
+// runs on the calling goroutine; callers split n by panels.
+func (g *Packed) SgemmRowPanels(m, n, k int, apanels, bpanels, c []float32, ldc int) {
+	cfg := g.conf()
+	mr, nr := cfg.mr, cfg.nr
+	if m < 0 || n < 0 || k < 0 {
+		panic(fmt.Sprintf("kernel: negative GEMM size m=%d n=%d k=%d", m, n, k))
+	}
+	checkMat("C", c, m, n, ldc)
+	if need := g.RowPanelsLen(m, k); len(apanels) < need {
+		panic(fmt.Sprintf("kernel: SgemmRowPanels A panels have %d elements, want >= %d for m=%d k=%d", len(apanels), need, m, k))
+	}
+	if need := (n + nr - 1) / nr * nr * k; len(bpanels) < need {
+		panic(fmt.Sprintf("kernel: SgemmRowPanels B panels have %d elements, want >= %d for k=%d n=%d", len(bpanels), need, k, n))
+	}
+	if m == 0 || n == 0 {
+		return
+	}
+	if k == 0 {
+		scaleC(m, n, 0, c, ldc)
+		return
+	}
+	_, full, edgeRows := g.RowPanels(m)
+	rem := m - full*mr
+	edgeKern := cfg.kernel
+	if e, ok := cfg.edgeFor(rem); ok && rem > 0 {
+		edgeKern = e.kernel
+	}
+	ws := g.get()
+	defer g.pool.Put(ws)
+	// Loop order: one B panel (nr output columns) at a time, its kc-deep
+	// slices kept in L1 while every row panel passes under them, so B —
+	// the large operand — is read from memory once; the row panels (A)
+	// are small and stay in L2.
+	for jr := 0; jr < n; jr += nr {
+		nrr := min(nr, n-jr)
+		for pc := 0; pc < k; pc += cfg.kc {
+			kb := min(cfg.kc, k-pc)
+			bet := float32(0)
+			if pc > 0 {
+				bet = 1
+			}
+			boff := jr/nr*k*nr + pc*nr
+			bp := bpanels[boff : boff+kb*nr]
+			for ir := 0; ir <= full; ir++ {
+				rows, width, kern := mr, mr, cfg.kernel
+				if ir == full {
+					if rem == 0 {
+						break
+					}
+					rows, width, kern = rem, edgeRows, edgeKern
+				}
+				aoff := ir*k*mr + pc*width
+				ap := apanels[aoff : aoff+kb*width]
+				ci := ir*mr*ldc + jr
+				if rows == width && nrr == nr {
+					kern(kb, ap, bp, c[ci:], ldc, 1, bet, bet != 0)
+					continue
+				}
+				// A partial tile: the full tile into scratch (the
+				// panels are zero-padded), then its valid part.
+				kern(kb, ap, bp, ws.tile, nr, 1, 0, false)
+				for i := 0; i < rows; i++ {
+					row := c[ci+i*ldc : ci+i*ldc+nrr]
+					t := ws.tile[i*nr : i*nr+nrr]
+					if bet == 0 {
+						copy(row, t)
+					} else {
+						for j, v := range t {
+							row[j] += v
+						}
+					}
+				}
+			}
+		}
+	}
+}

@@ -1,0 +1,79 @@
+package kernel_test
+
+import (
+	"math/rand/v2"
+	"testing"
+
+	"heedmap/kernel"
+)
+
+// TestSgemmRowPanels checks the product with both operands packed
+// against kernel.Naive (the reference BLAS definition, C = A·B) within
+// the error bound of packed_test.go ((k+4)·u·Σ|a||b|, Higham §3.1), for
+// row counts that hit full tiles, each edge tile and none, and column
+// counts with a partial last panel, on every path this CPU has.
+func TestSgemmRowPanels(t *testing.T) {
+	r := rand.New(rand.NewPCG(11, 12))
+	for _, isa := range []kernel.ISA{kernel.ISAPortable, kernel.ISAAVX2, kernel.ISAAVX512} {
+		if !kernel.Supported(isa) {
+			continue
+		}
+		g, err := kernel.New(kernel.Options{ISA: isa, Threads: 1})
+		if err != nil {
+			t.Fatal(err)
+		}
+		mr, nr := g.Tile()
+		for _, m := range []int{1, 3, mr - 1, mr, mr + 1, mr + 4, 2*mr + 7, 49, 196} {
+			for _, n := range []int{nr, nr + 5, 3 * nr, 7} {
+				for _, k := range []int{1, 37, 300, 600} {
+					a := randSlice(r, m*k)
+					w := randSlice(r, n*k) // B = wᵀ
+					// A packed as RowPanels says: panel i holds rows
+					// i·mr … as k×width, row fastest.
+					_, full, edge := g.RowPanels(m)
+					ap := make([]float32, g.RowPanelsLen(m, k))
+					for i := range ap {
+						ap[i] = 99 // padding rows must not reach C's valid rows
+					}
+					for row := 0; row < m; row++ {
+						p, width := row/mr, mr
+						if p == full {
+							width = edge
+						}
+						for kk := 0; kk < k; kk++ {
+							ap[p*k*mr+kk*width+row-p*mr] = a[row*k+kk]
+						}
+					}
+					bp := make([]float32, (n+nr-1)/nr*nr*k)
+					g.PackColumnPanels(bp, w, n, k, k)
+					c := make([]float32, m*(n+3))
+					for i := range c {
+						c[i] = 7 // overwritten
+					}
+					g.SgemmRowPanels(m, n, k, ap, bp, c, n+3)
+					want := make([]float32, m*n)
+					kernel.Naive{}.Sgemm(false, true, m, n, k, 1, a, k, w, k, 0, want, n)
+					for i := 0; i < m; i++ {
+						for j := 0; j < n; j++ {
+							var mag float64
+							for kk := 0; kk < k; kk++ {
+								mag += abs64(float64(a[i*k+kk]) * float64(w[j*k+kk]))
+							}
+							bound := float64(k+4) * 0x1p-24 * mag
+							if d := abs64(float64(c[i*(n+3)+j]) - float64(want[i*n+j])); d > bound {
+								t.Fatalf("%v m=%d n=%d k=%d: C[%d][%d] = %v, want %v (bound %.2g)", isa, m, n, k, i, j, c[i*(n+3)+j], want[i*n+j], bound)
+							}
+						}
+					}
+				}
+			}
+		}
+	}
+}
+
+func abs64(x float64) float64 {
+	if x < 0 {
+		return -x
+	}
+	return x
+}
