@@ -1204,7 +1204,8 @@ func (p *incPlan) propagate(rects []Rect) []*incGeo {
 // MultiplyAdds counts the Conv, Gemm and MatMul multiply-adds of evaluating
 // rects in batches of batch windows incrementally, and of evaluating them
 // with full forward passes. Incremental counts include the positions a
-// batch recomputes because its patches share one size.
+// batch recomputes because its windows share a size (a patch, or for
+// Convs on the panel path a box, see incBoxes).
 func (inc *Incremental) MultiplyAdds(rects []Rect, batch int) (incremental, full int64) {
 	p := inc.plan
 	if batch <= 0 {
@@ -1230,7 +1231,15 @@ func (inc *Incremental) MultiplyAdds(rects []Rect, batch int) (incremental, full
 				continue
 			}
 			ys := p.shapes[nd.out[0]]
-			incremental += st.fullMACs / int64(ys[2]*ys[3]) * int64(gm.p*gm.q) * nb
+			perPos := st.fullMACs / int64(ys[2]*ys[3])
+			if !st.panels() {
+				incremental += perPos * int64(gm.p*gm.q) * nb
+				continue
+			}
+			// The panel path multiplies each window's box, not its patch.
+			for _, gr := range incBoxes(*gm, st.conv.gemm1.PanelWidth()) {
+				incremental += perPos * int64(gr.h*gr.w*len(gr.wins))
+			}
 		}
 	}
 	return incremental, full
