@@ -115,6 +115,7 @@ func (p passOp) Forward(in []*tensor.Tensor) ([]*tensor.Tensor, error) {
 // computed before the Conv runs, as any input of the next node is) and
 // optionally then a Relu or Clip.
 func planFusion(g *Graph) *fusionPlan {
+	markConstWeights(g)
 	readers := make([]int, len(g.names))
 	for _, nd := range g.nodes {
 		for _, v := range nd.in {
@@ -257,4 +258,15 @@ func fusedInputs(op Op, in []*tensor.Tensor, vals []*tensor.Tensor) []*tensor.Te
 		in = append(in, nil)
 	}
 	return append(in, vals[f.res])
+}
+
+// markConstWeights tells each convolution whether its weights are a
+// graph constant (planFusion runs once per compiled Graph, after constant
+// folding), which the row-panel path needs to keep them packed.
+func markConstWeights(g *Graph) {
+	for _, nd := range g.nodes {
+		if c, ok := nd.op.(*convOp); ok {
+			c.constW = len(nd.in) > 1 && nd.in[1] >= 0 && g.consts[nd.in[1]] != nil
+		}
+	}
 }

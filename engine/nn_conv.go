@@ -37,6 +37,9 @@ type convOp struct {
 	slabBufs sync.Pool
 	padBufs  sync.Pool // zero-padded inputs of the panel paths
 	team     *team     // helper goroutines shared by the Graph's convolutions; may be nil
+	// constW is set at compile time when W is a graph constant, so a
+	// packed form of it may be kept (nn_conv_rows.go).
+	constW bool
 	// tplans caches the plans of the transposed convolutions that give
 	// the input gradient (nn_conv_slab.go).
 	tplans planCache
@@ -222,6 +225,9 @@ func (op *convOp) forwardEp(in []*tensor.Tensor, res []float32, act actKind, lo,
 				switch {
 				case slabs:
 					err = op.slabForward(plan, xg, s.cg, g, wg, s.mg, kk, yg, epg, gi*s.mg)
+				case panels && op.useRows(s):
+					wp := op.rowWeights(w, s.m, kk)
+					err = op.rowForward(plan, xg, s.cg, g, wp, s.mg, kk, yg, epg.forGroup(gi*s.mg))
 				case panels:
 					err = op.panelForward(plan, xg, s.cg, g, wg, s.mg, kk, yg, epg, gi*s.mg)
 				}
