@@ -135,9 +135,13 @@ func (s *incSource) cols(y int) (a, b int, row []float32) {
 
 // addPatch computes an Add of two patches (and its fused Relu) for every
 // window over the patch geometry gm, from the operands' patches and kept
-// values, on the plan's team. Positions where neither operand differs
-// from its kept value take the kept output, so the result is the kept
-// value wherever the window changes nothing, as restore would make it.
+// values, on the plan's team: per channel plane of a window, each operand
+// is read in place when its patch has the output's placement (the usual
+// case: a residual block's last Conv) and gathered into a scratch plane
+// otherwise, then one vector loop adds and clamps (kernel.BiasAddClamp).
+// Positions where neither operand changed get the kept operands' sum,
+// which is the kept output bit for bit (the same float32 expressions), so
+// no restore pass is needed.
 func (inc *Incremental) addPatch(k int, gm incGeo, vals []*incVal, nb int) (*incVal, error) {
 	p := inc.plan
 	st := &p.steps[k]
@@ -149,27 +153,34 @@ func (inc *Incremental) addPatch(k int, gm incGeo, vals []*incVal, nb int) (*inc
 	out := &incVal{incGeo: gm, t: p.patchTensor(nb, c, gm.p, gm.q), owned: true}
 	va, vb := nd.in[0], nd.in[1]
 	sa, sb := vals[va], vals[vb]
-	baseOut := inc.base[ov].F32
 	planes := nb * c
 	tasks := min(planes, 4*runtime.GOMAXPROCS(0))
-	relu := st.act == actRelu
-	inf := float32(math.Inf(1))
+	lo, hi := st.bounds()
+	// A bias of −0 adds nothing, so BiasAddClamp computes
+	// min(hi, max(lo, a+b)): ONNX Add, then Relu (max(v, 0)) or nothing.
+	negZero := math.Float32frombits(1 << 31)
 	err := p.team.run([]int{tasks}, func(_, t int) error {
+		var scratch []float32
 		for i := planes * t / tasks; i < planes*(t+1)/tasks; i++ {
 			b, ch := i/c, i%c
-			A, B := inc.source(va, sa, b, ch), inc.source(vb, sb, b, ch)
-			ob := baseOut[ch*h*w : (ch+1)*h*w]
 			dst := out.t.F32[i*pq : (i+1)*pq]
-			oy, ox := gm.oy[b], gm.ox[b]
-			for r := 0; r < gm.p; r++ {
-				y := oy + r
-				a0, a1, arow := A.cols(y)
-				b0, b1, brow := B.cols(y)
-				addRow(dst[r*gm.q:(r+1)*gm.q], ox, y*w, ob, A.base, a0, a1, arow, B.base, b0, b1, brow)
+			A := inc.source(va, sa, b, ch)
+			if a, ok := A.plane(gm, b); ok {
+				copy(dst, a)
+			} else {
+				A.gather(dst, gm, b, h, w)
 			}
-			if relu {
-				kernel.BiasClamp(dst, 0, 0, inf)
+			B := inc.source(vb, sb, b, ch)
+			bp, ok := B.plane(gm, b)
+			if !ok {
+				if scratch == nil {
+					scratch = p.bufs.get(pq)
+					defer p.bufs.put(scratch)
+				}
+				B.gather(scratch, gm, b, h, w)
+				bp = scratch
 			}
+			kernel.BiasAddClamp(dst, bp, negZero, lo, hi)
 		}
 		return nil
 	})
@@ -180,51 +191,19 @@ func (inc *Incremental) addPatch(k int, gm incGeo, vals []*incVal, nb int) (*inc
 	return out, nil
 }
 
-// addRow writes columns [x0, x0+len(dst)) of one row of an Add: the kept
-// output (row offset off in ob) where neither operand has its own data,
-// else operand A (its own columns [a0, a1) from arow, the kept plane ab
-// elsewhere) plus operand B likewise.
-func addRow(dst []float32, x0, off int, ob, ab []float32, a0, a1 int, arow []float32, bb []float32, b0, b1 int, brow []float32) {
-	x1 := x0 + len(dst)
-	// Breakpoints of the row: its ends and each operand's clipped range.
-	var cut [6]int
-	n := 0
-	for _, x := range [...]int{x0, x1, a0, a1, b0, b1} {
-		x = min(max(x, x0), x1)
-		j := n
-		for j > 0 && cut[j-1] > x {
-			cut[j] = cut[j-1]
-			j--
-		}
-		cut[j] = x
-		n++
+// plane returns the source's data as window b's plane of patch geometry
+// gm, when it is laid out exactly so.
+func (s *incSource) plane(gm incGeo, b int) ([]float32, bool) {
+	if s.y0 == gm.oy[b] && s.x0 == gm.ox[b] && s.h == gm.p && s.w == gm.q {
+		return s.data[:gm.p*gm.q], true
 	}
-	for i := 0; i+1 < n; i++ {
-		s0, s1 := cut[i], cut[i+1]
-		if s0 == s1 {
-			continue
-		}
-		d := dst[s0-x0 : s1-x0]
-		inA := s0 >= a0 && s1 <= a1 && a0 < a1
-		inB := s0 >= b0 && s1 <= b1 && b0 < b1
-		if !inA && !inB {
-			copy(d, ob[off+s0:off+s1])
-			continue
-		}
-		var sa, sb []float32
-		if inA {
-			sa = arow[s0-a0 : s1-a0]
-		} else {
-			sa = ab[off+s0 : off+s1]
-		}
-		if inB {
-			sb = brow[s0-b0 : s1-b0]
-		} else {
-			sb = bb[off+s0 : off+s1]
-		}
-		sa, sb = sa[:len(d)], sb[:len(d)]
-		for j := range d {
-			d[j] = sa[j] + sb[j]
-		}
+	return nil, false
+}
+
+// gather writes the source over window b's patch (geometry gm, inside the
+// h×w map) into dst.
+func (s *incSource) gather(dst []float32, gm incGeo, b, h, w int) {
+	for r := 0; r < gm.p; r++ {
+		gatherRow(dst[r*gm.q:(r+1)*gm.q], s, gm.oy[b]+r, gm.ox[b], h, w)
 	}
 }
