@@ -1,6 +1,7 @@
 package engine
 
 import (
+	"heedmap/kernel"
 	"heedmap/tensor"
 )
 
@@ -139,6 +140,19 @@ func (op *convOp) backwardFor(in, out, gradOut []*tensor.Tensor, need []bool, me
 				batchedX = true
 			}
 		}
+		// Small maps at batch 1 with constant weights: the transposed
+		// convolution on the row-panel path (nn_conv_rows.go), with the
+		// flipped filters packed once per graph.
+		var rowFlipped []float32
+		var tplan *kernel.Im2colPlan
+		rowsX := false
+		if needX && transposed && !batchedX && memo != nil && op.useRows(s) {
+			tkk := s.m * tg.kh * tg.kw
+			if p, err := op.tplans.plan(tg); err == nil && !op.useSlabs(tkk, tg.oh*tg.ow) {
+				tplan, rowsX = p, true
+				rowFlipped = op.rowFlippedWeights(w, flipped, s.c, tkk)
+			}
+		}
 		for n := 0; n < s.n; n++ {
 			for gi := 0; gi < op.group; gi++ {
 				off := (n*s.c + gi*s.cg) * ihw
@@ -162,6 +176,12 @@ func (op *convOp) backwardFor(in, out, gradOut []*tensor.Tensor, need []bool, me
 					continue
 				}
 				dxg := dx.F32[off : off+s.cg*ihw]
+				if rowsX {
+					if err := op.rowForward(tplan, dyg, s.mg, tg, rowFlipped, s.cg, s.mg*tg.kh*tg.kw, dxg, nil); err != nil {
+						return nil, err
+					}
+					continue
+				}
 				if transposed {
 					if err := op.transposedBackwardX(tg, flipped[gi*s.mg*kk:(gi+1)*s.mg*kk], s.cg, s.mg, dyg, dxg); err != nil {
 						return nil, err

@@ -107,3 +107,22 @@ func (op *convOp) rowForward(plan *kernel.Im2colPlan, xg []float32, cg int, g ge
 		return nil
 	})
 }
+
+// packedFlipped is the memo owner of the flipped filters (flipFilters)
+// packed as SgemmRowPanels' B operand, for the input gradient.
+type packedFlipped struct{ op *convOp }
+
+func (packedFlipped) Forward([]*tensor.Tensor) ([]*tensor.Tensor, error) {
+	return nil, fmt.Errorf("packedFlipped is a memo key, not an operator")
+}
+
+// rowFlippedWeights returns the flipped filters f (c×kk, the weights of
+// the transposed convolution that gives the input gradient) packed as
+// SgemmRowPanels' B, made once per graph and keyed by the weights w.
+func (op *convOp) rowFlippedWeights(w *tensor.Tensor, f []float32, c, kk int) []float32 {
+	_, nr := op.gemm1.Tile()
+	n := (c + nr - 1) / nr * nr * kk
+	return op.arena.derived(w, packedFlipped{op}, n, func(dst []float32) {
+		op.gemm1.PackColumnPanels(dst, f, c, kk, kk)
+	})
+}

@@ -2,7 +2,9 @@ package engine
 
 import (
 	"context"
+	"encoding/json"
 	"math"
+	"os"
 	"path/filepath"
 	"testing"
 
@@ -13,10 +15,14 @@ import (
 // TestRowPathMatchesPyTorch runs each image of the committed compact
 // ResNet-18 and MobileNetV2 (testdata/reference/export_nets.py, batch 2)
 // alone, at batch 1, where the small-map convolutions take the row-panel
-// path (nn_conv_rows.go), and compares the logits with PyTorch's row for
-// that image within the networks tests' 1e-4 relative tolerance (common
-// practice for float32), and with the same graph on the pure-Go kernel.Naive
-// GEMM (plain im2col path) within 1e-5.
+// path (nn_conv_rows.go) forward and for the input gradient, and compares
+// the logits with PyTorch's row for that image within the networks
+// tests' 1e-4 relative tolerance (common practice for float32), and with
+// the same graph on the pure-Go kernel.Naive GEMM (plain im2col path)
+// within 1e-5; and the gradient of the image's logit[class] with respect
+// to the input with PyTorch's (grad_input.pb: images are independent, so
+// each image's slice of the batch gradient is its own) within the
+// networks tests' cosine and relative L2 bounds.
 func TestRowPathMatchesPyTorch(t *testing.T) {
 	if !kernel.Supported(kernel.ISAAVX512) {
 		t.Skip("the row-panel path runs on AVX-512 only")
@@ -25,6 +31,15 @@ func TestRowPathMatchesPyTorch(t *testing.T) {
 		t.Run(name, func(t *testing.T) {
 			n := loadCompactNet(t, name)
 			want := n.tensor(t, "logits.pb")
+			gradWant := n.tensor(t, "grad_input.pb")
+			var meta struct{ Class int }
+			b, err := os.ReadFile(filepath.Join(n.dir, "meta.json"))
+			if err != nil {
+				t.Fatal(err)
+			}
+			if err := json.Unmarshal(b, &meta); err != nil {
+				t.Fatal(err)
+			}
 			rows := 0
 			for _, nd := range n.g.nodes {
 				if c, ok := nd.op.(*convOp); ok && c.useRows(convShape{}) {
@@ -54,6 +69,23 @@ func TestRowPathMatchesPyTorch(t *testing.T) {
 						got[j], _ = p.Value(n.meta.Output)
 					}
 				}
+				p, err := n.g.Run(context.Background(), in, RunOptions{Backward: true})
+				if err != nil {
+					t.Fatal(err)
+				}
+				logits, _ := p.Value(n.meta.Output)
+				seed := tensor.New(logits.Shape...)
+				seed.F32[meta.Class] = 1
+				grads, err := p.Backward(context.Background(), map[string]*tensor.Tensor{n.meta.Output: seed}, []string{n.meta.Input})
+				if err != nil {
+					t.Fatal(err)
+				}
+				p.Release()
+				// The networks tests' bounds: cosine ≥ 0.9999, relative
+				// L2 ≤ 1e-3 (networks_test.go).
+				if cos, rel := cosRelL2(grads[n.meta.Input].F32, gradWant.F32[i*per:(i+1)*per]); cos < 0.9999 || rel > 1e-3 {
+					t.Errorf("image %d: input gradient cosine %.6f, relative L2 %.2e against PyTorch", i, cos, rel)
+				}
 				ref := want.F32[i*classes : (i+1)*classes]
 				if d := relMax(got[0].F32, ref); d > 1e-4 {
 					t.Errorf("image %d: logits differ from PyTorch by %.2e (relative)", i, d)
@@ -75,4 +107,18 @@ func relMax(a, b []float32) float64 {
 		den = math.Max(den, math.Abs(float64(b[i])))
 	}
 	return num / den
+}
+
+// cosRelL2 is the cosine similarity of a and b and the relative L2 error
+// ‖a−b‖/‖b‖, accumulated in float64.
+func cosRelL2(a, b []float32) (cos, rel float64) {
+	var ab, aa, bb, dd float64
+	for i := range b {
+		x, y := float64(a[i]), float64(b[i])
+		ab += x * y
+		aa += x * x
+		bb += y * y
+		dd += (x - y) * (x - y)
+	}
+	return ab / math.Sqrt(aa*bb), math.Sqrt(dd / bb)
 }
