@@ -350,3 +350,47 @@ panelRowsNarrowAVX512_store:
 panelRowsNarrowAVX512_done:
 	VZEROUPPER
 	RET
+
+// func panelRowsNarrow3AVX512(rows int, dst *float32, base *float32, offs *int32, segs *[3]uint64, width int, mask uint16)
+// Requires: AVX, AVX512F
+TEXT ·panelRowsNarrow3AVX512(SB), NOSPLIT, $0-50
+	MOVQ    rows+0(FP), AX
+	MOVQ    dst+8(FP), CX
+	MOVQ    base+16(FP), DX
+	MOVQ    offs+24(FP), BX
+	MOVQ    segs+32(FP), SI
+	MOVQ    width+40(FP), DI
+	MOVWLZX mask+48(FP), R8
+	KMOVW   R8, K3
+	SHLQ    $0x02, DI
+	MOVQ    (SI), R8
+	MOVLQSX R8, R9
+	SHRQ    $0x20, R8
+	KMOVW   R8, K1
+	MOVQ    8(SI), R8
+	MOVLQSX R8, R10
+	SHRQ    $0x20, R8
+	KMOVW   R8, K2
+	MOVQ    16(SI), SI
+	MOVLQSX SI, R8
+	SHRQ    $0x20, SI
+	KMOVW   SI, K4
+
+panelRowsNarrow3AVX512_row:
+	TESTQ   AX, AX
+	JZ      panelRowsNarrow3AVX512_done
+	MOVLQSX (BX), SI
+	LEAQ    (DX)(SI*4), SI
+	VPXORD  Z0, Z0, Z0
+	VMOVUPS (SI)(R9*4), K1, Z0
+	VMOVUPS (SI)(R10*4), K2, Z0
+	VMOVUPS (SI)(R8*4), K4, Z0
+	VMOVUPS Z0, K3, (CX)
+	ADDQ    DI, CX
+	ADDQ    $0x04, BX
+	DECQ    AX
+	JMP     panelRowsNarrow3AVX512_row
+
+panelRowsNarrow3AVX512_done:
+	VZEROUPPER
+	RET

@@ -36,3 +36,8 @@ func panelRowsGatherAVX512(rows int, dst *float32, base *float32, offs *int32, s
 //
 //go:noescape
 func panelRowsNarrowAVX512(rows int, dst *float32, base *float32, offs *int32, segs *uint64, nseg int, width int, mask uint16)
+
+// panelRowsNarrow3AVX512 is panelRowsNarrowAVX512 for exactly three segments segs (unused ones with a zero lane mask).
+//
+//go:noescape
+func panelRowsNarrow3AVX512(rows int, dst *float32, base *float32, offs *int32, segs *[3]uint64, width int, mask uint16)

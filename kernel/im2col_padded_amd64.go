@@ -24,5 +24,11 @@ func panelRowsNarrow(rows int, panel, padded []float32, offs []int32, segs []uin
 		return
 	}
 	_ = panel[rows*nr-1]
+	if len(segs) <= 3 {
+		var three [3]uint64 // absent segments: zero lane mask
+		copy(three[:], segs)
+		panelRowsNarrow3AVX512(rows, &panel[0], &padded[0], &offs[0], &three, nr, uint16(1)<<nr-1)
+		return
+	}
 	panelRowsNarrowAVX512(rows, &panel[0], &padded[0], &offs[0], &segs[0], len(segs), nr, uint16(1)<<nr-1)
 }

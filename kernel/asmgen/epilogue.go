@@ -18,6 +18,7 @@ func genEpilogue(zmm, ymm []reg.VecPhysical) {
 	genPanelRows(false)
 	genPanelRows(true)
 	genPanelRowsNarrow()
+	genPanelRowsNarrow3()
 }
 
 // genPanelRows emits the row loop of Im2colPlan.Im2colPanelsPadded for
@@ -269,6 +270,58 @@ func genPanelRowsNarrow() {
 	DECQ(sn)
 	JMP(LabelRef(name + "_seg"))
 	Label(name + "_store")
+	VMOVUPS(lo, reg.K3, Mem{Base: dst})
+	ADDQ(width, dst)
+	ADDQ(U8(4), offs)
+	DECQ(rows)
+	JMP(LabelRef(name + "_row"))
+	Label(name + "_done")
+	VZEROUPPER()
+	RET()
+}
+
+// genPanelRowsNarrow3 is genPanelRowsNarrow for panels of at most three
+// segments (every panel of a 7×7 or 14×14 map lowered 12 or 4 wide): the
+// three shifts and lane masks are loaded once, outside the row loop, so
+// each row is three merge-masked loads (a zero mask for an absent segment
+// loads nothing and cannot fault) and one masked store. The general loop
+// reloaded each segment's shift and mask for every row, which made
+// lowering a late layer's input cost as much as a tenth of its product.
+func genPanelRowsNarrow3() {
+	name := "panelRowsNarrow3AVX512"
+	TEXT(name, NOSPLIT, "func(rows int, dst, base *float32, offs *int32, segs *[3]uint64, width int, mask uint16)")
+	Doc(name + " is panelRowsNarrowAVX512 for exactly three segments segs (unused ones with a zero lane mask).")
+	Pragma("noescape")
+	rows := Load(Param("rows"), GP64())
+	dst := Load(Param("dst"), GP64())
+	base := Load(Param("base"), GP64())
+	offs := Load(Param("offs"), GP64())
+	segs := Load(Param("segs"), GP64())
+	width := Load(Param("width"), GP64())
+	m := Load(Param("mask"), GP32())
+	KMOVW(m, reg.K3)
+	SHLQ(U8(2), width)
+	var shifts [3]reg.GPVirtual
+	masks := []reg.OpmaskPhysical{reg.K1, reg.K2, reg.K4}
+	for i := range shifts {
+		w := GP64()
+		MOVQ(Mem{Base: segs, Disp: 8 * i}, w)
+		shifts[i] = GP64()
+		MOVLQSX(w.As32(), shifts[i])
+		SHRQ(U8(32), w)
+		KMOVW(w.As32(), masks[i])
+	}
+	rowBase := GP64()
+	lo := reg.Z0
+	Label(name + "_row")
+	TESTQ(rows, rows)
+	JZ(LabelRef(name + "_done"))
+	MOVLQSX(Mem{Base: offs}, rowBase)
+	LEAQ(Mem{Base: base, Index: rowBase, Scale: 4}, rowBase)
+	VPXORD(lo, lo, lo)
+	for i := range shifts {
+		VMOVUPS(Mem{Base: rowBase, Index: shifts[i], Scale: 4}, masks[i], lo)
+	}
 	VMOVUPS(lo, reg.K3, Mem{Base: dst})
 	ADDQ(width, dst)
 	ADDQ(U8(4), offs)
