@@ -326,12 +326,7 @@ func maxPlaneBackward(src, dy, dx []float32, g geom2) {
 // ResNet-18 forward+backward pass at batch 1. val and arg are scratch of
 // g.ow values.
 func maxPlaneBackward3x3(src, dy, dx []float32, g geom2, val []float32, arg []int64) {
-	oxLo := (g.pl + g.sw - 1) / g.sw
-	oxHi := 0
-	if g.iw-3+g.pl >= 0 {
-		oxHi = min(g.ow, (g.iw-3+g.pl)/g.sw+1)
-	}
-	oxHi = max(oxHi, oxLo)
+	oxLo, oxHi := interior3x3(g)
 	border := func(oy, ox0, ox1 int) {
 		maxRow(src, val, arg, g, 0, oy, ox0, ox1)
 		for ox := ox0; ox < ox1; ox++ {
@@ -412,13 +407,7 @@ func maxPlane(src, dst []float32, idx []int64, g geom2, off int64) {
 // arithmetic; the rest take the general loop. The scan order, and so the
 // value kept among equal ones, is maxPlane's.
 func maxPlane3x3(src, dst []float32, g geom2) {
-	// Interior output columns: x0 = ox·sw − pl ≥ 0 and x0 + 2 < iw.
-	oxLo := (g.pl + g.sw - 1) / g.sw
-	oxHi := 0
-	if g.iw-3+g.pl >= 0 {
-		oxHi = min(g.ow, (g.iw-3+g.pl)/g.sw+1)
-	}
-	oxHi = max(oxHi, oxLo)
+	oxLo, oxHi := interior3x3(g)
 	for oy := 0; oy < g.oh; oy++ {
 		y0 := oy*g.sh - g.pt
 		out := dst[oy*g.ow : (oy+1)*g.ow]
@@ -447,6 +436,16 @@ func maxPlane3x3(src, dst []float32, g geom2) {
 			x0 += g.sw
 		}
 	}
+}
+
+// interior3x3 returns the output columns [oxLo, oxHi) whose 3×3 window
+// lies inside the image's columns: x0 = ox·sw − pl ≥ 0 and x0 + 2 < iw.
+func interior3x3(g geom2) (oxLo, oxHi int) {
+	oxLo = (g.pl + g.sw - 1) / g.sw
+	if g.iw-3+g.pl >= 0 {
+		oxHi = min(g.ow, (g.iw-3+g.pl)/g.sw+1)
+	}
+	return oxLo, max(oxHi, oxLo)
 }
 
 // gt returns v when v > best, else best: one step of maxPlane's scan (a
