@@ -50,10 +50,16 @@ func (r Rect) union(s Rect) Rect {
 // exact, only slower; Fallbacks lists those nodes.
 //
 // Within one batch every patch of a layer has the same size (the largest
-// in the batch, slid inward at the borders) so a layer is one matrix
-// product over all windows; this recomputes a few unchanged positions near
-// borders, which is exact. Results equal a full forward pass up to the
-// order of float summation.
+// in the batch, slid inward at the borders), so patches are plain
+// [B, C, P, Q] tensors. A Conv on the packed-panel path multiplies only
+// each window's changed box, windows of one box size side by side in one
+// product (incremental_panels.go), with the bias, a following Relu or
+// Clip, and the kept values outside the changed rectangles written in the
+// same pass; a residual Add and its Relu are one pass too
+// (incremental_fuse.go). Every buffer a batch needs comes from the plan's
+// free lists (incBufs), so a steady batch allocates almost nothing.
+// Results equal a full forward pass up to the order of float summation,
+// and do not depend on how windows are batched.
 //
 // An Incremental holds the kept activations of one image; it is safe for
 // concurrent Occlude calls.
