@@ -467,17 +467,7 @@ func (g *Packed) run(ws *workspace, transA, transB bool, m, n, k int, alpha floa
 							// the valid part, so the kernels need no masking.
 							kern(kb, ap, bp, ws.tile, nr, alpha, 0, false)
 						}
-						for i := 0; i < mrr; i++ {
-							row := c[ci+i*ldc : ci+i*ldc+nrr]
-							t := ws.tile[i*nr : i*nr+nrr]
-							if bet == 0 {
-								copy(row, t)
-							} else {
-								for j, v := range t {
-									row[j] = v + bet*row[j]
-								}
-							}
-						}
+						storeTile(c[ci:], ldc, ws.tile, nr, mrr, nrr, bet)
 					}
 				}
 			}
@@ -486,6 +476,23 @@ func (g *Packed) run(ws *workspace, transA, transB bool, m, n, k int, alpha floa
 }
 
 func roundUp(x, m int) int { return (x + m - 1) / m * m }
+
+// storeTile writes the valid rows×cols part of a scratch tile (row
+// stride nr) to c (row stride ldc): copied when beta is 0, else added to
+// beta·c.
+func storeTile(c []float32, ldc int, tile []float32, nr, rows, cols int, beta float32) {
+	for i := 0; i < rows; i++ {
+		row := c[i*ldc : i*ldc+cols]
+		t := tile[i*nr : i*nr+cols]
+		if beta == 0 {
+			copy(row, t)
+			continue
+		}
+		for j, v := range t {
+			row[j] = v + beta*row[j]
+		}
+	}
+}
 
 // packB copies op(B)[pc:pc+kb, jc:jc+nb] into kb×nr micro-panels, column
 // index fastest, zero-padding the last panel to nr columns.

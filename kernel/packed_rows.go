@@ -127,17 +127,7 @@ func (g *Packed) SgemmRowPanels(m, n, k int, apanels, bpanels, c []float32, ldc 
 				// A partial tile: the full tile into scratch (the
 				// panels are zero-padded), then its valid part.
 				kern(kb, ap, bp, ws.tile, nr, 1, 0, false)
-				for i := 0; i < rows; i++ {
-					row := c[ci+i*ldc : ci+i*ldc+nrr]
-					t := ws.tile[i*nr : i*nr+nrr]
-					if bet == 0 {
-						copy(row, t)
-					} else {
-						for j, v := range t {
-							row[j] += v
-						}
-					}
-				}
+				storeTile(c[ci:], ldc, ws.tile, nr, rows, nrr, bet)
 			}
 		}
 	}

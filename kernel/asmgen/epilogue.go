@@ -11,10 +11,10 @@ import (
 // genEpilogue emits the vector epilogues applied to convolution outputs
 // and the im2col panel copy that feeds them.
 func genEpilogue(zmm, ymm []reg.VecPhysical) {
-	genBiasClamp("biasClampAVX512", zmm, 16)
-	genBiasClamp("biasClampAVX2", ymm, 8)
-	genBiasAddClamp("biasAddClampAVX512", zmm, 16)
-	genBiasAddClamp("biasAddClampAVX2", ymm, 8)
+	genBiasClamp("biasClampAVX512", zmm, 16, false)
+	genBiasClamp("biasClampAVX2", ymm, 8, false)
+	genBiasClamp("biasAddClampAVX512", zmm, 16, true)
+	genBiasClamp("biasAddClampAVX2", ymm, 8, true)
 	genPanelRows(false)
 	genPanelRows(true)
 	genPanelRowsNarrow()
@@ -115,16 +115,29 @@ func genPanelRows(gather bool) {
 
 // genBiasClamp emits x[j] = min(hi, max(lo, x[j]+bias)) for the first
 // n/width·width values of x (the caller finishes the rest): a convolution's
-// bias and a fused ReLU (lo = 0, hi = +Inf) or Clip. Four vectors per
-// iteration hide the add→max→min latency chain. The operand order of
-// VMAXPS/VMINPS makes a NaN in x come out as NaN (the instructions return
-// their second source operand when either is NaN), as Go's max and min do.
-func genBiasClamp(name string, vec []reg.VecPhysical, width int) {
-	TEXT(name, NOSPLIT, "func(n int, x *float32, bias, lo, hi float32)")
-	Doc(fmt.Sprintf("%s sets x[j] = min(hi, max(lo, x[j]+bias)) for j < n rounded down to %d.", name, width))
+// bias and a fused ReLU (lo = 0, hi = +Inf) or Clip. With residual it
+// emits x[j] = min(hi, max(lo, (x[j]+bias)+r[j])) instead: a residual
+// addition fused in as well (ResNet's identity shortcut), the two
+// additions kept separate, in the order the unfused Conv and Add operators
+// round them, so the result is bit identical. Four vectors per iteration
+// hide the add→max→min latency chain. The operand order of VMAXPS/VMINPS
+// makes a NaN in x come out as NaN (the instructions return their second
+// source operand when either is NaN), as Go's max and min do.
+func genBiasClamp(name string, vec []reg.VecPhysical, width int, residual bool) {
+	if residual {
+		TEXT(name, NOSPLIT, "func(n int, x, r *float32, bias, lo, hi float32)")
+		Doc(fmt.Sprintf("%s sets x[j] = min(hi, max(lo, (x[j]+bias)+r[j])) for j < n rounded down to %d.", name, width))
+	} else {
+		TEXT(name, NOSPLIT, "func(n int, x *float32, bias, lo, hi float32)")
+		Doc(fmt.Sprintf("%s sets x[j] = min(hi, max(lo, x[j]+bias)) for j < n rounded down to %d.", name, width))
+	}
 	Pragma("noescape")
 	n := Load(Param("n"), GP64())
 	x := Load(Param("x"), GP64())
+	var r reg.Register
+	if residual {
+		r = Load(Param("r"), GP64())
+	}
 	b, l, h := vec[0], vec[1], vec[2]
 	for i, p := range []string{"bias", "lo", "hi"} {
 		m, err := Param(p).Resolve()
@@ -133,98 +146,45 @@ func genBiasClamp(name string, vec []reg.VecPhysical, width int) {
 	}
 	const unrollEp = 4
 	v := vec[3 : 3+unrollEp]
+	step := func(count int) {
+		for i := 0; i < count; i++ {
+			VADDPS(Mem{Base: x, Disp: 4 * width * i}, b, v[i])
+		}
+		if residual {
+			for i := 0; i < count; i++ {
+				VADDPS(Mem{Base: r, Disp: 4 * width * i}, v[i], v[i])
+			}
+		}
+		for i := 0; i < count; i++ {
+			VMAXPS(v[i], l, v[i])
+		}
+		for i := 0; i < count; i++ {
+			VMINPS(v[i], h, v[i])
+		}
+		for i := 0; i < count; i++ {
+			VMOVUPS(v[i], Mem{Base: x, Disp: 4 * width * i})
+		}
+		ADDQ(U32(4*width*count), x)
+		if residual {
+			ADDQ(U32(4*width*count), r)
+		}
+		SUBQ(Imm(uint64(width*count)), n)
+	}
 	Label(name + "_loop4")
 	CMPQ(n, Imm(uint64(unrollEp*width)))
 	JL(LabelRef(name + "_loop1"))
-	for i := range v {
-		VADDPS(Mem{Base: x, Disp: 4 * width * i}, b, v[i])
-	}
-	for i := range v {
-		VMAXPS(v[i], l, v[i])
-	}
-	for i := range v {
-		VMINPS(v[i], h, v[i])
-	}
-	for i := range v {
-		VMOVUPS(v[i], Mem{Base: x, Disp: 4 * width * i})
-	}
-	ADDQ(U32(4*width*unrollEp), x)
-	SUBQ(Imm(uint64(width*unrollEp)), n)
+	step(unrollEp)
 	JMP(LabelRef(name + "_loop4"))
 	Label(name + "_loop1")
 	CMPQ(n, Imm(uint64(width)))
 	JL(LabelRef(name + "_done"))
-	VADDPS(Mem{Base: x}, b, v[0])
-	VMAXPS(v[0], l, v[0])
-	VMINPS(v[0], h, v[0])
-	VMOVUPS(v[0], Mem{Base: x})
-	ADDQ(U32(4*width), x)
-	SUBQ(Imm(uint64(width)), n)
+	step(1)
 	JMP(LabelRef(name + "_loop1"))
 	Label(name + "_done")
 	VZEROUPPER()
 	RET()
 }
 
-// genBiasAddClamp emits x[j] = min(hi, max(lo, (x[j]+bias)+r[j])) for the
-// first n/width·width values of x: a convolution's bias, a residual
-// addition fused into it (ResNet's identity shortcut) and a fused ReLU or
-// none. The two additions stay separate, in the order the unfused Conv and
-// Add operators round them, so the result is bit identical. Operand order
-// of VMAXPS/VMINPS as in genBiasClamp (a NaN comes out as NaN).
-func genBiasAddClamp(name string, vec []reg.VecPhysical, width int) {
-	TEXT(name, NOSPLIT, "func(n int, x, r *float32, bias, lo, hi float32)")
-	Doc(fmt.Sprintf("%s sets x[j] = min(hi, max(lo, (x[j]+bias)+r[j])) for j < n rounded down to %d.", name, width))
-	Pragma("noescape")
-	n := Load(Param("n"), GP64())
-	x := Load(Param("x"), GP64())
-	r := Load(Param("r"), GP64())
-	b, l, h := vec[0], vec[1], vec[2]
-	for i, p := range []string{"bias", "lo", "hi"} {
-		m, err := Param(p).Resolve()
-		check(err)
-		VBROADCASTSS(m.Addr, []reg.VecPhysical{b, l, h}[i])
-	}
-	const unrollEp = 4
-	v := vec[3 : 3+unrollEp]
-	Label(name + "_loop4")
-	CMPQ(n, Imm(uint64(unrollEp*width)))
-	JL(LabelRef(name + "_loop1"))
-	for i := range v {
-		VADDPS(Mem{Base: x, Disp: 4 * width * i}, b, v[i])
-	}
-	for i := range v {
-		VADDPS(Mem{Base: r, Disp: 4 * width * i}, v[i], v[i])
-	}
-	for i := range v {
-		VMAXPS(v[i], l, v[i])
-	}
-	for i := range v {
-		VMINPS(v[i], h, v[i])
-	}
-	for i := range v {
-		VMOVUPS(v[i], Mem{Base: x, Disp: 4 * width * i})
-	}
-	ADDQ(U32(4*width*unrollEp), x)
-	ADDQ(U32(4*width*unrollEp), r)
-	SUBQ(Imm(uint64(width*unrollEp)), n)
-	JMP(LabelRef(name + "_loop4"))
-	Label(name + "_loop1")
-	CMPQ(n, Imm(uint64(width)))
-	JL(LabelRef(name + "_done"))
-	VADDPS(Mem{Base: x}, b, v[0])
-	VADDPS(Mem{Base: r}, v[0], v[0])
-	VMAXPS(v[0], l, v[0])
-	VMINPS(v[0], h, v[0])
-	VMOVUPS(v[0], Mem{Base: x})
-	ADDQ(U32(4*width), x)
-	ADDQ(U32(4*width), r)
-	SUBQ(Imm(uint64(width)), n)
-	JMP(LabelRef(name + "_loop1"))
-	Label(name + "_done")
-	VZEROUPPER()
-	RET()
-}
 
 // genPanelRowsNarrow emits panelRowsAVX512 for panels at most 16 wide
 // (the 12- and 4-row panels of a packed A operand, see
