@@ -185,7 +185,6 @@ func genBiasClamp(name string, vec []reg.VecPhysical, width int, residual bool) 
 	RET()
 }
 
-
 // genPanelRowsNarrow emits panelRowsAVX512 for panels at most 16 wide
 // (the 12- and 4-row panels of a packed A operand, see
 // Packed.SgemmRowPanels) at unit column stride: each row is assembled in
