@@ -102,6 +102,22 @@ func (p *Im2colPlan) PadPhased(dst, src []float32, c0, c1 int) error {
 	for c := c0; c < c1; c++ {
 		d := dst[c*ph*pw : (c+1)*ph*pw]
 		sp := src[c*g.H*g.W : (c+1)*g.H*g.W]
+		if s == 2 && !p.portable && g.H > 0 && g.W > 0 {
+			// Image column j is padded column PadLeft + j: the even j
+			// go to the phase of PadLeft's parity, the odd j to the
+			// other, with the depthwise path's vector de-interleave
+			// (the scalar loop below ran at about 1 GB/s and was 7 % of
+			// a ResNet-18 forward pass at batch 1 on a loaded machine).
+			// The plane is cleared first for the padding.
+			clear(d)
+			l := g.PadLeft
+			rows := d[g.PadTop*pw:]
+			ev := rows[po[l&1]+l>>1:]
+			od := rows[po[(l+1)&1]+(l+1)>>1:]
+			if dwFillPhasedSIMD(ISAAuto, ev, od, sp, g.H, g.W, pw, g.W) {
+				continue
+			}
+		}
 		clear(d[:g.PadTop*pw])
 		clear(d[(g.PadTop+g.H)*pw:])
 		for h := 0; h < g.H; h++ {
