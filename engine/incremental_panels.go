@@ -2,6 +2,7 @@ package engine
 
 import (
 	"runtime"
+	"slices"
 	"sync"
 
 	"heedmap/kernel"
@@ -187,6 +188,20 @@ func (inc *Incremental) convPanels(k int, gm incGeo, vals []*incVal, nb int) (*i
 		step := ((n+parts-1)/parts + nr - 1) / nr * nr
 		for j0 := 0; j0 < n; j0 += step {
 			slabs = append(slabs, incSlab{i, j0, min(j0+step, n)})
+		}
+	}
+	// Largest first, and the last few halved, so the cores finish
+	// together: a phase ends when its slowest core does, and on a shared
+	// machine a core's share is unpredictable (the team claims tasks in
+	// order). Measured on ResNet-18 (729 windows, loaded machine, five
+	// alternating runs): 7 % less wall time, the same CPU time.
+	slices.SortStableFunc(slabs, func(a, b incSlab) int { return (b.j1 - b.j0) - (a.j1 - a.j0) })
+	for i := max(0, len(slabs)-workers); i < len(slabs); i++ {
+		sl := slabs[i]
+		if n := sl.j1 - sl.j0; n >= 2*nr {
+			mid := sl.j0 + (n/2+nr-1)/nr*nr
+			slabs[i].j1 = mid
+			slabs = append(slabs, incSlab{sl.group, mid, sl.j1})
 		}
 	}
 	// Gather tasks: whole channel planes of boxes, about four per core.
