@@ -394,3 +394,63 @@ panelRowsNarrow3AVX512_row:
 panelRowsNarrow3AVX512_done:
 	VZEROUPPER
 	RET
+
+// func maskRangeAVX512(n int, dst *float32, grad *float32, y *float32, lo uint32, span uint32)
+// Requires: AVX, AVX512F
+TEXT ·maskRangeAVX512(SB), NOSPLIT, $0-40
+	MOVQ         n+0(FP), AX
+	MOVQ         dst+8(FP), CX
+	MOVQ         grad+16(FP), DX
+	MOVQ         y+24(FP), BX
+	VBROADCASTSS lo+32(FP), Z0
+	VBROADCASTSS span+36(FP), Z1
+
+maskRangeAVX512_loop:
+	CMPQ        AX, $0x10
+	JL          maskRangeAVX512_done
+	VMOVDQU32   (BX), Z2
+	VPSUBD      Z0, Z2, Z2
+	VPCMPUD     $0x01, Z1, Z2, K1
+	VMOVDQU32.Z (DX), K1, Z3
+	VMOVDQU32   Z3, (CX)
+	ADDQ        $0x00000040, BX
+	ADDQ        $0x00000040, DX
+	ADDQ        $0x00000040, CX
+	SUBQ        $0x10, AX
+	JMP         maskRangeAVX512_loop
+
+maskRangeAVX512_done:
+	VZEROUPPER
+	RET
+
+// func maskRangeAVX2(n int, dst *float32, grad *float32, y *float32, lo uint32, span uint32)
+// Requires: AVX, AVX2
+TEXT ·maskRangeAVX2(SB), NOSPLIT, $0-40
+	MOVQ         n+0(FP), AX
+	MOVQ         dst+8(FP), CX
+	MOVQ         grad+16(FP), DX
+	MOVQ         y+24(FP), BX
+	VBROADCASTSS lo+32(FP), Y0
+	VBROADCASTSS span+36(FP), Y1
+	VPCMPEQD     Y2, Y2, Y2
+	VPSLLD       $0x1f, Y2, Y2
+	VPXOR        Y2, Y1, Y1
+
+maskRangeAVX2_loop:
+	CMPQ     AX, $0x08
+	JL       maskRangeAVX2_done
+	VMOVDQU  (BX), Y3
+	VPSUBD   Y0, Y3, Y3
+	VPXOR    Y2, Y3, Y3
+	VPCMPGTD Y3, Y1, Y3
+	VPAND    (DX), Y3, Y4
+	VMOVDQU  Y4, (CX)
+	ADDQ     $0x00000020, BX
+	ADDQ     $0x00000020, DX
+	ADDQ     $0x00000020, CX
+	SUBQ     $0x08, AX
+	JMP      maskRangeAVX2_loop
+
+maskRangeAVX2_done:
+	VZEROUPPER
+	RET

@@ -35,3 +35,20 @@ func biasAddClampSIMD(x, r []float32, bias, lo, hi float32) int {
 	}
 	return 0
 }
+
+// maskRangeSIMD runs the vector part of MaskRange and returns how many
+// leading values it did (0 without AVX-512F or AVX2).
+func maskRangeSIMD(dst, g, y []float32, lo, span uint32) int {
+	n := len(dst)
+	switch {
+	case n >= 16 && cpu.X86.HasAVX512F:
+		n &^= 15
+		maskRangeAVX512(n, &dst[0], &g[0], &y[0], lo, span)
+		return n
+	case n >= 8 && cpu.X86.HasAVX2:
+		n &^= 7
+		maskRangeAVX2(n, &dst[0], &g[0], &y[0], lo, span)
+		return n
+	}
+	return 0
+}

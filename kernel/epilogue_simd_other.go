@@ -7,3 +7,6 @@ func biasClampSIMD(x []float32, bias, lo, hi float32) int { return 0 }
 
 // biasAddClampSIMD: no vector path off amd64.
 func biasAddClampSIMD(x, r []float32, bias, lo, hi float32) int { return 0 }
+
+// maskRangeSIMD: no vector path off amd64.
+func maskRangeSIMD(dst, g, y []float32, lo, span uint32) int { return 0 }

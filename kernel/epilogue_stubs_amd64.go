@@ -41,3 +41,13 @@ func panelRowsNarrowAVX512(rows int, dst *float32, base *float32, offs *int32, s
 //
 //go:noescape
 func panelRowsNarrow3AVX512(rows int, dst *float32, base *float32, offs *int32, segs *[3]uint64, width int, mask uint16)
+
+// maskRangeAVX512 sets dst[j] = grad[j] where bits(y[j])-lo < span (unsigned), else +0, for j < n rounded down to 16.
+//
+//go:noescape
+func maskRangeAVX512(n int, dst *float32, grad *float32, y *float32, lo uint32, span uint32)
+
+// maskRangeAVX2 sets dst[j] = grad[j] where bits(y[j])-lo < span (unsigned), else +0, for j < n rounded down to 8.
+//
+//go:noescape
+func maskRangeAVX2(n int, dst *float32, grad *float32, y *float32, lo uint32, span uint32)

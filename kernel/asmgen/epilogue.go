@@ -19,6 +19,8 @@ func genEpilogue(zmm, ymm []reg.VecPhysical) {
 	genPanelRows(true)
 	genPanelRowsNarrow()
 	genPanelRowsNarrow3()
+	genMaskRange("maskRangeAVX512", 16)
+	genMaskRange("maskRangeAVX2", 8)
 }
 
 // genPanelRows emits the row loop of Im2colPlan.Im2colPanelsPadded for
@@ -286,6 +288,71 @@ func genPanelRowsNarrow3() {
 	ADDQ(U8(4), offs)
 	DECQ(rows)
 	JMP(LabelRef(name + "_row"))
+	Label(name + "_done")
+	VZEROUPPER()
+	RET()
+}
+
+// genMaskRange emits dst[j] = g[j] where bits(y[j]) − lo < span (unsigned)
+// and +0 elsewhere, for the first n/width·width values: the gradient mask
+// of ReLU and Clip read from their output (see kernel.MaskRange). The
+// unsigned compare is a signed one after flipping the sign bits of both
+// sides (AVX2 has only signed integer compares); the AVX-512 loop uses
+// VPCMPUD and a zero-masked move.
+func genMaskRange(name string, width int) {
+	TEXT(name, NOSPLIT, "func(n int, dst, grad, y *float32, lo, span uint32)")
+	Doc(fmt.Sprintf("%s sets dst[j] = grad[j] where bits(y[j])-lo < span (unsigned), else +0, for j < n rounded down to %d.", name, width))
+	Pragma("noescape")
+	n := Load(Param("n"), GP64())
+	dst := Load(Param("dst"), GP64())
+	gp := Load(Param("grad"), GP64())
+	y := Load(Param("y"), GP64())
+	loM, err := Param("lo").Resolve()
+	check(err)
+	spanM, err := Param("span").Resolve()
+	check(err)
+	bytes := 4 * width
+	if width == 16 {
+		lo, span, v := reg.Z0, reg.Z1, reg.Z2
+		VBROADCASTSS(loM.Addr, lo)
+		VBROADCASTSS(spanM.Addr, span)
+		Label(name + "_loop")
+		CMPQ(n, Imm(uint64(width)))
+		JL(LabelRef(name + "_done"))
+		VMOVDQU32(Mem{Base: y}, v)
+		VPSUBD(lo, v, v)
+		VPCMPUD(Imm(1), span, v, reg.K1) // v < span, unsigned
+		VMOVDQU32_Z(Mem{Base: gp}, reg.K1, reg.Z3)
+		VMOVDQU32(reg.Z3, Mem{Base: dst})
+		ADDQ(U32(bytes), y)
+		ADDQ(U32(bytes), gp)
+		ADDQ(U32(bytes), dst)
+		SUBQ(Imm(uint64(width)), n)
+		JMP(LabelRef(name + "_loop"))
+	} else {
+		lo, span, sign, v, gv := reg.Y0, reg.Y1, reg.Y2, reg.Y3, reg.Y4
+		VBROADCASTSS(loM.Addr, lo)
+		VBROADCASTSS(spanM.Addr, span)
+		// sign = 0x80000000 in every lane: all ones shifted left by 31.
+		VPCMPEQD(sign, sign, sign)
+		VPSLLD(U8(31), sign, sign)
+		VPXOR(sign, span, span)
+		Label(name + "_loop")
+		CMPQ(n, Imm(uint64(width)))
+		JL(LabelRef(name + "_done"))
+		VMOVDQU(Mem{Base: y}, v)
+		VPSUBD(lo, v, v)
+		VPXOR(sign, v, v)
+		// span > v (signed, after the flips) iff v < span unsigned.
+		VPCMPGTD(v, span, v)
+		VPAND(Mem{Base: gp}, v, gv)
+		VMOVDQU(gv, Mem{Base: dst})
+		ADDQ(U32(bytes), y)
+		ADDQ(U32(bytes), gp)
+		ADDQ(U32(bytes), dst)
+		SUBQ(Imm(uint64(width)), n)
+		JMP(LabelRef(name + "_loop"))
+	}
 	Label(name + "_done")
 	VZEROUPPER()
 	RET()

@@ -1,0 +1,66 @@
+package kernel
+
+import (
+	"math"
+	"math/rand/v2"
+	"testing"
+
+	"golang.org/x/sys/cpu"
+)
+
+// maskWant is the gradient mask by its definition on float32 values: g
+// where l < y < h, +0 elsewhere (ReLU: d/dx max(0, x) = 1 for x > 0, 0
+// otherwise, the subgradient 0 at the kink by common practice; Clip: 1
+// strictly inside the bounds). NaN is inside no interval.
+func maskWant(g, y, l, h float32) float32 {
+	if y > l && y < h {
+		return g
+	}
+	return 0
+}
+
+// TestMaskRange checks MaskRange, its Go loop and (on a CPU with AVX2)
+// the AVX2 loop directly against maskWant for ReLU's and ReLU6's bounds
+// at every length up to a few vectors, including ±0, ±Inf, NaN and values
+// at the bounds.
+func TestMaskRange(t *testing.T) {
+	r := rand.New(rand.NewPCG(31, 32))
+	inf := float32(math.Inf(1))
+	special := []float32{0, float32(math.Copysign(0, -1)), 6, inf, -inf, float32(math.NaN()), 1e-45, 5.9999995, 6.0000005}
+	for _, b := range []struct{ l, h float32 }{{0, inf}, {0, 6}} {
+		lo := math.Float32bits(b.l) + 1
+		span := math.Float32bits(b.h) - math.Float32bits(b.l) - 1
+		for n := 0; n <= 80; n++ {
+			y, g := make([]float32, n), make([]float32, n)
+			for i := range y {
+				y[i] = float32(r.NormFloat64() * 4)
+				if r.IntN(4) == 0 {
+					y[i] = special[r.IntN(len(special))]
+				}
+				g[i] = float32(r.NormFloat64())
+			}
+			check := func(name string, got []float32) {
+				for i := range got {
+					want := maskWant(g[i], y[i], b.l, b.h)
+					if math.Float32bits(got[i]) != math.Float32bits(want) {
+						t.Fatalf("%s [%v, %v] n=%d: y=%v g=%v gave %v, want %v", name, b.l, b.h, n, y[i], g[i], got[i], want)
+					}
+				}
+			}
+			got := make([]float32, n)
+			MaskRange(got, g, y, lo, span)
+			check("MaskRange", got)
+			goLoop := make([]float32, n)
+			maskRangeGo(goLoop, g, y, lo, span)
+			check("Go loop", goLoop)
+			if cpu.X86.HasAVX2 && n >= 8 {
+				avx2 := append([]float32(nil), goLoop...)
+				maskRangeAVX2(n&^7, &avx2[0], &g[0], &y[0], lo, span)
+				check("AVX2", avx2)
+			}
+			inPlace := append([]float32(nil), g...)
+			MaskRange(inPlace, inPlace, y, lo, span)
+			check("in place", inPlace)
+		}
+	}
+}
