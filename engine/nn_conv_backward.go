@@ -82,7 +82,23 @@ func (op *convOp) backwardFor(in, out, gradOut []*tensor.Tensor, need []bool, me
 	if needX && !transposed && !s.depthwise() && op.gemm1 != nil && memo != nil {
 		wt = memo(1, len(w.F32)+1, func(f []float32) { transposeGroups(f, w.F32, op.group, s.mg, s.cg*g.kh*g.kw) })
 	}
-	if transposed {
+	// Small maps at batch 1 with constant weights: the transposed
+	// convolution on the row-panel path (nn_conv_rows.go), with the
+	// flipped filters packed once per graph; the plain flipped filters
+	// are then not kept as well.
+	var rowFlipped []float32
+	var tplan *kernel.Im2colPlan
+	rowsX := false
+	if needX && transposed && s.n == 1 && memo != nil && op.useRows(s) {
+		tkk := s.m * g.kh * g.kw
+		if p, err := op.tplans.plan(tg); err == nil && !op.useSlabs(tkk, tg.oh*tg.ow) {
+			tplan, rowsX = p, true
+			rowFlipped = op.rowFlippedWeights(w, s.c, tkk, func(f []float32) {
+				flipFilters(f, w.F32, op.group, s.mg, s.cg, g.kh*g.kw)
+			})
+		}
+	}
+	if transposed && !rowsX {
 		build := func(f []float32) { flipFilters(f, w.F32, op.group, s.mg, s.cg, g.kh*g.kw) }
 		if memo != nil {
 			flipped = memo(1, len(w.F32), build)
@@ -138,19 +154,6 @@ func (op *convOp) backwardFor(in, out, gradOut []*tensor.Tensor, need []bool, me
 					return nil, err
 				}
 				batchedX = true
-			}
-		}
-		// Small maps at batch 1 with constant weights: the transposed
-		// convolution on the row-panel path (nn_conv_rows.go), with the
-		// flipped filters packed once per graph.
-		var rowFlipped []float32
-		var tplan *kernel.Im2colPlan
-		rowsX := false
-		if needX && transposed && !batchedX && memo != nil && op.useRows(s) {
-			tkk := s.m * tg.kh * tg.kw
-			if p, err := op.tplans.plan(tg); err == nil && !op.useSlabs(tkk, tg.oh*tg.ow) {
-				tplan, rowsX = p, true
-				rowFlipped = op.rowFlippedWeights(w, flipped, s.c, tkk)
 			}
 		}
 		for n := 0; n < s.n; n++ {

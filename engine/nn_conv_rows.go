@@ -116,13 +116,16 @@ func (packedFlipped) Forward([]*tensor.Tensor) ([]*tensor.Tensor, error) {
 	return nil, fmt.Errorf("packedFlipped is a memo key, not an operator")
 }
 
-// rowFlippedWeights returns the flipped filters f (c×kk, the weights of
-// the transposed convolution that gives the input gradient) packed as
-// SgemmRowPanels' B, made once per graph and keyed by the weights w.
-func (op *convOp) rowFlippedWeights(w *tensor.Tensor, f []float32, c, kk int) []float32 {
+// rowFlippedWeights returns the flipped filters (c×kk, the weights of the
+// transposed convolution that gives the input gradient, written by flip
+// into a temporary) packed as SgemmRowPanels' B, made once per graph and
+// keyed by the weights w.
+func (op *convOp) rowFlippedWeights(w *tensor.Tensor, c, kk int, flip func([]float32)) []float32 {
 	_, nr := op.gemm1.Tile()
 	n := (c + nr - 1) / nr * nr * kk
 	return op.arena.derived(w, packedFlipped{op}, n, func(dst []float32) {
+		f := make([]float32, c*kk)
+		flip(f)
 		op.gemm1.PackColumnPanels(dst, f, c, kk, kk)
 	})
 }
