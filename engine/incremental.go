@@ -4,8 +4,6 @@ import (
 	"context"
 	"fmt"
 	"math"
-	"runtime"
-	"sync"
 
 	"heedmap/kernel"
 	"heedmap/onnx"
@@ -431,7 +429,7 @@ func (p *incPlan) unpadded(src *onnx.Node, inputs []string, gemm kernel.GEMM) (O
 	if !ok {
 		return nil, fmt.Errorf("no operator %s", src.OpType)
 	}
-	return b(clone, &Env{GEMM: gemm, Opset: p.opset()})
+	return b(clone, &Env{GEMM: gemm, Opset: p.opset(), team: p.team})
 }
 
 func (p *incPlan) opset() int64 {
@@ -961,7 +959,7 @@ func (inc *Incremental) runPatchOp(k int, gm incGeo, vals []*incVal, nb int) (*i
 			pq := gm.p * gm.q
 			cb := p.buf(c * nb * pq)
 			defer p.release(cb)
-			incParallel(nb, func(b int) {
+			p.parallel(nb, func(b int) {
 				inc.gather(v, vals[v], b, gm.oy[b]-g.pt, gm.ox[b]-g.pl, gm.p, gm.q, 0, (*cb)[b*pq:], nb*pq)
 			})
 			out.t, out.owned = st.convCols(p, *cb, nb, gm.p, gm.q), true
@@ -970,7 +968,7 @@ func (inc *Incremental) runPatchOp(k int, gm incGeo, vals []*incVal, nb int) (*i
 		xb := p.buf(nb * c * ih * iw)
 		temps = append(temps, *xb)
 		xt := tensor.FromFloat32(*xb, nb, c, ih, iw)
-		incParallel(nb, func(b int) {
+		p.parallel(nb, func(b int) {
 			inc.gather(v, vals[v], b, gm.oy[b]*g.sh-g.pt, gm.ox[b]*g.sw-g.pl, ih, iw, st.fill, xt.F32[b*c*ih*iw:(b+1)*c*ih*iw], ih*iw)
 		})
 		if st.patchOp != nil {
@@ -1036,7 +1034,7 @@ func (st *incStep) convPatch(p *incPlan, x *tensor.Tensor, c, ph, pw int) *tenso
 	if st.cg == 1 && st.group == c {
 		// Depthwise: too little reuse for a matrix product.
 		khw := g.kh * g.kw
-		incParallel(nb*st.m, func(i int) {
+		p.parallel(nb*st.m, func(i int) {
 			b, m := i/st.m, i%st.m
 			ch := m / mg
 			src := x.F32[(b*c+ch)*ih*iw : (b*c+ch+1)*ih*iw]
@@ -1070,7 +1068,7 @@ func (st *incStep) convPatch(p *incPlan, x *tensor.Tensor, c, ph, pw int) *tenso
 	col, tmp := *colb, *tmpb
 	for gi := 0; gi < st.group; gi++ {
 		// col[r, b·pq + o] = x[b, gi·cg + ch, oy·sh + ki·dh, ox·sw + kj·dw]
-		incParallel(kk, func(r int) {
+		p.parallel(kk, func(r int) {
 			ch, kidx := r/(g.kh*g.kw), r%(g.kh*g.kw)
 			ki, kj := kidx/g.kw, kidx%g.kw
 			dst := col[r*n : (r+1)*n]
@@ -1137,35 +1135,12 @@ func (st *incStep) scatter(tmp, y []float32, gi, mg, nb, pq int) {
 	}
 }
 
-// incParallel runs f(0..n-1) over the available cores.
-func incParallel(n int, f func(i int)) {
-	workers := min(runtime.GOMAXPROCS(0), n)
-	if workers <= 1 {
-		for i := 0; i < n; i++ {
-			f(i)
-		}
-		return
-	}
-	var wg sync.WaitGroup
-	var mu sync.Mutex
-	next := 0
-	for w := 0; w < workers; w++ {
-		wg.Add(1)
-		go func() {
-			defer wg.Done()
-			for {
-				mu.Lock()
-				i := next
-				next++
-				mu.Unlock()
-				if i >= n {
-					return
-				}
-				f(i)
-			}
-		}()
-	}
-	wg.Wait()
+// parallel runs f(0..n-1) on the plan's team.
+func (p *incPlan) parallel(n int, f func(i int)) {
+	p.team.run([]int{n}, func(_, i int) error {
+		f(i)
+		return nil
+	})
 }
 
 // propagate computes the geometry of every value for a batch of changed
