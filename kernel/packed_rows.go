@@ -64,9 +64,11 @@ func (g *Packed) PackColumnPanels(dst, w []float32, n, k, ldw int) {
 // columns, but as rows fill 12-row tiles and one 4-row edge tile (52 and
 // 196 rows computed); and the weights, packed once, are read as
 // contiguous panels. Measured on m512 k4608 n49 and m256 k2304 n196 (the
-// 7×7 and 14×14 ResNet layers, one core, interleaved runs): 133 → 155 and
-// 169 → 196 GFLOP/s median against SgemmPanels over the same product. It
-// runs on the calling goroutine; callers split n by panels.
+// 7×7 and 14×14 ResNet layers, one core, 60 alternating calls of each on
+// a loaded machine): 133 → 155 and 169 → 196 GFLOP/s median against
+// SgemmPanels over the same product; BenchmarkSgemmRowPanels repeats the
+// comparison (run both in one session). It runs on the calling
+// goroutine; callers split n by panels.
 func (g *Packed) SgemmRowPanels(m, n, k int, apanels, bpanels, c []float32, ldc int) {
 	cfg := g.conf()
 	mr, nr := cfg.mr, cfg.nr
