@@ -170,16 +170,15 @@ func (inc *Incremental) convPanels(k int, gm incGeo, vals []*incVal, nb int) (*i
 		cols += len(gr.wins) * gr.h * gr.w
 	}
 	ov := p.outValue(k)
-	os := p.shapes[ov]
-	oh, ow := os[2], os[3]
+	oh, ow := p.shapes[ov][2], p.shapes[ov][3]
 	kept := inc.base[ov].F32
 	m := st.m
 	kk := c * g.kh * g.kw
 	pq := gm.p * gm.q
 	workers := runtime.GOMAXPROCS(0)
 	// Slabs: about three per core, so a core slowed by other work on the
-	// machine takes fewer; at most 1024 columns, so a slab's panels stay
-	// in L2. A slab never spans two groups.
+	// machine takes fewer, and at most 1024 columns, as in the runtime's
+	// batched path (convOp.batchForward). A slab never spans two groups.
 	wd := min(1024, max(nr, (cols+3*workers-1)/(3*workers)))
 	var slabs []incSlab
 	for i, gr := range groups {
