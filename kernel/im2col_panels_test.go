@@ -1,6 +1,7 @@
 package kernel_test
 
 import (
+	"math"
 	"math/rand/v2"
 	"testing"
 
@@ -94,11 +95,16 @@ func TestIm2colPanelsConv(t *testing.T) {
 				// The padded-input lowering writes the same panels, on the
 				// vector path and on the pure-Go one.
 				ph, pw := plan.PaddedShape()
+				// Both start dirty, as a reused buffer does: the
+				// padding must be written, not assumed.
 				padded := make([]float32, tc.c*ph*pw)
+				phased := make([]float32, tc.c*ph*pw)
+				for k := range padded {
+					padded[k], phased[k] = float32(math.NaN()), float32(math.NaN())
+				}
 				if err := plan.Pad(padded, x, 0, tc.c); err != nil {
 					t.Fatal(err)
 				}
-				phased := make([]float32, tc.c*ph*pw)
 				if err := plan.PadPhased(phased, x, 0, tc.c); err != nil {
 					t.Fatal(err)
 				}
