@@ -6,14 +6,16 @@ import (
 	"testing"
 )
 
-// TestMaxPlane3x3MatchesGeneral checks the 3×3 fast path against the
-// general window loop (the path that also records indices, which the ONNX
-// MaxPool conformance tests check) bit for bit, over strides, asymmetric
-// and ceil-mode-style padding, images smaller than the window, ties,
-// signed zeros and NaN.
-func TestMaxPlane3x3MatchesGeneral(t *testing.T) {
-	r := rand.New(rand.NewPCG(11, 12))
-	for _, tc := range []struct{ ih, iw, s, pt, pl, pb, pr int }{
+// pool3x3Case is one geometry of the 3×3 max-pool fast-path tests:
+// strides, asymmetric and ceil-mode-style padding, images smaller than the
+// window.
+type pool3x3Case struct{ ih, iw, s, pt, pl, pb, pr int }
+
+// eachPool3x3Case calls f with each test geometry and an input full of
+// ties, signed zeros and NaN, which decide the kept value and where each
+// window's gradient goes.
+func eachPool3x3Case(r *rand.Rand, f func(tc pool3x3Case, g geom2, src []float32)) {
+	for _, tc := range []pool3x3Case{
 		{112, 112, 2, 1, 1, 1, 1}, {7, 9, 1, 0, 0, 0, 0}, {8, 8, 2, 0, 0, 1, 1},
 		{5, 6, 3, 2, 2, 2, 2}, {2, 2, 1, 1, 1, 1, 1}, {1, 4, 2, 2, 0, 2, 3}, {13, 11, 2, 1, 0, 2, 1},
 	} {
@@ -30,6 +32,15 @@ func TestMaxPlane3x3MatchesGeneral(t *testing.T) {
 				src[i] = float32(math.NaN())
 			}
 		}
+		f(tc, g, src)
+	}
+}
+
+// TestMaxPlane3x3MatchesGeneral checks the 3×3 fast path against the
+// general window loop (the path that also records indices, which the ONNX
+// MaxPool conformance tests check) bit for bit over eachPool3x3Case.
+func TestMaxPlane3x3MatchesGeneral(t *testing.T) {
+	eachPool3x3Case(rand.New(rand.NewPCG(11, 12)), func(tc pool3x3Case, g geom2, src []float32) {
 		want := make([]float32, g.oh*g.ow)
 		maxPlane(src, want, make([]int64, g.oh*g.ow), g, 0)
 		got := make([]float32, g.oh*g.ow)
@@ -39,5 +50,5 @@ func TestMaxPlane3x3MatchesGeneral(t *testing.T) {
 				t.Fatalf("%+v: output %d = %v, general loop %v", tc, i, got[i], want[i])
 			}
 		}
-	}
+	})
 }
