@@ -1,6 +1,7 @@
 package kernel_test
 
 import (
+	"fmt"
 	"math"
 	"math/rand/v2"
 	"testing"
@@ -63,18 +64,8 @@ func TestIm2colPanelsConv(t *testing.T) {
 				if err := plan.Im2colPanels(panels, x, tc.c, j0, j1, nr); err != nil {
 					t.Fatal(err)
 				}
-				for q := 0; q < np; q++ {
-					for row := 0; row < rows; row++ {
-						for j := 0; j < nr; j++ {
-							var want float32
-							if col := j0 + q*nr + j; col < j1 {
-								want = full[row*cols+col]
-							}
-							if got := panels[(q*rows+row)*nr+j]; got != want {
-								t.Fatalf("%v case %d slab [%d,%d): panel %d entry (%d,%d) = %v, want %v", isa, i, j0, j1, q, row, j, got, want)
-							}
-						}
-					}
+				if msg := panelsMismatch(panels, full, rows, cols, j0, j1, nr, np); msg != "" {
+					t.Fatalf("%v case %d slab [%d,%d): %s", isa, i, j0, j1, msg)
 				}
 				// A plan made for one channel serves any channel count.
 				g1 := g
@@ -272,4 +263,24 @@ func TestIm2colPanelsPaddedBatch(t *testing.T) {
 			j0 = j1
 		}
 	}
+}
+
+// panelsMismatch describes the first entry of np panels of rows × nr
+// values that is not the column matrix full (cols columns) at columns j0 +
+// q·nr + j, or 0 past j1; "" when every entry matches.
+func panelsMismatch(panels, full []float32, rows, cols, j0, j1, nr, np int) string {
+	for q := 0; q < np; q++ {
+		for row := 0; row < rows; row++ {
+			for j := 0; j < nr; j++ {
+				var want float32
+				if col := j0 + q*nr + j; col < j1 {
+					want = full[row*cols+col]
+				}
+				if got := panels[(q*rows+row)*nr+j]; got != want {
+					return fmt.Sprintf("panel %d entry (%d,%d) = %v, want %v", q, row, j, got, want)
+				}
+			}
+		}
+	}
+	return ""
 }
