@@ -2,10 +2,7 @@ package engine
 
 import (
 	"context"
-	"encoding/json"
 	"math"
-	"os"
-	"path/filepath"
 	"testing"
 
 	"heedmap/tensor"
@@ -21,14 +18,6 @@ import (
 func TestArenaBackwardReuse(t *testing.T) {
 	n := loadCompactNet(t, "resnet18")
 	meta, x, g := n.meta, n.x, n.g
-	var cls struct{ Class int }
-	b, err := os.ReadFile(filepath.Join(n.dir, "meta.json"))
-	if err != nil {
-		t.Fatal(err)
-	}
-	if err := json.Unmarshal(b, &cls); err != nil {
-		t.Fatal(err)
-	}
 	ctx := context.Background()
 	in := map[string]*tensor.Tensor{meta.Input: x}
 	step := func(g *Graph) *tensor.Tensor {
@@ -39,7 +28,7 @@ func TestArenaBackwardReuse(t *testing.T) {
 		y, _ := p.Value(meta.Output)
 		seed := tensor.New(y.Shape...)
 		classes := y.Shape[len(y.Shape)-1]
-		for i := cls.Class; i < len(seed.F32); i += classes {
+		for i := meta.Class; i < len(seed.F32); i += classes {
 			seed.F32[i] = 1
 		}
 		grads, err := p.Backward(ctx, map[string]*tensor.Tensor{meta.Output: seed}, []string{meta.Input})

@@ -16,7 +16,10 @@ import (
 // input and the compiled graph.
 type compactNet struct {
 	dir  string
-	meta struct{ Input, Output string }
+	meta struct {
+		Input, Output string
+		Class         int // the logit the reference gradients explain
+	}
 	x    *tensor.Tensor
 	g    *Graph
 }

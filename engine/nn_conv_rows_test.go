@@ -2,9 +2,7 @@ package engine
 
 import (
 	"context"
-	"encoding/json"
 	"math"
-	"os"
 	"path/filepath"
 	"testing"
 
@@ -32,14 +30,6 @@ func TestRowPathMatchesPyTorch(t *testing.T) {
 			n := loadCompactNet(t, name)
 			want := n.tensor(t, "logits.pb")
 			gradWant := n.tensor(t, "grad_input.pb")
-			var meta struct{ Class int }
-			b, err := os.ReadFile(filepath.Join(n.dir, "meta.json"))
-			if err != nil {
-				t.Fatal(err)
-			}
-			if err := json.Unmarshal(b, &meta); err != nil {
-				t.Fatal(err)
-			}
 			rows := 0
 			for _, nd := range n.g.nodes {
 				if c, ok := nd.op.(*convOp); ok && c.useRows(convShape{}) {
@@ -75,7 +65,7 @@ func TestRowPathMatchesPyTorch(t *testing.T) {
 				}
 				logits, _ := p.Value(n.meta.Output)
 				seed := tensor.New(logits.Shape...)
-				seed.F32[meta.Class] = 1
+				seed.F32[n.meta.Class] = 1
 				grads, err := p.Backward(context.Background(), map[string]*tensor.Tensor{n.meta.Output: seed}, []string{n.meta.Input})
 				if err != nil {
 					t.Fatal(err)
