@@ -126,7 +126,6 @@ type Packed struct {
 type workspace struct {
 	a, b []float32 // packed A block, packed B panel
 	tile []float32 // mr×nr scratch for edge tiles
-	wide []float32 // B panels SgemmWide copies on paths without tap kernels
 }
 
 // New returns a packed GEMM configured by opts. It fails when the requested

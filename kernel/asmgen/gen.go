@@ -2,8 +2,7 @@
 // assembler generator, one kernel set per run (-set gemm: the SGEMM
 // micro-kernels in ../kernel_amd64.s; -set dw: depthwise loops in
 // ../depthwise_amd64.s; -set ep: convolution epilogues in
-// ../epilogue_amd64.s; -set wide: tap-offset convolution kernels in
-// ../wide_amd64.s; each with its Go declarations). It is its own module
+// ../epilogue_amd64.s; each with its Go declarations). It is its own module
 // so that the heedmap build never depends on avo; regenerate everything
 // with `go generate ./kernel` (the commands are in ../generate.go).
 //
@@ -57,7 +56,7 @@ func main() {
 		reg.Y0, reg.Y1, reg.Y2, reg.Y3, reg.Y4, reg.Y5, reg.Y6, reg.Y7,
 		reg.Y8, reg.Y9, reg.Y10, reg.Y11, reg.Y12, reg.Y13, reg.Y14, reg.Y15,
 	}
-	set := flag.String("set", "gemm", "which kernels to emit: gemm (GEMM micro-kernels and the FMA peak loop), dw (depthwise), ep (epilogues), wide (tap-offset convolution kernels)")
+	set := flag.String("set", "gemm", "which kernels to emit: gemm (GEMM micro-kernels and the FMA peak loop), dw (depthwise), ep (epilogues)")
 	flag.Parse()
 	switch *set {
 	case "gemm":
@@ -66,8 +65,6 @@ func main() {
 		genDepthwise(zmm, ymm)
 	case "ep":
 		genEpilogue(zmm, ymm)
-	case "wide":
-		genWide(zmm)
 	default:
 		fmt.Fprintf(os.Stderr, "asmgen: unknown -set %q\n", *set)
 		os.Exit(2)
