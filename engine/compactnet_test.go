@@ -20,8 +20,8 @@ type compactNet struct {
 		Input, Output string
 		Class         int // the logit the reference gradients explain
 	}
-	x    *tensor.Tensor
-	g    *Graph
+	x *tensor.Tensor
+	g *Graph
 }
 
 // loadCompactNet loads testdata/nets/<name>; the test is skipped when the
