@@ -246,18 +246,8 @@ func TestIm2colPanelsPaddedBatch(t *testing.T) {
 				if err := pl.Im2colPanelsPadded(got, x, images, g.C, j0, j1, nr); err != nil {
 					t.Fatal(err)
 				}
-				for q := 0; q < np; q++ {
-					for row := 0; row < rows; row++ {
-						for j := 0; j < nr; j++ {
-							var want float32
-							if col := j0 + q*nr + j; col < j1 {
-								want = full[row*cols+col]
-							}
-							if v := got[(q*rows+row)*nr+j]; v != want {
-								t.Fatalf("%+v slab [%d,%d): panel %d entry (%d,%d) = %v, want %v", g, j0, j1, q, row, j, v, want)
-							}
-						}
-					}
+				if msg := panelsMismatch(got, full, rows, cols, j0, j1, nr, np); msg != "" {
+					t.Fatalf("%+v slab [%d,%d): %s", g, j0, j1, msg)
 				}
 			}
 			j0 = j1
