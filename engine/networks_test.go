@@ -45,7 +45,7 @@ type netMeta struct {
 
 // float32Spread is export_nets.py's float32_spread: one entry per PyTorch
 // float32 evaluation of the exported graph, measured against the float64
-// evaluation with the same definitions as maxRel and compareGrad.
+// evaluation with the same definitions as engine.MaxRel and engine.CompareGrad.
 type float32Spread struct {
 	Reference string        `json:"reference"`
 	Runs      []float32Eval `json:"runs"`
@@ -203,12 +203,12 @@ func checkNetwork(t *testing.T, dir string) {
 		checkValueF64(t, "logits", logits.F32, want.F32, load("logits_f64.pb").F32, meta.Spread, false, func(e float32Eval) float64 { return e.LogitsMaxRel })
 		checkValueF64(t, "layer "+meta.Layer+" value", act.F32, wantAct.F32, load("layer_f64.pb").F32, meta.Spread, true, func(e float32Eval) float64 { return e.LayerMaxRel })
 	} else {
-		if e := maxRel(logits.F32, want.F32); e > logitTol {
+		if e := engine.MaxRel(logits.F32, want.F32); e > logitTol {
 			t.Errorf("logits: max|a-b|/max|b| = %.2e > %.0e vs PyTorch", e, logitTol)
 		} else {
 			t.Logf("logits: max|a-b|/max|b| = %.2e", e)
 		}
-		if e := maxRel(act.F32, wantAct.F32); e > logitTol {
+		if e := engine.MaxRel(act.F32, wantAct.F32); e > logitTol {
 			t.Errorf("layer %q value: max|a-b|/max|b| = %.2e vs PyTorch", meta.Layer, e)
 		}
 	}
@@ -238,7 +238,7 @@ func checkNetwork(t *testing.T, dir string) {
 			checkGradF64(t, c.name, got.F32, want.F32, load(base+"_f64.pb").F32, meta.Spread, pick)
 			continue
 		}
-		cos, rel := compareGrad(got.F32, want.F32)
+		cos, rel := engine.CompareGrad(got.F32, want.F32)
 		if cos < minCos || rel > maxRelL2 || math.IsNaN(cos) || math.IsNaN(rel) {
 			t.Errorf("gradient w.r.t. %q: cosine %.6f (need ≥ %v), relative L2 %.2e (need ≤ %.0e) vs PyTorch", c.name, cos, minCos, rel, maxRelL2)
 		} else {
@@ -297,7 +297,7 @@ func implementationRuns(s *float32Spread) []float32Eval {
 // by 1.4e-4 to 2.1e-4 in every PyTorch float32 run.
 func checkValueF64(t *testing.T, what string, got, unfolded, truth []float32, spread *float32Spread, widen bool, pick func(float32Eval) float64) {
 	t.Helper()
-	ours := maxRel(got, truth)
+	ours := engine.MaxRel(got, truth)
 	need := logitTol
 	var torch []string
 	for _, r := range spread.Runs {
@@ -307,7 +307,7 @@ func checkValueF64(t *testing.T, what string, got, unfolded, truth []float32, sp
 		}
 	}
 	msg := fmt.Sprintf("%s: max|a-b|/max|b| vs float64 graph = %.2e (need ≤ %.2e; PyTorch float32: %s; ours vs PyTorch float32 unfolded: %.2e)",
-		what, ours, need, strings.Join(torch, ", "), maxRel(got, unfolded))
+		what, ours, need, strings.Join(torch, ", "), engine.MaxRel(got, unfolded))
 	if !(ours <= need) {
 		t.Errorf("%s", msg)
 	} else {
@@ -320,7 +320,7 @@ func checkValueF64(t *testing.T, what string, got, unfolded, truth []float32, sp
 // worst implementation run (see above).
 func checkGradF64(t *testing.T, name string, got, unfolded, truth []float32, spread *float32Spread, pick func(float32Eval) gradError) {
 	t.Helper()
-	cos, rel := compareGrad(got, truth)
+	cos, rel := engine.CompareGrad(got, truth)
 	needCos, needRel := minCos, maxRelL2
 	var torch []string
 	for _, r := range spread.Runs {
@@ -331,7 +331,7 @@ func checkGradF64(t *testing.T, name string, got, unfolded, truth []float32, spr
 			needRel = math.Max(needRel, e.RelL2)
 		}
 	}
-	ucos, urel := compareGrad(got, unfolded)
+	ucos, urel := engine.CompareGrad(got, unfolded)
 	msg := fmt.Sprintf("gradient w.r.t. %q vs float64 graph: cosine %.7f, relative L2 %.2e (need ≥ %.7f, ≤ %.2e; PyTorch float32 cosine/relative L2: %s; ours vs PyTorch float32 unfolded: %.7f/%.2e)",
 		name, cos, rel, needCos, needRel, strings.Join(torch, ", "), ucos, urel)
 	if !(cos >= needCos && rel <= needRel) { // false for NaN too
@@ -435,7 +435,7 @@ func checkSameBranch(t *testing.T, dir string, pass *engine.Pass, branches []bra
 			t.Errorf("%s gradient %v, same-branch float64 %v", c.what, c.got, want)
 			continue
 		}
-		cos, rel := compareGrad(c.got.F32, want.F32)
+		cos, rel := engine.CompareGrad(c.got.F32, want.F32)
 		msg := fmt.Sprintf("%s gradient vs float64 on our branches: cosine %.7f, relative L2 %.2e", c.what, cos, rel)
 		if !(cos >= minCos && rel <= maxRelL2) {
 			t.Errorf("%s (need ≥ %v, ≤ %.0e)", msg, minCos, maxRelL2)
@@ -448,33 +448,4 @@ func checkSameBranch(t *testing.T, dir string, pass *engine.Pass, branches []bra
 func fileExists(p string) bool {
 	_, err := os.Stat(p)
 	return err == nil
-}
-
-// maxRel is max|a−b| / max|b|.
-func maxRel(a, b []float32) float64 {
-	var num, den float64
-	for i := range b {
-		num = math.Max(num, math.Abs(float64(a[i])-float64(b[i])))
-		den = math.Max(den, math.Abs(float64(b[i])))
-	}
-	if den == 0 {
-		return num
-	}
-	return num / den
-}
-
-// compareGrad returns the cosine similarity and ‖a−b‖₂/‖b‖₂.
-func compareGrad(a, b []float32) (cos, rel float64) {
-	var ab, aa, bb, dd float64
-	for i := range b {
-		x, y := float64(a[i]), float64(b[i])
-		ab += x * y
-		aa += x * x
-		bb += y * y
-		dd += (x - y) * (x - y)
-	}
-	if bb == 0 {
-		return math.NaN(), math.NaN() // a zero golden gradient would make the check vacuous
-	}
-	return ab / math.Sqrt(aa*bb), math.Sqrt(dd / bb)
 }

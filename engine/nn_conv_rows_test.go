@@ -2,7 +2,6 @@ package engine
 
 import (
 	"context"
-	"math"
 	"path/filepath"
 	"testing"
 
@@ -73,42 +72,18 @@ func TestRowPathMatchesPyTorch(t *testing.T) {
 				p.Release()
 				// The networks tests' bounds: cosine ≥ 0.9999, relative
 				// L2 ≤ 1e-3 (networks_test.go).
-				if cos, rel := cosRelL2(grads[n.meta.Input].F32, gradWant.F32[i*per:(i+1)*per]); cos < 0.9999 || rel > 1e-3 {
+				if cos, rel := CompareGrad(grads[n.meta.Input].F32, gradWant.F32[i*per:(i+1)*per]); cos < 0.9999 || rel > 1e-3 {
 					t.Errorf("image %d: input gradient cosine %.6f, relative L2 %.2e against PyTorch", i, cos, rel)
 				}
 				ref := want.F32[i*classes : (i+1)*classes]
-				if d := relMax(got[0].F32, ref); d > 1e-4 {
+				if d := MaxRel(got[0].F32, ref); d > 1e-4 {
 					t.Errorf("image %d: logits differ from PyTorch by %.2e (relative)", i, d)
 				}
-				if d := relMax(got[0].F32, got[1].F32); d > 1e-5 {
+				if d := MaxRel(got[0].F32, got[1].F32); d > 1e-5 {
 					t.Errorf("image %d: logits differ from the plain im2col path by %.2e (relative)", i, d)
 				}
 			}
 			t.Logf("%d convolutions may take the row-panel path", rows)
 		})
 	}
-}
-
-// relMax is max|a−b| / max|b|.
-func relMax(a, b []float32) float64 {
-	var num, den float64
-	for i := range b {
-		num = math.Max(num, math.Abs(float64(a[i])-float64(b[i])))
-		den = math.Max(den, math.Abs(float64(b[i])))
-	}
-	return num / den
-}
-
-// cosRelL2 is the cosine similarity of a and b and the relative L2 error
-// ‖a−b‖/‖b‖, accumulated in float64.
-func cosRelL2(a, b []float32) (cos, rel float64) {
-	var ab, aa, bb, dd float64
-	for i := range b {
-		x, y := float64(a[i]), float64(b[i])
-		ab += x * y
-		aa += x * x
-		bb += y * y
-		dd += (x - y) * (x - y)
-	}
-	return ab / math.Sqrt(aa*bb), math.Sqrt(dd / bb)
 }
