@@ -197,48 +197,24 @@ func genPanelRowsNarrow() {
 	name := "panelRowsNarrowAVX512"
 	TEXT(name, NOSPLIT, "func(rows int, dst, base *float32, offs *int32, segs *uint64, nseg int, width int, mask uint16)")
 	Doc(name + " writes rows panel rows of width <= 16 floats to dst (rows width apart, stored under mask = 1<<width - 1) from the padded input at base: row r takes segments segs[0:nseg] relative to base+offs[r].")
-	Pragma("noescape")
-	rows := Load(Param("rows"), GP64())
-	dst := Load(Param("dst"), GP64())
-	base := Load(Param("base"), GP64())
-	offs := Load(Param("offs"), GP64())
-	segs := Load(Param("segs"), GP64())
-	nseg := Load(Param("nseg"), GP64())
-	width := Load(Param("width"), GP64())
-	// K3 holds the store mask; width becomes the row stride in bytes.
-	m := Load(Param("mask"), GP32())
-	KMOVW(m, reg.K3)
-	SHLQ(U8(2), width)
+	p := narrowParams(true)
 	rowBase, sp, sn, w, shift := GP64(), GP64(), GP64(), GP64(), GP64()
-	lo := reg.Z0
-	Label(name + "_row")
-	TESTQ(rows, rows)
-	JZ(LabelRef(name + "_done"))
-	MOVLQSX(Mem{Base: offs}, rowBase)
-	LEAQ(Mem{Base: base, Index: rowBase, Scale: 4}, rowBase)
-	VPXORD(lo, lo, lo)
-	MOVQ(segs, sp)
-	MOVQ(nseg, sn)
-	Label(name + "_seg")
-	TESTQ(sn, sn)
-	JZ(LabelRef(name + "_store"))
-	MOVQ(Mem{Base: sp}, w)
-	MOVLQSX(w.As32(), shift)
-	SHRQ(U8(32), w)
-	KMOVW(w.As32(), reg.K1)
-	VMOVUPS(Mem{Base: rowBase, Index: shift, Scale: 4}, reg.K1, lo)
-	ADDQ(U8(8), sp)
-	DECQ(sn)
-	JMP(LabelRef(name + "_seg"))
-	Label(name + "_store")
-	VMOVUPS(lo, reg.K3, Mem{Base: dst})
-	ADDQ(width, dst)
-	ADDQ(U8(4), offs)
-	DECQ(rows)
-	JMP(LabelRef(name + "_row"))
-	Label(name + "_done")
-	VZEROUPPER()
-	RET()
+	narrowRows(name, p, rowBase, func(rowBase reg.GPVirtual, lo reg.VecPhysical) {
+		MOVQ(p.segs, sp)
+		MOVQ(p.nseg, sn)
+		Label(name + "_seg")
+		TESTQ(sn, sn)
+		JZ(LabelRef(name + "_store"))
+		MOVQ(Mem{Base: sp}, w)
+		MOVLQSX(w.As32(), shift)
+		SHRQ(U8(32), w)
+		KMOVW(w.As32(), reg.K1)
+		VMOVUPS(Mem{Base: rowBase, Index: shift, Scale: 4}, reg.K1, lo)
+		ADDQ(U8(8), sp)
+		DECQ(sn)
+		JMP(LabelRef(name + "_seg"))
+		Label(name + "_store")
+	})
 }
 
 // genPanelRowsNarrow3 is genPanelRowsNarrow for panels of at most three
@@ -252,41 +228,66 @@ func genPanelRowsNarrow3() {
 	name := "panelRowsNarrow3AVX512"
 	TEXT(name, NOSPLIT, "func(rows int, dst, base *float32, offs *int32, segs *[3]uint64, width int, mask uint16)")
 	Doc(name + " is panelRowsNarrowAVX512 for exactly three segments segs (unused ones with a zero lane mask).")
-	Pragma("noescape")
-	rows := Load(Param("rows"), GP64())
-	dst := Load(Param("dst"), GP64())
-	base := Load(Param("base"), GP64())
-	offs := Load(Param("offs"), GP64())
-	segs := Load(Param("segs"), GP64())
-	width := Load(Param("width"), GP64())
-	m := Load(Param("mask"), GP32())
-	KMOVW(m, reg.K3)
-	SHLQ(U8(2), width)
+	p := narrowParams(false)
 	var shifts [3]reg.GPVirtual
 	masks := []reg.OpmaskPhysical{reg.K1, reg.K2, reg.K4}
 	for i := range shifts {
 		w := GP64()
-		MOVQ(Mem{Base: segs, Disp: 8 * i}, w)
+		MOVQ(Mem{Base: p.segs, Disp: 8 * i}, w)
 		shifts[i] = GP64()
 		MOVLQSX(w.As32(), shifts[i])
 		SHRQ(U8(32), w)
 		KMOVW(w.As32(), masks[i])
 	}
-	rowBase := GP64()
+	narrowRows(name, p, GP64(), func(rowBase reg.GPVirtual, lo reg.VecPhysical) {
+		for i := range shifts {
+			VMOVUPS(Mem{Base: rowBase, Index: shifts[i], Scale: 4}, masks[i], lo)
+		}
+	})
+}
+
+// narrowArgs are the narrow panel-row loops' parameters in registers.
+type narrowArgs struct{ rows, dst, base, offs, segs, nseg, width reg.Register }
+
+// narrowParams loads the narrow loops' parameters (nseg only for the
+// general loop); the store mask goes to K3 and width becomes the row
+// stride in bytes.
+func narrowParams(nseg bool) narrowArgs {
+	Pragma("noescape")
+	var p narrowArgs
+	p.rows = Load(Param("rows"), GP64())
+	p.dst = Load(Param("dst"), GP64())
+	p.base = Load(Param("base"), GP64())
+	p.offs = Load(Param("offs"), GP64())
+	p.segs = Load(Param("segs"), GP64())
+	if nseg {
+		p.nseg = Load(Param("nseg"), GP64())
+	}
+	p.width = Load(Param("width"), GP64())
+	m := Load(Param("mask"), GP32())
+	KMOVW(m, reg.K3)
+	SHLQ(U8(2), p.width)
+	return p
+}
+
+// narrowRows emits the row loop of both narrow loops: rowBase = base +
+// 4·offs[r], the row register cleared, assemble(rowBase, row) to load the
+// row's segments, then the store under K3 and the step to the next row.
+// The caller allocates rowBase, so each loop keeps its register order and
+// its generated code.
+func narrowRows(name string, p narrowArgs, rowBase reg.GPVirtual, assemble func(rowBase reg.GPVirtual, lo reg.VecPhysical)) {
 	lo := reg.Z0
 	Label(name + "_row")
-	TESTQ(rows, rows)
+	TESTQ(p.rows, p.rows)
 	JZ(LabelRef(name + "_done"))
-	MOVLQSX(Mem{Base: offs}, rowBase)
-	LEAQ(Mem{Base: base, Index: rowBase, Scale: 4}, rowBase)
+	MOVLQSX(Mem{Base: p.offs}, rowBase)
+	LEAQ(Mem{Base: p.base, Index: rowBase, Scale: 4}, rowBase)
 	VPXORD(lo, lo, lo)
-	for i := range shifts {
-		VMOVUPS(Mem{Base: rowBase, Index: shifts[i], Scale: 4}, masks[i], lo)
-	}
-	VMOVUPS(lo, reg.K3, Mem{Base: dst})
-	ADDQ(width, dst)
-	ADDQ(U8(4), offs)
-	DECQ(rows)
+	assemble(rowBase, lo)
+	VMOVUPS(lo, reg.K3, Mem{Base: p.dst})
+	ADDQ(p.width, p.dst)
+	ADDQ(U8(4), p.offs)
+	DECQ(p.rows)
 	JMP(LabelRef(name + "_row"))
 	Label(name + "_done")
 	VZEROUPPER()
