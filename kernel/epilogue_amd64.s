@@ -454,3 +454,57 @@ maskRangeAVX2_loop:
 maskRangeAVX2_done:
 	VZEROUPPER
 	RET
+
+// func max9AVX512(n int, dst *float32, src *[9]*float32)
+// Requires: AVX, AVX512F
+TEXT ·max9AVX512(SB), NOSPLIT, $0-24
+	MOVQ n+0(FP), AX
+	MOVQ dst+8(FP), CX
+	MOVQ src+16(FP), DX
+	MOVQ (DX), BX
+	MOVQ 8(DX), SI
+	MOVQ 16(DX), DI
+	MOVQ 24(DX), R8
+	MOVQ 32(DX), R9
+	MOVQ 40(DX), R10
+	MOVQ 48(DX), R11
+	MOVQ 56(DX), R12
+	MOVQ 64(DX), DX
+
+max9AVX512_loop:
+	CMPQ    AX, $0x10
+	JL      max9AVX512_done
+	VMOVUPS (BX), Z0
+	VMOVUPS (SI), Z1
+	VMAXPS  Z0, Z1, Z0
+	VMOVUPS (DI), Z1
+	VMAXPS  Z0, Z1, Z0
+	VMOVUPS (R8), Z1
+	VMAXPS  Z0, Z1, Z0
+	VMOVUPS (R9), Z1
+	VMAXPS  Z0, Z1, Z0
+	VMOVUPS (R10), Z1
+	VMAXPS  Z0, Z1, Z0
+	VMOVUPS (R11), Z1
+	VMAXPS  Z0, Z1, Z0
+	VMOVUPS (R12), Z1
+	VMAXPS  Z0, Z1, Z0
+	VMOVUPS (DX), Z1
+	VMAXPS  Z0, Z1, Z0
+	VMOVUPS Z0, (CX)
+	ADDQ    $0x40, BX
+	ADDQ    $0x40, SI
+	ADDQ    $0x40, DI
+	ADDQ    $0x40, R8
+	ADDQ    $0x40, R9
+	ADDQ    $0x40, R10
+	ADDQ    $0x40, R11
+	ADDQ    $0x40, R12
+	ADDQ    $0x40, DX
+	ADDQ    $0x40, CX
+	SUBQ    $0x10, AX
+	JMP     max9AVX512_loop
+
+max9AVX512_done:
+	VZEROUPPER
+	RET

@@ -52,3 +52,18 @@ func maskRangeSIMD(dst, g, y []float32, lo, span uint32) int {
 	}
 	return 0
 }
+
+// max9SIMD runs the vector part of Max9 and returns how many leading
+// outputs it did (0 without AVX-512F).
+func max9SIMD(dst []float32, s *[9][]float32) int {
+	n := len(dst) &^ 15
+	if n == 0 || !cpu.X86.HasAVX512F {
+		return 0
+	}
+	var p [9]*float32
+	for i := range p {
+		p[i] = &s[i][0]
+	}
+	max9AVX512(n, &dst[0], &p)
+	return n
+}

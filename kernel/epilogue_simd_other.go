@@ -10,3 +10,6 @@ func biasAddClampSIMD(x, r []float32, bias, lo, hi float32) int { return 0 }
 
 // maskRangeSIMD: no vector path off amd64.
 func maskRangeSIMD(dst, g, y []float32, lo, span uint32) int { return 0 }
+
+// max9SIMD: no vector path off amd64.
+func max9SIMD(dst []float32, s *[9][]float32) int { return 0 }

@@ -51,3 +51,8 @@ func maskRangeAVX512(n int, dst *float32, grad *float32, y *float32, lo uint32, 
 //
 //go:noescape
 func maskRangeAVX2(n int, dst *float32, grad *float32, y *float32, lo uint32, span uint32)
+
+// max9AVX512 sets dst[j] to the ordered maximum of src[0][j] … src[8][j] (a value replaces the kept one only when greater) for j < n rounded down to 16.
+//
+//go:noescape
+func max9AVX512(n int, dst *float32, src *[9]*float32)

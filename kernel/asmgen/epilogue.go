@@ -8,8 +8,9 @@ import (
 	"github.com/mmcloughlin/avo/reg"
 )
 
-// genEpilogue emits the vector epilogues applied to convolution outputs
-// and the im2col panel copy that feeds them.
+// genEpilogue emits the vector epilogues applied to convolution outputs,
+// the im2col panel copy that feeds them, the ReLU/Clip gradient mask and
+// the ordered maximum of max-pooling.
 func genEpilogue(zmm, ymm []reg.VecPhysical) {
 	genBiasClamp("biasClampAVX512", zmm, 16, false)
 	genBiasClamp("biasClampAVX2", ymm, 8, false)
@@ -21,6 +22,46 @@ func genEpilogue(zmm, ymm []reg.VecPhysical) {
 	genPanelRowsNarrow3()
 	genMaskRange("maskRangeAVX512", 16)
 	genMaskRange("maskRangeAVX2", 8)
+	genMax9()
+}
+
+// genMax9 emits max9AVX512: dst[j] = the first of the nine sources' values
+// that no later one exceeds, scanning src[0][j] … src[8][j] (best = v when
+// v > best), 16 lanes at a time for n rounded down to 16. VMAXPS returns
+// its second source when the first is not greater (equal values, either
+// one NaN), which is exactly that step with best as the second source.
+func genMax9() {
+	name := "max9AVX512"
+	TEXT(name, NOSPLIT, "func(n int, dst *float32, src *[9]*float32)")
+	Doc(name + " sets dst[j] to the ordered maximum of src[0][j] … src[8][j] (a value replaces the kept one only when greater) for j < n rounded down to 16.")
+	Pragma("noescape")
+	n := Load(Param("n"), GP64())
+	dst := Load(Param("dst"), GP64())
+	sp := Load(Param("src"), GP64())
+	var p [9]reg.GPVirtual
+	for i := range p {
+		p[i] = GP64()
+		MOVQ(Mem{Base: sp, Disp: 8 * i}, p[i])
+	}
+	best, v := reg.Z0, reg.Z1
+	Label(name + "_loop")
+	CMPQ(n, Imm(16))
+	JL(LabelRef(name + "_done"))
+	VMOVUPS(Mem{Base: p[0]}, best)
+	for i := 1; i < 9; i++ {
+		VMOVUPS(Mem{Base: p[i]}, v)
+		VMAXPS(best, v, best)
+	}
+	VMOVUPS(best, Mem{Base: dst})
+	for i := range p {
+		ADDQ(U8(64), p[i])
+	}
+	ADDQ(U8(64), dst)
+	SUBQ(U8(16), n)
+	JMP(LabelRef(name + "_loop"))
+	Label(name + "_done")
+	VZEROUPPER()
+	RET()
 }
 
 // genPanelRows emits the row loop of Im2colPlan.Im2colPanelsPadded for
