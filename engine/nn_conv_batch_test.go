@@ -5,7 +5,6 @@ import (
 	"math/rand"
 	"testing"
 
-	"heedmap/kernel"
 	"heedmap/tensor"
 )
 
@@ -31,15 +30,7 @@ func TestConvBatchPathMatchesReference(t *testing.T) {
 		node := nnNode("c", "Conv", []string{"x", "w", "b"}, []string{"y"},
 			nnInts("pads", int64(tc.pad), int64(tc.pad), int64(tc.pad), int64(tc.pad)),
 			nnInts("strides", int64(tc.stride), int64(tc.stride)))
-		fast, err := buildConv(node, &Env{GEMM: defaultGEMM(), Opset: 13, arena: newArena()})
-		if err != nil {
-			t.Fatal(err)
-		}
-		ref, err := buildConv(node, &Env{GEMM: kernel.Naive{}, Opset: 13})
-		if err != nil {
-			t.Fatal(err)
-		}
-		fc, rc := fast.(*convOp), ref.(*convOp)
+		fc, rc := convPair(t, node, newArena())
 		s, _ := fc.shape(x, wt)
 		if fc.gemm1 == nil || fc.useSlabs(s.cg*tc.k*tc.k, s.g.oh*s.g.ow) {
 			t.Fatalf("case %d: batched path not taken", i)
@@ -67,16 +58,8 @@ func TestConvBatchPathMatchesReference(t *testing.T) {
 					}
 				}
 			}
-			for j, v := range want[0].F32 {
-				switch act {
-				case actRelu:
-					v = max(v, 0)
-				case actClip:
-					v = min(max(v, -0.5), 0.75)
-				}
-				if d := math.Abs(float64(got[0].F32[j] - v)); d > 1e-4*(1+math.Abs(float64(v))) {
-					t.Fatalf("case %d act %d: y[%d] = %v, reference %v", i, act, j, got[0].F32[j], v)
-				}
+			if j, v, ok := matchActivated(got[0].F32, want[0].F32, act); !ok {
+				t.Fatalf("case %d act %d: y[%d] = %v, reference %v", i, act, j, got[0].F32[j], v)
 			}
 		}
 	}

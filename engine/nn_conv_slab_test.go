@@ -33,15 +33,7 @@ func TestConvSlabPathMatchesReference(t *testing.T) {
 			nnInts("pads", int64(tc.pad), int64(tc.pad), int64(tc.pad), int64(tc.pad)),
 			nnInts("strides", int64(tc.stride), int64(tc.stride)),
 			&onnx.Attr{Name: "group", Type: onnx.AttrInt, Int: int64(tc.group)})
-		fast, err := buildConv(node, &Env{GEMM: defaultGEMM(), Opset: 13, arena: newArena()})
-		if err != nil {
-			t.Fatal(err)
-		}
-		ref, err := buildConv(node, &Env{GEMM: kernel.Naive{}, Opset: 13})
-		if err != nil {
-			t.Fatal(err)
-		}
-		fc, rc := fast.(*convOp), ref.(*convOp)
+		fc, rc := convPair(t, node, newArena())
 		in := []*tensor.Tensor{x, wt, bias}
 		s, _ := fc.shape(x, wt)
 		if !fc.useSlabs(s.cg*tc.k*tc.k, s.g.oh*s.g.ow) && !s.pointwise() {
@@ -57,16 +49,8 @@ func TestConvSlabPathMatchesReference(t *testing.T) {
 				if err != nil {
 					t.Fatal(err)
 				}
-				for j, v := range want[0].F32 {
-					switch act {
-					case actRelu:
-						v = max(v, 0)
-					case actClip:
-						v = min(max(v, -0.5), 0.75)
-					}
-					if d := math.Abs(float64(got[0].F32[j] - v)); d > 1e-4*(1+math.Abs(float64(v))) {
-						t.Fatalf("case %d act %d: y[%d] = %v, reference %v", i, act, j, got[0].F32[j], v)
-					}
+				if j, v, ok := matchActivated(got[0].F32, want[0].F32, act); !ok {
+					t.Fatalf("case %d act %d: y[%d] = %v, reference %v", i, act, j, got[0].F32[j], v)
 				}
 				fc.arena.put(got[0].F32)
 			}
@@ -99,15 +83,7 @@ func TestConvTransposedBackwardMatchesReference(t *testing.T) {
 		node := nnNode("c", "Conv", []string{"x", "w"}, []string{"y"},
 			nnInts("pads", int64(tc.pad), int64(tc.pad), int64(tc.pad), int64(tc.pad)),
 			&onnx.Attr{Name: "group", Type: onnx.AttrInt, Int: int64(tc.group)})
-		fast, err := buildConv(node, &Env{GEMM: defaultGEMM(), Opset: 13})
-		if err != nil {
-			t.Fatal(err)
-		}
-		ref, err := buildConv(node, &Env{GEMM: kernel.Naive{}, Opset: 13})
-		if err != nil {
-			t.Fatal(err)
-		}
-		fc := fast.(*convOp)
+		fc, ref := convPair(t, node, nil)
 		s, _ := fc.shape(x, wt)
 		if _, ok := transposedGeom(s.g); !ok {
 			t.Fatalf("case %d: transposed path not taken", i)
@@ -122,7 +98,7 @@ func TestConvTransposedBackwardMatchesReference(t *testing.T) {
 		if err != nil {
 			t.Fatal(err)
 		}
-		want, err := ref.(*convOp).BackwardFor(in, y, []*tensor.Tensor{dy}, []bool{true, false})
+		want, err := ref.BackwardFor(in, y, []*tensor.Tensor{dy}, []bool{true, false})
 		if err != nil {
 			t.Fatal(err)
 		}
@@ -140,4 +116,39 @@ func TestConvTransposedBackwardMatchesReference(t *testing.T) {
 			t.Fatalf("case %d: <conv(x),dy> = %g but <x,dx> = %g", i, yy, xx)
 		}
 	}
+}
+
+// convPair builds node twice: on the default GEMM with arena (nil for
+// none), the path under test, and on kernel.Naive (the textbook product in
+// float64 over a plain im2col), the reference.
+func convPair(t *testing.T, node *onnx.Node, a *arena) (fast, ref *convOp) {
+	t.Helper()
+	f, err := buildConv(node, &Env{GEMM: defaultGEMM(), Opset: 13, arena: a})
+	if err != nil {
+		t.Fatal(err)
+	}
+	r, err := buildConv(node, &Env{GEMM: kernel.Naive{}, Opset: 13})
+	if err != nil {
+		t.Fatal(err)
+	}
+	return f.(*convOp), r.(*convOp)
+}
+
+// matchActivated compares got with the reference convolution want followed
+// by act as ONNX defines it (Relu max(x, 0), Clip min(max(x, −0.5), 0.75)),
+// within 1e-4 relative; it returns the first mismatch and the expected
+// value there.
+func matchActivated(got, want []float32, act actKind) (int, float32, bool) {
+	for j, v := range want {
+		switch act {
+		case actRelu:
+			v = max(v, 0)
+		case actClip:
+			v = min(max(v, -0.5), 0.75)
+		}
+		if d := math.Abs(float64(got[j] - v)); d > 1e-4*(1+math.Abs(float64(v))) {
+			return j, v, false
+		}
+	}
+	return 0, 0, true
 }
