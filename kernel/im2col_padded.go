@@ -26,11 +26,8 @@ func (p *Im2colPlan) NeedsPad() bool {
 func (p *Im2colPlan) Pad(dst, src []float32, c0, c1 int) error {
 	g := p.g
 	ph, pw := p.PaddedShape()
-	if c0 < 0 || c0 > c1 {
-		return fmt.Errorf("kernel: pad channel range [%d, %d) is invalid", c0, c1)
-	}
-	if len(src) < c1*g.H*g.W || len(dst) < c1*ph*pw {
-		return fmt.Errorf("kernel: pad of %d channels needs %d input and %d output values, got %d and %d", c1, c1*g.H*g.W, c1*ph*pw, len(src), len(dst))
+	if err := p.checkPad(dst, src, c0, c1); err != nil {
+		return err
 	}
 	for c := c0; c < c1; c++ {
 		d := dst[c*ph*pw : (c+1)*ph*pw]
@@ -91,10 +88,8 @@ func phaseOffsets(pw, s int) []int {
 	return offs
 }
 
-// PadPhased is Pad writing each padded row split by column phase: with
-// column stride s the row's columns ≡ 0 mod s first, then ≡ 1, and so on,
-// each phase in column order. Im2colPanelsPhased reads this layout.
-func (p *Im2colPlan) PadPhased(dst, src []float32, c0, c1 int) error {
+// checkPad checks Pad's and PadPhased's channel range and buffer lengths.
+func (p *Im2colPlan) checkPad(dst, src []float32, c0, c1 int) error {
 	g := p.g
 	ph, pw := p.PaddedShape()
 	if c0 < 0 || c0 > c1 {
@@ -102,6 +97,18 @@ func (p *Im2colPlan) PadPhased(dst, src []float32, c0, c1 int) error {
 	}
 	if len(src) < c1*g.H*g.W || len(dst) < c1*ph*pw {
 		return fmt.Errorf("kernel: pad of %d channels needs %d input and %d output values, got %d and %d", c1, c1*g.H*g.W, c1*ph*pw, len(src), len(dst))
+	}
+	return nil
+}
+
+// PadPhased is Pad writing each padded row split by column phase: with
+// column stride s the row's columns ≡ 0 mod s first, then ≡ 1, and so on,
+// each phase in column order. Im2colPanelsPhased reads this layout.
+func (p *Im2colPlan) PadPhased(dst, src []float32, c0, c1 int) error {
+	g := p.g
+	ph, pw := p.PaddedShape()
+	if err := p.checkPad(dst, src, c0, c1); err != nil {
+		return err
 	}
 	s := g.StrideW
 	po := phaseOffsets(pw, s)
