@@ -410,12 +410,9 @@ func maxPlane(src, dst []float32, idx []int64, g geom2, off int64) {
 // maxPlane's.
 func maxPlane3x3(src, dst []float32, g geom2) {
 	oxLo, oxHi := interior3x3(g)
-	// At column stride 2 a chunk of the three rows is split into even and
-	// odd columns on the stack, so the nine taps are nine unit-stride rows
-	// for kernel.Max9 (branch-free; the compares of the scalar scan
-	// mispredict on real images, 3–9 % of a ResNet-18 forward pass).
-	const chunk = 64
-	var even, odd [3][chunk + 1]float32
+	// The interior goes through kernel.Max9 (stride 1) or Max9Stride2:
+	// branch-free, where the compares of the scalar scan mispredict on
+	// real images (3–9 % of a ResNet-18 forward pass).
 	for oy := 0; oy < g.oh; oy++ {
 		y0 := oy*g.sh - g.pt
 		out := dst[oy*g.ow : (oy+1)*g.ow]
@@ -441,24 +438,11 @@ func maxPlane3x3(src, dst []float32, g geom2) {
 			}
 			kernel.Max9(out[oxLo:oxHi], &taps)
 		case 2:
-			for c := oxLo; c < oxHi; c += chunk {
-				n := min(chunk, oxHi-c)
-				x0 := 2*c - g.pl
-				for i, r := range rows {
-					r = r[x0 : x0+2*n+1]
-					e, o := &even[i], &odd[i]
-					for j := 0; j < n; j++ {
-						e[j], o[j] = r[2*j], r[2*j+1]
-					}
-					e[n] = r[2*n]
-				}
-				taps := [9][]float32{
-					even[0][:n], odd[0][:n], even[0][1 : n+1],
-					even[1][:n], odd[1][:n], even[1][1 : n+1],
-					even[2][:n], odd[2][:n], even[2][1 : n+1],
-				}
-				kernel.Max9(out[c:c+n], &taps)
+			x0, n := 2*oxLo-g.pl, oxHi-oxLo
+			for i := range rows {
+				rows[i] = rows[i][x0 : x0+2*n+1]
 			}
+			kernel.Max9Stride2(out[oxLo:oxHi], &rows)
 		default:
 			maxRow(src, out, nil, g, 0, oy, oxLo, oxHi)
 		}

@@ -18,6 +18,7 @@ func eachPool3x3Case(r *rand.Rand, f func(tc pool3x3Case, g geom2, src []float32
 	for _, tc := range []pool3x3Case{
 		{112, 112, 2, 1, 1, 1, 1}, {7, 9, 1, 0, 0, 0, 0}, {8, 8, 2, 0, 0, 1, 1},
 		{5, 6, 3, 2, 2, 2, 2}, {2, 2, 1, 1, 1, 1, 1}, {1, 4, 2, 2, 0, 2, 3}, {13, 11, 2, 1, 0, 2, 1},
+		{9, 37, 2, 1, 1, 0, 0}, {6, 40, 1, 1, 1, 1, 1},
 	} {
 		g := geom2{ih: tc.ih, iw: tc.iw, kh: 3, kw: 3, sh: tc.s, sw: tc.s, dh: 1, dw: 1, pt: tc.pt, pl: tc.pl, pb: tc.pb, pr: tc.pr}
 		g.oh = (tc.ih+tc.pt+tc.pb-3)/tc.s + 1

@@ -508,3 +508,92 @@ max9AVX512_loop:
 max9AVX512_done:
 	VZEROUPPER
 	RET
+
+DATA maxEvenLanes<>+0(SB)/4, $0x00000000
+DATA maxEvenLanes<>+4(SB)/4, $0x00000002
+DATA maxEvenLanes<>+8(SB)/4, $0x00000004
+DATA maxEvenLanes<>+12(SB)/4, $0x00000006
+DATA maxEvenLanes<>+16(SB)/4, $0x00000008
+DATA maxEvenLanes<>+20(SB)/4, $0x0000000a
+DATA maxEvenLanes<>+24(SB)/4, $0x0000000c
+DATA maxEvenLanes<>+28(SB)/4, $0x0000000e
+DATA maxEvenLanes<>+32(SB)/4, $0x00000010
+DATA maxEvenLanes<>+36(SB)/4, $0x00000012
+DATA maxEvenLanes<>+40(SB)/4, $0x00000014
+DATA maxEvenLanes<>+44(SB)/4, $0x00000016
+DATA maxEvenLanes<>+48(SB)/4, $0x00000018
+DATA maxEvenLanes<>+52(SB)/4, $0x0000001a
+DATA maxEvenLanes<>+56(SB)/4, $0x0000001c
+DATA maxEvenLanes<>+60(SB)/4, $0x0000001e
+GLOBL maxEvenLanes<>(SB), RODATA|NOPTR, $64
+
+DATA maxOddLanes<>+0(SB)/4, $0x00000001
+DATA maxOddLanes<>+4(SB)/4, $0x00000003
+DATA maxOddLanes<>+8(SB)/4, $0x00000005
+DATA maxOddLanes<>+12(SB)/4, $0x00000007
+DATA maxOddLanes<>+16(SB)/4, $0x00000009
+DATA maxOddLanes<>+20(SB)/4, $0x0000000b
+DATA maxOddLanes<>+24(SB)/4, $0x0000000d
+DATA maxOddLanes<>+28(SB)/4, $0x0000000f
+DATA maxOddLanes<>+32(SB)/4, $0x00000011
+DATA maxOddLanes<>+36(SB)/4, $0x00000013
+DATA maxOddLanes<>+40(SB)/4, $0x00000015
+DATA maxOddLanes<>+44(SB)/4, $0x00000017
+DATA maxOddLanes<>+48(SB)/4, $0x00000019
+DATA maxOddLanes<>+52(SB)/4, $0x0000001b
+DATA maxOddLanes<>+56(SB)/4, $0x0000001d
+DATA maxOddLanes<>+60(SB)/4, $0x0000001f
+GLOBL maxOddLanes<>(SB), RODATA|NOPTR, $64
+
+// func max9Stride2AVX512(n int, dst *float32, rows *[3]*float32)
+// Requires: AVX, AVX512F
+TEXT ·max9Stride2AVX512(SB), NOSPLIT, $0-24
+	MOVQ    n+0(FP), AX
+	MOVQ    dst+8(FP), CX
+	MOVQ    rows+16(FP), DX
+	MOVQ    (DX), BX
+	MOVQ    8(DX), SI
+	MOVQ    16(DX), DX
+	VMOVUPS maxEvenLanes<>+0(SB), Z2
+	VMOVUPS maxOddLanes<>+0(SB), Z3
+
+max9Stride2AVX512_loop:
+	CMPQ      AX, $0x10
+	JL        max9Stride2AVX512_done
+	VMOVUPS   (BX), Z0
+	VPERMT2PS 64(BX), Z2, Z0
+	VMOVUPS   4(BX), Z4
+	VMOVAPS   Z4, Z5
+	VPERMT2PS 68(BX), Z2, Z4
+	VPERMT2PS 68(BX), Z3, Z5
+	VMAXPS    Z0, Z4, Z0
+	VMAXPS    Z0, Z5, Z0
+	VMOVUPS   (SI), Z1
+	VPERMT2PS 64(SI), Z2, Z1
+	VMOVUPS   4(SI), Z4
+	VMOVAPS   Z4, Z5
+	VPERMT2PS 68(SI), Z2, Z4
+	VPERMT2PS 68(SI), Z3, Z5
+	VMAXPS    Z0, Z1, Z0
+	VMAXPS    Z0, Z4, Z0
+	VMAXPS    Z0, Z5, Z0
+	VMOVUPS   (DX), Z1
+	VPERMT2PS 64(DX), Z2, Z1
+	VMOVUPS   4(DX), Z4
+	VMOVAPS   Z4, Z5
+	VPERMT2PS 68(DX), Z2, Z4
+	VPERMT2PS 68(DX), Z3, Z5
+	VMAXPS    Z0, Z1, Z0
+	VMAXPS    Z0, Z4, Z0
+	VMAXPS    Z0, Z5, Z0
+	VMOVUPS   Z0, (CX)
+	ADDQ      $0x80, BX
+	ADDQ      $0x80, SI
+	ADDQ      $0x80, DX
+	ADDQ      $0x40, CX
+	SUBQ      $0x10, AX
+	JMP       max9Stride2AVX512_loop
+
+max9Stride2AVX512_done:
+	VZEROUPPER
+	RET

@@ -67,3 +67,16 @@ func max9SIMD(dst []float32, s *[9][]float32) int {
 	max9AVX512(n, &dst[0], &p)
 	return n
 }
+
+// max9Stride2SIMD runs the vector part of Max9Stride2 and returns how
+// many leading outputs it did (0 without AVX-512F). Each row holds at
+// least 2·len(dst)+1 values.
+func max9Stride2SIMD(dst []float32, r *[3][]float32) int {
+	n := len(dst) &^ 15
+	if n == 0 || !cpu.X86.HasAVX512F {
+		return 0
+	}
+	p := [3]*float32{&r[0][0], &r[1][0], &r[2][0]}
+	max9Stride2AVX512(n, &dst[0], &p)
+	return n
+}

@@ -13,3 +13,6 @@ func maskRangeSIMD(dst, g, y []float32, lo, span uint32) int { return 0 }
 
 // max9SIMD: no vector path off amd64.
 func max9SIMD(dst []float32, s *[9][]float32) int { return 0 }
+
+// max9Stride2SIMD: no vector path off amd64.
+func max9Stride2SIMD(dst []float32, r *[3][]float32) int { return 0 }

@@ -56,3 +56,8 @@ func maskRangeAVX2(n int, dst *float32, grad *float32, y *float32, lo uint32, sp
 //
 //go:noescape
 func max9AVX512(n int, dst *float32, src *[9]*float32)
+
+// max9Stride2AVX512 sets dst[j] to the ordered maximum of r[2j], r[2j+1], r[2j+2] over the three rows (a value replaces the kept one only when greater) for j < n rounded down to 16; each row must hold 2·n+1 readable values.
+//
+//go:noescape
+func max9Stride2AVX512(n int, dst *float32, rows *[3]*float32)

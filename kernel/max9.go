@@ -6,13 +6,25 @@ package kernel
 // value and stays once kept, and of equal values (+0 and −0) the first
 // stays: the window scan of max-pooling, for a 3×3 window given as nine
 // shifted rows in scan order. Each s[i] must hold at least len(dst)
-// values. With AVX-512 sixteen outputs take nine loads and eight VMAXPS.
+// values, and dst must not overlap them. With AVX-512 sixteen outputs
+// take nine loads and eight VMAXPS; a partial last vector is recomputed
+// over the last sixteen outputs rather than left to a scalar loop, whose
+// compares mispredict on real images.
 func Max9(dst []float32, s *[9][]float32) {
 	var rows [9][]float32
 	for i := range rows {
 		rows[i] = s[i][:len(dst)]
 	}
 	done := max9SIMD(dst, &rows)
+	if n := len(dst); done < n && done > 0 && n >= 16 {
+		for i := range rows {
+			rows[i] = rows[i][n-16:]
+		}
+		done = n - 16 + max9SIMD(dst[n-16:], &rows)
+		for i := range rows {
+			rows[i] = s[i][:n]
+		}
+	}
 	max9Go(dst[done:], &rows, done)
 }
 
@@ -23,6 +35,48 @@ func max9Go(dst []float32, s *[9][]float32, offset int) {
 		for i := 1; i < 9; i++ {
 			if v := s[i][offset+j]; v > best {
 				best = v
+			}
+		}
+		dst[j] = best
+	}
+}
+
+// Max9Stride2 is Max9 for a 3×3 window at column stride 2 given as its
+// three rows: dst[j] is the ordered maximum of r[2j], r[2j+1], r[2j+2]
+// for r = rows[0], rows[1], rows[2] in that order. Each row must hold at
+// least 2·len(dst)+1 values, and dst must not overlap them. With AVX-512
+// the taps are taken apart from unit-stride loads in registers, so no
+// de-interleaved copy of the rows is made.
+func Max9Stride2(dst []float32, rows *[3][]float32) {
+	n := len(dst)
+	if n == 0 {
+		return
+	}
+	var r [3][]float32
+	for i := range r {
+		r[i] = rows[i][:2*n+1]
+	}
+	done := max9Stride2SIMD(dst, &r)
+	if done < n && done > 0 && n >= 16 {
+		var tail [3][]float32
+		for i := range tail {
+			tail[i] = r[i][2*(n-16):]
+		}
+		done = n - 16 + max9Stride2SIMD(dst[n-16:], &tail)
+	}
+	max9Stride2Go(dst[done:], &r, done)
+}
+
+// max9Stride2Go is Max9Stride2's loop for dst = the outputs from offset on.
+func max9Stride2Go(dst []float32, r *[3][]float32, offset int) {
+	for j := range dst {
+		x := 2 * (offset + j)
+		best := r[0][x]
+		for i := range r {
+			for t := 0; t < 3; t++ {
+				if v := r[i][x+t]; v > best {
+					best = v
+				}
 			}
 		}
 		dst[j] = best

@@ -23,6 +23,7 @@ func genEpilogue(zmm, ymm []reg.VecPhysical) {
 	genMaskRange("maskRangeAVX512", 16)
 	genMaskRange("maskRangeAVX2", 8)
 	genMax9()
+	genMax9Stride2()
 }
 
 // genMax9 emits max9AVX512: dst[j] = the first of the nine sources' values
@@ -55,6 +56,70 @@ func genMax9() {
 	VMOVUPS(best, Mem{Base: dst})
 	for i := range p {
 		ADDQ(U8(64), p[i])
+	}
+	ADDQ(U8(64), dst)
+	SUBQ(U8(16), n)
+	JMP(LabelRef(name + "_loop"))
+	Label(name + "_done")
+	VZEROUPPER()
+	RET()
+}
+
+// genMax9Stride2 emits max9Stride2AVX512, the 3×3 window at column stride
+// 2 from three rows: dst[j] is the ordered maximum of r[2j], r[2j+1],
+// r[2j+2] for r = rows[0], rows[1], rows[2] in that order. The taps come
+// out of unit-stride loads with VPERMT2PS: the even lanes of r[2j…2j+32)
+// are tap 0, and of r[2j+1…2j+33) the even lanes are tap 1 and the odd
+// ones tap 2, so no load reaches past r[2j+32], the last tap of output
+// j+15. The maximum is taken as in max9AVX512.
+func genMax9Stride2() {
+	lanes := func(name string, first int) Mem {
+		m := GLOBL(name, RODATA|NOPTR)
+		for j := 0; j < 16; j++ {
+			DATA(4*j, U32(2*j+first))
+		}
+		return m
+	}
+	evenLanes, oddLanes := lanes("maxEvenLanes", 0), lanes("maxOddLanes", 1)
+	name := "max9Stride2AVX512"
+	TEXT(name, NOSPLIT, "func(n int, dst *float32, rows *[3]*float32)")
+	Doc(name + " sets dst[j] to the ordered maximum of r[2j], r[2j+1], r[2j+2] over the three rows (a value replaces the kept one only when greater) for j < n rounded down to 16; each row must hold 2·n+1 readable values.")
+	Pragma("noescape")
+	n := Load(Param("n"), GP64())
+	dst := Load(Param("dst"), GP64())
+	rp := Load(Param("rows"), GP64())
+	var p [3]reg.GPVirtual
+	for i := range p {
+		p[i] = GP64()
+		MOVQ(Mem{Base: rp, Disp: 8 * i}, p[i])
+	}
+	ev, od := reg.Z2, reg.Z3
+	VMOVUPS(evenLanes, ev)
+	VMOVUPS(oddLanes, od)
+	best, t0, t1, t2 := reg.Z0, reg.Z1, reg.Z4, reg.Z5
+	Label(name + "_loop")
+	CMPQ(n, Imm(16))
+	JL(LabelRef(name + "_done"))
+	for i := range p {
+		tap0 := t0
+		if i == 0 {
+			tap0 = best
+		}
+		VMOVUPS(Mem{Base: p[i]}, tap0)
+		VPERMT2PS(Mem{Base: p[i], Disp: 64}, ev, tap0)
+		VMOVUPS(Mem{Base: p[i], Disp: 4}, t1)
+		VMOVAPS(t1, t2)
+		VPERMT2PS(Mem{Base: p[i], Disp: 68}, ev, t1)
+		VPERMT2PS(Mem{Base: p[i], Disp: 68}, od, t2)
+		if i > 0 {
+			VMAXPS(best, tap0, best)
+		}
+		VMAXPS(best, t1, best)
+		VMAXPS(best, t2, best)
+	}
+	VMOVUPS(best, Mem{Base: dst})
+	for i := range p {
+		ADDQ(Imm(128), p[i])
 	}
 	ADDQ(U8(64), dst)
 	SUBQ(U8(16), n)
