@@ -341,7 +341,6 @@ func maxPlaneBackward3x3(src, dy, dx []float32, g geom2, val []float32, arg []in
 			continue
 		}
 		border(oy, 0, oxLo)
-		border(oy, oxHi, g.ow)
 		r0 := y0 * g.iw
 		gy := dy[oy*g.ow : (oy+1)*g.ow]
 		x0 := oxLo*g.sw - g.pl
@@ -360,6 +359,9 @@ func maxPlaneBackward3x3(src, dy, dx []float32, g geom2, val []float32, arg []in
 			dx[j+at] += gy[ox]
 			x0 += g.sw
 		}
+		// After the interior: overlapping windows add into the same dx in
+		// the general loop's order, so the sums round alike.
+		border(oy, oxHi, g.ow)
 	}
 }
 
