@@ -597,3 +597,74 @@ max9Stride2AVX512_loop:
 max9Stride2AVX512_done:
 	VZEROUPPER
 	RET
+
+// func argMax9Stride2AVX512(n int, dst *int32, rows *[3]*float32, offs *[9]int32)
+// Requires: AVX, AVX512F
+TEXT ·argMax9Stride2AVX512(SB), NOSPLIT, $0-32
+	MOVQ    n+0(FP), AX
+	MOVQ    dst+8(FP), CX
+	MOVQ    rows+16(FP), DX
+	MOVQ    offs+24(FP), BX
+	MOVQ    (DX), SI
+	MOVQ    8(DX), DI
+	MOVQ    16(DX), DX
+	VMOVUPS maxEvenLanes<>+0(SB), Z2
+	VMOVUPS maxOddLanes<>+0(SB), Z3
+
+argMax9Stride2AVX512_loop:
+	CMPQ         AX, $0x10
+	JL           argMax9Stride2AVX512_done
+	VMOVUPS      (SI), Z0
+	VPERMT2PS    64(SI), Z2, Z0
+	VMOVUPS      4(SI), Z4
+	VMOVAPS      Z4, Z5
+	VPERMT2PS    68(SI), Z2, Z4
+	VPERMT2PS    68(SI), Z3, Z5
+	VPBROADCASTD (BX), Z6
+	VCMPPS       $0x1e, Z0, Z4, K1
+	VMOVAPS      Z4, K1, Z0
+	VPBROADCASTD 4(BX), K1, Z6
+	VCMPPS       $0x1e, Z0, Z5, K1
+	VMOVAPS      Z5, K1, Z0
+	VPBROADCASTD 8(BX), K1, Z6
+	VMOVUPS      (DI), Z1
+	VPERMT2PS    64(DI), Z2, Z1
+	VMOVUPS      4(DI), Z4
+	VMOVAPS      Z4, Z5
+	VPERMT2PS    68(DI), Z2, Z4
+	VPERMT2PS    68(DI), Z3, Z5
+	VCMPPS       $0x1e, Z0, Z1, K1
+	VMOVAPS      Z1, K1, Z0
+	VPBROADCASTD 12(BX), K1, Z6
+	VCMPPS       $0x1e, Z0, Z4, K1
+	VMOVAPS      Z4, K1, Z0
+	VPBROADCASTD 16(BX), K1, Z6
+	VCMPPS       $0x1e, Z0, Z5, K1
+	VMOVAPS      Z5, K1, Z0
+	VPBROADCASTD 20(BX), K1, Z6
+	VMOVUPS      (DX), Z1
+	VPERMT2PS    64(DX), Z2, Z1
+	VMOVUPS      4(DX), Z4
+	VMOVAPS      Z4, Z5
+	VPERMT2PS    68(DX), Z2, Z4
+	VPERMT2PS    68(DX), Z3, Z5
+	VCMPPS       $0x1e, Z0, Z1, K1
+	VMOVAPS      Z1, K1, Z0
+	VPBROADCASTD 24(BX), K1, Z6
+	VCMPPS       $0x1e, Z0, Z4, K1
+	VMOVAPS      Z4, K1, Z0
+	VPBROADCASTD 28(BX), K1, Z6
+	VCMPPS       $0x1e, Z0, Z5, K1
+	VMOVAPS      Z5, K1, Z0
+	VPBROADCASTD 32(BX), K1, Z6
+	VMOVDQU32    Z6, (CX)
+	ADDQ         $0x80, SI
+	ADDQ         $0x80, DI
+	ADDQ         $0x80, DX
+	ADDQ         $0x40, CX
+	SUBQ         $0x10, AX
+	JMP          argMax9Stride2AVX512_loop
+
+argMax9Stride2AVX512_done:
+	VZEROUPPER
+	RET

@@ -80,3 +80,15 @@ func max9Stride2SIMD(dst []float32, r *[3][]float32) int {
 	max9Stride2AVX512(n, &dst[0], &p)
 	return n
 }
+
+// argMax9Stride2SIMD runs the vector part of ArgMax9Stride2 and returns
+// how many leading outputs it did (0 without AVX-512F).
+func argMax9Stride2SIMD(at []int32, r *[3][]float32, offs *[9]int32) int {
+	n := len(at) &^ 15
+	if n == 0 || !cpu.X86.HasAVX512F {
+		return 0
+	}
+	p := [3]*float32{&r[0][0], &r[1][0], &r[2][0]}
+	argMax9Stride2AVX512(n, &at[0], &p, offs)
+	return n
+}

@@ -16,3 +16,6 @@ func max9SIMD(dst []float32, s *[9][]float32) int { return 0 }
 
 // max9Stride2SIMD: no vector path off amd64.
 func max9Stride2SIMD(dst []float32, r *[3][]float32) int { return 0 }
+
+// argMax9Stride2SIMD: no vector path off amd64.
+func argMax9Stride2SIMD(at []int32, r *[3][]float32, offs *[9]int32) int { return 0 }

@@ -61,3 +61,8 @@ func max9AVX512(n int, dst *float32, src *[9]*float32)
 //
 //go:noescape
 func max9Stride2AVX512(n int, dst *float32, rows *[3]*float32)
+
+// argMax9Stride2AVX512 sets dst[j] to offs[t] for the tap t whose value max9Stride2AVX512 keeps for output j.
+//
+//go:noescape
+func argMax9Stride2AVX512(n int, dst *int32, rows *[3]*float32, offs *[9]int32)

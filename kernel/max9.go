@@ -82,3 +82,46 @@ func max9Stride2Go(dst []float32, r *[3][]float32, offset int) {
 		dst[j] = best
 	}
 }
+
+// ArgMax9Stride2 sets at[j] to offs[t] for the tap t (0…8: r[2j], r[2j+1],
+// r[2j+2] of rows[0], then of rows[1] and rows[2]) whose value
+// Max9Stride2 keeps for output j: the first of the largest, a NaN kept
+// when it comes first. offs is typically each tap's offset in the input
+// plane, so max-pool's backward pass can route a gradient without the
+// scan's mispredicted compares. Rows and overlap are as for Max9Stride2.
+func ArgMax9Stride2(at []int32, rows *[3][]float32, offs *[9]int32) {
+	n := len(at)
+	if n == 0 {
+		return
+	}
+	var r [3][]float32
+	for i := range r {
+		r[i] = rows[i][:2*n+1]
+	}
+	done := argMax9Stride2SIMD(at, &r, offs)
+	if done < n && done > 0 && n >= 16 {
+		var tail [3][]float32
+		for i := range tail {
+			tail[i] = r[i][2*(n-16):]
+		}
+		done = n - 16 + argMax9Stride2SIMD(at[n-16:], &tail, offs)
+	}
+	argMax9Stride2Go(at[done:], &r, offs, done)
+}
+
+// argMax9Stride2Go is ArgMax9Stride2's loop for at = the outputs from
+// offset on.
+func argMax9Stride2Go(at []int32, r *[3][]float32, offs *[9]int32, offset int) {
+	for j := range at {
+		x := 2 * (offset + j)
+		best, t := r[0][x], 0
+		for i := range r {
+			for k := 0; k < 3; k++ {
+				if v := r[i][x+k]; v > best {
+					best, t = v, 3*i+k
+				}
+			}
+		}
+		at[j] = offs[t]
+	}
+}

@@ -54,9 +54,9 @@ func column(s *[9][]float32, j int) []float32 {
 	return c
 }
 
-// TestMax9Stride2 checks Max9Stride2 (vector and Go loops) against the
-// same scan over the nine taps of a 3×3 window at column stride 2, with
-// rows exactly 2·n+1 long.
+// TestMax9Stride2 checks Max9Stride2 and ArgMax9Stride2 (vector and Go
+// loops) against the same scan, with its position, over the nine taps of
+// a 3×3 window at column stride 2, with rows exactly 2·n+1 long.
 func TestMax9Stride2(t *testing.T) {
 	r := rand.New(rand.NewPCG(43, 44))
 	special := []float32{0, float32(math.Copysign(0, -1)), float32(math.Inf(1)), float32(math.Inf(-1)), float32(math.NaN())}
@@ -74,19 +74,26 @@ func TestMax9Stride2(t *testing.T) {
 		got, goOnly := make([]float32, n), make([]float32, n)
 		Max9Stride2(got, &rows)
 		max9Stride2Go(goOnly, &rows, 0)
+		offs := [9]int32{100, 101, 102, 200, 201, 202, 300, 301, 302}
+		at, atGo := make([]int32, n), make([]int32, n)
+		ArgMax9Stride2(at, &rows, &offs)
+		argMax9Stride2Go(atGo, &rows, &offs, 0)
 		for j := 0; j < n; j++ {
 			var taps []float32
 			for i := range rows {
 				taps = append(taps, rows[i][2*j:2*j+3]...)
 			}
-			want := taps[0]
-			for _, v := range taps[1:] {
+			want, wantAt := taps[0], 0
+			for k, v := range taps[1:] {
 				if v > want {
-					want = v
+					want, wantAt = v, k+1
 				}
 			}
 			if math.Float32bits(got[j]) != math.Float32bits(want) || math.Float32bits(goOnly[j]) != math.Float32bits(want) {
 				t.Fatalf("n=%d j=%d: Max9Stride2 %v, Go loop %v, want %v (taps %v)", n, j, got[j], goOnly[j], want, taps)
+			}
+			if at[j] != offs[wantAt] || atGo[j] != offs[wantAt] {
+				t.Fatalf("n=%d j=%d: ArgMax9Stride2 %d, Go loop %d, want %d (taps %v)", n, j, at[j], atGo[j], offs[wantAt], taps)
 			}
 		}
 	}

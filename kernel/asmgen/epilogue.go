@@ -67,11 +67,11 @@ func genMax9() {
 
 // genMax9Stride2 emits max9Stride2AVX512, the 3×3 window at column stride
 // 2 from three rows: dst[j] is the ordered maximum of r[2j], r[2j+1],
-// r[2j+2] for r = rows[0], rows[1], rows[2] in that order. The taps come
-// out of unit-stride loads with VPERMT2PS: the even lanes of r[2j…2j+32)
-// are tap 0, and of r[2j+1…2j+33) the even lanes are tap 1 and the odd
-// ones tap 2, so no load reaches past r[2j+32], the last tap of output
-// j+15. The maximum is taken as in max9AVX512.
+// r[2j+2] for r = rows[0], rows[1], rows[2] in that order, taken as in
+// max9AVX512. It also emits argMax9Stride2AVX512, which instead stores
+// where that maximum is: offs[t] for the tap t (0…8 in scan order) whose
+// value is kept, the same scan with VCMPPS (greater, false for NaN)
+// choosing the lanes that move on.
 func genMax9Stride2() {
 	lanes := func(name string, first int) Mem {
 		m := GLOBL(name, RODATA|NOPTR)
@@ -81,52 +81,80 @@ func genMax9Stride2() {
 		return m
 	}
 	evenLanes, oddLanes := lanes("maxEvenLanes", 0), lanes("maxOddLanes", 1)
-	name := "max9Stride2AVX512"
-	TEXT(name, NOSPLIT, "func(n int, dst *float32, rows *[3]*float32)")
-	Doc(name + " sets dst[j] to the ordered maximum of r[2j], r[2j+1], r[2j+2] over the three rows (a value replaces the kept one only when greater) for j < n rounded down to 16; each row must hold 2·n+1 readable values.")
-	Pragma("noescape")
-	n := Load(Param("n"), GP64())
-	dst := Load(Param("dst"), GP64())
-	rp := Load(Param("rows"), GP64())
-	var p [3]reg.GPVirtual
-	for i := range p {
-		p[i] = GP64()
-		MOVQ(Mem{Base: rp, Disp: 8 * i}, p[i])
-	}
-	ev, od := reg.Z2, reg.Z3
-	VMOVUPS(evenLanes, ev)
-	VMOVUPS(oddLanes, od)
-	best, t0, t1, t2 := reg.Z0, reg.Z1, reg.Z4, reg.Z5
-	Label(name + "_loop")
-	CMPQ(n, Imm(16))
-	JL(LabelRef(name + "_done"))
-	for i := range p {
-		tap0 := t0
-		if i == 0 {
-			tap0 = best
+	for _, arg := range []bool{false, true} {
+		name, sig := "max9Stride2AVX512", "func(n int, dst *float32, rows *[3]*float32)"
+		doc := name + " sets dst[j] to the ordered maximum of r[2j], r[2j+1], r[2j+2] over the three rows (a value replaces the kept one only when greater) for j < n rounded down to 16; each row must hold 2·n+1 readable values."
+		if arg {
+			name, sig = "argMax9Stride2AVX512", "func(n int, dst *int32, rows *[3]*float32, offs *[9]int32)"
+			doc = name + " sets dst[j] to offs[t] for the tap t whose value max9Stride2AVX512 keeps for output j."
 		}
-		VMOVUPS(Mem{Base: p[i]}, tap0)
-		VPERMT2PS(Mem{Base: p[i], Disp: 64}, ev, tap0)
-		VMOVUPS(Mem{Base: p[i], Disp: 4}, t1)
-		VMOVAPS(t1, t2)
-		VPERMT2PS(Mem{Base: p[i], Disp: 68}, ev, t1)
-		VPERMT2PS(Mem{Base: p[i], Disp: 68}, od, t2)
-		if i > 0 {
-			VMAXPS(best, tap0, best)
+		TEXT(name, NOSPLIT, sig)
+		Doc(doc)
+		Pragma("noescape")
+		n := Load(Param("n"), GP64())
+		dst := Load(Param("dst"), GP64())
+		rp := Load(Param("rows"), GP64())
+		var offs reg.Register
+		if arg {
+			offs = Load(Param("offs"), GP64())
 		}
-		VMAXPS(best, t1, best)
-		VMAXPS(best, t2, best)
+		var p [3]reg.GPVirtual
+		for i := range p {
+			p[i] = GP64()
+			MOVQ(Mem{Base: rp, Disp: 8 * i}, p[i])
+		}
+		ev, od := reg.Z2, reg.Z3
+		VMOVUPS(evenLanes, ev)
+		VMOVUPS(oddLanes, od)
+		best, at := reg.Z0, reg.Z6
+		taps := [3]reg.VecPhysical{reg.Z1, reg.Z4, reg.Z5}
+		Label(name + "_loop")
+		CMPQ(n, Imm(16))
+		JL(LabelRef(name + "_done"))
+		for i := range p {
+			// Taps 3i, 3i+1, 3i+2: the even lanes of r[2j…2j+32), and the
+			// even and odd lanes of r[2j+1…2j+33). Tap 0 is the kept value.
+			taps := taps
+			if i == 0 {
+				taps[0] = best
+			}
+			VMOVUPS(Mem{Base: p[i]}, taps[0])
+			VPERMT2PS(Mem{Base: p[i], Disp: 64}, ev, taps[0])
+			VMOVUPS(Mem{Base: p[i], Disp: 4}, taps[1])
+			VMOVAPS(taps[1], taps[2])
+			VPERMT2PS(Mem{Base: p[i], Disp: 68}, ev, taps[1])
+			VPERMT2PS(Mem{Base: p[i], Disp: 68}, od, taps[2])
+			for k, tap := range taps {
+				t := 3*i + k
+				switch {
+				case t == 0:
+					if arg {
+						VPBROADCASTD(Mem{Base: offs}, at)
+					}
+				case arg:
+					VCMPPS(Imm(0x1e), best, tap, reg.K1) // tap > best, ordered
+					VMOVAPS(tap, reg.K1, best)
+					VPBROADCASTD(Mem{Base: offs, Disp: 4 * t}, reg.K1, at)
+				default:
+					VMAXPS(best, tap, best)
+				}
+			}
+		}
+		if arg {
+			VMOVDQU32(at, Mem{Base: dst})
+		} else {
+			VMOVUPS(best, Mem{Base: dst})
+		}
+		for i := range p {
+			ADDQ(Imm(128), p[i])
+		}
+		ADDQ(U8(64), dst)
+		SUBQ(U8(16), n)
+		JMP(LabelRef(name + "_loop"))
+		Label(name + "_done")
+		VZEROUPPER()
+		RET()
 	}
-	VMOVUPS(best, Mem{Base: dst})
-	for i := range p {
-		ADDQ(Imm(128), p[i])
-	}
-	ADDQ(U8(64), dst)
-	SUBQ(U8(16), n)
-	JMP(LabelRef(name + "_loop"))
-	Label(name + "_done")
-	VZEROUPPER()
-	RET()
 }
 
 // genPanelRows emits the row loop of Im2colPlan.Im2colPanelsPadded for
