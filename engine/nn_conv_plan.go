@@ -2,6 +2,7 @@ package engine
 
 import (
 	"fmt"
+	"runtime"
 	"sync"
 
 	"heedmap/kernel"
@@ -65,14 +66,36 @@ func planIm2col(p *kernel.Im2colPlan, x []float32, c int, g geom2, col []float32
 
 // planCol2im writes the column gradients col back onto the c-channel image
 // dx (the adjoint of planIm2col), splitting channels over the team; each
-// goroutine owns the planes it writes. With overwrite each plane is
-// cleared just before it is accumulated into, while it is in that core's
-// cache, instead of in a separate pass over dx; otherwise the values are
-// added to what dx holds.
+// goroutine owns the planes it writes. An image of few channels (the
+// first layer's three) is split by rows instead, which gives the same
+// sums (kernel.Col2imRows). With overwrite each part is cleared just
+// before it is accumulated into, while it is in that core's cache,
+// instead of in a separate pass over dx; otherwise the values are added
+// to what dx holds.
 func planCol2im(tm *team, p *kernel.Im2colPlan, col []float32, c int, g geom2, dx []float32, overwrite bool) error {
 	ihw, ohw, kk := g.ih*g.iw, g.oh*g.ow, g.kh*g.kw
 	var firstErr error
 	var mu sync.Mutex
+	fail := func(err error) {
+		mu.Lock()
+		firstErr = err
+		mu.Unlock()
+	}
+	if c < 4*runtime.GOMAXPROCS(0) {
+		tm.split(g.ih, c*kk*ohw, func(y0, y1 int) {
+			for ch := 0; ch < c; ch++ {
+				plane := dx[ch*ihw : (ch+1)*ihw]
+				if overwrite {
+					clear(plane[y0*g.iw : y1*g.iw])
+				}
+				if err := p.Col2imRows(plane, col[ch*kk*ohw:(ch+1)*kk*ohw], y0, y1); err != nil {
+					fail(err)
+					return
+				}
+			}
+		})
+		return firstErr
+	}
 	tm.split(c, c*kk*ohw, func(c0, c1 int) {
 		for ch := c0; ch < c1; ch++ {
 			plane := dx[ch*ihw : (ch+1)*ihw]
@@ -80,9 +103,7 @@ func planCol2im(tm *team, p *kernel.Im2colPlan, col []float32, c int, g geom2, d
 				clear(plane)
 			}
 			if err := p.Col2im(plane, col[ch*kk*ohw:(ch+1)*kk*ohw]); err != nil {
-				mu.Lock()
-				firstErr = err
-				mu.Unlock()
+				fail(err)
 				return
 			}
 		}

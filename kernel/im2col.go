@@ -218,20 +218,38 @@ func (p *Im2colPlan) Im2col(dst, src []float32) error {
 // transpose of Im2col, the input gradient of a convolution is
 // Col2im(Wgᵀ·dYg).
 func (p *Im2colPlan) Col2im(dst, src []float32) error {
+	return p.Col2imRows(dst, src, 0, p.g.H)
+}
+
+// Col2imRows is Col2im for the image rows [y0, y1) of every channel: the
+// rest of dst is not touched, so disjoint row ranges may run
+// concurrently. Each position receives its entries in the same order as
+// from Col2im (by kernel tap), so the sums are bit-identical however the
+// rows are divided.
+func (p *Im2colPlan) Col2imRows(dst, src []float32, y0, y1 int) error {
 	if err := p.check(src, dst, "col2im"); err != nil {
 		return err
 	}
 	g := p.g
+	if y0 < 0 || y1 > g.H || y0 > y1 {
+		return fmt.Errorf("kernel: col2im rows [%d, %d) outside [0, %d)", y0, y1, g.H)
+	}
 	ohw := p.oh * p.ow
 	row := 0
 	for c := 0; c < g.C; c++ {
 		plane := dst[c*g.H*g.W : (c+1)*g.H*g.W]
 		for kh := 0; kh < g.KH; kh++ {
+			// Output rows oh whose tap kh lands in [y0, y1).
+			ohLo, ohHi := p.ohLo[kh], p.ohHi[kh]
+			if base := kh*g.DilationH - g.PadTop; y0 > 0 || y1 < g.H {
+				ohLo = max(ohLo, ceilDiv(y0-base, g.StrideH))
+				ohHi = min(ohHi, ceilDiv(y1-base, g.StrideH))
+			}
 			for kw := 0; kw < g.KW; kw++ {
 				s := src[row*ohw : (row+1)*ohw]
 				row++
 				owLo, owHi := p.owLo[kw], p.owHi[kw]
-				for oh := p.ohLo[kh]; oh < p.ohHi[kh]; oh++ {
+				for oh := ohLo; oh < ohHi; oh++ {
 					in := s[oh*p.ow : (oh+1)*p.ow]
 					out := plane[p.srcRow(oh, kh)*g.W:]
 					iw := p.srcCol(owLo, kw)
@@ -244,6 +262,14 @@ func (p *Im2colPlan) Col2im(dst, src []float32) error {
 		}
 	}
 	return nil
+}
+
+// ceilDiv is ⌈a/b⌉ for b > 0 and any sign of a.
+func ceilDiv(a, b int) int {
+	if a <= 0 {
+		return -(-a / b)
+	}
+	return (a + b - 1) / b
 }
 
 // Im2col is NewIm2col(g) followed by its Im2col, for one-off use; build

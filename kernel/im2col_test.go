@@ -183,6 +183,54 @@ func TestCol2imIsAdjoint(t *testing.T) {
 	}
 }
 
+// TestCol2imRowsMatchesCol2im checks that Col2imRows over any division of
+// the image rows gives Col2im's result bit for bit (the row ranges only
+// partition the work; each position still sums its entries in tap order)
+// and touches nothing outside its rows.
+func TestCol2imRowsMatchesCol2im(t *testing.T) {
+	r := rand.New(rand.NewPCG(19, 20))
+	for _, g := range []kernel.Conv2D{
+		{C: 3, H: 16, W: 16, KH: 7, KW: 7, StrideH: 2, StrideW: 2, PadTop: 3, PadLeft: 3, PadBottom: 3, PadRight: 3},
+		{C: 2, H: 11, W: 10, KH: 3, KW: 2, StrideH: 2, StrideW: 3, DilationH: 2, PadTop: 2, PadBottom: 1, PadRight: 3},
+		{C: 2, H: 9, W: 7, KH: 3, KW: 3, StrideH: 3, StrideW: 1, PadTop: 1, PadBottom: 2},
+	} {
+		p, err := kernel.NewIm2col(g)
+		if err != nil {
+			t.Fatal(err)
+		}
+		rows, cols := p.Shape()
+		y := randSlice(r, rows*cols)
+		init := randSlice(r, g.C*g.H*g.W)
+		want := append([]float32(nil), init...)
+		if err := p.Col2im(want, y); err != nil {
+			t.Fatal(err)
+		}
+		for _, cuts := range [][]int{{0, g.H}, {0, 1, g.H}, {0, 3, 4, 8, g.H}, {0, g.H - 1, g.H}} {
+			got := append([]float32(nil), init...)
+			for i := 0; i+1 < len(cuts); i++ {
+				if err := p.Col2imRows(got, y, cuts[i], cuts[i+1]); err != nil {
+					t.Fatal(err)
+				}
+			}
+			for i := range got {
+				if math.Float32bits(got[i]) != math.Float32bits(want[i]) {
+					t.Fatalf("%+v, rows cut at %v: value %d = %v, Col2im %v", g, cuts, i, got[i], want[i])
+				}
+			}
+		}
+		// One range alone leaves every other row as it was.
+		got := append([]float32(nil), init...)
+		if err := p.Col2imRows(got, y, 2, 5); err != nil {
+			t.Fatal(err)
+		}
+		for i := range got {
+			if y := i / g.W % g.H; (y < 2 || y >= 5) && got[i] != init[i] {
+				t.Fatalf("%+v: rows [2, 5) changed value %d (row %d)", g, i, y)
+			}
+		}
+	}
+}
+
 func TestIm2colRejectsBadInput(t *testing.T) {
 	for _, g := range []kernel.Conv2D{
 		{C: 0, H: 4, W: 4, KH: 3, KW: 3},
