@@ -61,7 +61,7 @@ func (op *convOp) rowForward(plan *kernel.Im2colPlan, xg []float32, cg int, g ge
 	abuf := poolBuf(&op.slabBufs, op.gemm1.RowPanelsLen(ohw, kk))
 	defer op.slabBufs.Put(abuf)
 	a := *abuf
-	padded, padTasks, release := op.padPlan(plan, xg, cg)
+	padded, padTasks, release := op.padPlan(plan, xg, cg, false)
 	defer release()
 	procs := runtime.GOMAXPROCS(0)
 	npan := full

@@ -72,9 +72,38 @@ type phaseJob struct {
 // closed by the goroutine that finishes its last task, for waiters that
 // stopped spinning.
 type phaseState struct {
-	next, done atomic.Int64
-	released   chan struct{}
-	_          [40]byte // keep the counters of adjacent phases on separate cache lines
+	// claimed counts the tasks taken from the front (low 32 bits, by the
+	// caller) and from the back (high 32 bits, by the helpers).
+	claimed  atomic.Uint64
+	done     atomic.Int64
+	released chan struct{}
+	_        [40]byte // keep the counters of adjacent phases on separate cache lines
+}
+
+// claim returns the next unclaimed task of a phase of c tasks, or −1 when
+// none is left: the caller takes tasks in order from the front, helpers
+// from the back. Which goroutine runs which task does not change any
+// result, but this keeps each core on one end of a phase's range, and
+// the phases of a convolution split their data alike (the padding by
+// rows, the lowering by output positions), so a core mostly reads what
+// it wrote itself rather than lines held in the other core's cache:
+// taking tasks in turn doubled the lowering's time on ResNet-18's 56×56
+// layers at batch 1.
+func (ps *phaseState) claim(c int, front bool) int {
+	for {
+		v := ps.claimed.Load()
+		f, b := int(uint32(v)), int(v>>32)
+		if f+b >= c {
+			return -1
+		}
+		if front {
+			if ps.claimed.CompareAndSwap(v, v+1) {
+				return f
+			}
+		} else if ps.claimed.CompareAndSwap(v, v+1<<32) {
+			return c - 1 - b
+		}
+	}
 }
 
 // run runs the tasks of each phase in turn, f(phase, t) for t <
@@ -170,8 +199,8 @@ func (j *phaseJob) work(caller bool) {
 	for p, c := range j.counts {
 		ps := &j.phases[p]
 		for {
-			t := int(ps.next.Add(1) - 1)
-			if t >= c {
+			t := ps.claim(c, caller)
+			if t < 0 {
 				break
 			}
 			if !j.failed.Load() {

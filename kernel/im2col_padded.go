@@ -24,30 +24,22 @@ func (p *Im2colPlan) NeedsPad() bool {
 // dst (planes of PaddedShape), writing zeros around them. Callers split the
 // channels over goroutines.
 func (p *Im2colPlan) Pad(dst, src []float32, c0, c1 int) error {
-	g := p.g
-	ph, pw := p.PaddedShape()
-	if err := p.checkPad(dst, src, c0, c1); err != nil {
-		return err
-	}
-	for c := c0; c < c1; c++ {
-		d := dst[c*ph*pw : (c+1)*ph*pw]
-		s := src[c*g.H*g.W : (c+1)*g.H*g.W]
-		clear(d[:g.PadTop*pw])
-		for h := 0; h < g.H; h++ {
-			row := d[(g.PadTop+h)*pw : (g.PadTop+h+1)*pw]
-			// Side pads are a value or two: stores, not memclr calls
-			// (a call per row was 2 % of a ResNet-18 forward pass).
-			for x := 0; x < g.PadLeft; x++ {
-				row[x] = 0
-			}
-			copy(row[g.PadLeft:], s[h*g.W:(h+1)*g.W])
-			for x := g.PadLeft + g.W; x < pw; x++ {
-				row[x] = 0
-			}
-		}
-		clear(d[(g.PadTop+g.H)*pw:])
-	}
-	return nil
+	ph, _ := p.PaddedShape()
+	return p.padRange(dst, src, c0, c1, 0, ph, false)
+}
+
+// PadRows is Pad for the padded rows [r0, r1) (0 ≤ r0 ≤ r1 ≤ the padded
+// height) of channels planes: the other rows are not touched, so callers
+// may split the rows over goroutines instead of the channels, and a
+// goroutine that pads the top rows and then lowers the top output rows
+// reads what it wrote itself.
+func (p *Im2colPlan) PadRows(dst, src []float32, channels, r0, r1 int) error {
+	return p.padRange(dst, src, 0, channels, r0, r1, false)
+}
+
+// PadRowsPhased is PadRows in PadPhased's layout.
+func (p *Im2colPlan) PadRowsPhased(dst, src []float32, channels, r0, r1 int) error {
+	return p.padRange(dst, src, 0, channels, r0, r1, true)
 }
 
 // Im2colPanelsPadded is Im2colPanels reading the zero-padded input that
@@ -105,17 +97,56 @@ func (p *Im2colPlan) checkPad(dst, src []float32, c0, c1 int) error {
 // column stride s the row's columns ≡ 0 mod s first, then ≡ 1, and so on,
 // each phase in column order. Im2colPanelsPhased reads this layout.
 func (p *Im2colPlan) PadPhased(dst, src []float32, c0, c1 int) error {
+	ph, _ := p.PaddedShape()
+	return p.padRange(dst, src, c0, c1, 0, ph, true)
+}
+
+// padRange writes the padded rows [r0, r1) of channel planes [c0, c1), in
+// PadPhased's layout when phased.
+func (p *Im2colPlan) padRange(dst, src []float32, c0, c1, r0, r1 int, phased bool) error {
 	g := p.g
 	ph, pw := p.PaddedShape()
 	if err := p.checkPad(dst, src, c0, c1); err != nil {
 		return err
 	}
+	if r0 < 0 || r0 > r1 || r1 > ph {
+		return fmt.Errorf("kernel: pad row range [%d, %d) outside [0, %d)", r0, r1, ph)
+	}
+	// Image rows [h0, h1) land in the range; the rest of it is padding.
+	h0, h1 := max(r0-g.PadTop, 0), min(r1-g.PadTop, g.H)
 	s := g.StrideW
-	po := phaseOffsets(pw, s)
+	var po []int
+	if phased {
+		po = phaseOffsets(pw, s)
+	}
 	for c := c0; c < c1; c++ {
 		d := dst[c*ph*pw : (c+1)*ph*pw]
 		sp := src[c*g.H*g.W : (c+1)*g.H*g.W]
-		if s == 2 && !p.portable && g.H > 0 && g.W > 0 {
+		if r0 < g.PadTop {
+			clear(d[r0*pw : min(r1, g.PadTop)*pw])
+		}
+		if top := g.PadTop + g.H; r1 > top {
+			clear(d[max(r0, top)*pw : r1*pw])
+		}
+		if h0 >= h1 {
+			continue
+		}
+		if !phased {
+			for h := h0; h < h1; h++ {
+				row := d[(g.PadTop+h)*pw : (g.PadTop+h+1)*pw]
+				// Side pads are a value or two: stores, not memclr calls
+				// (a call per row was 2 % of a ResNet-18 forward pass).
+				for x := 0; x < g.PadLeft; x++ {
+					row[x] = 0
+				}
+				copy(row[g.PadLeft:], sp[h*g.W:(h+1)*g.W])
+				for x := g.PadLeft + g.W; x < pw; x++ {
+					row[x] = 0
+				}
+			}
+			continue
+		}
+		if s == 2 && !p.portable && g.W > 0 {
 			// Image column j is padded column PadLeft + j: the even j
 			// go to the phase of PadLeft's parity, the odd j to the
 			// other, with the depthwise path's vector de-interleave
@@ -125,13 +156,11 @@ func (p *Im2colPlan) PadPhased(dst, src []float32, c0, c1 int) error {
 			// after the fill each row's few padding columns (clearing the
 			// whole plane first doubled the bytes written).
 			l := g.PadLeft
-			rows := d[g.PadTop*pw:]
+			rows := d[(g.PadTop+h0)*pw:]
 			ev := rows[po[l&1]+l>>1:]
 			od := rows[po[(l+1)&1]+(l+1)>>1:]
-			if dwFillPhasedSIMD(ISAAuto, ev, od, sp, g.H, g.W, pw, g.W) {
-				clear(d[:g.PadTop*pw])
-				clear(d[(g.PadTop+g.H)*pw:])
-				for h := 0; h < g.H; h++ {
+			if dwFillPhasedSIMD(ISAAuto, ev, od, sp[h0*g.W:], h1-h0, g.W, pw, g.W) {
+				for h := 0; h < h1-h0; h++ {
 					row := rows[h*pw : (h+1)*pw]
 					for x := 0; x < l; x++ {
 						row[po[x&1]+x>>1] = 0
@@ -143,9 +172,7 @@ func (p *Im2colPlan) PadPhased(dst, src []float32, c0, c1 int) error {
 				continue
 			}
 		}
-		clear(d[:g.PadTop*pw])
-		clear(d[(g.PadTop+g.H)*pw:])
-		for h := 0; h < g.H; h++ {
+		for h := h0; h < h1; h++ {
 			row := d[(g.PadTop+h)*pw : (g.PadTop+h+1)*pw]
 			in := sp[h*g.W : (h+1)*g.W]
 			for q := 0; q < s; q++ {

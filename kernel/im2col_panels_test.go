@@ -99,6 +99,32 @@ func TestIm2colPanelsConv(t *testing.T) {
 				if err := plan.PadPhased(phased, x, 0, tc.c); err != nil {
 					t.Fatal(err)
 				}
+				// Padding by bands of rows, vector and pure-Go, writes
+				// the same planes.
+				for _, pl := range []*kernel.Im2colPlan{plan, plan.PortableLoops()} {
+					for _, want := range []struct {
+						f    func(d []float32, r0, r1 int) error
+						full []float32
+					}{
+						{func(d []float32, r0, r1 int) error { return pl.PadRows(d, x, tc.c, r0, r1) }, padded},
+						{func(d []float32, r0, r1 int) error { return pl.PadRowsPhased(d, x, tc.c, r0, r1) }, phased},
+					} {
+						bands := make([]float32, len(want.full))
+						for k := range bands {
+							bands[k] = float32(math.NaN())
+						}
+						for _, r := range [][2]int{{0, 1}, {1, ph / 2}, {ph / 2, ph}} {
+							if err := want.f(bands, r[0], r[1]); err != nil {
+								t.Fatal(err)
+							}
+						}
+						for k := range bands {
+							if math.Float32bits(bands[k]) != math.Float32bits(want.full[k]) {
+								t.Fatalf("%v case %d: padding by row bands differs at %d: %v, want %v", isa, i, k, bands[k], want.full[k])
+							}
+						}
+					}
+				}
 				for _, pl := range []*kernel.Im2colPlan{plan, plan.PortableLoops()} {
 					for _, lower := range []struct {
 						name string
