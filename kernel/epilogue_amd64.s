@@ -668,3 +668,71 @@ argMax9Stride2AVX512_loop:
 argMax9Stride2AVX512_done:
 	VZEROUPPER
 	RET
+
+DATA addSpreadLo<>+0(SB)/4, $0x00000000
+DATA addSpreadLo<>+4(SB)/4, $0x00000000
+DATA addSpreadLo<>+8(SB)/4, $0x00000001
+DATA addSpreadLo<>+12(SB)/4, $0x00000001
+DATA addSpreadLo<>+16(SB)/4, $0x00000002
+DATA addSpreadLo<>+20(SB)/4, $0x00000002
+DATA addSpreadLo<>+24(SB)/4, $0x00000003
+DATA addSpreadLo<>+28(SB)/4, $0x00000003
+DATA addSpreadLo<>+32(SB)/4, $0x00000004
+DATA addSpreadLo<>+36(SB)/4, $0x00000004
+DATA addSpreadLo<>+40(SB)/4, $0x00000005
+DATA addSpreadLo<>+44(SB)/4, $0x00000005
+DATA addSpreadLo<>+48(SB)/4, $0x00000006
+DATA addSpreadLo<>+52(SB)/4, $0x00000006
+DATA addSpreadLo<>+56(SB)/4, $0x00000007
+DATA addSpreadLo<>+60(SB)/4, $0x00000007
+GLOBL addSpreadLo<>(SB), RODATA|NOPTR, $64
+
+DATA addSpreadHi<>+0(SB)/4, $0x00000008
+DATA addSpreadHi<>+4(SB)/4, $0x00000008
+DATA addSpreadHi<>+8(SB)/4, $0x00000009
+DATA addSpreadHi<>+12(SB)/4, $0x00000009
+DATA addSpreadHi<>+16(SB)/4, $0x0000000a
+DATA addSpreadHi<>+20(SB)/4, $0x0000000a
+DATA addSpreadHi<>+24(SB)/4, $0x0000000b
+DATA addSpreadHi<>+28(SB)/4, $0x0000000b
+DATA addSpreadHi<>+32(SB)/4, $0x0000000c
+DATA addSpreadHi<>+36(SB)/4, $0x0000000c
+DATA addSpreadHi<>+40(SB)/4, $0x0000000d
+DATA addSpreadHi<>+44(SB)/4, $0x0000000d
+DATA addSpreadHi<>+48(SB)/4, $0x0000000e
+DATA addSpreadHi<>+52(SB)/4, $0x0000000e
+DATA addSpreadHi<>+56(SB)/4, $0x0000000f
+DATA addSpreadHi<>+60(SB)/4, $0x0000000f
+GLOBL addSpreadHi<>(SB), RODATA|NOPTR, $64
+
+// func addStride2AVX512(n int, dst *float32, src *float32)
+// Requires: AVX, AVX512F
+TEXT ·addStride2AVX512(SB), NOSPLIT, $0-24
+	MOVQ    n+0(FP), AX
+	MOVQ    dst+8(FP), CX
+	MOVQ    src+16(FP), DX
+	MOVL    $0x00005555, BX
+	KMOVW   BX, K1
+	VMOVUPS addSpreadLo<>+0(SB), Z2
+	VMOVUPS addSpreadHi<>+0(SB), Z3
+
+addStride2AVX512_loop:
+	CMPQ      AX, $0x10
+	JL        addStride2AVX512_done
+	VMOVUPS   (DX), Z0
+	VPERMPS   Z0, Z2, Z1
+	VMOVUPS.Z (CX), K1, Z4
+	VADDPS    Z1, Z4, K1, Z4
+	VMOVUPS   Z4, K1, (CX)
+	VPERMPS   Z0, Z3, Z1
+	VMOVUPS.Z 64(CX), K1, Z4
+	VADDPS    Z1, Z4, K1, Z4
+	VMOVUPS   Z4, K1, 64(CX)
+	ADDQ      $0x40, DX
+	ADDQ      $0x80, CX
+	SUBQ      $0x10, AX
+	JMP       addStride2AVX512_loop
+
+addStride2AVX512_done:
+	VZEROUPPER
+	RET

@@ -92,3 +92,14 @@ func argMax9Stride2SIMD(at []int32, r *[3][]float32, offs *[9]int32) int {
 	argMax9Stride2AVX512(n, &at[0], &p, offs)
 	return n
 }
+
+// addStride2SIMD runs the vector part of AddStride2 and returns how many
+// leading source values it added (0 without AVX-512F).
+func addStride2SIMD(dst, src []float32) int {
+	n := len(src) &^ 15
+	if n == 0 || !cpu.X86.HasAVX512F {
+		return 0
+	}
+	addStride2AVX512(n, &dst[0], &src[0])
+	return n
+}

@@ -19,3 +19,6 @@ func max9Stride2SIMD(dst []float32, r *[3][]float32) int { return 0 }
 
 // argMax9Stride2SIMD: no vector path off amd64.
 func argMax9Stride2SIMD(at []int32, r *[3][]float32, offs *[9]int32) int { return 0 }
+
+// addStride2SIMD: no vector path off amd64.
+func addStride2SIMD(dst, src []float32) int { return 0 }

@@ -66,3 +66,8 @@ func max9Stride2AVX512(n int, dst *float32, rows *[3]*float32)
 //
 //go:noescape
 func argMax9Stride2AVX512(n int, dst *int32, rows *[3]*float32, offs *[9]int32)
+
+// addStride2AVX512 adds src[j] into dst[2j] for j < n rounded down to 16, touching only those elements of dst.
+//
+//go:noescape
+func addStride2AVX512(n int, dst *float32, src *float32)

@@ -253,6 +253,10 @@ func (p *Im2colPlan) Col2imRows(dst, src []float32, y0, y1 int) error {
 					in := s[oh*p.ow : (oh+1)*p.ow]
 					out := plane[p.srcRow(oh, kh)*g.W:]
 					iw := p.srcCol(owLo, kw)
+					if g.StrideW == 2 && !p.portable {
+						AddStride2(out[iw:], in[owLo:owHi])
+						continue
+					}
 					for ow := owLo; ow < owHi; ow++ {
 						out[iw] += in[ow]
 						iw += g.StrideW

@@ -24,6 +24,55 @@ func genEpilogue(zmm, ymm []reg.VecPhysical) {
 	genMaskRange("maskRangeAVX2", 8)
 	genMax9()
 	genMax9Stride2()
+	genAddStride2()
+}
+
+// genAddStride2 emits addStride2AVX512, the stride-2 scatter-add of
+// col2im: dst[2j] += src[j] for j < n rounded down to 16. Sixteen source
+// values are spread over the even lanes of two vectors (VPERMPS), and the
+// adds, loads and stores are masked to the even lanes, so the odd
+// elements of dst are neither read nor written (another goroutine may
+// own them) and no load reaches past dst[2j+30].
+func genAddStride2() {
+	spread := func(name string, first int) Mem {
+		m := GLOBL(name, RODATA|NOPTR)
+		for j := 0; j < 16; j++ {
+			DATA(4*j, U32(first+j/2))
+		}
+		return m
+	}
+	lo, hi := spread("addSpreadLo", 0), spread("addSpreadHi", 8)
+	name := "addStride2AVX512"
+	TEXT(name, NOSPLIT, "func(n int, dst, src *float32)")
+	Doc(name + " adds src[j] into dst[2j] for j < n rounded down to 16, touching only those elements of dst.")
+	Pragma("noescape")
+	n := Load(Param("n"), GP64())
+	dst := Load(Param("dst"), GP64())
+	src := Load(Param("src"), GP64())
+	even := GP32()
+	MOVL(U32(0x5555), even)
+	KMOVW(even, reg.K1)
+	ilo, ihi := reg.Z2, reg.Z3
+	VMOVUPS(lo, ilo)
+	VMOVUPS(hi, ihi)
+	v, a, b := reg.Z0, reg.Z1, reg.Z4
+	Label(name + "_loop")
+	CMPQ(n, Imm(16))
+	JL(LabelRef(name + "_done"))
+	VMOVUPS(Mem{Base: src}, v)
+	for i, idx := range []reg.VecPhysical{ilo, ihi} {
+		VPERMPS(v, idx, a)
+		VMOVUPS_Z(Mem{Base: dst, Disp: 64 * i}, reg.K1, b)
+		VADDPS(a, b, reg.K1, b)
+		VMOVUPS(b, reg.K1, Mem{Base: dst, Disp: 64 * i})
+	}
+	ADDQ(U8(64), src)
+	ADDQ(Imm(128), dst)
+	SUBQ(U8(16), n)
+	JMP(LabelRef(name + "_loop"))
+	Label(name + "_done")
+	VZEROUPPER()
+	RET()
 }
 
 // genMax9 emits max9AVX512: dst[j] = the first of the nine sources' values
