@@ -129,6 +129,9 @@ func (op *convOp) slabForward(plan *kernel.Im2colPlan, xg []float32, cg int, g g
 	ohw := g.oh * g.ow
 	nr := op.gemm1.PanelWidth()
 	nb := max(nr, min(512, slabFloats/kk/nr*nr))
+	// At least four slabs per core, so the last one claimed leaves the
+	// other core little to wait for.
+	nb = max(nr, min(nb, (ohw+4*runtime.GOMAXPROCS(0)*nr-1)/(4*runtime.GOMAXPROCS(0)*nr)*nr))
 	ep = ep.forGroup(mOff)
 	padded, padTasks, release := op.padPlan(plan, xg, cg, true)
 	defer release()
