@@ -6,6 +6,7 @@ import (
 	"fmt"
 	"slices"
 
+	"heedmap/kernel"
 	"heedmap/tensor"
 )
 
@@ -215,6 +216,7 @@ func (p *Pass) Backward(ctx context.Context, seeds map[string]*tensor.Tensor, wr
 				return nil, fmt.Errorf("engine: Backward: %s: %w", nd.label(), err)
 			}
 		}
+
 		fresh := freshGrads(nd.op)
 		pending = append(pending[:0], gin...)
 		for i, v := range nd.in {
@@ -245,14 +247,14 @@ func (p *Pass) Backward(ctx context.Context, seeds map[string]*tensor.Tensor, wr
 			case cur == nil:
 				grads[v], owned[v] = gi, giOwned
 			case owned[v] && !shared(cur.F32, v, nil):
-				addTo(cur.F32, gi.F32)
+				addTo(g.team, cur.F32, gi.F32)
 				if giOwned {
 					release(gi, -1)
 				}
 			case giOwned && !shared(gi.F32, -1, gi):
 				// Addition commutes exactly, so summing into gi gives the
 				// bits summing into a copy of cur would.
-				addTo(gi.F32, cur.F32)
+				addTo(g.team, gi.F32, cur.F32)
 				grads[v] = gi
 				if owned[v] {
 					release(cur, -1)
@@ -261,7 +263,7 @@ func (p *Pass) Backward(ctx context.Context, seeds map[string]*tensor.Tensor, wr
 			default:
 				c := g.arena.tensor(p.shapes[v]...)
 				copy(c.F32, cur.F32)
-				addTo(c.F32, gi.F32)
+				addTo(g.team, c.F32, gi.F32)
 				grads[v] = c
 				if owned[v] {
 					release(cur, -1)
@@ -373,17 +375,12 @@ func onlyFirst(need []bool) bool {
 	return true
 }
 
-// addTo adds src into dst elementwise (dst[i] += src[i]), long slices
-// split over the cores.
-func addTo(dst, src []float32) {
+// addTo adds src into dst elementwise (dst[i] += src[i]) with the vector
+// kernel, long slices split over the graph's team (a fresh goroutine per
+// chunk cost more than the sums at batch 1).
+func addTo(tm *team, dst, src []float32) {
 	n := len(src)
-	splitWork(n, n, func(i0, i1 int) {
-		d, s := dst[i0:i1], src[i0:i1]
-		d = d[:len(s)]
-		for i, x := range s {
-			d[i] += x
-		}
-	})
+	tm.split(n, n, func(i0, i1 int) { kernel.AddTo(dst[i0:i1], src[i0:i1]) })
 }
 
 // memoFunc returns data derived from the op's input i by build (which

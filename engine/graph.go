@@ -48,6 +48,9 @@ type Graph struct {
 	varying []bool
 	// arena recycles activation buffers across nodes and Runs (arena.go).
 	arena *arena
+	// team runs the graph's parallel loops: its operators' (through Env)
+	// and Backward's gradient sums.
+	team *team
 	// fusion lists the Conv→activation pairs Run may fuse (fuse.go).
 	fusion *fusionPlan
 }
@@ -132,7 +135,8 @@ func Compile(m *onnx.Model, opts ...Option) (*Graph, error) {
 	// Build every supported node, collecting all problems before failing.
 	var unsupported, rejected []string
 	g.arena = newArena()
-	env := &Env{GEMM: cfg.gemm, Opset: opset, arena: g.arena, team: newTeam()}
+	g.team = newTeam()
+	env := &Env{GEMM: cfg.gemm, Opset: opset, arena: g.arena, team: g.team}
 	built := make([]Op, len(order))
 	for k, n := range order {
 		if n.Domain != "" && n.Domain != "ai.onnx" {

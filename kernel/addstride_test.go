@@ -35,3 +35,29 @@ func TestAddStride2(t *testing.T) {
 		}
 	}
 }
+
+// TestAddTo checks AddTo against dst[i] += src[i] bit for bit, over
+// lengths around the vector step, and that dst past len(src) is kept.
+func TestAddTo(t *testing.T) {
+	r := rand.New(rand.NewPCG(53, 54))
+	for _, n := range []int{0, 1, 63, 64, 65, 127, 128, 200, 1000} {
+		src := make([]float32, n)
+		dst := make([]float32, n+5)
+		for i := range src {
+			src[i] = r.Float32()*2 - 1
+		}
+		for i := range dst {
+			dst[i] = r.Float32()*2 - 1
+		}
+		want := append([]float32(nil), dst...)
+		for i, v := range src {
+			want[i] += v
+		}
+		AddTo(dst, src)
+		for i := range want {
+			if math.Float32bits(dst[i]) != math.Float32bits(want[i]) {
+				t.Fatalf("n=%d element %d: %v, want %v", n, i, dst[i], want[i])
+			}
+		}
+	}
+}

@@ -736,3 +736,34 @@ addStride2AVX512_loop:
 addStride2AVX512_done:
 	VZEROUPPER
 	RET
+
+// func addToAVX512(n int, dst *float32, src *float32)
+// Requires: AVX, AVX512F
+TEXT ·addToAVX512(SB), NOSPLIT, $0-24
+	MOVQ n+0(FP), AX
+	MOVQ dst+8(FP), CX
+	MOVQ src+16(FP), DX
+
+addToAVX512_loop:
+	CMPQ    AX, $0x40
+	JL      addToAVX512_done
+	VMOVUPS (CX), Z0
+	VADDPS  (DX), Z0, Z0
+	VMOVUPS Z0, (CX)
+	VMOVUPS 64(CX), Z1
+	VADDPS  64(DX), Z1, Z1
+	VMOVUPS Z1, 64(CX)
+	VMOVUPS 128(CX), Z2
+	VADDPS  128(DX), Z2, Z2
+	VMOVUPS Z2, 128(CX)
+	VMOVUPS 192(CX), Z3
+	VADDPS  192(DX), Z3, Z3
+	VMOVUPS Z3, 192(CX)
+	ADDQ    $0x00000100, DX
+	ADDQ    $0x00000100, CX
+	SUBQ    $0x40, AX
+	JMP     addToAVX512_loop
+
+addToAVX512_done:
+	VZEROUPPER
+	RET

@@ -103,3 +103,14 @@ func addStride2SIMD(dst, src []float32) int {
 	addStride2AVX512(n, &dst[0], &src[0])
 	return n
 }
+
+// addToSIMD runs the vector part of AddTo and returns how many leading
+// values it added (0 without AVX-512F).
+func addToSIMD(dst, src []float32) int {
+	n := len(src) &^ 63
+	if n == 0 || !cpu.X86.HasAVX512F {
+		return 0
+	}
+	addToAVX512(n, &dst[0], &src[0])
+	return n
+}

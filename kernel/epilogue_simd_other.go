@@ -22,3 +22,6 @@ func argMax9Stride2SIMD(at []int32, r *[3][]float32, offs *[9]int32) int { retur
 
 // addStride2SIMD: no vector path off amd64.
 func addStride2SIMD(dst, src []float32) int { return 0 }
+
+// addToSIMD: no vector path off amd64.
+func addToSIMD(dst, src []float32) int { return 0 }

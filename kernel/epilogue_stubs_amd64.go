@@ -71,3 +71,8 @@ func argMax9Stride2AVX512(n int, dst *int32, rows *[3]*float32, offs *[9]int32)
 //
 //go:noescape
 func addStride2AVX512(n int, dst *float32, src *float32)
+
+// addToAVX512 adds src[i] into dst[i] for i < n rounded down to 64.
+//
+//go:noescape
+func addToAVX512(n int, dst *float32, src *float32)

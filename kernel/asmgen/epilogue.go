@@ -25,6 +25,36 @@ func genEpilogue(zmm, ymm []reg.VecPhysical) {
 	genMax9()
 	genMax9Stride2()
 	genAddStride2()
+	genAddTo()
+}
+
+// genAddTo emits addToAVX512: dst[i] += src[i] for i < n rounded down to
+// 64, four vectors a step (the accumulation of two gradients of one
+// value, a memory-bound pass).
+func genAddTo() {
+	name := "addToAVX512"
+	TEXT(name, NOSPLIT, "func(n int, dst, src *float32)")
+	Doc(name + " adds src[i] into dst[i] for i < n rounded down to 64.")
+	Pragma("noescape")
+	n := Load(Param("n"), GP64())
+	dst := Load(Param("dst"), GP64())
+	src := Load(Param("src"), GP64())
+	v := []reg.VecPhysical{reg.Z0, reg.Z1, reg.Z2, reg.Z3}
+	Label(name + "_loop")
+	CMPQ(n, Imm(64))
+	JL(LabelRef(name + "_done"))
+	for i, r := range v {
+		VMOVUPS(Mem{Base: dst, Disp: 64 * i}, r)
+		VADDPS(Mem{Base: src, Disp: 64 * i}, r, r)
+		VMOVUPS(r, Mem{Base: dst, Disp: 64 * i})
+	}
+	ADDQ(U32(256), src)
+	ADDQ(U32(256), dst)
+	SUBQ(U8(64), n)
+	JMP(LabelRef(name + "_loop"))
+	Label(name + "_done")
+	VZEROUPPER()
+	RET()
 }
 
 // genAddStride2 emits addStride2AVX512, the stride-2 scatter-add of
