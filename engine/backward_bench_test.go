@@ -27,10 +27,12 @@ func benchMask(b *testing.B, mask func(dst, g, y []float32)) {
 	}
 }
 
-func BenchmarkReluMask(b *testing.B) { benchMask(b, reluMask) }
+func BenchmarkReluMask(b *testing.B) {
+	benchMask(b, func(dst, g, y []float32) { reluMask(nil, dst, g, y) })
+}
 
 func BenchmarkClipMask(b *testing.B) {
-	benchMask(b, func(dst, g, y []float32) { clipMask(dst, g, y, 0, 6) })
+	benchMask(b, func(dst, g, y []float32) { clipMask(nil, dst, g, y, 0, 6) })
 }
 
 // benchBackwardRelease is benchForwardBackward with the pass released after

@@ -57,6 +57,7 @@ type unaryOp struct {
 	// avoiding an indirect call per element.
 	vec   func(dst, src []float32)
 	arena *arena // float32 output buffers; nil allocates
+	team  *team  // splits the gradient masks; nil starts fresh goroutines
 }
 
 func (u *unaryOp) Forward(in []*tensor.Tensor) ([]*tensor.Tensor, error) {
@@ -94,7 +95,7 @@ func (u *unaryOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor,
 	if u.name == "Relu" {
 		// The hot activation of most CNNs: the same rule as its df
 		// (gradient where y > 0) without an indirect call per element.
-		reluMask(gx.F32, g.F32, out[0].F32)
+		reluMask(u.team, gx.F32, g.F32, out[0].F32)
 		return []*tensor.Tensor{gx}, nil
 	}
 	u.grad(gx.F32, g.F32, in[0], out[0])
@@ -107,7 +108,7 @@ func (u *unaryOp) backwardInPlace(in, out []*tensor.Tensor, g *tensor.Tensor) ([
 		return nil, nil
 	}
 	if u.name == "Relu" {
-		reluMask(g.F32, g.F32, out[0].F32)
+		reluMask(u.team, g.F32, g.F32, out[0].F32)
 	} else {
 		u.grad(g.F32, g.F32, in[0], out[0])
 	}
@@ -142,10 +143,10 @@ func (u *unaryOp) grad(dst, g []float32, x, y *tensor.Tensor) {
 // reading y gives the input-based rule's bits and lets a Conv→Relu pair
 // fuse in backward runs too: the pre-activation is then never kept. Long
 // slices are split over the cores.
-func reluMask(dst, g, y []float32) {
+func reluMask(tm *team, dst, g, y []float32) {
 	// y > 0 iff its bits, less one, lie below +Inf's (0 and negatives
 	// wrap around, NaNs lie above).
-	maskBits(dst, g, y, 1, 0x7f800000)
+	maskBits(tm, dst, g, y, 1, 0x7f800000)
 }
 
 // maskBits writes dst[i] = g[i] where bits(y[i]) − lo < span (unsigned)
@@ -154,10 +155,10 @@ func reluMask(dst, g, y []float32) {
 // and negatives fall outside). kernel.MaskRange does it with a vector
 // compare and a masked move (the conditional-move Go loop before it was
 // 12 % of a MobileNetV2 forward+backward pass at batch 1). Long slices
-// are split over the cores.
-func maskBits(dst, g, y []float32, lo, span uint32) {
+// are split over the team's cores (nil: fresh goroutines).
+func maskBits(tm *team, dst, g, y []float32, lo, span uint32) {
 	n := len(y)
-	splitWork(n, n, func(i0, i1 int) {
+	tm.split(n, n, func(i0, i1 int) {
 		kernel.MaskRange(dst[i0:i1], g[i0:i1], y[i0:i1], lo, span)
 	})
 }
@@ -173,7 +174,7 @@ func (u *unaryOp) BackwardNeeds() (in, out []int) {
 }
 
 func buildRelu(n *onnx.Node, env *Env) (Op, error) {
-	return &unaryOp{name: "Relu",
+	return &unaryOp{name: "Relu", team: env.team,
 		f: func(x float32) float32 {
 			if x > 0 {
 				return x
@@ -294,15 +295,16 @@ type clipOp struct {
 	attrBounds bool
 	lo, hi     float32
 	arena      *arena // gradient buffers; nil allocates
+	team       *team  // splits the gradient masks; nil starts fresh goroutines
 }
 
 func buildClip(n *onnx.Node, env *Env) (Op, error) {
 	if env.Opset < 11 {
 		// Opset 6 defaults are ±FLT_MAX, which behaves like ±Inf here.
-		return &clipOp{attrBounds: true,
+		return &clipOp{attrBounds: true, team: env.team,
 			lo: n.Float("min", float32(math.Inf(-1))), hi: n.Float("max", float32(math.Inf(1)))}, nil
 	}
-	return &clipOp{}, nil
+	return &clipOp{team: env.team}, nil
 }
 
 // bounds reads the bound inputs; absent bounds are infinite.
@@ -381,7 +383,7 @@ func (c *clipOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor, 
 		return nil, err
 	}
 	gx := c.arena.tensor(in[0].Shape...) // every element written
-	clipMask(gx.F32, g.F32, out[0].F32, lo, hi)
+	clipMask(c.team, gx.F32, g.F32, out[0].F32, lo, hi)
 	grads[0] = gx
 	return grads, nil
 }
@@ -395,7 +397,7 @@ func (c *clipOp) backwardInPlace(in, out []*tensor.Tensor, g *tensor.Tensor) ([]
 	if err != nil {
 		return nil, err
 	}
-	clipMask(g.F32, g.F32, out[0].F32, lo, hi)
+	clipMask(c.team, g.F32, g.F32, out[0].F32, lo, hi)
 	grads := make([]*tensor.Tensor, len(in))
 	grads[0] = g
 	return grads, nil
@@ -405,7 +407,7 @@ func (c *clipOp) backwardInPlace(in, out []*tensor.Tensor, g *tensor.Tensor) ([]
 // may be g. The bounds are compared as float32, the values Forward clamps
 // to, over equal-length slices the compiler keeps free of bounds checks.
 // Long slices are split over the cores.
-func clipMask(dst, g, y []float32, lo, hi float64) {
+func clipMask(tm *team, dst, g, y []float32, lo, hi float64) {
 	l, h := float32(lo), float32(hi)
 	if l == 0 {
 		l = 0 // −0 as +0: y > −0 iff y > +0
@@ -413,11 +415,11 @@ func clipMask(dst, g, y []float32, lo, hi float64) {
 	if lb, hb := math.Float32bits(l), math.Float32bits(h); lb>>31 == 0 && hb>>31 == 0 && h > l {
 		// Non-negative bounds (ReLU6 and most clips): one unsigned range
 		// test on the bits.
-		maskBits(dst, g, y, lb+1, hb-lb-1)
+		maskBits(tm, dst, g, y, lb+1, hb-lb-1)
 		return
 	}
 	n := len(y)
-	splitWork(n, n, func(i0, i1 int) {
+	tm.split(n, n, func(i0, i1 int) {
 		ys, gs, ds := y[i0:i1], g[i0:i1], dst[i0:i1]
 		gs, ds = gs[:len(ys)], ds[:len(ys)]
 		for i, v := range ys {
