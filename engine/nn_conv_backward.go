@@ -3,6 +3,7 @@ package engine
 import (
 	"heedmap/kernel"
 	"heedmap/tensor"
+	"runtime"
 )
 
 // BackwardNeeds implements BackwardNeeder: the output is not needed.
@@ -139,7 +140,10 @@ func (op *convOp) backwardFor(in, out, gradOut []*tensor.Tensor, need []bool, me
 			defer op.cols.Put(b)
 			col = *b
 		}
-		if !pw && needX && !transposed {
+		// A large strided input gradient goes band by band
+		// (bandedInputGrad) and needs no whole column matrix.
+		banded := !pw && needX && !transposed && perr == nil && wt != nil && op.gemm1 != nil && kk*ohw >= bandedMin
+		if !pw && needX && !transposed && !banded {
 			b := op.colBuf(kk * ohw)
 			defer op.cols.Put(b)
 			dcol = *b
@@ -191,6 +195,12 @@ func (op *convOp) backwardFor(in, out, gradOut []*tensor.Tensor, need []bool, me
 					}
 					continue
 				}
+				if banded {
+					if err := op.bandedInputGrad(plan, wt[gi*s.mg*kk:(gi+1)*s.mg*kk], dyg, s.cg, s.mg, kk, g, dxg); err != nil {
+						return nil, err
+					}
+					continue
+				}
 				// dcol = W_gᵀ · dY_g, scattered back onto dX. (Handing the
 				// GEMM a transposed copy of W measured no faster.)
 				wg := w.F32[gi*s.mg*kk : (gi+1)*s.mg*kk]
@@ -237,6 +247,47 @@ func (op *convOp) backwardFor(in, out, gradOut []*tensor.Tensor, need []bool, me
 		res[2] = db
 	}
 	return res[:len(in)], nil
+}
+
+// bandedMin is the column-matrix size (floats) from which a strided
+// input gradient is formed band by band: 1 MiB, about an L2's worth.
+const bandedMin = 1 << 18
+
+// bandedInputGrad computes one image and group's strided input gradient,
+// dX = col2im(Wᵀ·dY) with wtg = Wᵀ (kk×mg), by bands of output rows: each
+// band's columns are multiplied into a cache-sized buffer and scattered
+// onto dX at once (kernel.Col2imOutRows), instead of writing the whole
+// column matrix (7 MiB for ResNet-18's first layer) and reading it back.
+// Bands two apart share no row of dX, so the even bands run concurrently,
+// then the odd ones; the band height depends only on the shapes, so the
+// sums, whose order differs from one whole col2im where bands overlap,
+// are the same on any number of cores.
+func (op *convOp) bandedInputGrad(plan *kernel.Im2colPlan, wtg, dyg []float32, cg, mg, kk int, g geom2, dxg []float32) error {
+	ohw, ihw, khw := g.oh*g.ow, g.ih*g.iw, g.kh*g.kw
+	rows := max(1, (g.kh-1)*g.dh/g.sh, slabFloats/(kk*g.ow))
+	bands := (g.oh + rows - 1) / rows
+	clears := min(g.ih, 2*runtime.GOMAXPROCS(0))
+	return op.team.run([]int{clears, (bands + 1) / 2, bands / 2}, func(phase, t int) error {
+		if phase == 0 {
+			y0, y1 := g.ih*t/clears, g.ih*(t+1)/clears
+			for ch := 0; ch < cg; ch++ {
+				clear(dxg[ch*ihw+y0*g.iw : ch*ihw+y1*g.iw])
+			}
+			return nil
+		}
+		b := 2*t + phase - 1
+		oh0, oh1 := b*rows, min((b+1)*rows, g.oh)
+		cols := (oh1 - oh0) * g.ow
+		buf := poolBuf(&op.slabBufs, kk*cols)
+		defer op.slabBufs.Put(buf)
+		op.gemm1.Sgemm(false, false, kk, cols, mg, 1, wtg, mg, dyg[oh0*g.ow:], ohw, 0, *buf, cols)
+		for ch := 0; ch < cg; ch++ {
+			if err := plan.Col2imOutRows(dxg[ch*ihw:(ch+1)*ihw], (*buf)[ch*khw*cols:(ch+1)*khw*cols], oh0, oh1); err != nil {
+				return err
+			}
+		}
+		return nil
+	})
 }
 
 // transposedGeom returns the geometry of the input gradient of a

@@ -118,6 +118,69 @@ func TestConvTransposedBackwardMatchesReference(t *testing.T) {
 	}
 }
 
+// TestConvBandedBackwardMatchesReference checks the input gradient of
+// large strided convolutions, formed band by band of output rows
+// (bandedInputGrad, taken with the graph's memo of Wᵀ), against the
+// operator built on kernel.Naive and the adjoint identity, as above.
+func TestConvBandedBackwardMatchesReference(t *testing.T) {
+	rng := rand.New(rand.NewSource(5))
+	memo := func(i, n int, build func([]float32)) []float32 {
+		if i != 1 {
+			return nil
+		}
+		f := make([]float32, n)
+		build(f)
+		return f
+	}
+	for i, tc := range []struct {
+		c, h, w, m, k, stride, pad, group int
+	}{
+		{3, 112, 112, 16, 7, 2, 3, 1}, // a first layer: 3 bands of rows two apart overlap
+		{40, 56, 57, 8, 3, 2, 1, 1},
+		{48, 80, 80, 8, 3, 2, 1, 2},
+		{3, 181, 178, 4, 5, 3, 2, 1},
+	} {
+		x := nnRand(rng, 2, tc.c, tc.h, tc.w)
+		wt := nnRand(rng, tc.m, tc.c/tc.group, tc.k, tc.k)
+		p, st := int64(tc.pad), int64(tc.stride)
+		node := nnNode("c", "Conv", []string{"x", "w"}, []string{"y"},
+			nnInts("pads", p, p, p, p), nnInts("strides", st, st),
+			&onnx.Attr{Name: "group", Type: onnx.AttrInt, Int: int64(tc.group)})
+		fc, ref := convPair(t, node, nil)
+		s, _ := fc.shape(x, wt)
+		if kk := s.cg * s.g.kh * s.g.kw; kk*s.g.oh*s.g.ow < bandedMin {
+			t.Fatalf("case %d: %d×%d column matrix, below the banded path's %d", i, kk, s.g.oh*s.g.ow, bandedMin)
+		}
+		in := []*tensor.Tensor{x, wt}
+		y, err := ref.Forward(in)
+		if err != nil {
+			t.Fatal(err)
+		}
+		dy := nnRand(rng, y[0].Shape...)
+		got, err := fc.backwardMemo(in, y, []*tensor.Tensor{dy}, []bool{true, false}, memo)
+		if err != nil {
+			t.Fatal(err)
+		}
+		want, err := ref.BackwardFor(in, y, []*tensor.Tensor{dy}, []bool{true, false})
+		if err != nil {
+			t.Fatal(err)
+		}
+		var yy, xx float64
+		for j, v := range y[0].F32 {
+			yy += float64(v) * float64(dy.F32[j])
+		}
+		for j, v := range got[0].F32 {
+			xx += float64(v) * float64(x.F32[j])
+			if d := math.Abs(float64(v - want[0].F32[j])); d > 1e-4*(1+math.Abs(float64(want[0].F32[j]))) {
+				t.Fatalf("case %d: dx[%d] = %v, reference %v", i, j, v, want[0].F32[j])
+			}
+		}
+		if math.Abs(yy-xx) > 1e-4*(1+math.Abs(yy)) {
+			t.Fatalf("case %d: <conv(x),dy> = %g but <x,dx> = %g", i, yy, xx)
+		}
+	}
+}
+
 // convPair builds node twice: on the default GEMM with arena (nil for
 // none), the path under test, and on kernel.Naive (the textbook product in
 // float64 over a plain im2col), the reference.

@@ -234,23 +234,53 @@ func (p *Im2colPlan) Col2imRows(dst, src []float32, y0, y1 int) error {
 	if y0 < 0 || y1 > g.H || y0 > y1 {
 		return fmt.Errorf("kernel: col2im rows [%d, %d) outside [0, %d)", y0, y1, g.H)
 	}
-	ohw := p.oh * p.ow
+	p.col2im(dst, src, y0, y1, 0, p.oh)
+	return nil
+}
+
+// Col2imOutRows is Col2im for the columns of output rows [oh0, oh1) alone:
+// src holds just those columns, as a K×((oh1−oh0)·OW) matrix, and their
+// entries are added onto dst. A convolution's input gradient can then be
+// formed band by band of output rows, each band's columns computed and
+// scattered while they are in cache. Bands whose image rows overlap must
+// not run concurrently; their order decides the order of the sums where
+// they overlap.
+func (p *Im2colPlan) Col2imOutRows(dst, src []float32, oh0, oh1 int) error {
+	rows, _ := p.Shape()
+	if oh0 < 0 || oh1 > p.oh || oh0 > oh1 {
+		return fmt.Errorf("kernel: col2im output rows [%d, %d) outside [0, %d)", oh0, oh1, p.oh)
+	}
+	if n := rows * (oh1 - oh0) * p.ow; len(src) < n {
+		return fmt.Errorf("kernel: col2im band has %d values, want %d (%d×%d)", len(src), n, rows, (oh1-oh0)*p.ow)
+	}
+	if err := p.checkImage(dst, "col2im"); err != nil {
+		return err
+	}
+	p.col2im(dst, src, 0, p.g.H, oh0, oh1)
+	return nil
+}
+
+// col2im adds the entries of src, the columns of output rows [oh0, oh1),
+// that land in image rows [y0, y1) onto dst, tap by tap.
+func (p *Im2colPlan) col2im(dst, src []float32, y0, y1, oh0, oh1 int) {
+	g := p.g
+	cols := (oh1 - oh0) * p.ow
 	row := 0
 	for c := 0; c < g.C; c++ {
 		plane := dst[c*g.H*g.W : (c+1)*g.H*g.W]
 		for kh := 0; kh < g.KH; kh++ {
 			// Output rows oh whose tap kh lands in [y0, y1).
-			ohLo, ohHi := p.ohLo[kh], p.ohHi[kh]
+			ohLo, ohHi := max(p.ohLo[kh], oh0), min(p.ohHi[kh], oh1)
 			if base := kh*g.DilationH - g.PadTop; y0 > 0 || y1 < g.H {
 				ohLo = max(ohLo, ceilDiv(y0-base, g.StrideH))
 				ohHi = min(ohHi, ceilDiv(y1-base, g.StrideH))
 			}
 			for kw := 0; kw < g.KW; kw++ {
-				s := src[row*ohw : (row+1)*ohw]
+				s := src[row*cols : (row+1)*cols]
 				row++
 				owLo, owHi := p.owLo[kw], p.owHi[kw]
 				for oh := ohLo; oh < ohHi; oh++ {
-					in := s[oh*p.ow : (oh+1)*p.ow]
+					in := s[(oh-oh0)*p.ow : (oh-oh0+1)*p.ow]
 					out := plane[p.srcRow(oh, kh)*g.W:]
 					iw := p.srcCol(owLo, kw)
 					if g.StrideW == 2 && !p.portable {
@@ -265,7 +295,6 @@ func (p *Im2colPlan) Col2imRows(dst, src []float32, y0, y1 int) error {
 			}
 		}
 	}
-	return nil
 }
 
 // ceilDiv is ⌈a/b⌉ for b > 0 and any sign of a.

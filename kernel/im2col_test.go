@@ -234,6 +234,73 @@ func TestCol2imRowsMatchesCol2im(t *testing.T) {
 	}
 }
 
+// TestCol2imOutRows checks the banded form: one band of every output row
+// is Col2im bit for bit, and bands of a few rows, each given only its
+// columns, sum to Col2im's result up to the order of the float32 sums
+// (within KH·KW roundings of the float64 sum of the same entries).
+func TestCol2imOutRows(t *testing.T) {
+	r := rand.New(rand.NewPCG(21, 22))
+	for _, g := range []kernel.Conv2D{
+		{C: 3, H: 23, W: 20, KH: 7, KW: 7, StrideH: 2, StrideW: 2, PadTop: 3, PadLeft: 3, PadBottom: 3, PadRight: 3},
+		{C: 2, H: 11, W: 10, KH: 3, KW: 2, StrideH: 2, StrideW: 3, DilationH: 2, PadTop: 2, PadBottom: 1, PadRight: 3},
+	} {
+		p, err := kernel.NewIm2col(g)
+		if err != nil {
+			t.Fatal(err)
+		}
+		rows, cols := p.Shape()
+		dw := max(g.DilationW, 1)
+		ow := (g.W+g.PadLeft+g.PadRight-((g.KW-1)*dw+1))/g.StrideW + 1
+		oh := cols / ow
+		y := randSlice(r, rows*cols)
+		want := make([]float32, g.C*g.H*g.W)
+		if err := p.PortableLoops().Col2im(want, y); err != nil {
+			t.Fatal(err)
+		}
+		// The same entries summed in float64, and their magnitudes.
+		exact, mag := make([]float64, len(want)), make([]float64, len(want))
+		for k, v := range y {
+			e := make([]float32, rows*cols)
+			e[k] = 1
+			one := make([]float32, len(want))
+			if err := p.PortableLoops().Col2im(one, e); err != nil {
+				t.Fatal(err)
+			}
+			for i, u := range one {
+				if u != 0 {
+					exact[i] += float64(v)
+					mag[i] += math.Abs(float64(v))
+				}
+			}
+		}
+		band := func(dst []float32, oh0, oh1 int) {
+			sub := make([]float32, rows*(oh1-oh0)*ow)
+			for k := 0; k < rows; k++ {
+				copy(sub[k*(oh1-oh0)*ow:], y[k*cols+oh0*ow:k*cols+oh1*ow])
+			}
+			if err := p.Col2imOutRows(dst, sub, oh0, oh1); err != nil {
+				t.Fatal(err)
+			}
+		}
+		whole := make([]float32, len(want))
+		band(whole, 0, oh)
+		for i := range whole {
+			if math.Float32bits(whole[i]) != math.Float32bits(want[i]) {
+				t.Fatalf("%+v: one band differs from Col2im at %d: %v, want %v", g, i, whole[i], want[i])
+			}
+		}
+		banded := make([]float32, len(want))
+		for oh0 := 0; oh0 < oh; oh0 += 3 {
+			band(banded, oh0, min(oh0+3, oh))
+		}
+		for i := range banded {
+			if d := math.Abs(float64(banded[i]) - exact[i]); d > float64(g.KH*g.KW)*0x1p-24*mag[i] {
+				t.Fatalf("%+v: banded value %d = %v, float64 sum %v", g, i, banded[i], exact[i])
+			}
+		}
+	}
+}
+
 func TestIm2colRejectsBadInput(t *testing.T) {
 	for _, g := range []kernel.Conv2D{
 		{C: 0, H: 4, W: 4, KH: 3, KW: 3},
