@@ -61,6 +61,11 @@ type microKernel func(k int, a, b, c []float32, ldc int, alpha, beta float32, lo
 // unit stride along k (see asmgen/gen.go). a must hold (mr-1)·lda+k values.
 type directKernel func(k int, a []float32, lda int, b, c []float32, ldc int, alpha, beta float32, load bool)
 
+// stridedKernel is a directKernel that reads B unpacked too: k rows ldb
+// apart, nr values each (see asmgen/gen.go). b must hold (k-1)·ldb+nr
+// values.
+type stridedKernel func(k int, a []float32, lda int, b []float32, ldb int, c []float32, ldc int, alpha, beta float32, load bool)
+
 // config is one path's register tile and cache blocking.
 //
 // The loop nest is the one of Goto & van de Geijn (ACM TOMS 34(3), 2008) as
@@ -76,8 +81,9 @@ type config struct {
 	mr, nr         int
 	kc, mc, nc     int
 	kernel         microKernel
-	direct         directKernel // nil when the path has no direct-A kernel
-	minParallelOps int          // m·n·k below which one goroutine is used
+	direct         directKernel  // nil when the path has no direct-A kernel
+	strided        stridedKernel // nil when the path has no unpacked-B kernel
+	minParallelOps int           // m·n·k below which one goroutine is used
 	// edges are shorter tiles, by increasing mr, for the last rows of a
 	// direct-A block: the smallest that covers the remaining rows is used
 	// instead of the full mr-row tile (whose extra rows would be wasted
@@ -88,9 +94,10 @@ type config struct {
 // edgeTile is a micro-kernel pair for fewer rows than the main tile, with
 // the same nr.
 type edgeTile struct {
-	mr     int
-	kernel microKernel
-	direct directKernel
+	mr      int
+	kernel  microKernel
+	direct  directKernel
+	strided stridedKernel
 }
 
 // edgeFor returns the smallest edge tile covering rows rows, if any.

@@ -134,3 +134,92 @@ func (g *Packed) SgemmRowPanels(m, n, k int, apanels, bpanels, c []float32, ldc 
 		}
 	}
 }
+
+// SgemmUnpacked computes C = A·B (m×n, row stride ldc, overwritten) with
+// both operands where they lie: A row-major (row stride lda), B row-major
+// (k rows ldb apart), on the calling goroutine. It suits a pointwise
+// convolution's slab of columns, whose B is the input itself (channels ×
+// positions, ldb = the positions of a plane): no panel is packed, except
+// a partial last one (fewer than nr columns), whose loads would run past
+// the slab. It reports false, doing nothing, when the path has no
+// unpacked-B kernel (only AVX-512 has); callers then pack.
+func (g *Packed) SgemmUnpacked(m, n, k int, a []float32, lda int, b []float32, ldb int, c []float32, ldc int) bool {
+	cfg := g.conf()
+	if cfg.strided == nil {
+		return false
+	}
+	if m < 0 || n < 0 || k < 0 {
+		panic(fmt.Sprintf("kernel: negative GEMM size m=%d n=%d k=%d", m, n, k))
+	}
+	checkMat("A", a, m, k, lda)
+	checkMat("B", b, k, n, ldb)
+	checkMat("C", c, m, n, ldc)
+	if m == 0 || n == 0 {
+		return true
+	}
+	if k == 0 {
+		scaleC(m, n, 0, c, ldc)
+		return true
+	}
+	mr, nr := cfg.mr, cfg.nr
+	full := m / mr * mr
+	rem := m - full
+	// The last rem rows: an edge tile of exactly rem rows reads A in
+	// place; otherwise they are copied, zero-padded to the tile's rows.
+	edge := edgeTile{mr: mr, direct: cfg.direct, strided: cfg.strided}
+	if e, ok := cfg.edgeFor(rem); ok && rem > 0 {
+		edge = e
+	}
+	exact := edge.mr == rem
+	ws := g.get()
+	defer g.pool.Put(ws)
+	for pc := 0; pc < k; pc += cfg.kc {
+		kb := min(cfg.kc, k-pc)
+		bet := float32(0)
+		if pc > 0 {
+			bet = 1
+		}
+		var padA []float32
+		if rem > 0 && !exact {
+			ws.a = grow(ws.a, edge.mr*kb)
+			padA = ws.a[:edge.mr*kb]
+			clear(padA)
+			for i := 0; i < rem; i++ {
+				copy(padA[i*kb:(i+1)*kb], a[(full+i)*lda+pc:(full+i)*lda+pc+kb])
+			}
+		}
+		for jr := 0; jr < n; jr += nr {
+			nrr := min(nr, n-jr)
+			var bp []float32
+			if nrr < nr {
+				ws.b = grow(ws.b, kb*nr)
+				bp = ws.b[:kb*nr]
+				packB(bp, false, b, ldb, pc, jr, kb, nrr, nr)
+			}
+			for ir := 0; ir < m; ir += mr {
+				rows, tileRows := mr, mr
+				strided, direct := cfg.strided, cfg.direct
+				ad, ldA := a[ir*lda+pc:], lda
+				if ir == full {
+					rows, tileRows = rem, edge.mr
+					strided, direct = edge.strided, edge.direct
+					if !exact {
+						ad, ldA = padA, kb
+					}
+				}
+				ci := ir*ldc + jr
+				if rows == tileRows && nrr == nr {
+					strided(kb, ad, ldA, b[pc*ldb+jr:], ldb, c[ci:], ldc, 1, bet, bet != 0)
+					continue
+				}
+				if nrr == nr {
+					strided(kb, ad, ldA, b[pc*ldb+jr:], ldb, ws.tile, nr, 1, 0, false)
+				} else {
+					direct(kb, ad, ldA, bp, ws.tile, nr, 1, 0, false)
+				}
+				storeTile(c[ci:], ldc, ws.tile, nr, rows, nrr, bet)
+			}
+		}
+	}
+	return true
+}

@@ -1,6 +1,7 @@
 package kernel_test
 
 import (
+	"math"
 	"math/rand/v2"
 	"testing"
 
@@ -110,5 +111,62 @@ func BenchmarkSgemmRowPanels(b *testing.B) {
 			}
 			b.ReportMetric(flops*float64(b.N)/b.Elapsed().Seconds()/1e9, "GFLOP/s")
 		})
+	}
+}
+
+// TestSgemmUnpacked checks the unpacked-B product against SgemmPanels over
+// the same B packed (the same tiles and k slices, so the same bits), for
+// shapes around the 12-row tile, its 8- and 4-row edge tiles, partial
+// 32-column panels, k beyond one kc slice, and padded row strides; and
+// that C's padding is not written.
+func TestSgemmUnpacked(t *testing.T) {
+	g, err := kernel.New(kernel.Options{ISA: kernel.ISAAVX512, Threads: 1})
+	if err != nil {
+		t.Skip("no AVX-512 path:", err)
+	}
+	r := rand.New(rand.NewPCG(61, 62))
+	_, nr := g.Tile()
+	for _, m := range []int{1, 3, 4, 7, 8, 12, 16, 20, 64, 147} {
+		for _, n := range []int{1, 31, 32, 33, 96, 100} {
+			for _, k := range []int{1, 16, 300, 600} {
+				a := make([]float32, m*(k+3))
+				b := make([]float32, k*(n+5))
+				for i := range a {
+					a[i] = r.Float32()*2 - 1
+				}
+				for i := range b {
+					b[i] = r.Float32()*2 - 1
+				}
+				lda, ldb, ldc := k+3, n+5, n+2
+				c := make([]float32, m*ldc)
+				for i := range c {
+					c[i] = -7
+				}
+				if !g.SgemmUnpacked(m, n, k, a, lda, b, ldb, c, ldc) {
+					t.Fatal("SgemmUnpacked reports no unpacked-B kernel on the AVX-512 path")
+				}
+				// B packed as 32-wide panels: panel q row p holds
+				// b[p][q·nr : q·nr+nr], zero past n.
+				np := (n + nr - 1) / nr
+				panels := make([]float32, np*k*nr)
+				for q := 0; q < np; q++ {
+					for p := 0; p < k; p++ {
+						for j := 0; j < nr && q*nr+j < n; j++ {
+							panels[q*k*nr+p*nr+j] = b[p*ldb+q*nr+j]
+						}
+					}
+				}
+				want := make([]float32, m*ldc)
+				for i := range want {
+					want[i] = -7
+				}
+				g.SgemmPanels(m, n, k, a, lda, panels, want, ldc)
+				for i := range c {
+					if math.Float32bits(c[i]) != math.Float32bits(want[i]) {
+						t.Fatalf("m=%d n=%d k=%d: C[%d] = %v, SgemmPanels %v", m, n, k, i, c[i], want[i])
+					}
+				}
+			}
+		}
 	}
 }
