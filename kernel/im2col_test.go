@@ -183,6 +183,24 @@ func TestCol2imIsAdjoint(t *testing.T) {
 	}
 }
 
+// col2imReference plans g, draws a random column matrix y and returns the
+// pure-Go Col2im of y added onto a copy of init: the reference for the
+// vector path and for the split forms.
+func col2imReference(t *testing.T, r *rand.Rand, g kernel.Conv2D, init []float32) (p *kernel.Im2colPlan, y, want []float32) {
+	t.Helper()
+	p, err := kernel.NewIm2col(g)
+	if err != nil {
+		t.Fatal(err)
+	}
+	rows, cols := p.Shape()
+	y = randSlice(r, rows*cols)
+	want = append([]float32(nil), init...)
+	if err := p.PortableLoops().Col2im(want, y); err != nil {
+		t.Fatal(err)
+	}
+	return p, y, want
+}
+
 // TestCol2imRowsMatchesCol2im checks that Col2imRows over any division of
 // the image rows, on the vector path (kernel.AddStride2 at column stride
 // 2), gives the pure-Go Col2im's result bit for bit (the row ranges only
@@ -196,18 +214,8 @@ func TestCol2imRowsMatchesCol2im(t *testing.T) {
 		{C: 2, H: 11, W: 10, KH: 3, KW: 2, StrideH: 2, StrideW: 3, DilationH: 2, PadTop: 2, PadBottom: 1, PadRight: 3},
 		{C: 2, H: 9, W: 7, KH: 3, KW: 3, StrideH: 3, StrideW: 1, PadTop: 1, PadBottom: 2},
 	} {
-		p, err := kernel.NewIm2col(g)
-		if err != nil {
-			t.Fatal(err)
-		}
-		rows, cols := p.Shape()
-		y := randSlice(r, rows*cols)
 		init := randSlice(r, g.C*g.H*g.W)
-		// The pure-Go loop is the reference for the vector path too.
-		want := append([]float32(nil), init...)
-		if err := p.PortableLoops().Col2im(want, y); err != nil {
-			t.Fatal(err)
-		}
+		p, y, want := col2imReference(t, r, g, init)
 		for _, cuts := range [][]int{{0, g.H}, {0, 1, g.H}, {0, 3, 4, 8, g.H}, {0, g.H - 1, g.H}} {
 			got := append([]float32(nil), init...)
 			for i := 0; i+1 < len(cuts); i++ {
@@ -244,19 +252,11 @@ func TestCol2imOutRows(t *testing.T) {
 		{C: 3, H: 23, W: 20, KH: 7, KW: 7, StrideH: 2, StrideW: 2, PadTop: 3, PadLeft: 3, PadBottom: 3, PadRight: 3},
 		{C: 2, H: 11, W: 10, KH: 3, KW: 2, StrideH: 2, StrideW: 3, DilationH: 2, PadTop: 2, PadBottom: 1, PadRight: 3},
 	} {
-		p, err := kernel.NewIm2col(g)
-		if err != nil {
-			t.Fatal(err)
-		}
+		p, y, want := col2imReference(t, r, g, make([]float32, g.C*g.H*g.W))
 		rows, cols := p.Shape()
 		dw := max(g.DilationW, 1)
 		ow := (g.W+g.PadLeft+g.PadRight-((g.KW-1)*dw+1))/g.StrideW + 1
 		oh := cols / ow
-		y := randSlice(r, rows*cols)
-		want := make([]float32, g.C*g.H*g.W)
-		if err := p.PortableLoops().Col2im(want, y); err != nil {
-			t.Fatal(err)
-		}
 		// The same entries summed in float64, and their magnitudes.
 		exact, mag := make([]float64, len(want)), make([]float64, len(want))
 		for k, v := range y {

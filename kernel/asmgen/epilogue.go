@@ -40,21 +40,15 @@ func genAddTo() {
 	dst := Load(Param("dst"), GP64())
 	src := Load(Param("src"), GP64())
 	v := []reg.VecPhysical{reg.Z0, reg.Z1, reg.Z2, reg.Z3}
-	Label(name + "_loop")
-	CMPQ(n, Imm(64))
-	JL(LabelRef(name + "_done"))
-	for i, r := range v {
-		VMOVUPS(Mem{Base: dst, Disp: 64 * i}, r)
-		VADDPS(Mem{Base: src, Disp: 64 * i}, r, r)
-		VMOVUPS(r, Mem{Base: dst, Disp: 64 * i})
-	}
-	ADDQ(U32(256), src)
-	ADDQ(U32(256), dst)
-	SUBQ(U8(64), n)
-	JMP(LabelRef(name + "_loop"))
-	Label(name + "_done")
-	VZEROUPPER()
-	RET()
+	countedLoop(name, n, 64, func() {
+		for i, r := range v {
+			VMOVUPS(Mem{Base: dst, Disp: 64 * i}, r)
+			VADDPS(Mem{Base: src, Disp: 64 * i}, r, r)
+			VMOVUPS(r, Mem{Base: dst, Disp: 64 * i})
+		}
+		ADDQ(U32(256), src)
+		ADDQ(U32(256), dst)
+	})
 }
 
 // genAddStride2 emits addStride2AVX512, the stride-2 scatter-add of
@@ -64,14 +58,8 @@ func genAddTo() {
 // elements of dst are neither read nor written (another goroutine may
 // own them) and no load reaches past dst[2j+30].
 func genAddStride2() {
-	spread := func(name string, first int) Mem {
-		m := GLOBL(name, RODATA|NOPTR)
-		for j := 0; j < 16; j++ {
-			DATA(4*j, U32(first+j/2))
-		}
-		return m
-	}
-	lo, hi := spread("addSpreadLo", 0), spread("addSpreadHi", 8)
+	lo := laneTable("addSpreadLo", func(j int) int { return j / 2 })
+	hi := laneTable("addSpreadHi", func(j int) int { return 8 + j/2 })
 	name := "addStride2AVX512"
 	TEXT(name, NOSPLIT, "func(n int, dst, src *float32)")
 	Doc(name + " adds src[j] into dst[2j] for j < n rounded down to 16, touching only those elements of dst.")
@@ -86,23 +74,17 @@ func genAddStride2() {
 	VMOVUPS(lo, ilo)
 	VMOVUPS(hi, ihi)
 	v, a, b := reg.Z0, reg.Z1, reg.Z4
-	Label(name + "_loop")
-	CMPQ(n, Imm(16))
-	JL(LabelRef(name + "_done"))
-	VMOVUPS(Mem{Base: src}, v)
-	for i, idx := range []reg.VecPhysical{ilo, ihi} {
-		VPERMPS(v, idx, a)
-		VMOVUPS_Z(Mem{Base: dst, Disp: 64 * i}, reg.K1, b)
-		VADDPS(a, b, reg.K1, b)
-		VMOVUPS(b, reg.K1, Mem{Base: dst, Disp: 64 * i})
-	}
-	ADDQ(U8(64), src)
-	ADDQ(Imm(128), dst)
-	SUBQ(U8(16), n)
-	JMP(LabelRef(name + "_loop"))
-	Label(name + "_done")
-	VZEROUPPER()
-	RET()
+	countedLoop(name, n, 16, func() {
+		VMOVUPS(Mem{Base: src}, v)
+		for i, idx := range []reg.VecPhysical{ilo, ihi} {
+			VPERMPS(v, idx, a)
+			VMOVUPS_Z(Mem{Base: dst, Disp: 64 * i}, reg.K1, b)
+			VADDPS(a, b, reg.K1, b)
+			VMOVUPS(b, reg.K1, Mem{Base: dst, Disp: 64 * i})
+		}
+		ADDQ(U8(64), src)
+		ADDQ(Imm(128), dst)
+	})
 }
 
 // genMax9 emits max9AVX512: dst[j] = the first of the nine sources' values
@@ -124,24 +106,18 @@ func genMax9() {
 		MOVQ(Mem{Base: sp, Disp: 8 * i}, p[i])
 	}
 	best, v := reg.Z0, reg.Z1
-	Label(name + "_loop")
-	CMPQ(n, Imm(16))
-	JL(LabelRef(name + "_done"))
-	VMOVUPS(Mem{Base: p[0]}, best)
-	for i := 1; i < 9; i++ {
-		VMOVUPS(Mem{Base: p[i]}, v)
-		VMAXPS(best, v, best)
-	}
-	VMOVUPS(best, Mem{Base: dst})
-	for i := range p {
-		ADDQ(U8(64), p[i])
-	}
-	ADDQ(U8(64), dst)
-	SUBQ(U8(16), n)
-	JMP(LabelRef(name + "_loop"))
-	Label(name + "_done")
-	VZEROUPPER()
-	RET()
+	countedLoop(name, n, 16, func() {
+		VMOVUPS(Mem{Base: p[0]}, best)
+		for i := 1; i < 9; i++ {
+			VMOVUPS(Mem{Base: p[i]}, v)
+			VMAXPS(best, v, best)
+		}
+		VMOVUPS(best, Mem{Base: dst})
+		for i := range p {
+			ADDQ(U8(64), p[i])
+		}
+		ADDQ(U8(64), dst)
+	})
 }
 
 // genMax9Stride2 emits max9Stride2AVX512, the 3×3 window at column stride
@@ -152,14 +128,8 @@ func genMax9() {
 // value is kept, the same scan with VCMPPS (greater, false for NaN)
 // choosing the lanes that move on.
 func genMax9Stride2() {
-	lanes := func(name string, first int) Mem {
-		m := GLOBL(name, RODATA|NOPTR)
-		for j := 0; j < 16; j++ {
-			DATA(4*j, U32(2*j+first))
-		}
-		return m
-	}
-	evenLanes, oddLanes := lanes("maxEvenLanes", 0), lanes("maxOddLanes", 1)
+	evenLanes := laneTable("maxEvenLanes", func(j int) int { return 2 * j })
+	oddLanes := laneTable("maxOddLanes", func(j int) int { return 2*j + 1 })
 	for _, arg := range []bool{false, true} {
 		name, sig := "max9Stride2AVX512", "func(n int, dst *float32, rows *[3]*float32)"
 		doc := name + " sets dst[j] to the ordered maximum of r[2j], r[2j+1], r[2j+2] over the three rows (a value replaces the kept one only when greater) for j < n rounded down to 16; each row must hold 2·n+1 readable values."
@@ -187,52 +157,46 @@ func genMax9Stride2() {
 		VMOVUPS(oddLanes, od)
 		best, at := reg.Z0, reg.Z6
 		taps := [3]reg.VecPhysical{reg.Z1, reg.Z4, reg.Z5}
-		Label(name + "_loop")
-		CMPQ(n, Imm(16))
-		JL(LabelRef(name + "_done"))
-		for i := range p {
-			// Taps 3i, 3i+1, 3i+2: the even lanes of r[2j…2j+32), and the
-			// even and odd lanes of r[2j+1…2j+33). Tap 0 is the kept value.
-			taps := taps
-			if i == 0 {
-				taps[0] = best
-			}
-			VMOVUPS(Mem{Base: p[i]}, taps[0])
-			VPERMT2PS(Mem{Base: p[i], Disp: 64}, ev, taps[0])
-			VMOVUPS(Mem{Base: p[i], Disp: 4}, taps[1])
-			VMOVAPS(taps[1], taps[2])
-			VPERMT2PS(Mem{Base: p[i], Disp: 68}, ev, taps[1])
-			VPERMT2PS(Mem{Base: p[i], Disp: 68}, od, taps[2])
-			for k, tap := range taps {
-				t := 3*i + k
-				switch {
-				case t == 0:
-					if arg {
-						VPBROADCASTD(Mem{Base: offs}, at)
+		countedLoop(name, n, 16, func() {
+			for i := range p {
+				// Taps 3i, 3i+1, 3i+2: the even lanes of r[2j…2j+32), and the
+				// even and odd lanes of r[2j+1…2j+33). Tap 0 is the kept value.
+				taps := taps
+				if i == 0 {
+					taps[0] = best
+				}
+				VMOVUPS(Mem{Base: p[i]}, taps[0])
+				VPERMT2PS(Mem{Base: p[i], Disp: 64}, ev, taps[0])
+				VMOVUPS(Mem{Base: p[i], Disp: 4}, taps[1])
+				VMOVAPS(taps[1], taps[2])
+				VPERMT2PS(Mem{Base: p[i], Disp: 68}, ev, taps[1])
+				VPERMT2PS(Mem{Base: p[i], Disp: 68}, od, taps[2])
+				for k, tap := range taps {
+					t := 3*i + k
+					switch {
+					case t == 0:
+						if arg {
+							VPBROADCASTD(Mem{Base: offs}, at)
+						}
+					case arg:
+						VCMPPS(Imm(0x1e), best, tap, reg.K1) // tap > best, ordered
+						VMOVAPS(tap, reg.K1, best)
+						VPBROADCASTD(Mem{Base: offs, Disp: 4 * t}, reg.K1, at)
+					default:
+						VMAXPS(best, tap, best)
 					}
-				case arg:
-					VCMPPS(Imm(0x1e), best, tap, reg.K1) // tap > best, ordered
-					VMOVAPS(tap, reg.K1, best)
-					VPBROADCASTD(Mem{Base: offs, Disp: 4 * t}, reg.K1, at)
-				default:
-					VMAXPS(best, tap, best)
 				}
 			}
-		}
-		if arg {
-			VMOVDQU32(at, Mem{Base: dst})
-		} else {
-			VMOVUPS(best, Mem{Base: dst})
-		}
-		for i := range p {
-			ADDQ(Imm(128), p[i])
-		}
-		ADDQ(U8(64), dst)
-		SUBQ(U8(16), n)
-		JMP(LabelRef(name + "_loop"))
-		Label(name + "_done")
-		VZEROUPPER()
-		RET()
+			if arg {
+				VMOVDQU32(at, Mem{Base: dst})
+			} else {
+				VMOVUPS(best, Mem{Base: dst})
+			}
+			for i := range p {
+				ADDQ(Imm(128), p[i])
+			}
+			ADDQ(U8(64), dst)
+		})
 	}
 }
 
@@ -570,4 +534,29 @@ func genMaskRange(name string, width int) {
 	Label(name + "_done")
 	VZEROUPPER()
 	RET()
+}
+
+// countedLoop emits the loop of the element-wise kernels: while n ≥ step,
+// body (which also advances the pointers), then n −= step; then
+// VZEROUPPER and RET.
+func countedLoop(name string, n reg.Register, step int, body func()) {
+	Label(name + "_loop")
+	CMPQ(n, Imm(uint64(step)))
+	JL(LabelRef(name + "_done"))
+	body()
+	SUBQ(U8(step), n)
+	JMP(LabelRef(name + "_loop"))
+	Label(name + "_done")
+	VZEROUPPER()
+	RET()
+}
+
+// laneTable emits a read-only table of 16 uint32 lane indices, f(j) for
+// lane j, for VPERMPS and VPERMT2PS.
+func laneTable(name string, f func(j int) int) Mem {
+	m := GLOBL(name, RODATA|NOPTR)
+	for j := 0; j < 16; j++ {
+		DATA(4*j, U32(f(j)))
+	}
+	return m
 }
