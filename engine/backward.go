@@ -216,7 +216,6 @@ func (p *Pass) Backward(ctx context.Context, seeds map[string]*tensor.Tensor, wr
 				return nil, fmt.Errorf("engine: Backward: %s: %w", nd.label(), err)
 			}
 		}
-
 		fresh := freshGrads(nd.op)
 		pending = append(pending[:0], gin...)
 		for i, v := range nd.in {

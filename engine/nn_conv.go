@@ -115,10 +115,7 @@ func (op *convOp) shape(x, w *tensor.Tensor) (convShape, error) {
 
 func (s convShape) depthwise() bool { return s.cg == 1 }
 
-func (s convShape) pointwise() bool {
-	g := s.g
-	return g.kh == 1 && g.kw == 1 && g.sh == 1 && g.sw == 1 && g.pt == 0 && g.pl == 0 && g.pb == 0 && g.pr == 0
-}
+func (s convShape) pointwise() bool { return s.g.pointwise() }
 
 func (op *convOp) Forward(in []*tensor.Tensor) ([]*tensor.Tensor, error) {
 	return op.forwardEp(in, nil, actNone, 0, 0)

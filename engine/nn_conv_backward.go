@@ -1,9 +1,10 @@
 package engine
 
 import (
+	"runtime"
+
 	"heedmap/kernel"
 	"heedmap/tensor"
-	"runtime"
 )
 
 // BackwardNeeds implements BackwardNeeder: the output is not needed.

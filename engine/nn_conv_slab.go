@@ -135,7 +135,7 @@ func (op *convOp) slabForward(plan *kernel.Im2colPlan, xg []float32, cg int, g g
 	ep = ep.forGroup(mOff)
 	padded, padTasks, release := op.padPlan(plan, xg, cg, true)
 	defer release()
-	pointwise := g.kh == 1 && g.kw == 1 && g.sh == 1 && g.sw == 1 && g.pt == 0 && g.pl == 0 && g.pb == 0 && g.pr == 0
+	pointwise := g.pointwise()
 	return op.team.run([]int{padTasks, (ohw + nb - 1) / nb}, func(phase, s int) error {
 		if phase == 0 {
 			return padded.pad(s, padTasks, xg, cg)

@@ -187,12 +187,16 @@ func (op *poolOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.Tensor,
 	// while it is in that core's cache, instead of in one serial pass.
 	dx := op.arena.tensor(x.Shape...)
 	op.team.split(nc, nc*ohw*g.kh*g.kw, func(p0, p1 int) {
+		var sc *maxScratch
+		if op.max {
+			sc = newMaxScratch(g.ow)
+		}
 		for p := p0; p < p1; p++ {
 			dsrc := dx.F32[p*ihw : (p+1)*ihw]
 			clear(dsrc)
 			gy := dy.F32[p*ohw : (p+1)*ohw]
 			if op.max {
-				maxPlaneBackward(x.F32[p*ihw:(p+1)*ihw], gy, dsrc, g)
+				maxPlaneBackward(x.F32[p*ihw:(p+1)*ihw], gy, dsrc, g, sc)
 				continue
 			}
 			for oy := 0; oy < g.oh; oy++ {
@@ -300,20 +304,34 @@ func (op *globalPoolOp) Backward(in, out, gradOut []*tensor.Tensor) ([]*tensor.T
 	return []*tensor.Tensor{dx}, nil
 }
 
+// maxScratch is maxPlaneBackward's scratch for one output row: each
+// window's maximum and its flat offset (maxRow), and the offsets of
+// kernel.ArgMax9Stride2.
+type maxScratch struct {
+	val []float32
+	arg []int64
+	at  []int32
+}
+
+func newMaxScratch(ow int) *maxScratch {
+	return &maxScratch{val: make([]float32, ow), arg: make([]int64, ow), at: make([]int32, ow)}
+}
+
 // maxPlaneBackward adds each window's output gradient dy into dx (one
 // channel plane) at the position maxPlane routes it to: the window's
 // maximum, the first in scan order on ties, offset 0 for a window entirely
 // in padding. It recomputes the argmax from x with maxRow, one output row
 // at a time, instead of materialising Indices for the whole plane.
-func maxPlaneBackward(src, dy, dx []float32, g geom2) {
-	val, arg := make([]float32, g.ow), make([]int64, g.ow)
+// sc is scratch for one output row (newMaxScratch(g.ow)), made once per
+// run of planes rather than per plane.
+func maxPlaneBackward(src, dy, dx []float32, g geom2, sc *maxScratch) {
 	if g.kh == 3 && g.kw == 3 && g.dh == 1 && g.dw == 1 {
-		maxPlaneBackward3x3(src, dy, dx, g, val, arg, make([]int32, g.ow))
+		maxPlaneBackward3x3(src, dy, dx, g, sc)
 		return
 	}
 	for oy := 0; oy < g.oh; oy++ {
-		maxRow(src, val, arg, g, 0, oy, 0, g.ow)
-		for ox, a := range arg {
+		maxRow(src, sc.val, sc.arg, g, 0, oy, 0, g.ow)
+		for ox, a := range sc.arg {
 			dx[a] += dy[oy*g.ow+ox]
 		}
 	}
@@ -326,15 +344,15 @@ func maxPlaneBackward(src, dy, dx []float32, g geom2) {
 // the first); the border ones go through maxRow. The general loop's
 // per-window tap ranges and its data-dependent branch were 5 % of a
 // ResNet-18 forward+backward pass at batch 1, the written-out scan still
-// 7 % (2.6 ms a pass). val, arg and offs are scratch of g.ow values.
-func maxPlaneBackward3x3(src, dy, dx []float32, g geom2, val []float32, arg []int64, offs []int32) {
+// 7 % (2.6 ms a pass).
+func maxPlaneBackward3x3(src, dy, dx []float32, g geom2, sc *maxScratch) {
 	oxLo, oxHi := interior3x3(g)
 	iw := int32(g.iw)
 	tapOffs := [9]int32{0, 1, 2, iw, iw + 1, iw + 2, 2 * iw, 2*iw + 1, 2*iw + 2}
 	border := func(oy, ox0, ox1 int) {
-		maxRow(src, val, arg, g, 0, oy, ox0, ox1)
+		maxRow(src, sc.val, sc.arg, g, 0, oy, ox0, ox1)
 		for ox := ox0; ox < ox1; ox++ {
-			dx[arg[ox]] += dy[oy*g.ow+ox]
+			dx[sc.arg[ox]] += dy[oy*g.ow+ox]
 		}
 	}
 	for oy := 0; oy < g.oh; oy++ {
@@ -356,7 +374,7 @@ func maxPlaneBackward3x3(src, dy, dx []float32, g geom2, val []float32, arg []in
 				src[r0+g.iw+x0 : r0+g.iw+x0+2*n+1],
 				src[r0+2*g.iw+x0 : r0+2*g.iw+x0+2*n+1],
 			}
-			at := offs[oxLo:oxHi]
+			at := sc.at[oxLo:oxHi]
 			kernel.ArgMax9Stride2(at, &rows, &tapOffs)
 			d := dx[r0+x0:]
 			for i, a := range at {

@@ -28,7 +28,7 @@ func TestMaxPlaneBackward3x3MatchesGeneral(t *testing.T) {
 			}
 		}
 		got := make([]float32, len(src))
-		maxPlaneBackward(src, dy, got, g)
+		maxPlaneBackward(src, dy, got, g, newMaxScratch(g.ow))
 		for i := range got {
 			if math.Float32bits(got[i]) != math.Float32bits(want[i]) {
 				t.Fatalf("%+v: dx[%d] = %v, general loop %v", tc, i, got[i], want[i])

@@ -75,6 +75,13 @@ type geom2 struct {
 	oh, ow         int
 }
 
+// pointwise reports a 1×1 window at unit stride without padding: the
+// output positions are the input's, so a convolution's column matrix is
+// its input itself.
+func (g geom2) pointwise() bool {
+	return g.kh == 1 && g.kw == 1 && g.sh == 1 && g.sw == 1 && g.pt == 0 && g.pl == 0 && g.pb == 0 && g.pr == 0
+}
+
 // resolve computes the output geometry for spatial input dims in (length
 // 1 or 2) and kernel dims k, following the ONNX output-size formulas:
 // explicit pads give floor((in+pads-ek)/s)+1 (ceil with ceil_mode, dropping

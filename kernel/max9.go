@@ -15,17 +15,30 @@ func Max9(dst []float32, s *[9][]float32) {
 	for i := range rows {
 		rows[i] = s[i][:len(dst)]
 	}
-	done := max9SIMD(dst, &rows)
-	if n := len(dst); done < n && done > 0 && n >= 16 {
-		for i := range rows {
-			rows[i] = rows[i][n-16:]
+	done := vectorWithTail(len(dst), func(from int) int {
+		var tail [9][]float32
+		for i := range tail {
+			tail[i] = rows[i][from:]
 		}
-		done = n - 16 + max9SIMD(dst[n-16:], &rows)
-		for i := range rows {
-			rows[i] = s[i][:n]
-		}
-	}
+		return max9SIMD(dst[from:], &tail)
+	})
 	max9Go(dst[done:], &rows, done)
+}
+
+// vectorWithTail runs the 16-wide vector loop vec(from), which does
+// outputs from on, rounded down to a multiple of 16, and returns how many
+// it did, over n outputs; a partial last vector is then done again over
+// the last sixteen outputs (recomputing some, which is exact because each
+// output depends only on the inputs, which dst does not overlap) rather
+// than left to the scalar loop, whose compares mispredict on real images.
+// It returns how many leading outputs are done; the scalar loop does the
+// rest (all of them for n < 16 or without a vector path).
+func vectorWithTail(n int, vec func(from int) int) int {
+	done := vec(0)
+	if done < n && done > 0 && n >= 16 {
+		done = n - 16 + vec(n-16)
+	}
+	return done
 }
 
 // max9Go is Max9's loop for dst = the outputs from offset on.
@@ -56,14 +69,13 @@ func Max9Stride2(dst []float32, rows *[3][]float32) {
 	for i := range r {
 		r[i] = rows[i][:2*n+1]
 	}
-	done := max9Stride2SIMD(dst, &r)
-	if done < n && done > 0 && n >= 16 {
+	done := vectorWithTail(n, func(from int) int {
 		var tail [3][]float32
 		for i := range tail {
-			tail[i] = r[i][2*(n-16):]
+			tail[i] = r[i][2*from:]
 		}
-		done = n - 16 + max9Stride2SIMD(dst[n-16:], &tail)
-	}
+		return max9Stride2SIMD(dst[from:], &tail)
+	})
 	max9Stride2Go(dst[done:], &r, done)
 }
 
@@ -98,14 +110,13 @@ func ArgMax9Stride2(at []int32, rows *[3][]float32, offs *[9]int32) {
 	for i := range r {
 		r[i] = rows[i][:2*n+1]
 	}
-	done := argMax9Stride2SIMD(at, &r, offs)
-	if done < n && done > 0 && n >= 16 {
+	done := vectorWithTail(n, func(from int) int {
 		var tail [3][]float32
 		for i := range tail {
-			tail[i] = r[i][2*(n-16):]
+			tail[i] = r[i][2*from:]
 		}
-		done = n - 16 + argMax9Stride2SIMD(at[n-16:], &tail, offs)
-	}
+		return argMax9Stride2SIMD(at[from:], &tail, offs)
+	})
 	argMax9Stride2Go(at[done:], &r, offs, done)
 }
 
