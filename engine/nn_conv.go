@@ -40,6 +40,9 @@ type convOp struct {
 	// constW is set at compile time when W is a graph constant, so a
 	// packed form of it may be kept (nn_conv_rows.go).
 	constW bool
+	// noWinograd keeps 3×3 layers on the im2col paths (benchmarks
+	// compare the two).
+	noWinograd bool
 	// tplans caches the plans of the transposed convolutions that give
 	// the input gradient (nn_conv_slab.go).
 	tplans planCache
@@ -192,6 +195,11 @@ func (op *convOp) forwardEp(in []*tensor.Tensor, res []float32, act actKind, lo,
 		case done:
 			epDone = res == nil
 		}
+	} else if op.useWinograd(g, s.cg, s.mg) {
+		if err := op.winogradForward(x.F32, s.n, s.c, g, op.winoFilter(w, s.m, s.c, false), s.m, y.F32, ep); err != nil {
+			return nil, err
+		}
+		epDone = true
 	} else {
 		kk := s.cg * g.kh * g.kw
 		// The packed-panel paths (nn_conv_slab.go) need a plan and the

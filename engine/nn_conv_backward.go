@@ -65,6 +65,9 @@ func (op *convOp) backwardFor(in, out, gradOut []*tensor.Tensor, need []bool, me
 			transposed = false
 		}
 	}
+	// 3×3 layers: the transposed convolution on the Winograd path
+	// (nn_conv_winograd.go), for all images at once.
+	winoX := transposed && op.useWinograd(tg, s.m, s.c)
 	if needX {
 		if transposed || (op.gemm1 != nil && !s.depthwise()) || (s.depthwise() && perr == nil) {
 			// Overwritten, or (col2im) cleared image by image just
@@ -91,7 +94,7 @@ func (op *convOp) backwardFor(in, out, gradOut []*tensor.Tensor, need []bool, me
 	var rowFlipped []float32
 	var tplan *kernel.Im2colPlan
 	rowsX := false
-	if needX && transposed && s.n == 1 && memo != nil && op.useRows(s) {
+	if needX && transposed && !winoX && s.n == 1 && memo != nil && op.useRows(s) {
 		tkk := s.m * g.kh * g.kw
 		if p, err := op.tplans.plan(tg); err == nil && !op.useSlabs(tkk, tg.oh*tg.ow) {
 			tplan, rowsX = p, true
@@ -100,7 +103,7 @@ func (op *convOp) backwardFor(in, out, gradOut []*tensor.Tensor, need []bool, me
 			})
 		}
 	}
-	if transposed && !rowsX {
+	if transposed && !rowsX && !winoX {
 		build := func(f []float32) { flipFilters(f, w.F32, op.group, s.mg, s.cg, g.kh*g.kw) }
 		if memo != nil {
 			flipped = memo(1, len(w.F32), build)
@@ -150,7 +153,13 @@ func (op *convOp) backwardFor(in, out, gradOut []*tensor.Tensor, need []bool, me
 			dcol = *b
 		}
 		batchedX := false
-		if needX && transposed && op.group == 1 && s.n > 1 && op.gemm1 != nil {
+		if winoX {
+			if err := op.winogradForward(dy.F32, s.n, s.m, tg, op.winoFilter(w, s.c, s.m, true), s.c, dx.F32, nil); err != nil {
+				return nil, err
+			}
+			batchedX = true
+		}
+		if needX && transposed && !winoX && op.group == 1 && s.n > 1 && op.gemm1 != nil {
 			// Several images with small maps: their input gradients as one
 			// batched transposed convolution (see batchForward).
 			tkk := s.m * tg.kh * tg.kw

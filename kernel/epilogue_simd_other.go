@@ -25,3 +25,11 @@ func addStride2SIMD(dst, src []float32) int { return 0 }
 
 // addToSIMD: no vector path off amd64.
 func addToSIMD(dst, src []float32) int { return 0 }
+
+// winogradInputSIMD: no vector path off amd64.
+func winogradInputSIMD(v []float32, vstride int, x []float32, ldx, n int) int { return 0 }
+
+// winogradOutputSIMD: no vector path off amd64.
+func winogradOutputSIMD(y []float32, ldy, rows, cols int, m []float32, mstride int, bias float32, res []float32, lo, hi float32) bool {
+	return false
+}

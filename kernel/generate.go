@@ -5,3 +5,4 @@ package kernel
 //go:generate go -C asmgen run . -set gemm -out ../kernel_amd64.s -stubs ../stubs_amd64.go -pkg kernel
 //go:generate go -C asmgen run . -set dw -out ../depthwise_amd64.s -stubs ../depthwise_stubs_amd64.go -pkg kernel
 //go:generate go -C asmgen run . -set ep -out ../epilogue_amd64.s -stubs ../epilogue_stubs_amd64.go -pkg kernel
+//go:generate go -C asmgen run . -set wino -out ../winograd_amd64.s -stubs ../winograd_stubs_amd64.go -pkg kernel

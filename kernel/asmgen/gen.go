@@ -2,7 +2,8 @@
 // assembler generator, one kernel set per run (-set gemm: the SGEMM
 // micro-kernels in ../kernel_amd64.s; -set dw: depthwise loops in
 // ../depthwise_amd64.s; -set ep: convolution epilogues in
-// ../epilogue_amd64.s; each with its Go declarations). It is its own module
+// ../epilogue_amd64.s; -set wino: the Winograd transforms in
+// ../winograd_amd64.s; each with its Go declarations). It is its own module
 // so that the heedmap build never depends on avo; regenerate everything
 // with `go generate ./kernel` (the commands are in ../generate.go).
 //
@@ -56,7 +57,7 @@ func main() {
 		reg.Y0, reg.Y1, reg.Y2, reg.Y3, reg.Y4, reg.Y5, reg.Y6, reg.Y7,
 		reg.Y8, reg.Y9, reg.Y10, reg.Y11, reg.Y12, reg.Y13, reg.Y14, reg.Y15,
 	}
-	set := flag.String("set", "gemm", "which kernels to emit: gemm (GEMM micro-kernels and the FMA peak loop), dw (depthwise), ep (epilogues)")
+	set := flag.String("set", "gemm", "which kernels to emit: gemm (GEMM micro-kernels and the FMA peak loop), dw (depthwise), ep (epilogues), wino (Winograd transforms)")
 	flag.Parse()
 	switch *set {
 	case "gemm":
@@ -65,6 +66,8 @@ func main() {
 		genDepthwise(zmm, ymm)
 	case "ep":
 		genEpilogue(zmm, ymm)
+	case "wino":
+		genWinograd()
 	default:
 		fmt.Fprintf(os.Stderr, "asmgen: unknown -set %q\n", *set)
 		os.Exit(2)

@@ -1,0 +1,301 @@
+package main
+
+import (
+	. "github.com/mmcloughlin/avo/build"
+	. "github.com/mmcloughlin/avo/operand"
+	"github.com/mmcloughlin/avo/reg"
+)
+
+// genWinograd emits the input and output transforms of the Winograd
+// convolution F(2×2, 3×3) (Lavin & Gray, "Fast Algorithms for
+// Convolutional Neural Networks", CVPR 2016), sixteen tiles per vector:
+// a tile's values sit in the same lane of sixteen registers, one register
+// per transform element, so the transforms are plain vector adds. The
+// stride-2 overlap of the 4×4 input tiles is taken apart with VPERMT2PS
+// (even and odd columns of a row); the 2×2 output tiles are put together
+// with it. The arithmetic is the one of kernel.winogradInputGo and
+// winogradOutputGo, operation for operation, so both paths round alike.
+func genWinograd() {
+	genWinogradInput()
+	il0 := laneTable("winoInterleaveLo", func(j int) int { return j/2 + 16*(j%2) })
+	il1 := laneTable("winoInterleaveHi", func(j int) int { return 8 + j/2 + 16*(j%2) })
+	genWinogradOutput(false, il0, il1)
+	genWinogradOutput(true, il0, il1)
+}
+
+// winoStores returns the address of transform element ξ = 4a+b of the
+// current chunk: bases[a] points at element 4a, s holds the element
+// stride in bytes and s3 three times it.
+func winoAddr(bases [4]reg.GPVirtual, s, s3 reg.GPVirtual, a, b int) Mem {
+	switch b {
+	case 0:
+		return Mem{Base: bases[a]}
+	case 1:
+		return Mem{Base: bases[a], Index: s, Scale: 1}
+	case 2:
+		return Mem{Base: bases[a], Index: s, Scale: 2}
+	}
+	return Mem{Base: bases[a], Index: s3, Scale: 1}
+}
+
+// winoBases loads the element stride param (floats) as bytes into s and
+// 3·s into s3, and sets bases[a] = p + 4a·s.
+func winoBases(p reg.GPVirtual, stride string) (bases [4]reg.GPVirtual, s, s3 reg.GPVirtual) {
+	s = loadGP(stride)
+	SHLQ(U8(2), s)
+	s3 = GP64()
+	LEAQ(Mem{Base: s, Index: s, Scale: 2}, s3)
+	s4 := GP64()
+	MOVQ(s, s4)
+	SHLQ(U8(2), s4)
+	for a := range bases {
+		bases[a] = GP64()
+		if a == 0 {
+			MOVQ(p, bases[a])
+			continue
+		}
+		LEAQ(Mem{Base: bases[a-1], Index: s4, Scale: 1}, bases[a])
+	}
+	return bases, s, s3
+}
+
+// tailLoop emits the chunk loop of a transform: body(false) for each of
+// chunks full chunks, then body(true) once when the tail masks (already in
+// the K registers, zero for none) select something.
+func tailLoop(name string, chunks, tail reg.GPVirtual, body func(masked bool)) {
+	Label(name + "_loop")
+	TESTQ(chunks, chunks)
+	JZ(LabelRef(name + "_tail"))
+	body(false)
+	DECQ(chunks)
+	JMP(LabelRef(name + "_loop"))
+	Label(name + "_tail")
+	TESTQ(tail, tail)
+	JZ(LabelRef(name + "_done"))
+	body(true)
+	Label(name + "_done")
+	VZEROUPPER()
+	RET()
+}
+
+// genWinogradInput emits winogradInputAVX512: for chunks of sixteen tiles,
+// then one masked chunk of the tiles set in tail, the 4×4 input tiles
+// d[r][c] = x[r·ldx + 2j + c] give V = Bᵀ·d·B, stored as element ξ = 4a+b
+// of tile j at v[ξ·vstride + j].
+func genWinogradInput() {
+	ev := laneTable("winoEvenLanes", func(j int) int { return 2 * j })
+	od := laneTable("winoOddLanes", func(j int) int { return 2*j + 1 })
+	name := "winogradInputAVX512"
+	TEXT(name, NOSPLIT, "func(chunks int, tail uint64, x *float32, ldx int, v *float32, vstride int)")
+	Doc(name + " computes the F(2×2, 3×3) input transform of 16·chunks tiles, then of the tiles whose bits are set in tail (stores masked); each of the four rows must hold 32·(chunks+1)+2 readable values when tail is not zero, 32·chunks+2 otherwise.")
+	Pragma("noescape")
+	chunks := loadGP("chunks")
+	tail := loadGP("tail")
+	KMOVW(tail.As32(), reg.K1)
+	x := loadGP("x")
+	ldx := loadGP("ldx")
+	SHLQ(U8(2), ldx)
+	var rows [4]reg.GPVirtual
+	for r := range rows {
+		rows[r] = GP64()
+		if r == 0 {
+			MOVQ(x, rows[r])
+			continue
+		}
+		LEAQ(Mem{Base: rows[r-1], Index: ldx, Scale: 1}, rows[r])
+	}
+	vp := loadGP("v")
+	bases, s, s3 := winoBases(vp, "vstride")
+	evr, odr := reg.Z30, reg.Z31
+	VMOVUPS(ev, evr)
+	VMOVUPS(od, odr)
+	// t[r][b]: row r after the column transform, in Z0 … Z15.
+	t := func(r, b int) reg.VecPhysical { return zmmN(4*r + b) }
+	tmp := zmmN(16)
+	tailLoop(name, chunks, tail, func(masked bool) {
+		for r, p := range rows {
+			d0, d1, d2, d3 := t(r, 0), t(r, 1), t(r, 2), t(r, 3)
+			// d0 … d3 = x[2j], x[2j+1], x[2j+2], x[2j+3] for the 16 tiles.
+			VMOVUPS(Mem{Base: p}, d0)
+			VMOVAPS(d0, d1)
+			VPERMT2PS(Mem{Base: p, Disp: 64}, evr, d0)
+			VPERMT2PS(Mem{Base: p, Disp: 64}, odr, d1)
+			VMOVUPS(Mem{Base: p, Disp: 8}, d2)
+			VMOVAPS(d2, d3)
+			VPERMT2PS(Mem{Base: p, Disp: 72}, evr, d2)
+			VPERMT2PS(Mem{Base: p, Disp: 72}, odr, d3)
+			// t0 = d0−d2, t1 = d1+d2, t2 = d2−d1, t3 = d1−d3.
+			VSUBPS(d2, d0, d0)
+			VSUBPS(d3, d1, d3)
+			VADDPS(d2, d1, tmp)
+			VSUBPS(d1, d2, d2)
+			VMOVAPS(tmp, d1)
+		}
+		// V[0][b] = t0−t2, V[1][b] = t1+t2, V[2][b] = t2−t1, V[3][b] = t1−t3.
+		for b := 0; b < 4; b++ {
+			out := [4]reg.VecPhysical{zmmN(17), zmmN(18), zmmN(19), zmmN(20)}
+			VSUBPS(t(2, b), t(0, b), out[0])
+			VADDPS(t(2, b), t(1, b), out[1])
+			VSUBPS(t(1, b), t(2, b), out[2])
+			VSUBPS(t(3, b), t(1, b), out[3])
+			for a, o := range out {
+				if masked {
+					VMOVUPS(o, reg.K1, winoAddr(bases, s, s3, a, b))
+				} else {
+					VMOVUPS(o, winoAddr(bases, s, s3, a, b))
+				}
+			}
+		}
+		for _, p := range rows {
+			ADDQ(Imm(128), p)
+		}
+		for _, b := range bases {
+			ADDQ(U8(64), b)
+		}
+	})
+}
+
+// genWinogradOutput emits winogradOutputAVX512 (winogradOutputResAVX512
+// with residual): for chunks of sixteen tiles, then one masked chunk, the
+// elements m[ξ·mstride + j] of tile j give Y = Aᵀ·M·A, a 2×2 output block
+// at rows 0 and 1 (row 1 only when two is not zero), columns 2j and 2j+1
+// of y (rows ldy apart); each value becomes min(hi, max(lo, (v+bias)+r))
+// (without the residual r: min(hi, max(lo, v+bias))), rounded in that
+// order as the convolution epilogue (BiasAddClamp) rounds. masks: bits
+// 0–15 the tiles of the tail chunk, bits 16–31 and 32–47 its output
+// columns 0–15 and 16–31; zero for no tail. il0 and il1 are the lane
+// tables that interleave the two columns of a tile row.
+func genWinogradOutput(residual bool, il0, il1 Mem) {
+	name, sig := "winogradOutputAVX512", "func(chunks int, masks uint64, m *float32, mstride int, y *float32, ldy int, two int, bias, lo, hi float32)"
+	if residual {
+		name, sig = "winogradOutputResAVX512", "func(chunks int, masks uint64, m *float32, mstride int, y *float32, r *float32, ldy int, two int, bias, lo, hi float32)"
+	}
+	TEXT(name, NOSPLIT, sig)
+	Doc(name + " computes the F(2×2, 3×3) output transform and the convolution epilogue of 16·chunks tiles, then of the masked tail chunk.")
+	Pragma("noescape")
+	chunks := loadGP("chunks")
+	masks := loadGP("masks")
+	KMOVW(masks.As32(), reg.K3)
+	mk := GP64()
+	MOVQ(masks, mk)
+	SHRQ(U8(16), mk)
+	KMOVW(mk.As32(), reg.K1)
+	SHRQ(U8(16), mk)
+	KMOVW(mk.As32(), reg.K2)
+	mp := loadGP("m")
+	bases, s, s3 := winoBases(mp, "mstride")
+	y := loadGP("y")
+	var rp reg.GPVirtual
+	if residual {
+		rp = loadGP("r")
+	}
+	ldy := loadGP("ldy")
+	SHLQ(U8(2), ldy)
+	two := loadGP("two")
+	bv, lv, hv := zmmN(26), zmmN(27), zmmN(28)
+	for i, p := range []string{"bias", "lo", "hi"} {
+		a, err := Param(p).Resolve()
+		check(err)
+		VBROADCASTSS(a.Addr, []reg.VecPhysical{bv, lv, hv}[i])
+	}
+	i0, i1 := zmmN(29), zmmN(30)
+	VMOVUPS(il0, i0)
+	VMOVUPS(il1, i1)
+	mv := func(a, b int) reg.VecPhysical { return zmmN(4*a + b) }
+	tailLoop(name, chunks, masks, func(masked bool) {
+		for a := 0; a < 4; a++ {
+			for b := 0; b < 4; b++ {
+				if masked {
+					VMOVUPS_Z(winoAddr(bases, s, s3, a, b), reg.K3, mv(a, b))
+				} else {
+					VMOVUPS(winoAddr(bases, s, s3, a, b), mv(a, b))
+				}
+			}
+		}
+		// s0[b] = (m0b+m1b)+m2b in mv(0,b); s1[b] = (m1b−m2b)−m3b in mv(2,b).
+		for b := 0; b < 4; b++ {
+			VADDPS(mv(1, b), mv(0, b), mv(0, b))
+			VADDPS(mv(2, b), mv(0, b), mv(0, b))
+			VSUBPS(mv(2, b), mv(1, b), mv(2, b))
+			VSUBPS(mv(3, b), mv(2, b), mv(2, b))
+		}
+		for i, row := range []int{0, 2} {
+			s0, s1, s2, s3v := mv(row, 0), mv(row, 1), mv(row, 2), mv(row, 3)
+			y0, y1, lov := zmmN(16+3*i), zmmN(17+3*i), zmmN(18+3*i)
+			// y0 = (s0+s1)+s2, y1 = (s1−s2)−s3, each plus the bias.
+			VADDPS(s1, s0, y0)
+			VADDPS(s2, y0, y0)
+			VSUBPS(s2, s1, y1)
+			VSUBPS(s3v, y1, y1)
+			VADDPS(bv, y0, y0)
+			VADDPS(bv, y1, y1)
+			// Columns 2j, 2j+1 side by side: lov the first 16, y0 the rest.
+			VMOVAPS(y0, lov)
+			VPERMT2PS(y1, i0, lov)
+			VPERMT2PS(y1, i1, y0)
+		}
+		for i := 0; i < 2; i++ {
+			if i == 1 {
+				TESTQ(two, two)
+				JZ(LabelRef(name + labelSuffix(masked) + "_one"))
+			}
+			halves := [2]reg.VecPhysical{zmmN(18 + 3*i), zmmN(16 + 3*i)}
+			ks := [2]reg.Register{reg.K1, reg.K2}
+			at := func(base reg.GPVirtual, h int) Mem {
+				m := Mem{Base: base, Disp: 64 * h}
+				if i == 1 {
+					m.Index, m.Scale = ldy, 1
+				}
+				return m
+			}
+			for h, v := range halves {
+				if residual {
+					if masked {
+						VADDPS(at(rp, h), v, ks[h], v)
+					} else {
+						VADDPS(at(rp, h), v, v)
+					}
+				}
+				VMAXPS(v, lv, v)
+				VMINPS(v, hv, v)
+				if masked {
+					VMOVUPS(v, ks[h], at(y, h))
+				} else {
+					VMOVUPS(v, at(y, h))
+				}
+			}
+		}
+		Label(name + labelSuffix(masked) + "_one")
+		for _, b := range bases {
+			ADDQ(U8(64), b)
+		}
+		ADDQ(Imm(128), y)
+		if residual {
+			ADDQ(Imm(128), rp)
+		}
+	})
+}
+
+func labelSuffix(masked bool) string {
+	if masked {
+		return "_m"
+	}
+	return "_f"
+}
+
+// loadGP loads the integer or pointer parameter name into a new register.
+func loadGP(name string) reg.GPVirtual {
+	r := GP64()
+	Load(Param(name), r)
+	return r
+}
+
+// zmmN is the n-th AVX-512 register.
+func zmmN(n int) reg.VecPhysical {
+	return []reg.VecPhysical{
+		reg.Z0, reg.Z1, reg.Z2, reg.Z3, reg.Z4, reg.Z5, reg.Z6, reg.Z7,
+		reg.Z8, reg.Z9, reg.Z10, reg.Z11, reg.Z12, reg.Z13, reg.Z14, reg.Z15,
+		reg.Z16, reg.Z17, reg.Z18, reg.Z19, reg.Z20, reg.Z21, reg.Z22, reg.Z23,
+		reg.Z24, reg.Z25, reg.Z26, reg.Z27, reg.Z28, reg.Z29, reg.Z30, reg.Z31,
+	}[n]
+}

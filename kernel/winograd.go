@@ -1,0 +1,136 @@
+package kernel
+
+import "fmt"
+
+// The Winograd convolution F(2×2, 3×3) of Lavin & Gray ("Fast Algorithms
+// for Convolutional Neural Networks", CVPR 2016, section 4) computes a 2×2
+// block of a 3×3 correlation from a 4×4 input tile d and the filter g as
+//
+//	Y = Aᵀ·[(G·g·Gᵀ) ⊙ (Bᵀ·d·B)]·A
+//
+// with
+//
+//	Bᵀ = [1 0 −1 0; 0 1 1 0; 0 −1 1 0; 0 1 0 −1]
+//	G  = [1 0 0; ½ ½ ½; ½ −½ ½; 0 0 1]
+//	Aᵀ = [1 1 1 0; 0 1 −1 −1]
+//
+// Summed over input channels, the element-wise product becomes sixteen
+// independent matrix products (one per element ξ = 4a+b of the 4×4
+// transform): M_ξ (outputs × tiles) = U_ξ (outputs × channels) ·
+// V_ξ (channels × tiles), 16 multiply-adds per 2×2 outputs and channel
+// instead of 36: 2.25× fewer. The price is the transforms (adds only) and
+// slightly different rounding than a direct sum: each output is still a
+// sum over its own 3×3 receptive field only (no tap outside it enters with
+// a zero weight), but through the transformed values.
+//
+// The functions below hold one tile's transform element ξ at index
+// ξ·stride + j for tile j, so sixteen consecutive tiles are one vector.
+
+// WinogradFilter writes the transformed filters U = G·g·Gᵀ of k×c 3×3
+// filters w (w[(i·c+j)·9 + 3·ky + kx]): element ξ of filter (i, j) at
+// u[ξ·k·c + i·c + j], sixteen k×c matrices. The transform is computed in
+// float64 and rounded once.
+func WinogradFilter(u, w []float32, k, c int) {
+	if len(w) < k*c*9 || len(u) < 16*k*c {
+		panic(fmt.Sprintf("kernel: WinogradFilter has %d filter and %d output values, want %d and %d", len(w), len(u), k*c*9, 16*k*c))
+	}
+	gm := [4][3]float64{{1, 0, 0}, {0.5, 0.5, 0.5}, {0.5, -0.5, 0.5}, {0, 0, 1}}
+	for i := 0; i < k*c; i++ {
+		g := w[i*9 : i*9+9]
+		var t [4][3]float64 // G·g
+		for a := 0; a < 4; a++ {
+			for x := 0; x < 3; x++ {
+				for y := 0; y < 3; y++ {
+					t[a][x] += gm[a][y] * float64(g[3*y+x])
+				}
+			}
+		}
+		for a := 0; a < 4; a++ {
+			for b := 0; b < 4; b++ {
+				var s float64
+				for x := 0; x < 3; x++ {
+					s += t[a][x] * gm[b][x]
+				}
+				u[(4*a+b)*k*c+i] = float32(s)
+			}
+		}
+	}
+}
+
+// WinogradInput writes the input transforms V = Bᵀ·d·B of n tiles of one
+// channel: tile j is d[r][c] = x[r·ldx + 2j + c] (r, c < 4), and element
+// ξ of its transform goes to v[ξ·vstride + j]. x must hold 3·ldx + 2n + 2
+// values; when it holds 3·ldx + 32·⌈n/16⌉ + 2, a partial last vector of
+// tiles is done by the vector path too (masked stores), so callers that
+// pad their rows that far keep every tile on it.
+func WinogradInput(v []float32, vstride int, x []float32, ldx, n int) {
+	if n <= 0 {
+		return
+	}
+	if len(x) < 3*ldx+2*n+2 || len(v) < 15*vstride+n {
+		panic(fmt.Sprintf("kernel: WinogradInput of %d tiles has %d input values (ldx %d) and %d output values (stride %d)", n, len(x), ldx, len(v), vstride))
+	}
+	done := winogradInputSIMD(v, vstride, x, ldx, n)
+	winogradInputGo(v, vstride, x, ldx, done, n)
+}
+
+// winogradInputGo is WinogradInput for tiles j0 … n−1.
+func winogradInputGo(v []float32, vstride int, x []float32, ldx, j0, n int) {
+	for j := j0; j < n; j++ {
+		var t [4][4]float32
+		for r := 0; r < 4; r++ {
+			d := x[r*ldx+2*j : r*ldx+2*j+4]
+			t[r] = [4]float32{d[0] - d[2], d[1] + d[2], d[2] - d[1], d[1] - d[3]}
+		}
+		for b := 0; b < 4; b++ {
+			v[(0+b)*vstride+j] = t[0][b] - t[2][b]
+			v[(4+b)*vstride+j] = t[1][b] + t[2][b]
+			v[(8+b)*vstride+j] = t[2][b] - t[1][b]
+			v[(12+b)*vstride+j] = t[1][b] - t[3][b]
+		}
+	}
+}
+
+// WinogradOutput writes the output transforms Y = Aᵀ·M·A of the
+// ⌈cols/2⌉ tiles whose element ξ is m[ξ·mstride + j], each followed by the
+// convolution epilogue: y[r·ldy + 2j + c] = min(hi, max(lo, (Y[r][c] +
+// bias) + res[r·ldy + 2j + c])) for r < rows (1 or 2) and 2j+c < cols,
+// rounded in that order as BiasAddClamp rounds (res nil adds nothing).
+func WinogradOutput(y []float32, ldy, rows, cols int, m []float32, mstride int, bias float32, res []float32, lo, hi float32) {
+	if cols <= 0 || rows <= 0 {
+		return
+	}
+	tiles := (cols + 1) / 2
+	if rows > 2 || len(y) < (rows-1)*ldy+cols || len(m) < 15*mstride+tiles || (res != nil && len(res) < (rows-1)*ldy+cols) {
+		panic(fmt.Sprintf("kernel: WinogradOutput of %d×%d has %d output values (ldy %d), %d transform values (stride %d)", rows, cols, len(y), ldy, len(m), mstride))
+	}
+	if !winogradOutputSIMD(y, ldy, rows, cols, m, mstride, bias, res, lo, hi) {
+		winogradOutputGo(y, ldy, rows, cols, m, mstride, bias, res, lo, hi)
+	}
+}
+
+// winogradOutputGo is WinogradOutput's scalar path.
+func winogradOutputGo(y []float32, ldy, rows, cols int, m []float32, mstride int, bias float32, res []float32, lo, hi float32) {
+	for j := 0; j < (cols+1)/2; j++ {
+		var s [2][4]float32
+		for b := 0; b < 4; b++ {
+			m0, m1, m2, m3 := m[b*mstride+j], m[(4+b)*mstride+j], m[(8+b)*mstride+j], m[(12+b)*mstride+j]
+			s[0][b] = (m0 + m1) + m2
+			s[1][b] = (m1 - m2) - m3
+		}
+		for r := 0; r < rows; r++ {
+			out := [2]float32{(s[r][0] + s[r][1]) + s[r][2], (s[r][1] - s[r][2]) - s[r][3]}
+			for c, v := range out {
+				x := 2*j + c
+				if x >= cols {
+					break
+				}
+				v += bias
+				if res != nil {
+					v += res[r*ldy+x]
+				}
+				y[r*ldy+x] = min(hi, max(lo, v))
+			}
+		}
+	}
+}

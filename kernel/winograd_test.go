@@ -1,0 +1,167 @@
+package kernel
+
+import (
+	"math"
+	"math/rand"
+	"testing"
+)
+
+// winogradConv computes one k×c 3×3 correlation of x (c×h×w, zero padding
+// pad on every side) through WinogradFilter, WinogradInput, a float64
+// sum over channels rounded to float32 per element, and WinogradOutput,
+// the way a caller of these functions does. The padded rows are 32·⌈tw/16⌉+2
+// wide so the vector path takes every tile.
+func winogradConv(x, w []float32, c, h, wd, k, pad int, bias []float32) (y []float32, oh, ow int) {
+	oh, ow = h+2*pad-2, wd+2*pad-2
+	th, tw := (oh+1)/2, (ow+1)/2
+	pw := 32*((tw+15)/16) + 2
+	ph := 2*th + 2
+	xp := make([]float32, c*ph*pw)
+	for ci := 0; ci < c; ci++ {
+		for r := 0; r < h; r++ {
+			copy(xp[(ci*ph+r+pad)*pw+pad:], x[(ci*h+r)*wd:(ci*h+r+1)*wd])
+		}
+	}
+	u := make([]float32, 16*k*c)
+	WinogradFilter(u, w, k, c)
+	tiles := th * tw
+	v := make([]float32, 16*c*tiles)
+	for ci := 0; ci < c; ci++ {
+		for i := 0; i < th; i++ {
+			WinogradInput(v[ci*tiles+i*tw:], c*tiles, xp[(ci*ph+2*i)*pw:], pw, tw)
+		}
+	}
+	m := make([]float32, 16*k*tiles)
+	for e := 0; e < 16; e++ {
+		for ki := 0; ki < k; ki++ {
+			for t := 0; t < tiles; t++ {
+				var s float64
+				for ci := 0; ci < c; ci++ {
+					s += float64(u[(e*k+ki)*c+ci]) * float64(v[(e*c+ci)*tiles+t])
+				}
+				m[(e*k+ki)*tiles+t] = float32(s)
+			}
+		}
+	}
+	y = make([]float32, k*oh*ow)
+	inf := float32(math.Inf(1))
+	for ki := 0; ki < k; ki++ {
+		for i := 0; i < th; i++ {
+			rows := min(2, oh-2*i)
+			WinogradOutput(y[(ki*oh+2*i)*ow:], ow, rows, ow, m[ki*tiles+i*tw:], k*tiles, bias[ki], nil, -inf, inf)
+		}
+	}
+	return y, oh, ow
+}
+
+// TestWinogradMatchesCorrelation checks F(2×2, 3×3) (Lavin & Gray, "Fast
+// Algorithms for Convolutional Neural Networks", CVPR 2016; the matrices
+// Bᵀ, G, Aᵀ are recalled from the paper, so this test is what checks them)
+// against the definition of the 3×3 correlation, summed in float64, on
+// odd and even map sizes, with and without padding.
+func TestWinogradMatchesCorrelation(t *testing.T) {
+	rng := rand.New(rand.NewSource(7))
+	for _, tc := range []struct{ c, h, w, k, pad int }{
+		{1, 4, 4, 1, 0}, {3, 7, 7, 5, 1}, {8, 14, 14, 4, 1}, {5, 9, 40, 3, 1}, {4, 33, 66, 2, 1}, {2, 11, 6, 3, 0},
+	} {
+		x := make([]float32, tc.c*tc.h*tc.w)
+		w := make([]float32, tc.k*tc.c*9)
+		bias := make([]float32, tc.k)
+		for i := range x {
+			x[i] = float32(rng.NormFloat64())
+		}
+		for i := range w {
+			w[i] = float32(rng.NormFloat64())
+		}
+		for i := range bias {
+			bias[i] = float32(rng.NormFloat64())
+		}
+		y, oh, ow := winogradConv(x, w, tc.c, tc.h, tc.w, tc.k, tc.pad, bias)
+		for ki := 0; ki < tc.k; ki++ {
+			for oy := 0; oy < oh; oy++ {
+				for ox := 0; ox < ow; ox++ {
+					want, mag := float64(bias[ki]), math.Abs(float64(bias[ki]))
+					for ci := 0; ci < tc.c; ci++ {
+						for ky := 0; ky < 3; ky++ {
+							for kx := 0; kx < 3; kx++ {
+								iy, ix := oy+ky-tc.pad, ox+kx-tc.pad
+								if iy < 0 || iy >= tc.h || ix < 0 || ix >= tc.w {
+									continue
+								}
+								p := float64(w[(ki*tc.c+ci)*9+3*ky+kx]) * float64(x[(ci*tc.h+iy)*tc.w+ix])
+								want += p
+								mag += math.Abs(p)
+							}
+						}
+					}
+					got := float64(y[(ki*oh+oy)*ow+ox])
+					// float32 rounding of the transforms: a few units in
+					// the last place of the sum of magnitudes (common
+					// practice for a tolerance of this kind).
+					if d := math.Abs(got - want); d > 1e-6*mag*float64(8+tc.c) {
+						t.Fatalf("%+v: y[%d][%d][%d] = %v, correlation %v (|Δ| %g, Σ|terms| %g)", tc, ki, oy, ox, got, want, d, mag)
+					}
+				}
+			}
+		}
+	}
+}
+
+// TestWinogradVectorMatchesScalar checks that the AVX-512 transforms round
+// exactly as the scalar ones, on every tail length, one and two output
+// rows, with and without a residual, NaN included.
+func TestWinogradVectorMatchesScalar(t *testing.T) {
+	rng := rand.New(rand.NewSource(3))
+	fill := func(n int) []float32 {
+		s := make([]float32, n)
+		for i := range s {
+			s[i] = float32(rng.NormFloat64())
+		}
+		return s
+	}
+	for n := 1; n <= 50; n++ {
+		ldx := 32*((n+15)/16) + 2 + n%3
+		x := fill(3*ldx + 32*((n+15)/16) + 2)
+		x[ldx+5] = float32(math.NaN())
+		const vs = 64
+		got, want := fill(15*vs+n), make([]float32, 15*vs+n)
+		copy(want, got)
+		// Short rows too: the tail then goes to the scalar loop.
+		for _, short := range []bool{false, true} {
+			xs := x
+			if short {
+				xs = x[:3*ldx+2*n+2]
+			}
+			WinogradInput(got, vs, xs, ldx, n)
+			winogradInputGo(want, vs, xs, ldx, 0, n)
+			for i := range want {
+				if math.Float32bits(got[i]) != math.Float32bits(want[i]) {
+					t.Fatalf("input n=%d short=%v: v[%d] = %v, scalar %v", n, short, i, got[i], want[i])
+				}
+			}
+		}
+	}
+	for cols := 1; cols <= 70; cols++ {
+		tiles := (cols + 1) / 2
+		const ms, ldy = 48, 80
+		m := fill(15*ms + tiles)
+		m[3*ms+tiles/2] = float32(math.NaN())
+		for rows := 1; rows <= 2; rows++ {
+			for _, withRes := range []bool{false, true} {
+				var res []float32
+				if withRes {
+					res = fill((rows-1)*ldy + cols)
+				}
+				got := fill((rows-1)*ldy + cols + 40)
+				want := append([]float32(nil), got...)
+				WinogradOutput(got, ldy, rows, cols, m, ms, 0.25, res, -1.5, 2)
+				winogradOutputGo(want, ldy, rows, cols, m, ms, 0.25, res, -1.5, 2)
+				for i := range want {
+					if math.Float32bits(got[i]) != math.Float32bits(want[i]) {
+						t.Fatalf("output cols=%d rows=%d res=%v: y[%d] = %v, scalar %v", cols, rows, withRes, i, got[i], want[i])
+					}
+				}
+			}
+		}
+	}
+}
