@@ -97,12 +97,7 @@ func (op *convOp) rowForward(plan *kernel.Im2colPlan, xg []float32, cg int, g ge
 		defer op.slabBufs.Put(cb)
 		c := *cb
 		op.gemm1.SgemmRowPanels(ohw, w, kk, a, wp[q0*kk*nr:], c, w)
-		for m := m0; m < m1; m++ {
-			row := yg[m*ohw : (m+1)*ohw]
-			for pos := range row {
-				row[pos] = c[pos*w+m-m0]
-			}
-		}
+		kernel.Transpose(yg[m0*ohw:], ohw, c, w, ohw, w)
 		ep.apply(yg, ohw, m0, m1, 0, ohw)
 		return nil
 	})

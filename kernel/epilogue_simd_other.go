@@ -33,3 +33,8 @@ func winogradInputSIMD(v []float32, vstride int, x []float32, ldx, n int) int { 
 func winogradOutputSIMD(y []float32, ldy, rows, cols int, m []float32, mstride int, bias float32, res []float32, lo, hi float32) bool {
 	return false
 }
+
+// transposeSIMD: no block path off amd64.
+const transposeSIMD = false
+
+func transpose16(n int, src []float32, lds int, dst []float32, ldd int) {}

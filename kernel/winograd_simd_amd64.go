@@ -42,3 +42,11 @@ func winogradOutputSIMD(y []float32, ldy, rows, cols int, m []float32, mstride i
 	}
 	return true
 }
+
+// transposeSIMD: Transpose has the AVX-512 block path on amd64.
+const transposeSIMD = true
+
+// transpose16 runs n 16×16 blocks of Transpose on the vector path.
+func transpose16(n int, src []float32, lds int, dst []float32, ldd int) {
+	transpose16AVX512(n, &src[0], lds, &dst[0], ldd)
+}

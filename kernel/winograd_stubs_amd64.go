@@ -16,3 +16,8 @@ func winogradOutputAVX512(chunks int, masks uint64, m *float32, mstride int, y *
 //
 //go:noescape
 func winogradOutputResAVX512(chunks int, masks uint64, m *float32, mstride int, y *float32, r *float32, ldy int, two int, bias float32, lo float32, hi float32)
+
+// transpose16AVX512 writes n 16×16 blocks of src transposed into dst: dst[(16b+j)·ldd + i] = src[i·lds + 16b + j] for i, j < 16, b < n.
+//
+//go:noescape
+func transpose16AVX512(n int, src *float32, lds int, dst *float32, ldd int)

@@ -21,6 +21,7 @@ func genWinograd() {
 	il1 := laneTable("winoInterleaveHi", func(j int) int { return 8 + j/2 + 16*(j%2) })
 	genWinogradOutput(false, il0, il1)
 	genWinogradOutput(true, il0, il1)
+	genTranspose()
 }
 
 // winoStores returns the address of transform element ξ = 4a+b of the
@@ -298,4 +299,86 @@ func zmmN(n int) reg.VecPhysical {
 		reg.Z16, reg.Z17, reg.Z18, reg.Z19, reg.Z20, reg.Z21, reg.Z22, reg.Z23,
 		reg.Z24, reg.Z25, reg.Z26, reg.Z27, reg.Z28, reg.Z29, reg.Z30, reg.Z31,
 	}[n]
+}
+
+// genTranspose emits transpose16AVX512: n blocks of 16×16 floats, block b
+// of src (rows lds apart, columns 16b … 16b+15) written transposed to rows
+// 16b … 16b+15 of dst (ldd apart). The 16 rows go through four rounds of
+// in-register shuffles (32-bit and 64-bit interleaves within 128-bit lanes,
+// then two rounds of 128-bit lane shuffles), 64 shuffles per block.
+func genTranspose() {
+	name := "transpose16AVX512"
+	TEXT(name, NOSPLIT, "func(n int, src *float32, lds int, dst *float32, ldd int)")
+	Doc(name + " writes n 16×16 blocks of src transposed into dst: dst[(16b+j)·ldd + i] = src[i·lds + 16b + j] for i, j < 16, b < n.")
+	Pragma("noescape")
+	n := loadGP("n")
+	src := loadGP("src")
+	lds := loadGP("lds")
+	SHLQ(U8(2), lds)
+	dst := loadGP("dst")
+	ldd := loadGP("ldd")
+	SHLQ(U8(2), ldd)
+	lds3, ldd3 := GP64(), GP64()
+	LEAQ(Mem{Base: lds, Index: lds, Scale: 2}, lds3)
+	LEAQ(Mem{Base: ldd, Index: ldd, Scale: 2}, ldd3)
+	r := func(i int) reg.VecPhysical { return zmmN(i) }
+	t := func(i int) reg.VecPhysical { return zmmN(16 + i) }
+	// rows visits rows 0 … 15 of a block at base: f(i, address), with p
+	// stepping four rows between groups of four (it ends at row 12).
+	p := GP64()
+	rows := func(base, ld, ld3 reg.GPVirtual, f func(i int, m Mem)) {
+		MOVQ(base, p)
+		for i := 0; i < 16; i++ {
+			if i > 0 && i%4 == 0 {
+				LEAQ(Mem{Base: p, Index: ld, Scale: 4}, p)
+			}
+			m := Mem{Base: p}
+			switch i % 4 {
+			case 1:
+				m.Index, m.Scale = ld, 1
+			case 2:
+				m.Index, m.Scale = ld, 2
+			case 3:
+				m.Index, m.Scale = ld3, 1
+			}
+			f(i, m)
+		}
+	}
+	Label(name + "_loop")
+	TESTQ(n, n)
+	JZ(LabelRef(name + "_done"))
+	rows(src, lds, lds3, func(i int, m Mem) { VMOVUPS(m, r(i)) })
+	for i := 0; i < 16; i += 2 {
+		VUNPCKLPS(r(i+1), r(i), t(i))
+		VUNPCKHPS(r(i+1), r(i), t(i+1))
+	}
+	// u[4g+q]: rows 4g … 4g+3 of column 4ℓ+q in 128-bit lane ℓ.
+	for g := 0; g < 4; g++ {
+		a, b, c, d := t(4*g), t(4*g+1), t(4*g+2), t(4*g+3)
+		VUNPCKLPD(c, a, r(4*g))
+		VUNPCKHPD(c, a, r(4*g+1))
+		VUNPCKLPD(d, b, r(4*g+2))
+		VUNPCKHPD(d, b, r(4*g+3))
+	}
+	for q := 0; q < 4; q++ {
+		VSHUFF32X4(U8(0x44), r(4+q), r(q), t(4*q))      // lanes 0,1 of rows 0–3 and 4–7
+		VSHUFF32X4(U8(0xee), r(4+q), r(q), t(4*q+1))    // lanes 2,3
+		VSHUFF32X4(U8(0x44), r(12+q), r(8+q), t(4*q+2)) // rows 8–11 and 12–15
+		VSHUFF32X4(U8(0xee), r(12+q), r(8+q), t(4*q+3))
+	}
+	for q := 0; q < 4; q++ {
+		lo, hi, lo2, hi2 := t(4*q), t(4*q+1), t(4*q+2), t(4*q+3)
+		VSHUFF32X4(U8(0x88), lo2, lo, r(q))    // column q: lane 0 of each quarter
+		VSHUFF32X4(U8(0xdd), lo2, lo, r(4+q))  // column 4+q
+		VSHUFF32X4(U8(0x88), hi2, hi, r(8+q))  // column 8+q
+		VSHUFF32X4(U8(0xdd), hi2, hi, r(12+q)) // column 12+q
+	}
+	rows(dst, ldd, ldd3, func(j int, m Mem) { VMOVUPS(r(j), m) })
+	ADDQ(U8(64), src)
+	LEAQ(Mem{Base: p, Index: ldd, Scale: 4}, dst) // p is at row 12: the next block starts at row 16
+	DECQ(n)
+	JMP(LabelRef(name + "_loop"))
+	Label(name + "_done")
+	VZEROUPPER()
+	RET()
 }
