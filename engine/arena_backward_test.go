@@ -79,6 +79,21 @@ func TestArenaBackwardReuse(t *testing.T) {
 			t.Errorf("pass %d: forward+backward allocated %d buffers afresh (reused %d), want at most 2", pass, fresh, reused)
 		}
 	}
+	// With the input gradient handed back (Graph.Recycle), the next
+	// pass's input gradient is a recycled buffer too, and still exact.
+	for pass := 0; pass < 3; pass++ {
+		m0 := g.arena.misses
+		got := step(g)
+		for i := range ref.F32 {
+			if got.F32[i] != ref.F32[i] {
+				t.Fatalf("recycling pass %d: input gradient %d is %v, unpooled %v", pass, i, got.F32[i], ref.F32[i])
+			}
+		}
+		g.Recycle(got)
+		if fresh := g.arena.misses - m0; pass > 0 && fresh > 1 {
+			t.Errorf("recycling pass %d: forward+backward allocated %d buffers afresh, want at most 1 (the logits' view)", pass, fresh)
+		}
+	}
 }
 
 // TestArenaBackwardConcurrent runs forward+backward passes of the compact

@@ -230,6 +230,13 @@ func (n *graphNet) Gradient(ctx context.Context, x *tensor.Tensor, seed func(*te
 	return out, nil
 }
 
+// recycle implements gradientRecycler: the gradients' buffers go back to
+// the graph's arena (the logits and the layer activation stay with the
+// garbage collector: the logits may be a view of a kept buffer).
+func (n *graphNet) recycle(g *Gradients) {
+	n.g.Recycle(g.Input, g.LayerGrad)
+}
+
 // permute returns a 4-D tensor with axes reordered: out axis i is in axis
 // perm[i].
 func permute(t *tensor.Tensor, perm [4]int) *tensor.Tensor {

@@ -264,6 +264,10 @@ func gradients(ctx context.Context, net Network, n int, img []int, batch int, fi
 				return err
 			}
 		}
+		// visit's slices are dead now: the next batch may reuse them.
+		if r, ok := net.(gradientRecycler); ok {
+			r.recycle(g)
+		}
 	}
 	return nil
 }

@@ -30,6 +30,13 @@ type Network interface {
 	Gradient(ctx context.Context, x *tensor.Tensor, seed func(logits *tensor.Tensor) (*tensor.Tensor, error), layer string) (*Gradients, error)
 }
 
+// gradientRecycler is implemented by networks that can reuse the buffers
+// of a Gradients result once its caller is done with it (the engine-backed
+// network hands them back to its graph's arena, Graph.Recycle).
+type gradientRecycler interface {
+	recycle(g *Gradients)
+}
+
 // Gradients is what Network.Gradient returns.
 type Gradients struct {
 	Logits    *tensor.Tensor // [N, K]

@@ -485,6 +485,7 @@ func timeHeedmap(ctx context.Context, c config, m *model, b int, bwd bool) (timi
 		if g[m.input] == nil {
 			return errors.New("no input gradient")
 		}
+		m.graph.Recycle(g[m.input]) // as explain does once a batch's gradients are used
 		return nil
 	}
 	pass := "forward"
