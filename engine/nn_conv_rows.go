@@ -54,23 +54,33 @@ func (op *convOp) rowWeights(w *tensor.Tensor, m, kk int) []float32 {
 // the output channels by B panels; each block is multiplied into a
 // scratch block (positions × channels) and transposed into Y with the
 // epilogue.
+//
+// A pointwise layer skips the padding and the lowering: its input is
+// already the k-major A operand (Packed.SgemmKMajor reads it in place).
 func (op *convOp) rowForward(plan *kernel.Im2colPlan, xg []float32, cg int, g geom2, wp []float32, mg, kk int, yg []float32, ep *epilogue) error {
 	ohw := g.oh * g.ow
 	mr, full, edge := op.gemm1.RowPanels(ohw)
 	_, nr := op.gemm1.Tile()
-	abuf := poolBuf(&op.slabBufs, op.gemm1.RowPanelsLen(ohw, kk))
-	defer op.slabBufs.Put(abuf)
-	a := *abuf
-	padded, padTasks, release := op.padPlan(plan, xg, cg, false)
-	defer release()
 	procs := runtime.GOMAXPROCS(0)
-	npan := full
+	nq := (mg + nr - 1) / nr
+	blocks := min(nq, 4*procs)
+	var a []float32
+	var padded paddedInput
+	padTasks, fills, npan := 0, 0, full
 	if edge > 0 {
 		npan++
 	}
-	fills := min(npan, 2*procs)
-	nq := (mg + nr - 1) / nr
-	blocks := min(nq, 4*procs)
+	// useRows holds only on the AVX-512 path, which has the k-major kernels.
+	inPlace := g.pointwise() && op.gemm1.ISA() == kernel.ISAAVX512
+	if !inPlace {
+		abuf := poolBuf(&op.slabBufs, op.gemm1.RowPanelsLen(ohw, kk))
+		defer op.slabBufs.Put(abuf)
+		a = *abuf
+		var release func()
+		padded, padTasks, release = op.padPlan(plan, xg, cg, false)
+		defer release()
+		fills = min(npan, 2*procs)
+	}
 	return op.team.run([]int{padTasks, fills, blocks}, func(phase, t int) error {
 		switch phase {
 		case 0:
@@ -96,7 +106,11 @@ func (op *convOp) rowForward(plan *kernel.Im2colPlan, xg []float32, cg int, g ge
 		cb := poolBuf(&op.slabBufs, ohw*w)
 		defer op.slabBufs.Put(cb)
 		c := *cb
-		op.gemm1.SgemmRowPanels(ohw, w, kk, a, wp[q0*kk*nr:], c, w)
+		if !inPlace {
+			op.gemm1.SgemmRowPanels(ohw, w, kk, a, wp[q0*kk*nr:], c, w)
+		} else if !op.gemm1.SgemmKMajor(ohw, w, kk, xg, ohw, wp[q0*kk*nr:], c, w) {
+			return fmt.Errorf("engine: the %v GEMM has no k-major kernel", op.gemm1.ISA())
+		}
 		kernel.Transpose(yg[m0*ohw:], ohw, c, w, ohw, w)
 		ep.apply(yg, ohw, m0, m1, 0, ohw)
 		return nil

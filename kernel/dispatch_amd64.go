@@ -21,7 +21,7 @@ func archKernels() map[ISA]config {
 	if cpu.X86.HasAVX512F {
 		ks[ISAAVX512] = config{
 			isa: ISAAVX512, mr: 12, nr: 32, kc: 256, mc: 192, nc: 4096,
-			kernel: avx512Kernel, direct: avx512Direct, strided: avx512Strided, minParallelOps: 1 << 20,
+			kernel: avx512Kernel, direct: avx512Direct, strided: avx512Strided, kmajor: avx512KMajor, minParallelOps: 1 << 20,
 			edges: []edgeTile{
 				{mr: 4, kernel: avx512Kernel4, direct: avx512Direct4, strided: avx512Strided4},
 				{mr: 8, kernel: avx512Kernel8, direct: avx512Direct8, strided: avx512Strided8},
@@ -99,4 +99,9 @@ func avx512Strided8(k int, a []float32, lda int, b []float32, ldb int, c []float
 func avx512Strided4(k int, a []float32, lda int, b []float32, ldb int, c []float32, ldc int, alpha, beta float32, load bool) {
 	_, _, _ = a[3*lda+k-1], b[(k-1)*ldb+31], c[3*ldc+31]
 	sgemm4x32AVX512DirectStrided(k, &a[0], lda, &b[0], ldb, &c[0], ldc, alpha, beta, b2i(load))
+}
+
+func avx512KMajor(k int, a []float32, lda int, b, c []float32, ldc int, alpha, beta float32, load bool) {
+	_, _, _ = a[(k-1)*lda+11], b[32*k-1], c[11*ldc+31]
+	sgemm12x32AVX512KMajor(k, &a[0], lda, &b[0], &c[0], ldc, alpha, beta, b2i(load))
 }

@@ -61,6 +61,10 @@ type microKernel func(k int, a, b, c []float32, ldc int, alpha, beta float32, lo
 // unit stride along k (see asmgen/gen.go). a must hold (mr-1)·lda+k values.
 type directKernel func(k int, a []float32, lda int, b, c []float32, ldc int, alpha, beta float32, load bool)
 
+// kmajorKernel is a micro-kernel reading its A operand in place stored k
+// step by k step: A(i, p) at a[p·lda + i] (Packed.SgemmKMajor).
+type kmajorKernel func(k int, a []float32, lda int, b, c []float32, ldc int, alpha, beta float32, load bool)
+
 // stridedKernel is a directKernel that reads B unpacked too: k rows ldb
 // apart, nr values each (see asmgen/gen.go). b must hold (k-1)·ldb+nr
 // values.
@@ -83,6 +87,7 @@ type config struct {
 	kernel         microKernel
 	direct         directKernel  // nil when the path has no direct-A kernel
 	strided        stridedKernel // nil when the path has no unpacked-B kernel
+	kmajor         kmajorKernel  // nil when the path has no k-major-A kernel
 	minParallelOps int           // m·n·k below which one goroutine is used
 	// edges are shorter tiles, by increasing mr, for the last rows of a
 	// direct-A block: the smallest that covers the remaining rows is used
@@ -98,6 +103,7 @@ type edgeTile struct {
 	kernel  microKernel
 	direct  directKernel
 	strided stridedKernel
+	kmajor  kmajorKernel
 }
 
 // edgeFor returns the smallest edge tile covering rows rows, if any.

@@ -223,3 +223,88 @@ func (g *Packed) SgemmUnpacked(m, n, k int, a []float32, lda int, b []float32, l
 	}
 	return true
 }
+
+// SgemmKMajor computes C = A·B (m×n, row stride ldc, overwritten) for an
+// A stored k step by k step and read where it lies, A(i, p) at
+// a[p·lda + i], and a B packed as SgemmRowPanels takes it
+// (PackColumnPanels). A pointwise convolution computed transposed
+// (positions × channels, as on SgemmRowPanels' path) has exactly that A:
+// its input, channels × positions, lda the positions of a plane; so its
+// rows are multiplied without lowering them into row panels first. The
+// last m mod mr rows, which a full tile would read past, are packed into
+// one zero-padded edge panel. The loops and the k blocking are
+// SgemmRowPanels', so the result is bit for bit what lowering A into row
+// panels and calling SgemmRowPanels gives. It runs on the calling
+// goroutine and reports false, doing nothing, when the path has no k-major
+// kernel (only AVX-512 has); callers then lower.
+func (g *Packed) SgemmKMajor(m, n, k int, a []float32, lda int, bpanels []float32, c []float32, ldc int) bool {
+	cfg := g.conf()
+	if cfg.kmajor == nil {
+		return false
+	}
+	mr, nr := cfg.mr, cfg.nr
+	if m < 0 || n < 0 || k < 0 {
+		panic(fmt.Sprintf("kernel: negative GEMM size m=%d n=%d k=%d", m, n, k))
+	}
+	checkMat("A (k-major)", a, k, m, lda)
+	checkMat("C", c, m, n, ldc)
+	if need := (n + nr - 1) / nr * nr * k; len(bpanels) < need {
+		panic(fmt.Sprintf("kernel: SgemmKMajor B panels have %d elements, want >= %d for k=%d n=%d", len(bpanels), need, k, n))
+	}
+	if m == 0 || n == 0 {
+		return true
+	}
+	if k == 0 {
+		scaleC(m, n, 0, c, ldc)
+		return true
+	}
+	_, full, edgeRows := g.RowPanels(m)
+	rem := m - full*mr
+	edgeKern := cfg.kernel
+	if e, ok := cfg.edgeFor(rem); ok && rem > 0 {
+		edgeKern = e.kernel
+	}
+	ws := g.get()
+	defer g.pool.Put(ws)
+	// The edge panel as RowPanels lays it out: k steps of edgeRows values.
+	var edge []float32
+	if rem > 0 {
+		ws.a = grow(ws.a, edgeRows*k)
+		edge = ws.a[:edgeRows*k]
+		clear(edge)
+		for p := 0; p < k; p++ {
+			copy(edge[p*edgeRows:p*edgeRows+rem], a[p*lda+full*mr:p*lda+m])
+		}
+	}
+	for jr := 0; jr < n; jr += nr {
+		nrr := min(nr, n-jr)
+		for pc := 0; pc < k; pc += cfg.kc {
+			kb := min(cfg.kc, k-pc)
+			bet := float32(0)
+			if pc > 0 {
+				bet = 1
+			}
+			boff := jr/nr*k*nr + pc*nr
+			bp := bpanels[boff : boff+kb*nr]
+			for ir := 0; ir <= full; ir++ {
+				ci := ir*mr*ldc + jr
+				if ir == full {
+					if rem == 0 {
+						break
+					}
+					edgeKern(kb, edge[pc*edgeRows:(pc+kb)*edgeRows], bp, ws.tile, nr, 1, 0, false)
+					storeTile(c[ci:], ldc, ws.tile, nr, rem, nrr, bet)
+					continue
+				}
+				ap := a[pc*lda+ir*mr:]
+				if nrr == nr {
+					cfg.kmajor(kb, ap, lda, bp, c[ci:], ldc, 1, bet, bet != 0)
+					continue
+				}
+				cfg.kmajor(kb, ap, lda, bp, ws.tile, nr, 1, 0, false)
+				storeTile(c[ci:], ldc, ws.tile, nr, mr, nrr, bet)
+			}
+		}
+	}
+	return true
+}

@@ -29,22 +29,7 @@ func TestSgemmRowPanels(t *testing.T) {
 				for _, k := range []int{1, 37, 300, 600} {
 					a := randSlice(r, m*k)
 					w := randSlice(r, n*k) // B = wᵀ
-					// A packed as RowPanels says: panel i holds rows
-					// i·mr … as k×width, row fastest.
-					_, full, edge := g.RowPanels(m)
-					ap := make([]float32, g.RowPanelsLen(m, k))
-					for i := range ap {
-						ap[i] = 99 // padding rows must not reach C's valid rows
-					}
-					for row := 0; row < m; row++ {
-						p, width := row/mr, mr
-						if p == full {
-							width = edge
-						}
-						for kk := 0; kk < k; kk++ {
-							ap[p*k*mr+kk*width+row-p*mr] = a[row*k+kk]
-						}
-					}
+					ap := packRowPanels(g, a, m, k)
 					bp := make([]float32, (n+nr-1)/nr*nr*k)
 					g.PackColumnPanels(bp, w, n, k, k)
 					c := make([]float32, m*(n+3))
@@ -64,6 +49,82 @@ func TestSgemmRowPanels(t *testing.T) {
 							if d := abs64(float64(c[i*(n+3)+j]) - float64(want[i*n+j])); d > bound {
 								t.Fatalf("%v m=%d n=%d k=%d: C[%d][%d] = %v, want %v (bound %.2g)", isa, m, n, k, i, j, c[i*(n+3)+j], want[i*n+j], bound)
 							}
+						}
+					}
+				}
+			}
+		}
+	}
+}
+
+// packRowPanels packs the row-major m×k matrix a as RowPanels says: panel
+// i holds rows i·mr … as k×width, row fastest. Padding rows hold 99, which
+// must never reach C's valid rows.
+func packRowPanels(g *kernel.Packed, a []float32, m, k int) []float32 {
+	mr, _ := g.Tile()
+	_, full, edge := g.RowPanels(m)
+	ap := make([]float32, g.RowPanelsLen(m, k))
+	for i := range ap {
+		ap[i] = 99
+	}
+	for row := 0; row < m; row++ {
+		p, width := row/mr, mr
+		if p == full {
+			width = edge
+		}
+		for kk := 0; kk < k; kk++ {
+			ap[p*k*mr+kk*width+row-p*mr] = a[row*k+kk]
+		}
+	}
+	return ap
+}
+
+// TestSgemmKMajor checks that multiplying an A read in place k-major
+// (A(i, p) at a[p·lda + i]) gives bit for bit what lowering it into row
+// panels and calling SgemmRowPanels gives (itself checked against
+// kernel.Naive above), for row counts with and without an edge panel,
+// partial last B panels and several k blocks.
+func TestSgemmKMajor(t *testing.T) {
+	r := rand.New(rand.NewPCG(13, 14))
+	g, err := kernel.New(kernel.Options{ISA: kernel.ISAAVX512, Threads: 1})
+	if err != nil {
+		t.Skip("no AVX-512 path on this CPU")
+	}
+	mr, nr := g.Tile()
+	for _, m := range []int{1, 5, mr, mr + 1, 2*mr + 7, 49, 196} {
+		for _, n := range []int{nr, nr + 5, 3 * nr, 7} {
+			for _, k := range []int{1, 37, 300, 600} {
+				lda := m + 3
+				at := randSlice(r, (k-1)*lda+m) // k-major: row p holds A(·, p)
+				a := make([]float32, m*k)       // the same A, row-major
+				for i := 0; i < m; i++ {
+					for p := 0; p < k; p++ {
+						a[i*k+p] = at[p*lda+i]
+					}
+				}
+				w := randSlice(r, n*k)
+				bp := make([]float32, (n+nr-1)/nr*nr*k)
+				g.PackColumnPanels(bp, w, n, k, k)
+				want := make([]float32, m*n)
+				g.SgemmRowPanels(m, n, k, packRowPanels(g, a, m, k), bp, want, n)
+				got := make([]float32, m*(n+2))
+				for i := range got {
+					got[i] = 7
+				}
+				if !g.SgemmKMajor(m, n, k, at, lda, bp, got, n+2) {
+					t.Fatal("AVX-512 path has no k-major kernel")
+				}
+				for i := 0; i < m; i++ {
+					for j := 0; j < n+2; j++ {
+						v := got[i*(n+2)+j]
+						if j >= n {
+							if v != 7 {
+								t.Fatalf("m=%d n=%d k=%d: C[%d][%d] past n written: %v", m, n, k, i, j, v)
+							}
+							continue
+						}
+						if math.Float32bits(v) != math.Float32bits(want[i*n+j]) {
+							t.Fatalf("m=%d n=%d k=%d: C[%d][%d] = %v, row panels %v", m, n, k, i, j, v, want[i*n+j])
 						}
 					}
 				}

@@ -17,6 +17,11 @@ func sgemm12x32AVX512Direct(k int, a *float32, lda int, b *float32, c *float32, 
 //go:noescape
 func sgemm12x32AVX512DirectStrided(k int, a *float32, lda int, b *float32, ldb int, c *float32, ldc int, alpha float32, beta float32, load int)
 
+// sgemm12x32AVX512KMajor computes a 12×32 tile of C from an A stored k-major, A(i, p) at a[p·lda + i], read in place; 12×32 tile: 24 zmm accumulators, 2 for the B row, 2 for broadcasts.
+//
+//go:noescape
+func sgemm12x32AVX512KMajor(k int, a *float32, lda int, b *float32, c *float32, ldc int, alpha float32, beta float32, load int)
+
 // sgemm8x32AVX512 computes a 8×32 tile of C; 8×32 edge tile: 16 zmm accumulators.
 //
 //go:noescape
@@ -32,6 +37,11 @@ func sgemm8x32AVX512Direct(k int, a *float32, lda int, b *float32, c *float32, l
 //go:noescape
 func sgemm8x32AVX512DirectStrided(k int, a *float32, lda int, b *float32, ldb int, c *float32, ldc int, alpha float32, beta float32, load int)
 
+// sgemm8x32AVX512KMajor computes a 8×32 tile of C from an A stored k-major, A(i, p) at a[p·lda + i], read in place; 8×32 edge tile: 16 zmm accumulators.
+//
+//go:noescape
+func sgemm8x32AVX512KMajor(k int, a *float32, lda int, b *float32, c *float32, ldc int, alpha float32, beta float32, load int)
+
 // sgemm4x32AVX512 computes a 4×32 tile of C; 4×32 edge tile: 8 zmm accumulators.
 //
 //go:noescape
@@ -46,6 +56,11 @@ func sgemm4x32AVX512Direct(k int, a *float32, lda int, b *float32, c *float32, l
 //
 //go:noescape
 func sgemm4x32AVX512DirectStrided(k int, a *float32, lda int, b *float32, ldb int, c *float32, ldc int, alpha float32, beta float32, load int)
+
+// sgemm4x32AVX512KMajor computes a 4×32 tile of C from an A stored k-major, A(i, p) at a[p·lda + i], read in place; 4×32 edge tile: 8 zmm accumulators.
+//
+//go:noescape
+func sgemm4x32AVX512KMajor(k int, a *float32, lda int, b *float32, c *float32, ldc int, alpha float32, beta float32, load int)
 
 // sgemm6x16AVX2 computes a 6×16 tile of C; 6×16 tile: 12 ymm accumulators, 2 for the B row, 2 for broadcasts.
 //
