@@ -13,11 +13,11 @@ import (
 // (Lavin & Gray, CVPR 2016; kernel.WinogradFilter has the algebra): 16
 // multiply-adds per 2×2 outputs and input channel instead of 36. The
 // filters are transformed once per graph (they must be a graph constant);
-// each task then takes a block of tile rows of one image and
+// each task then takes a block of 64 tiles of one image and
 //
-//  1. copies the input rows it needs, zero-padded, into a cache-sized
-//     scratch and transforms them (kernel.WinogradInput): sixteen
-//     channels × tiles matrices V_ξ;
+//  1. transforms the input rows they read where they lie, the padding
+//     masked out by the kernel (kernel.WinogradInput): sixteen channels ×
+//     tiles matrices V_ξ;
 //  2. multiplies U_ξ (outputs × channels) by V_ξ for each ξ with the
 //     single-threaded packed GEMM reading V_ξ where it lies
 //     (Packed.SgemmUnpacked);
@@ -105,9 +105,6 @@ type winoPlan struct {
 func newWinoPlan(g geom2, nImg, c, m int) winoPlan {
 	p := winoPlan{g: g, c: c, m: m, th: (g.oh + 1) / 2, tw: (g.ow + 1) / 2}
 	p.tiles = p.th * p.tw
-	// 2·tw+2 values hold a tile row's input; the slack lets the last,
-	// partial vector of tiles of a row that starts anywhere load whole.
-	p.pw = 2*p.tw + 34
 	p.blocks = (p.tiles + winoBlockTiles - 1) / winoBlockTiles
 	procs := runtime.GOMAXPROCS(0)
 	p.kBlocks = 1
@@ -143,39 +140,24 @@ func (p *winoPlan) rowSpan(t0, t1 int, f func(i, j0, j1 int)) {
 	}
 }
 
-// padPlanes copies planes [p0, p1) of x (planes of ih×iw) into xp
-// (planes of ph×pw, ph = 2·th+2), zero-padded: input row iy, column ix
-// lands at row iy+pt, column ix+pl.
-func (p *winoPlan) padPlanes(xp, x []float32, p0, p1 int) {
+// transform transforms channels [c0, c1) of block b of image x (c×ih×iw)
+// into v (16 matrices c×ld), reading the input rows in place: the
+// convolution's padding is masked out by the kernel (zero is a row of
+// zeros, for padding rows). Columns past the block's tiles are zeroed.
+func (p *winoPlan) transform(v, x, zero []float32, b, c0, c1 int) {
 	g := p.g
-	ph := 2*p.th + 2
-	for pl := p0; pl < p1; pl++ {
-		plane := x[pl*g.ih*g.iw : (pl+1)*g.ih*g.iw]
-		buf := xp[pl*ph*p.pw : (pl+1)*ph*p.pw]
-		for r := 0; r < ph; r++ {
-			dst := buf[r*p.pw : (r+1)*p.pw]
-			iy := r - g.pt
-			if iy < 0 || iy >= g.ih {
-				clear(dst)
-				continue
-			}
-			clear(dst[:g.pl])
-			copy(dst[g.pl:], plane[iy*g.iw:(iy+1)*g.iw])
-			clear(dst[g.pl+g.iw : 2*p.tw+2])
-		}
-	}
-}
-
-// transform transforms channels [c0, c1) of block b of the padded image
-// xp (c planes, see padPlanes) into v (16 matrices c×ld). Columns past the
-// block's tiles are zeroed.
-func (p *winoPlan) transform(v, xp []float32, b, c0, c1 int) {
 	t0, t1, ld := p.block(b)
-	plane := (2*p.th + 2) * p.pw
 	for ci := c0; ci < c1; ci++ {
-		buf := xp[ci*plane : (ci+1)*plane]
+		plane := x[ci*g.ih*g.iw : (ci+1)*g.ih*g.iw]
 		p.rowSpan(t0, t1, func(i, j0, j1 int) {
-			kernel.WinogradInput(v[ci*ld+i*p.tw+j0-t0:], winoStride(p.c, ld), buf[2*i*p.pw+2*j0:], p.pw, j1-j0)
+			var rows [4][]float32
+			for r := range rows {
+				rows[r] = zero
+				if iy := 2*i + r - g.pt; iy >= 0 && iy < g.ih {
+					rows[r] = plane[iy*g.iw : (iy+1)*g.iw]
+				}
+			}
+			kernel.WinogradInput(v[ci*ld+i*p.tw+j0-t0:], winoStride(p.c, ld), &rows, 2*j0-g.pl, j1-j0, g.iw)
 		})
 		if t1-t0 < ld {
 			for e := 0; e < 16; e++ {
@@ -226,36 +208,25 @@ func (p *winoPlan) multiply(gemm *kernel.Packed, u, v, prod, y []float32, off in
 
 // winogradForward computes y (nImg×m×oh×ow) = the convolution of x
 // (nImg×c×ih×iw) with the filters whose transform is u, followed by ep
-// (nil for none; its residual laid out like y). The input is padded first,
-// split by planes; then each block is transformed and multiplied, or, when
-// the output channels are split too, all blocks are transformed (split by
-// channels) before any is multiplied.
+// (nil for none; its residual laid out like y). Each block is transformed
+// and multiplied by one task; when the output channels are split too, all
+// blocks are transformed (split by channels) before any is multiplied.
 func (op *convOp) winogradForward(x []float32, nImg, c int, g geom2, u []float32, m int, y []float32, ep *epilogue) error {
 	p := newWinoPlan(g, nImg, c, m)
-	ohw := g.oh * g.ow
-	plane := (2*p.th + 2) * p.pw
-	xpBuf := poolBuf(&op.padBufs, nImg*c*plane)
-	defer op.padBufs.Put(xpBuf)
-	xp := *xpBuf
-	procs := runtime.GOMAXPROCS(0)
-	planes := nImg * c
-	padTasks := min(planes, 4*procs)
-	pad := func(t int) {
-		p.padPlanes(xp, x, planes*t/padTasks, planes*(t+1)/padTasks)
-	}
+	ihw, ohw := g.ih*g.iw, g.oh*g.ow
+	zeroBuf := poolBuf(&op.padBufs, g.iw)
+	defer op.padBufs.Put(zeroBuf)
+	zero := *zeroBuf
+	clear(zero)
 	prodLen := 16 * winoStride((m+p.kBlocks-1)/p.kBlocks, winoBlockTiles)
 	blocks := nImg * p.blocks
 	if !p.shared {
-		return op.team.run([]int{padTasks, blocks}, func(phase, t int) error {
-			if phase == 0 {
-				pad(t)
-				return nil
-			}
+		return op.team.run([]int{blocks}, func(_, t int) error {
 			n, b := t/p.blocks, t%p.blocks
 			bufs := poolBuf(&op.slabBufs, p.blockOp+prodLen)
 			defer op.slabBufs.Put(bufs)
 			v, prod := (*bufs)[:p.blockOp], (*bufs)[p.blockOp:]
-			p.transform(v, xp[n*c*plane:(n+1)*c*plane], b, 0, c)
+			p.transform(v, x[n*c*ihw:(n+1)*c*ihw], zero, b, 0, c)
 			p.multiply(op.gemm1, u, v, prod, y[n*m*ohw:(n+1)*m*ohw], n*m*ohw, ep, b, 0, m)
 			return nil
 		})
@@ -263,16 +234,12 @@ func (op *convOp) winogradForward(x []float32, nImg, c int, g geom2, u []float32
 	vBuf := poolBuf(&op.slabBufs, blocks*p.blockOp)
 	defer op.slabBufs.Put(vBuf)
 	vs := *vBuf
-	cTasks := max(1, min(4*procs/blocks, c/16))
-	return op.team.run([]int{padTasks, blocks * cTasks, blocks * p.kBlocks}, func(phase, t int) error {
-		switch phase {
-		case 0:
-			pad(t)
-			return nil
-		case 1:
+	cTasks := max(1, min(4*runtime.GOMAXPROCS(0)/blocks, c/16))
+	return op.team.run([]int{blocks * cTasks, blocks * p.kBlocks}, func(phase, t int) error {
+		if phase == 0 {
 			nb, ct := t/cTasks, t%cTasks
 			n := nb / p.blocks
-			p.transform(vs[nb*p.blockOp:(nb+1)*p.blockOp], xp[n*c*plane:(n+1)*c*plane], nb%p.blocks, c*ct/cTasks, c*(ct+1)/cTasks)
+			p.transform(vs[nb*p.blockOp:(nb+1)*p.blockOp], x[n*c*ihw:(n+1)*c*ihw], zero, nb%p.blocks, c*ct/cTasks, c*(ct+1)/cTasks)
 			return nil
 		}
 		nb, kt := t/p.kBlocks, t%p.kBlocks

@@ -27,7 +27,9 @@ func addStride2SIMD(dst, src []float32) int { return 0 }
 func addToSIMD(dst, src []float32) int { return 0 }
 
 // winogradInputSIMD: no vector path off amd64.
-func winogradInputSIMD(v []float32, vstride int, x []float32, ldx, n int) int { return 0 }
+func winogradInputSIMD(v []float32, vstride int, rows *[4][]float32, x0, n, width int) bool {
+	return false
+}
 
 // winogradOutputSIMD: no vector path off amd64.
 func winogradOutputSIMD(y []float32, ldy, rows, cols int, m []float32, mstride int, bias float32, res []float32, lo, hi float32) bool {

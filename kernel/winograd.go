@@ -58,28 +58,44 @@ func WinogradFilter(u, w []float32, k, c int) {
 }
 
 // WinogradInput writes the input transforms V = Bᵀ·d·B of n tiles of one
-// channel: tile j is d[r][c] = x[r·ldx + 2j + c] (r, c < 4), and element
-// ξ of its transform goes to v[ξ·vstride + j]. x must hold 3·ldx + 2n + 2
-// values; when it holds 3·ldx + 32·⌈n/16⌉ + 2, a partial last vector of
-// tiles is done by the vector path too (masked stores), so callers that
-// pad their rows that far keep every tile on it.
-func WinogradInput(v []float32, vstride int, x []float32, ldx, n int) {
+// channel: tile j is d[r][c] = rows[r][x0 + 2j + c] (r, c < 4), where a
+// column outside [0, width) reads as zero, and element ξ of its transform
+// goes to v[ξ·vstride + j]. So a convolution's zero padding costs no copy:
+// x0 is negative by the left pad, columns past width are the right pad,
+// and a row of padding is a row of zeros. Each rows[r] must hold width
+// values. With AVX-512 sixteen tiles are one vector; loads are zero-masked
+// at the edges, which never fault.
+func WinogradInput(v []float32, vstride int, rows *[4][]float32, x0, n, width int) {
 	if n <= 0 {
 		return
 	}
-	if len(x) < 3*ldx+2*n+2 || len(v) < 15*vstride+n {
-		panic(fmt.Sprintf("kernel: WinogradInput of %d tiles has %d input values (ldx %d) and %d output values (stride %d)", n, len(x), ldx, len(v), vstride))
+	for r := range rows {
+		if len(rows[r]) < width {
+			panic(fmt.Sprintf("kernel: WinogradInput row %d has %d values, want %d", r, len(rows[r]), width))
+		}
 	}
-	done := winogradInputSIMD(v, vstride, x, ldx, n)
-	winogradInputGo(v, vstride, x, ldx, done, n)
+	if len(v) < 15*vstride+n {
+		panic(fmt.Sprintf("kernel: WinogradInput of %d tiles has %d output values (stride %d)", n, len(v), vstride))
+	}
+	if winogradInputSIMD(v, vstride, rows, x0, n, width) {
+		return
+	}
+	winogradInputGo(v, vstride, rows, x0, 0, n, width)
 }
 
 // winogradInputGo is WinogradInput for tiles j0 … n−1.
-func winogradInputGo(v []float32, vstride int, x []float32, ldx, j0, n int) {
+func winogradInputGo(v []float32, vstride int, rows *[4][]float32, x0, j0, n, width int) {
+	at := func(r, x int) float32 {
+		if x < 0 || x >= width {
+			return 0
+		}
+		return rows[r][x]
+	}
 	for j := j0; j < n; j++ {
 		var t [4][4]float32
 		for r := 0; r < 4; r++ {
-			d := x[r*ldx+2*j : r*ldx+2*j+4]
+			x := x0 + 2*j
+			d := [4]float32{at(r, x), at(r, x+1), at(r, x+2), at(r, x+3)}
 			t[r] = [4]float32{d[0] - d[2], d[1] + d[2], d[2] - d[1], d[1] - d[3]}
 		}
 		for b := 0; b < 4; b++ {
@@ -89,6 +105,24 @@ func winogradInputGo(v []float32, vstride int, x []float32, ldx, j0, n int) {
 			v[(12+b)*vstride+j] = t[1][b] - t[3][b]
 		}
 	}
+}
+
+// winogradChunkMasks returns the load masks of the vector chunk whose
+// first tile reads column x (the four loads at floats 0, 16, 2, 18 from
+// x, 16 lanes each, a lane set when its column lies in [0, width)), and
+// whether all are full.
+func winogradChunkMasks(x, width int) (masks uint64, full bool) {
+	if x >= 0 && x+34 <= width {
+		return ^uint64(0), true
+	}
+	for k, o := range [4]int{0, 16, 2, 18} {
+		// Lanes [lo, hi) of this load fall inside the row.
+		lo, hi := min(max(-(x+o), 0), 16), min(max(width-(x+o), 0), 16)
+		if lo < hi {
+			masks |= (uint64(1)<<hi - uint64(1)<<lo) << (16 * k)
+		}
+	}
+	return masks, false
 }
 
 // WinogradOutput writes the output transforms Y = Aᵀ·M·A of the

@@ -2,24 +2,42 @@ package kernel
 
 import "golang.org/x/sys/cpu"
 
-// winogradInputSIMD runs WinogradInput's vector path and returns how many
-// leading tiles it did (0 without AVX-512F).
-func winogradInputSIMD(v []float32, vstride int, x []float32, ldx, n int) int {
+// winogradInputSIMD runs WinogradInput on the vector path and reports
+// whether it did (not without AVX-512F). Runs of chunks that lie inside
+// the rows go through one call with full masks; edge chunks one by one
+// with their own.
+func winogradInputSIMD(v []float32, vstride int, rows *[4][]float32, x0, n, width int) bool {
 	if !cpu.X86.HasAVX512F {
-		return 0
+		return false
 	}
-	chunks, tail := n/16, n%16
-	if tail > 0 && len(x) < 3*ldx+32*(chunks+1)+2 {
-		tail = 0
+	var ptrs [4]*float32
+	for r := range rows {
+		ptrs[r] = &rows[r][0]
 	}
-	if chunks == 0 && tail == 0 {
-		return 0
+	chunks := (n + 15) / 16
+	partial := n%16 != 0
+	for q := 0; q < chunks; {
+		masks, full := winogradChunkMasks(x0+32*q, width)
+		if !full || (partial && q == chunks-1) {
+			smask := uint64(0xffff)
+			if partial && q == chunks-1 {
+				smask = 1<<(n%16) - 1
+			}
+			winogradInputAVX512(1, masks, smask, &ptrs, x0+32*q, &v[16*q], vstride)
+			q++
+			continue
+		}
+		run := 1
+		for q+run < chunks && !(partial && q+run == chunks-1) {
+			if _, ok := winogradChunkMasks(x0+32*(q+run), width); !ok {
+				break
+			}
+			run++
+		}
+		winogradInputAVX512(run, masks, 0xffff, &ptrs, x0+32*q, &v[16*q], vstride)
+		q += run
 	}
-	winogradInputAVX512(chunks, uint64(1)<<tail-1, &x[0], ldx, &v[0], vstride)
-	if tail > 0 {
-		return n
-	}
-	return 16 * chunks
+	return true
 }
 
 // winogradOutputSIMD runs WinogradOutput on the vector path and reports

@@ -2,10 +2,10 @@
 
 package kernel
 
-// winogradInputAVX512 computes the F(2×2, 3×3) input transform of 16·chunks tiles, then of the tiles whose bits are set in tail (stores masked); each of the four rows must hold 32·(chunks+1)+2 readable values when tail is not zero, 32·chunks+2 otherwise.
+// winogradInputAVX512 computes the F(2×2, 3×3) input transform of 16·chunks tiles read from four rows at off + 2j, loads zero-masked by masks (four 16-bit masks, for the loads at floats 0, 16, 2, 18 of a chunk) and stores masked by smask.
 //
 //go:noescape
-func winogradInputAVX512(chunks int, tail uint64, x *float32, ldx int, v *float32, vstride int)
+func winogradInputAVX512(chunks int, masks uint64, smask uint64, rows *[4]*float32, off int, v *float32, vstride int)
 
 // winogradOutputAVX512 computes the F(2×2, 3×3) output transform and the convolution epilogue of 16·chunks tiles, then of the masked tail chunk.
 //

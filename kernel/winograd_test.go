@@ -7,28 +7,28 @@ import (
 )
 
 // winogradConv computes one k×c 3×3 correlation of x (c×h×w, zero padding
-// pad on every side) through WinogradFilter, WinogradInput, a float64
+// pad on every side) through WinogradFilter, WinogradInput (reading the
+// unpadded rows, the padding through its masks and a zero row), a float64
 // sum over channels rounded to float32 per element, and WinogradOutput,
-// the way a caller of these functions does. The padded rows are 32·⌈tw/16⌉+2
-// wide so the vector path takes every tile.
+// the way a caller of these functions does.
 func winogradConv(x, w []float32, c, h, wd, k, pad int, bias []float32) (y []float32, oh, ow int) {
 	oh, ow = h+2*pad-2, wd+2*pad-2
 	th, tw := (oh+1)/2, (ow+1)/2
-	pw := 32*((tw+15)/16) + 2
-	ph := 2*th + 2
-	xp := make([]float32, c*ph*pw)
-	for ci := 0; ci < c; ci++ {
-		for r := 0; r < h; r++ {
-			copy(xp[(ci*ph+r+pad)*pw+pad:], x[(ci*h+r)*wd:(ci*h+r+1)*wd])
-		}
-	}
+	zero := make([]float32, wd)
 	u := make([]float32, 16*k*c)
 	WinogradFilter(u, w, k, c)
 	tiles := th * tw
 	v := make([]float32, 16*c*tiles)
 	for ci := 0; ci < c; ci++ {
 		for i := 0; i < th; i++ {
-			WinogradInput(v[ci*tiles+i*tw:], c*tiles, xp[(ci*ph+2*i)*pw:], pw, tw)
+			var rows [4][]float32
+			for r := range rows {
+				rows[r] = zero
+				if iy := 2*i + r - pad; iy >= 0 && iy < h {
+					rows[r] = x[(ci*h+iy)*wd : (ci*h+iy+1)*wd]
+				}
+			}
+			WinogradInput(v[ci*tiles+i*tw:], c*tiles, &rows, -pad, tw, wd)
 		}
 	}
 	m := make([]float32, 16*k*tiles)
@@ -120,23 +120,27 @@ func TestWinogradVectorMatchesScalar(t *testing.T) {
 		return s
 	}
 	for n := 1; n <= 50; n++ {
-		ldx := 32*((n+15)/16) + 2 + n%3
-		x := fill(3*ldx + 32*((n+15)/16) + 2)
-		x[ldx+5] = float32(math.NaN())
-		const vs = 64
-		got, want := fill(15*vs+n), make([]float32, 15*vs+n)
-		copy(want, got)
-		// Short rows too: the tail then goes to the scalar loop.
-		for _, short := range []bool{false, true} {
-			xs := x
-			if short {
-				xs = x[:3*ldx+2*n+2]
-			}
-			WinogradInput(got, vs, xs, ldx, n)
-			winogradInputGo(want, vs, xs, ldx, 0, n)
-			for i := range want {
-				if math.Float32bits(got[i]) != math.Float32bits(want[i]) {
-					t.Fatalf("input n=%d short=%v: v[%d] = %v, scalar %v", n, short, i, got[i], want[i])
+		for _, x0 := range []int{-2, -1, 0, 3} {
+			// Rows just wide enough for the tiles, shorter, and longer:
+			// every edge chunk's masks, full runs in between.
+			for _, width := range []int{2*n + 2 + x0, 2*n + x0, 2*n + 40} {
+				if width < 1 {
+					continue
+				}
+				var rows [4][]float32
+				for r := range rows {
+					rows[r] = fill(width)
+				}
+				rows[1][width/2] = float32(math.NaN())
+				const vs = 64
+				got, want := fill(15*vs+n+16), make([]float32, 15*vs+n+16)
+				copy(want, got)
+				WinogradInput(got, vs, &rows, x0, n, width)
+				winogradInputGo(want, vs, &rows, x0, 0, n, width)
+				for i := range want {
+					if math.Float32bits(got[i]) != math.Float32bits(want[i]) {
+						t.Fatalf("input n=%d x0=%d width=%d: v[%d] = %v, scalar %v", n, x0, width, i, got[i], want[i])
+					}
 				}
 			}
 		}

@@ -79,31 +79,39 @@ func tailLoop(name string, chunks, tail reg.GPVirtual, body func(masked bool)) {
 	RET()
 }
 
-// genWinogradInput emits winogradInputAVX512: for chunks of sixteen tiles,
-// then one masked chunk of the tiles set in tail, the 4×4 input tiles
-// d[r][c] = x[r·ldx + 2j + c] give V = Bᵀ·d·B, stored as element ξ = 4a+b
-// of tile j at v[ξ·vstride + j].
+// genWinogradInput emits winogradInputAVX512: for each of chunks chunks
+// of sixteen tiles, the 4×4 input tiles d[r][c] = row_r[off + 2j + c]
+// (row_r = rows[r], off a signed offset in floats, j the tile within the
+// call) give V = Bᵀ·d·B, stored as element ξ = 4a+b of tile j at
+// v[ξ·vstride + j]. Every load is zero-masked: masks holds four 16-bit
+// lane masks, for the loads at floats 0, 16, 2 and 18 from a chunk's
+// start (zero lanes read as 0, and never fault, so a row's padding costs
+// no copy); every store is masked by smask. The caller passes masks of all
+// ones for chunks that lie inside the rows.
 func genWinogradInput() {
 	ev := laneTable("winoEvenLanes", func(j int) int { return 2 * j })
 	od := laneTable("winoOddLanes", func(j int) int { return 2*j + 1 })
 	name := "winogradInputAVX512"
-	TEXT(name, NOSPLIT, "func(chunks int, tail uint64, x *float32, ldx int, v *float32, vstride int)")
-	Doc(name + " computes the F(2×2, 3×3) input transform of 16·chunks tiles, then of the tiles whose bits are set in tail (stores masked); each of the four rows must hold 32·(chunks+1)+2 readable values when tail is not zero, 32·chunks+2 otherwise.")
+	TEXT(name, NOSPLIT, "func(chunks int, masks, smask uint64, rows *[4]*float32, off int, v *float32, vstride int)")
+	Doc(name + " computes the F(2×2, 3×3) input transform of 16·chunks tiles read from four rows at off + 2j, loads zero-masked by masks (four 16-bit masks, for the loads at floats 0, 16, 2, 18 of a chunk) and stores masked by smask.")
 	Pragma("noescape")
 	chunks := loadGP("chunks")
-	tail := loadGP("tail")
-	KMOVW(tail.As32(), reg.K1)
-	x := loadGP("x")
-	ldx := loadGP("ldx")
-	SHLQ(U8(2), ldx)
+	masks := loadGP("masks")
+	for i, k := range []reg.Register{reg.K1, reg.K2, reg.K3, reg.K4} {
+		if i > 0 {
+			SHRQ(U8(16), masks)
+		}
+		KMOVW(masks.As32(), k)
+	}
+	sm := loadGP("smask")
+	KMOVW(sm.As32(), reg.K5)
+	rp := loadGP("rows")
+	off := loadGP("off")
 	var rows [4]reg.GPVirtual
 	for r := range rows {
 		rows[r] = GP64()
-		if r == 0 {
-			MOVQ(x, rows[r])
-			continue
-		}
-		LEAQ(Mem{Base: rows[r-1], Index: ldx, Scale: 1}, rows[r])
+		MOVQ(Mem{Base: rp, Disp: 8 * r}, rows[r])
+		LEAQ(Mem{Base: rows[r], Index: off, Scale: 4}, rows[r])
 	}
 	vp := loadGP("v")
 	bases, s, s3 := winoBases(vp, "vstride")
@@ -112,48 +120,55 @@ func genWinogradInput() {
 	VMOVUPS(od, odr)
 	// t[r][b]: row r after the column transform, in Z0 … Z15.
 	t := func(r, b int) reg.VecPhysical { return zmmN(4*r + b) }
-	tmp := zmmN(16)
-	tailLoop(name, chunks, tail, func(masked bool) {
-		for r, p := range rows {
-			d0, d1, d2, d3 := t(r, 0), t(r, 1), t(r, 2), t(r, 3)
-			// d0 … d3 = x[2j], x[2j+1], x[2j+2], x[2j+3] for the 16 tiles.
-			VMOVUPS(Mem{Base: p}, d0)
-			VMOVAPS(d0, d1)
-			VPERMT2PS(Mem{Base: p, Disp: 64}, evr, d0)
-			VPERMT2PS(Mem{Base: p, Disp: 64}, odr, d1)
-			VMOVUPS(Mem{Base: p, Disp: 8}, d2)
-			VMOVAPS(d2, d3)
-			VPERMT2PS(Mem{Base: p, Disp: 72}, evr, d2)
-			VPERMT2PS(Mem{Base: p, Disp: 72}, odr, d3)
-			// t0 = d0−d2, t1 = d1+d2, t2 = d2−d1, t3 = d1−d3.
-			VSUBPS(d2, d0, d0)
-			VSUBPS(d3, d1, d3)
-			VADDPS(d2, d1, tmp)
-			VSUBPS(d1, d2, d2)
-			VMOVAPS(tmp, d1)
+	lo, hi, tmp := zmmN(21), zmmN(22), zmmN(16)
+	Label(name + "_loop")
+	TESTQ(chunks, chunks)
+	JZ(LabelRef(name + "_done"))
+	for r, p := range rows {
+		d0, d1, d2, d3 := t(r, 0), t(r, 1), t(r, 2), t(r, 3)
+		// d0 … d3 = row[2j], row[2j+1], row[2j+2], row[2j+3] for the 16
+		// tiles: the even and odd lanes of floats 0–31 and of 2–33.
+		VMOVUPS_Z(Mem{Base: p}, reg.K1, lo)
+		VMOVUPS_Z(Mem{Base: p, Disp: 64}, reg.K2, hi)
+		VMOVAPS(lo, d0)
+		VPERMT2PS(hi, evr, d0)
+		VMOVAPS(lo, d1)
+		VPERMT2PS(hi, odr, d1)
+		VMOVUPS_Z(Mem{Base: p, Disp: 8}, reg.K3, lo)
+		VMOVUPS_Z(Mem{Base: p, Disp: 72}, reg.K4, hi)
+		VMOVAPS(lo, d2)
+		VPERMT2PS(hi, evr, d2)
+		VMOVAPS(lo, d3)
+		VPERMT2PS(hi, odr, d3)
+		// t0 = d0−d2, t1 = d1+d2, t2 = d2−d1, t3 = d1−d3.
+		VSUBPS(d2, d0, d0)
+		VSUBPS(d3, d1, d3)
+		VADDPS(d2, d1, tmp)
+		VSUBPS(d1, d2, d2)
+		VMOVAPS(tmp, d1)
+	}
+	// V[0][b] = t0−t2, V[1][b] = t1+t2, V[2][b] = t2−t1, V[3][b] = t1−t3.
+	for b := 0; b < 4; b++ {
+		out := [4]reg.VecPhysical{zmmN(17), zmmN(18), zmmN(19), zmmN(20)}
+		VSUBPS(t(2, b), t(0, b), out[0])
+		VADDPS(t(2, b), t(1, b), out[1])
+		VSUBPS(t(1, b), t(2, b), out[2])
+		VSUBPS(t(3, b), t(1, b), out[3])
+		for a, o := range out {
+			VMOVUPS(o, reg.K5, winoAddr(bases, s, s3, a, b))
 		}
-		// V[0][b] = t0−t2, V[1][b] = t1+t2, V[2][b] = t2−t1, V[3][b] = t1−t3.
-		for b := 0; b < 4; b++ {
-			out := [4]reg.VecPhysical{zmmN(17), zmmN(18), zmmN(19), zmmN(20)}
-			VSUBPS(t(2, b), t(0, b), out[0])
-			VADDPS(t(2, b), t(1, b), out[1])
-			VSUBPS(t(1, b), t(2, b), out[2])
-			VSUBPS(t(3, b), t(1, b), out[3])
-			for a, o := range out {
-				if masked {
-					VMOVUPS(o, reg.K1, winoAddr(bases, s, s3, a, b))
-				} else {
-					VMOVUPS(o, winoAddr(bases, s, s3, a, b))
-				}
-			}
-		}
-		for _, p := range rows {
-			ADDQ(Imm(128), p)
-		}
-		for _, b := range bases {
-			ADDQ(U8(64), b)
-		}
-	})
+	}
+	for _, p := range rows {
+		ADDQ(Imm(128), p)
+	}
+	for _, b := range bases {
+		ADDQ(U8(64), b)
+	}
+	DECQ(chunks)
+	JMP(LabelRef(name + "_loop"))
+	Label(name + "_done")
+	VZEROUPPER()
+	RET()
 }
 
 // genWinogradOutput emits winogradOutputAVX512 (winogradOutputResAVX512
