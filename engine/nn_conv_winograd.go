@@ -147,19 +147,20 @@ func (p *winoPlan) rowSpan(t0, t1 int, f func(i, j0, j1 int)) {
 func (p *winoPlan) transform(v, x, zero []float32, b, c0, c1 int) {
 	g := p.g
 	t0, t1, ld := p.block(b)
-	for ci := c0; ci < c1; ci++ {
-		plane := x[ci*g.ih*g.iw : (ci+1)*g.ih*g.iw]
-		p.rowSpan(t0, t1, func(i, j0, j1 int) {
-			var rows [4][]float32
-			for r := range rows {
-				rows[r] = zero
-				if iy := 2*i + r - g.pt; iy >= 0 && iy < g.ih {
-					rows[r] = plane[iy*g.iw : (iy+1)*g.iw]
-				}
+	ihw := g.ih * g.iw
+	p.rowSpan(t0, t1, func(i, j0, j1 int) {
+		var rows [4][]float32
+		var strides [4]int
+		for r := range rows {
+			rows[r] = zero
+			if iy := 2*i + r - g.pt; iy >= 0 && iy < g.ih {
+				rows[r], strides[r] = x[c0*ihw+iy*g.iw:], ihw
 			}
-			kernel.WinogradInput(v[ci*ld+i*p.tw+j0-t0:], winoStride(p.c, ld), &rows, 2*j0-g.pl, j1-j0, g.iw)
-		})
-		if t1-t0 < ld {
+		}
+		kernel.WinogradInput(v[c0*ld+i*p.tw+j0-t0:], winoStride(p.c, ld), ld, &rows, &strides, c1-c0, 2*j0-g.pl, j1-j0, g.iw)
+	})
+	if t1-t0 < ld {
+		for ci := c0; ci < c1; ci++ {
 			for e := 0; e < 16; e++ {
 				row := v[e*winoStride(p.c, ld)+ci*ld:]
 				clear(row[t1-t0 : ld])
@@ -186,24 +187,23 @@ func (p *winoPlan) multiply(gemm *kernel.Packed, u, v, prod, y []float32, off in
 		lo, hi = ep.bounds()
 		res = ep.res
 	}
-	ohw := g.oh * g.ow
-	for k := k0; k < k1; k++ {
-		// As epilogue.apply: −0 adds nothing before a residual, 0 otherwise.
-		var bias float32
-		if ep != nil && ep.bias != nil {
-			bias = ep.bias[k]
-		} else if res != nil {
-			bias = float32(math.Copysign(0, -1))
-		}
-		p.rowSpan(t0, t1, func(i, j0, j1 int) {
-			at := k*ohw + 2*i*g.ow + 2*j0
-			var r []float32
-			if res != nil {
-				r = res[off+at:]
-			}
-			kernel.WinogradOutput(y[at:], g.ow, min(2, g.oh-2*i), min(2*j1, g.ow)-2*j0, prod[(k-k0)*ld+i*p.tw+j0-t0:], winoStride(kb, ld), bias, r, lo, hi)
-		})
+	// As epilogue.apply: −0 adds nothing before a residual, 0 otherwise.
+	var bias []float32
+	var noBias float32
+	if ep != nil && ep.bias != nil {
+		bias = ep.bias[k0:k1]
+	} else if res != nil {
+		noBias = float32(math.Copysign(0, -1))
 	}
+	ohw := g.oh * g.ow
+	p.rowSpan(t0, t1, func(i, j0, j1 int) {
+		at := k0*ohw + 2*i*g.ow + 2*j0
+		var r []float32
+		if res != nil {
+			r = res[off+at:]
+		}
+		kernel.WinogradOutput(y[at:], g.ow, ohw, min(2, g.oh-2*i), min(2*j1, g.ow)-2*j0, prod[i*p.tw+j0-t0:], winoStride(kb, ld), ld, kb, bias, noBias, r, lo, hi)
+	})
 }
 
 // winogradForward computes y (nImg×m×oh×ow) = the convolution of x

@@ -27,12 +27,12 @@ func addStride2SIMD(dst, src []float32) int { return 0 }
 func addToSIMD(dst, src []float32) int { return 0 }
 
 // winogradInputSIMD: no vector path off amd64.
-func winogradInputSIMD(v []float32, vstride int, rows *[4][]float32, x0, n, width int) bool {
+func winogradInputSIMD(v []float32, vstride, vc int, rows *[4][]float32, strides *[4]int, channels, x0, n, width int) bool {
 	return false
 }
 
 // winogradOutputSIMD: no vector path off amd64.
-func winogradOutputSIMD(y []float32, ldy, rows, cols int, m []float32, mstride int, bias float32, res []float32, lo, hi float32) bool {
+func winogradOutputSIMD(y []float32, ldy, yc, rows, cols int, m []float32, mstride, mc, channels int, bias []float32, noBias float32, res []float32, lo, hi float32) bool {
 	return false
 }
 

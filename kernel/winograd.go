@@ -57,33 +57,41 @@ func WinogradFilter(u, w []float32, k, c int) {
 	}
 }
 
-// WinogradInput writes the input transforms V = Bᵀ·d·B of n tiles of one
-// channel: tile j is d[r][c] = rows[r][x0 + 2j + c] (r, c < 4), where a
-// column outside [0, width) reads as zero, and element ξ of its transform
-// goes to v[ξ·vstride + j]. So a convolution's zero padding costs no copy:
-// x0 is negative by the left pad, columns past width are the right pad,
-// and a row of padding is a row of zeros. Each rows[r] must hold width
-// values. With AVX-512 sixteen tiles are one vector; loads are zero-masked
-// at the edges, which never fault.
-func WinogradInput(v []float32, vstride int, rows *[4][]float32, x0, n, width int) {
-	if n <= 0 {
+// WinogradInput writes the input transforms V = Bᵀ·d·B of n tiles of each
+// of channels channels: tile j of channel ch is d[r][c] =
+// row(ch, r)[x0 + 2j + c] (r, c < 4), row(ch, r) = rows[r][ch·strides[r]:],
+// where a column outside [0, width) reads as zero, and element ξ of its
+// transform goes to v[ch·vc + ξ·vstride + j]. So a convolution's zero
+// padding costs no copy: x0 is negative by the left pad, columns past
+// width are the right pad, and a row of padding is a row of zeros (stride
+// 0). With AVX-512 sixteen tiles are one vector, loads are zero-masked at
+// the edges (they never fault), and the loop over channels runs inside
+// the kernel.
+func WinogradInput(v []float32, vstride, vc int, rows *[4][]float32, strides *[4]int, channels, x0, n, width int) {
+	if n <= 0 || channels <= 0 {
 		return
 	}
 	for r := range rows {
-		if len(rows[r]) < width {
-			panic(fmt.Sprintf("kernel: WinogradInput row %d has %d values, want %d", r, len(rows[r]), width))
+		if len(rows[r]) < (channels-1)*strides[r]+width || width < 1 {
+			panic(fmt.Sprintf("kernel: WinogradInput row %d has %d values, want %d", r, len(rows[r]), (channels-1)*strides[r]+width))
 		}
 	}
-	if len(v) < 15*vstride+n {
-		panic(fmt.Sprintf("kernel: WinogradInput of %d tiles has %d output values (stride %d)", n, len(v), vstride))
+	if len(v) < (channels-1)*vc+15*vstride+n {
+		panic(fmt.Sprintf("kernel: WinogradInput of %d tiles × %d channels has %d output values (strides %d, %d)", n, channels, len(v), vstride, vc))
 	}
-	if winogradInputSIMD(v, vstride, rows, x0, n, width) {
+	if winogradInputSIMD(v, vstride, vc, rows, strides, channels, x0, n, width) {
 		return
 	}
-	winogradInputGo(v, vstride, rows, x0, 0, n, width)
+	for ch := 0; ch < channels; ch++ {
+		var rc [4][]float32
+		for r := range rc {
+			rc[r] = rows[r][ch*strides[r]:]
+		}
+		winogradInputGo(v[ch*vc:], vstride, &rc, x0, 0, n, width)
+	}
 }
 
-// winogradInputGo is WinogradInput for tiles j0 … n−1.
+// winogradInputGo is WinogradInput for one channel's tiles j0 … n−1.
 func winogradInputGo(v []float32, vstride int, rows *[4][]float32, x0, j0, n, width int) {
 	at := func(r, x int) float32 {
 		if x < 0 || x >= width {
@@ -126,20 +134,34 @@ func winogradChunkMasks(x, width int) (masks uint64, full bool) {
 }
 
 // WinogradOutput writes the output transforms Y = Aᵀ·M·A of the
-// ⌈cols/2⌉ tiles whose element ξ is m[ξ·mstride + j], each followed by the
-// convolution epilogue: y[r·ldy + 2j + c] = min(hi, max(lo, (Y[r][c] +
-// bias) + res[r·ldy + 2j + c])) for r < rows (1 or 2) and 2j+c < cols,
-// rounded in that order as BiasAddClamp rounds (res nil adds nothing).
-func WinogradOutput(y []float32, ldy, rows, cols int, m []float32, mstride int, bias float32, res []float32, lo, hi float32) {
-	if cols <= 0 || rows <= 0 {
+// ⌈cols/2⌉ tiles of each of channels channels, tile j of channel ch having
+// element ξ at m[ch·mc + ξ·mstride + j], each followed by the convolution
+// epilogue: y[ch·yc + r·ldy + 2j + c] = min(hi, max(lo, (Y[r][c] + b) +
+// res[ch·yc + r·ldy + 2j + c])) for r < rows (1 or 2) and 2j+c < cols,
+// with b = bias[ch] (noBias when bias is nil), rounded in that order as
+// BiasAddClamp rounds (res nil adds nothing).
+func WinogradOutput(y []float32, ldy, yc, rows, cols int, m []float32, mstride, mc, channels int, bias []float32, noBias float32, res []float32, lo, hi float32) {
+	if cols <= 0 || rows <= 0 || channels <= 0 {
 		return
 	}
 	tiles := (cols + 1) / 2
-	if rows > 2 || len(y) < (rows-1)*ldy+cols || len(m) < 15*mstride+tiles || (res != nil && len(res) < (rows-1)*ldy+cols) {
-		panic(fmt.Sprintf("kernel: WinogradOutput of %d×%d has %d output values (ldy %d), %d transform values (stride %d)", rows, cols, len(y), ldy, len(m), mstride))
+	last := (channels-1)*yc + (rows-1)*ldy + cols
+	if rows > 2 || len(y) < last || len(m) < (channels-1)*mc+15*mstride+tiles || (res != nil && len(res) < last) || (bias != nil && len(bias) < channels) {
+		panic(fmt.Sprintf("kernel: WinogradOutput of %d channels of %d×%d has %d output values (ldy %d, yc %d), %d transform values (strides %d, %d)", channels, rows, cols, len(y), ldy, yc, len(m), mstride, mc))
 	}
-	if !winogradOutputSIMD(y, ldy, rows, cols, m, mstride, bias, res, lo, hi) {
-		winogradOutputGo(y, ldy, rows, cols, m, mstride, bias, res, lo, hi)
+	if winogradOutputSIMD(y, ldy, yc, rows, cols, m, mstride, mc, channels, bias, noBias, res, lo, hi) {
+		return
+	}
+	for ch := 0; ch < channels; ch++ {
+		b := noBias
+		if bias != nil {
+			b = bias[ch]
+		}
+		var r []float32
+		if res != nil {
+			r = res[ch*yc:]
+		}
+		winogradOutputGo(y[ch*yc:], ldy, rows, cols, m[ch*mc:], mstride, b, r, lo, hi)
 	}
 }
 

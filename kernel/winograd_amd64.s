@@ -38,10 +38,10 @@ DATA winoOddLanes<>+56(SB)/4, $0x0000001d
 DATA winoOddLanes<>+60(SB)/4, $0x0000001f
 GLOBL winoOddLanes<>(SB), RODATA|NOPTR, $64
 
-// func winogradInputAVX512(chunks int, masks uint64, smask uint64, rows *[4]*float32, off int, v *float32, vstride int)
+// func winogradInputAVX512(channels int, masks uint64, smask uint64, rows *[4]*float32, strides *[4]int, off int, v *float32, vstride int, vc int)
 // Requires: AVX, AVX512F
-TEXT ·winogradInputAVX512(SB), NOSPLIT, $0-56
-	MOVQ    chunks+0(FP), AX
+TEXT ·winogradInputAVX512(SB), NOSPLIT, $0-72
+	MOVQ    channels+0(FP), AX
 	MOVQ    masks+8(FP), CX
 	KMOVW   CX, K1
 	SHRQ    $0x10, CX
@@ -53,7 +53,7 @@ TEXT ·winogradInputAVX512(SB), NOSPLIT, $0-56
 	MOVQ    smask+16(FP), CX
 	KMOVW   CX, K5
 	MOVQ    rows+24(FP), CX
-	MOVQ    off+32(FP), DX
+	MOVQ    off+40(FP), DX
 	MOVQ    (CX), BX
 	LEAQ    (BX)(DX*4), BX
 	MOVQ    8(CX), SI
@@ -62,15 +62,18 @@ TEXT ·winogradInputAVX512(SB), NOSPLIT, $0-56
 	LEAQ    (DI)(DX*4), DI
 	MOVQ    24(CX), CX
 	LEAQ    (CX)(DX*4), CX
-	MOVQ    v+40(FP), DX
-	MOVQ    vstride+48(FP), R8
-	SHLQ    $0x02, R8
-	LEAQ    (R8)(R8*2), R9
-	MOVQ    R8, R10
-	SHLQ    $0x02, R10
-	LEAQ    (DX)(R10*1), R11
-	LEAQ    (R11)(R10*1), R12
-	LEAQ    (R12)(R10*1), R10
+	MOVQ    strides+32(FP), DX
+	MOVQ    v+48(FP), R8
+	MOVQ    vstride+56(FP), R9
+	SHLQ    $0x02, R9
+	LEAQ    (R9)(R9*2), R10
+	MOVQ    R9, R11
+	SHLQ    $0x02, R11
+	LEAQ    (R8)(R11*1), R12
+	LEAQ    (R12)(R11*1), R13
+	LEAQ    (R13)(R11*1), R11
+	MOVQ    vc+64(FP), R14
+	SHLQ    $0x02, R14
 	VMOVUPS winoEvenLanes<>+0(SB), Z30
 	VMOVUPS winoOddLanes<>+0(SB), Z31
 
@@ -149,42 +152,46 @@ winogradInputAVX512_loop:
 	VADDPS    Z8, Z4, Z18
 	VSUBPS    Z4, Z8, Z19
 	VSUBPS    Z12, Z4, Z20
-	VMOVUPS   Z17, K5, (DX)
-	VMOVUPS   Z18, K5, (R11)
-	VMOVUPS   Z19, K5, (R12)
-	VMOVUPS   Z20, K5, (R10)
+	VMOVUPS   Z17, K5, (R8)
+	VMOVUPS   Z18, K5, (R12)
+	VMOVUPS   Z19, K5, (R13)
+	VMOVUPS   Z20, K5, (R11)
 	VSUBPS    Z9, Z1, Z17
 	VADDPS    Z9, Z5, Z18
 	VSUBPS    Z5, Z9, Z19
 	VSUBPS    Z13, Z5, Z20
-	VMOVUPS   Z17, K5, (DX)(R8*1)
-	VMOVUPS   Z18, K5, (R11)(R8*1)
-	VMOVUPS   Z19, K5, (R12)(R8*1)
-	VMOVUPS   Z20, K5, (R10)(R8*1)
+	VMOVUPS   Z17, K5, (R8)(R9*1)
+	VMOVUPS   Z18, K5, (R12)(R9*1)
+	VMOVUPS   Z19, K5, (R13)(R9*1)
+	VMOVUPS   Z20, K5, (R11)(R9*1)
 	VSUBPS    Z10, Z2, Z17
 	VADDPS    Z10, Z6, Z18
 	VSUBPS    Z6, Z10, Z19
 	VSUBPS    Z14, Z6, Z20
-	VMOVUPS   Z17, K5, (DX)(R8*2)
-	VMOVUPS   Z18, K5, (R11)(R8*2)
-	VMOVUPS   Z19, K5, (R12)(R8*2)
-	VMOVUPS   Z20, K5, (R10)(R8*2)
+	VMOVUPS   Z17, K5, (R8)(R9*2)
+	VMOVUPS   Z18, K5, (R12)(R9*2)
+	VMOVUPS   Z19, K5, (R13)(R9*2)
+	VMOVUPS   Z20, K5, (R11)(R9*2)
 	VSUBPS    Z11, Z3, Z17
 	VADDPS    Z11, Z7, Z18
 	VSUBPS    Z7, Z11, Z19
 	VSUBPS    Z15, Z7, Z20
-	VMOVUPS   Z17, K5, (DX)(R9*1)
-	VMOVUPS   Z18, K5, (R11)(R9*1)
-	VMOVUPS   Z19, K5, (R12)(R9*1)
-	VMOVUPS   Z20, K5, (R10)(R9*1)
-	ADDQ      $0x80, BX
-	ADDQ      $0x80, SI
-	ADDQ      $0x80, DI
-	ADDQ      $0x80, CX
-	ADDQ      $0x40, DX
-	ADDQ      $0x40, R11
-	ADDQ      $0x40, R12
-	ADDQ      $0x40, R10
+	VMOVUPS   Z17, K5, (R8)(R10*1)
+	VMOVUPS   Z18, K5, (R12)(R10*1)
+	VMOVUPS   Z19, K5, (R13)(R10*1)
+	VMOVUPS   Z20, K5, (R11)(R10*1)
+	MOVQ      (DX), R15
+	LEAQ      (BX)(R15*4), BX
+	MOVQ      8(DX), R15
+	LEAQ      (SI)(R15*4), SI
+	MOVQ      16(DX), R15
+	LEAQ      (DI)(R15*4), DI
+	MOVQ      24(DX), R15
+	LEAQ      (CX)(R15*4), CX
+	ADDQ      R14, R8
+	ADDQ      R14, R12
+	ADDQ      R14, R13
+	ADDQ      R14, R11
 	DECQ      AX
 	JMP       winogradInputAVX512_loop
 

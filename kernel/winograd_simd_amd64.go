@@ -2,11 +2,10 @@ package kernel
 
 import "golang.org/x/sys/cpu"
 
-// winogradInputSIMD runs WinogradInput on the vector path and reports
-// whether it did (not without AVX-512F). Runs of chunks that lie inside
-// the rows go through one call with full masks; edge chunks one by one
-// with their own.
-func winogradInputSIMD(v []float32, vstride int, rows *[4][]float32, x0, n, width int) bool {
+// winogradInputSIMD runs WinogradInput on the vector path, one kernel
+// call per chunk of sixteen tiles for all channels, and reports whether it
+// did (not without AVX-512F).
+func winogradInputSIMD(v []float32, vstride, vc int, rows *[4][]float32, strides *[4]int, channels, x0, n, width int) bool {
 	if !cpu.X86.HasAVX512F {
 		return false
 	}
@@ -14,35 +13,21 @@ func winogradInputSIMD(v []float32, vstride int, rows *[4][]float32, x0, n, widt
 	for r := range rows {
 		ptrs[r] = &rows[r][0]
 	}
-	chunks := (n + 15) / 16
-	partial := n%16 != 0
-	for q := 0; q < chunks; {
-		masks, full := winogradChunkMasks(x0+32*q, width)
-		if !full || (partial && q == chunks-1) {
-			smask := uint64(0xffff)
-			if partial && q == chunks-1 {
-				smask = 1<<(n%16) - 1
-			}
-			winogradInputAVX512(1, masks, smask, &ptrs, x0+32*q, &v[16*q], vstride)
-			q++
-			continue
+	for q := 0; q*16 < n; q++ {
+		masks, _ := winogradChunkMasks(x0+32*q, width)
+		smask := uint64(0xffff)
+		if rest := n - 16*q; rest < 16 {
+			smask = 1<<rest - 1
 		}
-		run := 1
-		for q+run < chunks && !(partial && q+run == chunks-1) {
-			if _, ok := winogradChunkMasks(x0+32*(q+run), width); !ok {
-				break
-			}
-			run++
-		}
-		winogradInputAVX512(run, masks, 0xffff, &ptrs, x0+32*q, &v[16*q], vstride)
-		q += run
+		winogradInputAVX512(channels, masks, smask, &ptrs, strides, x0+32*q, &v[16*q], vstride, vc)
 	}
 	return true
 }
 
-// winogradOutputSIMD runs WinogradOutput on the vector path and reports
-// whether it did (not without AVX-512F).
-func winogradOutputSIMD(y []float32, ldy, rows, cols int, m []float32, mstride int, bias float32, res []float32, lo, hi float32) bool {
+// winogradOutputSIMD runs WinogradOutput on the vector path, one kernel
+// call per channel with the masks worked out once, and reports whether it
+// did (not without AVX-512F).
+func winogradOutputSIMD(y []float32, ldy, yc, rows, cols int, m []float32, mstride, mc, channels int, bias []float32, noBias float32, res []float32, lo, hi float32) bool {
 	if !cpu.X86.HasAVX512F {
 		return false
 	}
@@ -53,10 +38,16 @@ func winogradOutputSIMD(y []float32, ldy, rows, cols int, m []float32, mstride i
 		lo16, hi16 := min(rem, 16), max(rem-16, 0)
 		masks = uint64(1)<<tiles - 1 | (uint64(1)<<lo16-1)<<16 | (uint64(1)<<hi16-1)<<32
 	}
-	if res != nil {
-		winogradOutputResAVX512(chunks, masks, &m[0], mstride, &y[0], &res[0], ldy, rows-1, bias, lo, hi)
-	} else {
-		winogradOutputAVX512(chunks, masks, &m[0], mstride, &y[0], ldy, rows-1, bias, lo, hi)
+	for ch := 0; ch < channels; ch++ {
+		b := noBias
+		if bias != nil {
+			b = bias[ch]
+		}
+		if res != nil {
+			winogradOutputResAVX512(chunks, masks, &m[ch*mc], mstride, &y[ch*yc], &res[ch*yc], ldy, rows-1, b, lo, hi)
+		} else {
+			winogradOutputAVX512(chunks, masks, &m[ch*mc], mstride, &y[ch*yc], ldy, rows-1, b, lo, hi)
+		}
 	}
 	return true
 }

@@ -2,10 +2,10 @@
 
 package kernel
 
-// winogradInputAVX512 computes the F(2×2, 3×3) input transform of 16·chunks tiles read from four rows at off + 2j, loads zero-masked by masks (four 16-bit masks, for the loads at floats 0, 16, 2, 18 of a chunk) and stores masked by smask.
+// winogradInputAVX512 computes the F(2×2, 3×3) input transform of 16 tiles of each of channels channels, read from four rows at off + 2j (row r of channel ch strides[r]·ch floats on), loads zero-masked by masks (four 16-bit masks, for the loads at floats 0, 16, 2, 18) and stores masked by smask; channel ch's transforms start vc·ch floats on.
 //
 //go:noescape
-func winogradInputAVX512(chunks int, masks uint64, smask uint64, rows *[4]*float32, off int, v *float32, vstride int)
+func winogradInputAVX512(channels int, masks uint64, smask uint64, rows *[4]*float32, strides *[4]int, off int, v *float32, vstride int, vc int)
 
 // winogradOutputAVX512 computes the F(2×2, 3×3) output transform and the convolution epilogue of 16·chunks tiles, then of the masked tail chunk.
 //

@@ -19,17 +19,16 @@ func winogradConv(x, w []float32, c, h, wd, k, pad int, bias []float32) (y []flo
 	WinogradFilter(u, w, k, c)
 	tiles := th * tw
 	v := make([]float32, 16*c*tiles)
-	for ci := 0; ci < c; ci++ {
-		for i := 0; i < th; i++ {
-			var rows [4][]float32
-			for r := range rows {
-				rows[r] = zero
-				if iy := 2*i + r - pad; iy >= 0 && iy < h {
-					rows[r] = x[(ci*h+iy)*wd : (ci*h+iy+1)*wd]
-				}
+	for i := 0; i < th; i++ {
+		var rows [4][]float32
+		var strides [4]int
+		for r := range rows {
+			rows[r] = zero
+			if iy := 2*i + r - pad; iy >= 0 && iy < h {
+				rows[r], strides[r] = x[iy*wd:], h*wd
 			}
-			WinogradInput(v[ci*tiles+i*tw:], c*tiles, &rows, -pad, tw, wd)
 		}
+		WinogradInput(v[i*tw:], c*tiles, tiles, &rows, &strides, c, -pad, tw, wd)
 	}
 	m := make([]float32, 16*k*tiles)
 	for e := 0; e < 16; e++ {
@@ -45,11 +44,9 @@ func winogradConv(x, w []float32, c, h, wd, k, pad int, bias []float32) (y []flo
 	}
 	y = make([]float32, k*oh*ow)
 	inf := float32(math.Inf(1))
-	for ki := 0; ki < k; ki++ {
-		for i := 0; i < th; i++ {
-			rows := min(2, oh-2*i)
-			WinogradOutput(y[(ki*oh+2*i)*ow:], ow, rows, ow, m[ki*tiles+i*tw:], k*tiles, bias[ki], nil, -inf, inf)
-		}
+	for i := 0; i < th; i++ {
+		rows := min(2, oh-2*i)
+		WinogradOutput(y[2*i*ow:], ow, oh*ow, rows, ow, m[i*tw:], k*tiles, tiles, k, bias, 0, nil, -inf, inf)
 	}
 	return y, oh, ow
 }
@@ -122,21 +119,31 @@ func TestWinogradVectorMatchesScalar(t *testing.T) {
 	for n := 1; n <= 50; n++ {
 		for _, x0 := range []int{-2, -1, 0, 3} {
 			// Rows just wide enough for the tiles, shorter, and longer:
-			// every edge chunk's masks, full runs in between.
+			// every edge chunk's masks; three channels, one of them
+			// reading a shared zero row (stride 0).
 			for _, width := range []int{2*n + 2 + x0, 2*n + x0, 2*n + 40} {
 				if width < 1 {
 					continue
 				}
+				const channels, stride = 3, 7
 				var rows [4][]float32
+				strides := [4]int{width + stride, width + stride, 0, width + stride}
 				for r := range rows {
-					rows[r] = fill(width)
+					rows[r] = fill((channels-1)*strides[r] + width)
 				}
 				rows[1][width/2] = float32(math.NaN())
 				const vs = 64
-				got, want := fill(15*vs+n+16), make([]float32, 15*vs+n+16)
-				copy(want, got)
-				WinogradInput(got, vs, &rows, x0, n, width)
-				winogradInputGo(want, vs, &rows, x0, 0, n, width)
+				const vc = 16*vs + 5
+				got := fill((channels-1)*vc + 15*vs + n + 16)
+				want := append([]float32(nil), got...)
+				WinogradInput(got, vs, vc, &rows, &strides, channels, x0, n, width)
+				for ch := 0; ch < channels; ch++ {
+					var rc [4][]float32
+					for r := range rc {
+						rc[r] = rows[r][ch*strides[r]:]
+					}
+					winogradInputGo(want[ch*vc:], vs, &rc, x0, 0, n, width)
+				}
 				for i := range want {
 					if math.Float32bits(got[i]) != math.Float32bits(want[i]) {
 						t.Fatalf("input n=%d x0=%d width=%d: v[%d] = %v, scalar %v", n, x0, width, i, got[i], want[i])
@@ -158,7 +165,7 @@ func TestWinogradVectorMatchesScalar(t *testing.T) {
 				}
 				got := fill((rows-1)*ldy + cols + 40)
 				want := append([]float32(nil), got...)
-				WinogradOutput(got, ldy, rows, cols, m, ms, 0.25, res, -1.5, 2)
+				WinogradOutput(got, ldy, 0, rows, cols, m, ms, 0, 1, nil, 0.25, res, -1.5, 2)
 				winogradOutputGo(want, ldy, rows, cols, m, ms, 0.25, res, -1.5, 2)
 				for i := range want {
 					if math.Float32bits(got[i]) != math.Float32bits(want[i]) {

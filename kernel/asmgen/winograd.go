@@ -79,11 +79,13 @@ func tailLoop(name string, chunks, tail reg.GPVirtual, body func(masked bool)) {
 	RET()
 }
 
-// genWinogradInput emits winogradInputAVX512: for each of chunks chunks
-// of sixteen tiles, the 4×4 input tiles d[r][c] = row_r[off + 2j + c]
-// (row_r = rows[r], off a signed offset in floats, j the tile within the
-// call) give V = Bᵀ·d·B, stored as element ξ = 4a+b of tile j at
-// v[ξ·vstride + j]. Every load is zero-masked: masks holds four 16-bit
+// genWinogradInput emits winogradInputAVX512: for each of channels
+// channels ch, the sixteen 4×4 input tiles d[r][c] = row_r[off + 2j + c]
+// (row_r = rows[r] + ch·strides[r], off a signed offset in floats, j < 16)
+// give V = Bᵀ·d·B, stored as element ξ = 4a+b of tile j at
+// v[ch·vc + ξ·vstride + j]. Looping over the channels here, not in Go,
+// keeps the per-call work (masks, row slices, the call) out of the
+// per-channel path: it was as much CPU as the transform itself. Every load is zero-masked: masks holds four 16-bit
 // lane masks, for the loads at floats 0, 16, 2 and 18 from a chunk's
 // start (zero lanes read as 0, and never fault, so a row's padding costs
 // no copy); every store is masked by smask. The caller passes masks of all
@@ -92,10 +94,10 @@ func genWinogradInput() {
 	ev := laneTable("winoEvenLanes", func(j int) int { return 2 * j })
 	od := laneTable("winoOddLanes", func(j int) int { return 2*j + 1 })
 	name := "winogradInputAVX512"
-	TEXT(name, NOSPLIT, "func(chunks int, masks, smask uint64, rows *[4]*float32, off int, v *float32, vstride int)")
-	Doc(name + " computes the F(2×2, 3×3) input transform of 16·chunks tiles read from four rows at off + 2j, loads zero-masked by masks (four 16-bit masks, for the loads at floats 0, 16, 2, 18 of a chunk) and stores masked by smask.")
+	TEXT(name, NOSPLIT, "func(channels int, masks, smask uint64, rows *[4]*float32, strides *[4]int, off int, v *float32, vstride, vc int)")
+	Doc(name + " computes the F(2×2, 3×3) input transform of 16 tiles of each of channels channels, read from four rows at off + 2j (row r of channel ch strides[r]·ch floats on), loads zero-masked by masks (four 16-bit masks, for the loads at floats 0, 16, 2, 18) and stores masked by smask; channel ch's transforms start vc·ch floats on.")
 	Pragma("noescape")
-	chunks := loadGP("chunks")
+	chunks := loadGP("channels")
 	masks := loadGP("masks")
 	for i, k := range []reg.Register{reg.K1, reg.K2, reg.K3, reg.K4} {
 		if i > 0 {
@@ -113,8 +115,12 @@ func genWinogradInput() {
 		MOVQ(Mem{Base: rp, Disp: 8 * r}, rows[r])
 		LEAQ(Mem{Base: rows[r], Index: off, Scale: 4}, rows[r])
 	}
+	sp := loadGP("strides")
 	vp := loadGP("v")
 	bases, s, s3 := winoBases(vp, "vstride")
+	vc := loadGP("vc")
+	SHLQ(U8(2), vc)
+
 	evr, odr := reg.Z30, reg.Z31
 	VMOVUPS(ev, evr)
 	VMOVUPS(od, odr)
@@ -158,11 +164,13 @@ func genWinogradInput() {
 			VMOVUPS(o, reg.K5, winoAddr(bases, s, s3, a, b))
 		}
 	}
-	for _, p := range rows {
-		ADDQ(Imm(128), p)
+	for r, p := range rows {
+		tmp := GP64()
+		MOVQ(Mem{Base: sp, Disp: 8 * r}, tmp)
+		LEAQ(Mem{Base: p, Index: tmp, Scale: 4}, p)
 	}
 	for _, b := range bases {
-		ADDQ(U8(64), b)
+		ADDQ(vc, b)
 	}
 	DECQ(chunks)
 	JMP(LabelRef(name + "_loop"))
