@@ -88,17 +88,7 @@ func TestConvTransposedBackwardMatchesReference(t *testing.T) {
 		if _, ok := transposedGeom(s.g); !ok {
 			t.Fatalf("case %d: transposed path not taken", i)
 		}
-		in := []*tensor.Tensor{x, wt}
-		y, err := ref.Forward(in)
-		if err != nil {
-			t.Fatal(err)
-		}
-		dy := nnRand(rng, y[0].Shape...)
-		got, err := fc.BackwardFor(in, y, []*tensor.Tensor{dy}, []bool{true, false})
-		if err != nil {
-			t.Fatal(err)
-		}
-		checkInputGradient(t, i, ref, in, y[0], dy, got[0])
+		checkBackwardX(t, i, rng, fc, ref, []*tensor.Tensor{x, wt}, nil)
 	}
 }
 
@@ -135,18 +125,26 @@ func TestConvBandedBackwardMatchesReference(t *testing.T) {
 		if kk := s.cg * s.g.kh * s.g.kw; kk*s.g.oh*s.g.ow < bandedMin {
 			t.Fatalf("case %d: %d×%d column matrix, below the banded path's %d", i, kk, s.g.oh*s.g.ow, bandedMin)
 		}
-		in := []*tensor.Tensor{x, wt}
-		y, err := ref.Forward(in)
-		if err != nil {
-			t.Fatal(err)
-		}
-		dy := nnRand(rng, y[0].Shape...)
-		got, err := fc.backwardMemo(in, y, []*tensor.Tensor{dy}, []bool{true, false}, memo)
-		if err != nil {
-			t.Fatal(err)
-		}
-		checkInputGradient(t, i, ref, in, y[0], dy, got[0])
+		checkBackwardX(t, i, rng, fc, ref, []*tensor.Tensor{x, wt}, memo)
 	}
+}
+
+// checkBackwardX runs the bias-free convolution in = {x, w} forward on
+// the reference operator, back-propagates a random output gradient through
+// fc (with memo, nil for none) and checks the input gradient with
+// checkInputGradient.
+func checkBackwardX(t *testing.T, i int, rng *rand.Rand, fc, ref *convOp, in []*tensor.Tensor, memo memoFunc) {
+	t.Helper()
+	y, err := ref.Forward(in)
+	if err != nil {
+		t.Fatal(err)
+	}
+	dy := nnRand(rng, y[0].Shape...)
+	got, err := fc.backwardFor(in, y, []*tensor.Tensor{dy}, []bool{true, false}, memo)
+	if err != nil {
+		t.Fatal(err)
+	}
+	checkInputGradient(t, i, ref, in, y[0], dy, got[0])
 }
 
 // checkInputGradient compares the input gradient got of a bias-free

@@ -101,38 +101,28 @@ func (g *Packed) SgemmRowPanels(m, n, k int, apanels, bpanels, c []float32, ldc 
 	// slices kept in L1 while every row panel passes under them, so B —
 	// the large operand — is read from memory once; the row panels (A)
 	// are small and stay in L2.
-	for jr := 0; jr < n; jr += nr {
-		nrr := min(nr, n-jr)
-		for pc := 0; pc < k; pc += cfg.kc {
-			kb := min(cfg.kc, k-pc)
-			bet := float32(0)
-			if pc > 0 {
-				bet = 1
-			}
-			boff := jr/nr*k*nr + pc*nr
-			bp := bpanels[boff : boff+kb*nr]
-			for ir := 0; ir <= full; ir++ {
-				rows, width, kern := mr, mr, cfg.kernel
-				if ir == full {
-					if rem == 0 {
-						break
-					}
-					rows, width, kern = rem, edgeRows, edgeKern
+	cfg.rowPanelSlices(n, k, bpanels, func(jr, nrr, pc, kb int, bp []float32, bet float32) {
+		for ir := 0; ir <= full; ir++ {
+			rows, width, kern := mr, mr, cfg.kernel
+			if ir == full {
+				if rem == 0 {
+					break
 				}
-				aoff := ir*k*mr + pc*width
-				ap := apanels[aoff : aoff+kb*width]
-				ci := ir*mr*ldc + jr
-				if rows == width && nrr == nr {
-					kern(kb, ap, bp, c[ci:], ldc, 1, bet, bet != 0)
-					continue
-				}
-				// A partial tile: the full tile into scratch (the
-				// panels are zero-padded), then its valid part.
-				kern(kb, ap, bp, ws.tile, nr, 1, 0, false)
-				storeTile(c[ci:], ldc, ws.tile, nr, rows, nrr, bet)
+				rows, width, kern = rem, edgeRows, edgeKern
 			}
+			aoff := ir*k*mr + pc*width
+			ap := apanels[aoff : aoff+kb*width]
+			ci := ir*mr*ldc + jr
+			if rows == width && nrr == nr {
+				kern(kb, ap, bp, c[ci:], ldc, 1, bet, bet != 0)
+				continue
+			}
+			// A partial tile: the full tile into scratch (the
+			// panels are zero-padded), then its valid part.
+			kern(kb, ap, bp, ws.tile, nr, 1, 0, false)
+			storeTile(c[ci:], ldc, ws.tile, nr, rows, nrr, bet)
 		}
-	}
+	})
 }
 
 // SgemmUnpacked computes C = A·B (m×n, row stride ldc, overwritten) with
@@ -276,6 +266,36 @@ func (g *Packed) SgemmKMajor(m, n, k int, a []float32, lda int, bpanels []float3
 			copy(edge[p*edgeRows:p*edgeRows+rem], a[p*lda+full*mr:p*lda+m])
 		}
 	}
+	cfg.rowPanelSlices(n, k, bpanels, func(jr, nrr, pc, kb int, bp []float32, bet float32) {
+		for ir := 0; ir <= full; ir++ {
+			ci := ir*mr*ldc + jr
+			if ir == full {
+				if rem == 0 {
+					break
+				}
+				edgeKern(kb, edge[pc*edgeRows:(pc+kb)*edgeRows], bp, ws.tile, nr, 1, 0, false)
+				storeTile(c[ci:], ldc, ws.tile, nr, rem, nrr, bet)
+				continue
+			}
+			ap := a[pc*lda+ir*mr:]
+			if nrr == nr {
+				cfg.kmajor(kb, ap, lda, bp, c[ci:], ldc, 1, bet, bet != 0)
+				continue
+			}
+			cfg.kmajor(kb, ap, lda, bp, ws.tile, nr, 1, 0, false)
+			storeTile(c[ci:], ldc, ws.tile, nr, mr, nrr, bet)
+		}
+	})
+	return true
+}
+
+// rowPanelSlices calls f for each packed B panel (columns jr … jr+nrr−1,
+// nrr ≤ nr of them real) and each kc-deep slice of it (rows pc … pc+kb−1),
+// one panel at a time as SgemmRowPanels and SgemmKMajor go: bp is that
+// slice of bpanels and bet the beta that adds every slice after the first
+// to what the earlier ones stored.
+func (cfg *config) rowPanelSlices(n, k int, bpanels []float32, f func(jr, nrr, pc, kb int, bp []float32, bet float32)) {
+	nr := cfg.nr
 	for jr := 0; jr < n; jr += nr {
 		nrr := min(nr, n-jr)
 		for pc := 0; pc < k; pc += cfg.kc {
@@ -285,26 +305,7 @@ func (g *Packed) SgemmKMajor(m, n, k int, a []float32, lda int, bpanels []float3
 				bet = 1
 			}
 			boff := jr/nr*k*nr + pc*nr
-			bp := bpanels[boff : boff+kb*nr]
-			for ir := 0; ir <= full; ir++ {
-				ci := ir*mr*ldc + jr
-				if ir == full {
-					if rem == 0 {
-						break
-					}
-					edgeKern(kb, edge[pc*edgeRows:(pc+kb)*edgeRows], bp, ws.tile, nr, 1, 0, false)
-					storeTile(c[ci:], ldc, ws.tile, nr, rem, nrr, bet)
-					continue
-				}
-				ap := a[pc*lda+ir*mr:]
-				if nrr == nr {
-					cfg.kmajor(kb, ap, lda, bp, c[ci:], ldc, 1, bet, bet != 0)
-					continue
-				}
-				cfg.kmajor(kb, ap, lda, bp, ws.tile, nr, 1, 0, false)
-				storeTile(c[ci:], ldc, ws.tile, nr, mr, nrr, bet)
-			}
+			f(jr, nrr, pc, kb, bpanels[boff:boff+kb*nr], bet)
 		}
 	}
-	return true
 }

@@ -211,40 +211,16 @@ func genKernel(t tile, direct, stridedB, kmajor bool) {
 	}
 	var ldaK reg.GPVirtual
 	if kmajor {
-		ldaK = GP64()
-		Load(Param("lda"), ldaK)
-		SHLQ(Imm(2), ldaK)
-		ldaK3 := GP64()
-		LEAQ(Mem{Base: ldaK, Index: ldaK, Scale: 2}, ldaK3)
-		aAt = func(p, i int) Mem {
-			m := Mem{Base: a, Disp: 4 * i}
-			switch p {
-			case 1, 2:
-				m.Index, m.Scale = ldaK, uint8(p)
-			case 3:
-				m.Index, m.Scale = ldaK3, 1
-			}
-			return m
-		}
+		var ldaK3 reg.GPVirtual
+		ldaK, ldaK3 = strideParam("lda")
+		aAt = func(p, i int) Mem { return stepAt(a, ldaK, ldaK3, p, 4*i) }
 	}
 	// bAt addresses B's row at k step p of the current iteration.
 	bAt := func(p, v int) Mem { return Mem{Base: b, Disp: 4 * (p*nr + v*t.width)} }
 	advanceB := func(steps int) { ADDQ(U32(4*steps*nr), b) }
 	if stridedB {
-		ldb := Load(Param("ldb"), GP64())
-		SHLQ(Imm(2), ldb)
-		ldb3 := GP64()
-		LEAQ(Mem{Base: ldb, Index: ldb, Scale: 2}, ldb3)
-		bAt = func(p, v int) Mem {
-			m := Mem{Base: b, Disp: 4 * v * t.width}
-			switch p {
-			case 1, 2:
-				m.Index, m.Scale = ldb, uint8(p)
-			case 3:
-				m.Index, m.Scale = ldb3, 1
-			}
-			return m
-		}
+		ldb, ldb3 := strideParam("ldb")
+		bAt = func(p, v int) Mem { return stepAt(b, ldb, ldb3, p, 4*v*t.width) }
 		advanceB = func(steps int) {
 			if steps == unroll {
 				LEAQ(Mem{Base: b, Index: ldb, Scale: unroll}, b)
@@ -359,6 +335,30 @@ func genKernel(t tile, direct, stridedB, kmajor bool) {
 	}
 	VZEROUPPER()
 	RET()
+}
+
+// strideParam loads the row-stride parameter name (in floats) into ld as
+// bytes, and 3·ld into ld3: with base, ld×1, ld×2 and ld3 four consecutive
+// rows are addressed without moving the base (stepAt).
+func strideParam(name string) (ld, ld3 reg.GPVirtual) {
+	ld, ld3 = GP64(), GP64()
+	Load(Param(name), ld)
+	SHLQ(Imm(2), ld)
+	LEAQ(Mem{Base: ld, Index: ld, Scale: 2}, ld3)
+	return ld, ld3
+}
+
+// stepAt addresses row p (0…3) of rows ld bytes apart from base, disp
+// bytes into the row; ld3 holds 3·ld.
+func stepAt(base, ld, ld3 reg.Register, p, disp int) Mem {
+	m := Mem{Base: base, Disp: disp}
+	switch p {
+	case 1, 2:
+		m.Index, m.Scale = ld, uint8(p)
+	case 3:
+		m.Index, m.Scale = ld3, 1
+	}
+	return m
 }
 
 func check(err error) {

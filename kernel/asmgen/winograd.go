@@ -28,15 +28,7 @@ func genWinograd() {
 // current chunk: bases[a] points at element 4a, s holds the element
 // stride in bytes and s3 three times it.
 func winoAddr(bases [4]reg.GPVirtual, s, s3 reg.GPVirtual, a, b int) Mem {
-	switch b {
-	case 0:
-		return Mem{Base: bases[a]}
-	case 1:
-		return Mem{Base: bases[a], Index: s, Scale: 1}
-	case 2:
-		return Mem{Base: bases[a], Index: s, Scale: 2}
-	}
-	return Mem{Base: bases[a], Index: s3, Scale: 1}
+	return stepAt(bases[a], s, s3, b, 0)
 }
 
 // winoBases loads the element stride param (floats) as bytes into s and
@@ -355,16 +347,7 @@ func genTranspose() {
 			if i > 0 && i%4 == 0 {
 				LEAQ(Mem{Base: p, Index: ld, Scale: 4}, p)
 			}
-			m := Mem{Base: p}
-			switch i % 4 {
-			case 1:
-				m.Index, m.Scale = ld, 1
-			case 2:
-				m.Index, m.Scale = ld, 2
-			case 3:
-				m.Index, m.Scale = ld3, 1
-			}
-			f(i, m)
+			f(i, stepAt(p, ld, ld3, i%4, 0))
 		}
 	}
 	Label(name + "_loop")
