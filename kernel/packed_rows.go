@@ -89,12 +89,7 @@ func (g *Packed) SgemmRowPanels(m, n, k int, apanels, bpanels, c []float32, ldc 
 		scaleC(m, n, 0, c, ldc)
 		return
 	}
-	_, full, edgeRows := g.RowPanels(m)
-	rem := m - full*mr
-	edgeKern := cfg.kernel
-	if e, ok := cfg.edgeFor(rem); ok && rem > 0 {
-		edgeKern = e.kernel
-	}
+	full, rem, edgeRows, edgeKern := g.rowEdge(m)
 	ws := g.get()
 	defer g.pool.Put(ws)
 	// Loop order: one B panel (nr output columns) at a time, its kc-deep
@@ -248,12 +243,7 @@ func (g *Packed) SgemmKMajor(m, n, k int, a []float32, lda int, bpanels []float3
 		scaleC(m, n, 0, c, ldc)
 		return true
 	}
-	_, full, edgeRows := g.RowPanels(m)
-	rem := m - full*mr
-	edgeKern := cfg.kernel
-	if e, ok := cfg.edgeFor(rem); ok && rem > 0 {
-		edgeKern = e.kernel
-	}
+	full, rem, edgeRows, edgeKern := g.rowEdge(m)
 	ws := g.get()
 	defer g.pool.Put(ws)
 	// The edge panel as RowPanels lays it out: k steps of edgeRows values.
@@ -308,4 +298,18 @@ func (cfg *config) rowPanelSlices(n, k int, bpanels []float32, f func(jr, nrr, p
 			f(jr, nrr, pc, kb, bpanels[boff:boff+kb*nr], bet)
 		}
 	}
+}
+
+// rowEdge splits m rows as RowPanels does: full panels of mr rows, then rem
+// rows in one panel edgeRows wide, multiplied with edgeKern (the edge tile
+// that covers them, or the main kernel on a zero-padded panel).
+func (g *Packed) rowEdge(m int) (full, rem, edgeRows int, edgeKern microKernel) {
+	cfg := g.conf()
+	mr, full, edgeRows := g.RowPanels(m)
+	rem = m - full*mr
+	edgeKern = cfg.kernel
+	if e, ok := cfg.edgeFor(rem); ok && rem > 0 {
+		edgeKern = e.kernel
+	}
+	return full, rem, edgeRows, edgeKern
 }
