@@ -2,6 +2,7 @@ package engine
 
 import (
 	"fmt"
+	"math"
 	"runtime"
 
 	"heedmap/kernel"
@@ -111,8 +112,22 @@ func (op *convOp) rowForward(plan *kernel.Im2colPlan, xg []float32, cg int, g ge
 		} else if !op.gemm1.SgemmKMajor(ohw, w, kk, xg, ohw, wp[q0*kk*nr:], c, w) {
 			return fmt.Errorf("engine: the %v GEMM has no k-major kernel", op.gemm1.ISA())
 		}
-		kernel.Transpose(yg[m0*ohw:], ohw, c, w, ohw, w)
-		ep.apply(yg, ohw, m0, m1, 0, ohw)
+		if ep.empty() {
+			kernel.Transpose(yg[m0*ohw:], ohw, c, w, ohw, w)
+			return nil
+		}
+		// The epilogue as each transposed row is stored, rounded as
+		// epilogue.apply rounds (−0 for a missing bias before a residual).
+		lo, hi := ep.bounds()
+		var bias, res []float32
+		var noBias float32
+		if ep.bias != nil {
+			bias = ep.bias[m0:m1]
+		}
+		if ep.res != nil {
+			res, noBias = ep.res[m0*ohw:], float32(math.Copysign(0, -1))
+		}
+		kernel.TransposeEpilogue(yg[m0*ohw:], ohw, c, w, ohw, w, bias, noBias, res, lo, hi)
 		return nil
 	})
 }

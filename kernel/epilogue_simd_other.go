@@ -40,3 +40,6 @@ func winogradOutputSIMD(y []float32, ldy, yc, rows, cols int, m []float32, mstri
 const transposeSIMD = false
 
 func transpose16(n int, src []float32, lds int, dst []float32, ldd int) {}
+
+func transpose16Ep(n int, src []float32, lds int, dst, res []float32, ldd int, bias []float32, noBias, lo, hi float32) {
+}

@@ -21,3 +21,13 @@ func winogradOutputResAVX512(chunks int, masks uint64, m *float32, mstride int, 
 //
 //go:noescape
 func transpose16AVX512(n int, src *float32, lds int, dst *float32, ldd int)
+
+// transpose16EpAVX512 is transpose16AVX512 with the convolution epilogue: dst row j = min(hi, max(lo, row + bias[j·bstep])).
+//
+//go:noescape
+func transpose16EpAVX512(n int, src *float32, lds int, dst *float32, ldd int, bias *float32, bstep int, lo float32, hi float32)
+
+// transpose16EpResAVX512 is transpose16AVX512 with the convolution epilogue: dst row j = min(hi, max(lo, (row + bias[j·bstep]) + res row j)), res laid out like dst.
+//
+//go:noescape
+func transpose16EpResAVX512(n int, src *float32, lds int, dst *float32, res *float32, ldd int, bias *float32, bstep int, lo float32, hi float32)

@@ -21,7 +21,9 @@ func genWinograd() {
 	il1 := laneTable("winoInterleaveHi", func(j int) int { return 8 + j/2 + 16*(j%2) })
 	genWinogradOutput(false, il0, il1)
 	genWinogradOutput(true, il0, il1)
-	genTranspose()
+	genTranspose(false, false)
+	genTranspose(true, false)
+	genTranspose(true, true)
 }
 
 // winoStores returns the address of transform element ξ = 4a+b of the
@@ -320,40 +322,69 @@ func zmmN(n int) reg.VecPhysical {
 // of src (rows lds apart, columns 16b … 16b+15) written transposed to rows
 // 16b … 16b+15 of dst (ldd apart). The 16 rows go through four rounds of
 // in-register shuffles (32-bit and 64-bit interleaves within 128-bit lanes,
-// then two rounds of 128-bit lane shuffles), 64 shuffles per block.
-func genTranspose() {
-	name := "transpose16AVX512"
-	TEXT(name, NOSPLIT, "func(n int, src *float32, lds int, dst *float32, ldd int)")
-	Doc(name + " writes n 16×16 blocks of src transposed into dst: dst[(16b+j)·ldd + i] = src[i·lds + 16b + j] for i, j < 16, b < n.")
+// then two rounds of 128-bit lane shuffles), 64 shuffles per block. With
+// epilogue (transpose16EpAVX512, and transpose16EpResAVX512 with residual)
+// each output row j then becomes min(hi, max(lo, (v + bias[j·bstep]) +
+// res_j)) as it is stored, rounded in that order as BiasAddClamp does
+// (bstep 0 or 1: one bias for all rows, or one per row).
+func genTranspose(epilogue, residual bool) {
+	name, sig := "transpose16AVX512", "func(n int, src *float32, lds int, dst *float32, ldd int)"
+	doc := name + " writes n 16×16 blocks of src transposed into dst: dst[(16b+j)·ldd + i] = src[i·lds + 16b + j] for i, j < 16, b < n."
+	switch {
+	case residual:
+		name, sig = "transpose16EpResAVX512", "func(n int, src *float32, lds int, dst, res *float32, ldd int, bias *float32, bstep int, lo, hi float32)"
+		doc = name + " is transpose16AVX512 with the convolution epilogue: dst row j = min(hi, max(lo, (row + bias[j·bstep]) + res row j)), res laid out like dst."
+	case epilogue:
+		name, sig = "transpose16EpAVX512", "func(n int, src *float32, lds int, dst *float32, ldd int, bias *float32, bstep int, lo, hi float32)"
+		doc = name + " is transpose16AVX512 with the convolution epilogue: dst row j = min(hi, max(lo, row + bias[j·bstep]))."
+	}
+	TEXT(name, NOSPLIT, sig)
+	Doc(doc)
 	Pragma("noescape")
 	n := loadGP("n")
 	src := loadGP("src")
 	lds := loadGP("lds")
 	SHLQ(U8(2), lds)
 	dst := loadGP("dst")
+	var res, bp, bs reg.GPVirtual
+	if residual {
+		res = loadGP("res")
+	}
 	ldd := loadGP("ldd")
 	SHLQ(U8(2), ldd)
+	if epilogue {
+		bp = loadGP("bias")
+		bs = loadGP("bstep")
+		SHLQ(U8(2), bs)
+	}
 	lds3, ldd3 := GP64(), GP64()
 	LEAQ(Mem{Base: lds, Index: lds, Scale: 2}, lds3)
 	LEAQ(Mem{Base: ldd, Index: ldd, Scale: 2}, ldd3)
 	r := func(i int) reg.VecPhysical { return zmmN(i) }
 	t := func(i int) reg.VecPhysical { return zmmN(16 + i) }
 	// rows visits rows 0 … 15 of a block at base: f(i, address), with p
-	// stepping four rows between groups of four (it ends at row 12).
-	p := GP64()
-	rows := func(base, ld, ld3 reg.GPVirtual, f func(i int, m Mem)) {
+	// stepping four rows between groups of four (it ends at row 12); q,
+	// when given, walks a second array laid out alike in step.
+	p, q := GP64(), GP64()
+	rows := func(base, other, ld, ld3 reg.GPVirtual, f func(i int, m, mo Mem)) {
 		MOVQ(base, p)
+		if other != nil {
+			MOVQ(other, q)
+		}
 		for i := 0; i < 16; i++ {
 			if i > 0 && i%4 == 0 {
 				LEAQ(Mem{Base: p, Index: ld, Scale: 4}, p)
+				if other != nil {
+					LEAQ(Mem{Base: q, Index: ld, Scale: 4}, q)
+				}
 			}
-			f(i, stepAt(p, ld, ld3, i%4, 0))
+			f(i, stepAt(p, ld, ld3, i%4, 0), stepAt(q, ld, ld3, i%4, 0))
 		}
 	}
 	Label(name + "_loop")
 	TESTQ(n, n)
 	JZ(LabelRef(name + "_done"))
-	rows(src, lds, lds3, func(i int, m Mem) { VMOVUPS(m, r(i)) })
+	rows(src, nil, lds, lds3, func(i int, m, _ Mem) { VMOVUPS(m, r(i)) })
 	for i := 0; i < 16; i += 2 {
 		VUNPCKLPS(r(i+1), r(i), t(i))
 		VUNPCKHPS(r(i+1), r(i), t(i+1))
@@ -379,9 +410,36 @@ func genTranspose() {
 		VSHUFF32X4(U8(0x88), hi2, hi, r(8+q))  // column 8+q
 		VSHUFF32X4(U8(0xdd), hi2, hi, r(12+q)) // column 12+q
 	}
-	rows(dst, ldd, ldd3, func(j int, m Mem) { VMOVUPS(r(j), m) })
+	var other reg.GPVirtual
+	if residual {
+		other = res
+	}
+	lov, hiv, bv := t(14), t(15), t(13)
+	if epilogue {
+		for i, nm := range []string{"lo", "hi"} {
+			a, err := Param(nm).Resolve()
+			check(err)
+			VBROADCASTSS(a.Addr, []reg.VecPhysical{lov, hiv}[i])
+		}
+	}
+	rows(dst, other, ldd, ldd3, func(j int, m, mr Mem) {
+		if epilogue {
+			VBROADCASTSS(Mem{Base: bp}, bv)
+			ADDQ(bs, bp)
+			VADDPS(bv, r(j), r(j))
+			if residual {
+				VADDPS(mr, r(j), r(j))
+			}
+			VMAXPS(r(j), lov, r(j))
+			VMINPS(r(j), hiv, r(j))
+		}
+		VMOVUPS(r(j), m)
+	})
 	ADDQ(U8(64), src)
 	LEAQ(Mem{Base: p, Index: ldd, Scale: 4}, dst) // p is at row 12: the next block starts at row 16
+	if residual {
+		LEAQ(Mem{Base: q, Index: ldd, Scale: 4}, res)
+	}
 	DECQ(n)
 	JMP(LabelRef(name + "_loop"))
 	Label(name + "_done")
