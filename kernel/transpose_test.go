@@ -42,13 +42,7 @@ func TestTranspose(t *testing.T) {
 // nothing else.
 func TestTransposeEpilogue(t *testing.T) {
 	rng := rand.New(rand.NewSource(10))
-	fill := func(n int) []float32 {
-		s := make([]float32, n)
-		for i := range s {
-			s[i] = float32(rng.NormFloat64())
-		}
-		return s
-	}
+	fill := func(n int) []float32 { return normals(rng, n) }
 	for _, sh := range [][4]int{{16, 16, 16, 16}, {49, 64, 64, 49}, {196, 96, 100, 200}, {5, 3, 3, 5}, {33, 47, 50, 40}} {
 		rows, cols, lds, ldd := sh[0], sh[1], sh[2], sh[3]
 		for _, withBias := range []bool{false, true} {

@@ -109,13 +109,7 @@ func TestWinogradMatchesCorrelation(t *testing.T) {
 // rows, with and without a residual, NaN included.
 func TestWinogradVectorMatchesScalar(t *testing.T) {
 	rng := rand.New(rand.NewSource(3))
-	fill := func(n int) []float32 {
-		s := make([]float32, n)
-		for i := range s {
-			s[i] = float32(rng.NormFloat64())
-		}
-		return s
-	}
+	fill := func(n int) []float32 { return normals(rng, n) }
 	for n := 1; n <= 50; n++ {
 		for _, x0 := range []int{-2, -1, 0, 3} {
 			// Rows just wide enough for the tiles, shorter, and longer:
@@ -175,4 +169,13 @@ func TestWinogradVectorMatchesScalar(t *testing.T) {
 			}
 		}
 	}
+}
+
+// normals returns n standard normal values from rng.
+func normals(rng *rand.Rand, n int) []float32 {
+	s := make([]float32, n)
+	for i := range s {
+		s[i] = float32(rng.NormFloat64())
+	}
+	return s
 }
