@@ -2,7 +2,6 @@ package engine
 
 import (
 	"fmt"
-	"math"
 	"runtime"
 
 	"heedmap/kernel"
@@ -117,15 +116,10 @@ func (op *convOp) rowForward(plan *kernel.Im2colPlan, xg []float32, cg int, g ge
 			return nil
 		}
 		// The epilogue as each transposed row is stored, rounded as
-		// epilogue.apply rounds (−0 for a missing bias before a residual).
-		lo, hi := ep.bounds()
-		var bias, res []float32
-		var noBias float32
-		if ep.bias != nil {
-			bias = ep.bias[m0:m1]
-		}
-		if ep.res != nil {
-			res, noBias = ep.res[m0*ohw:], float32(math.Copysign(0, -1))
+		// epilogue.apply rounds.
+		bias, noBias, res, lo, hi := ep.channels(m0, m1)
+		if res != nil {
+			res = res[m0*ohw:]
 		}
 		kernel.TransposeEpilogue(yg[m0*ohw:], ohw, c, w, ohw, w, bias, noBias, res, lo, hi)
 		return nil

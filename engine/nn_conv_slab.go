@@ -57,6 +57,26 @@ func (e *epilogue) apply(y []float32, n, m0, m1, j0, j1 int) {
 	}
 }
 
+// channels returns what a kernel that applies the epilogue itself needs
+// for output channels [m0, m1): their biases (nil for none), the value to
+// add instead of a missing bias (−0 before a residual, which keeps a
+// bias-free convolution's exact output as apply does, 0 otherwise), the
+// residual laid out as for apply (nil for none) and the clamp bounds. A nil
+// epilogue adds nothing and clamps to ±∞.
+func (e *epilogue) channels(m0, m1 int) (bias []float32, noBias float32, res []float32, lo, hi float32) {
+	if e == nil {
+		inf := float32(math.Inf(1))
+		return nil, 0, nil, -inf, inf
+	}
+	if e.bias != nil {
+		bias = e.bias[m0:m1]
+	} else if e.res != nil {
+		noBias = float32(math.Copysign(0, -1))
+	}
+	lo, hi = e.bounds()
+	return bias, noBias, e.res, lo, hi
+}
+
 // empty reports whether the epilogue changes nothing.
 func (e *epilogue) empty() bool {
 	return e == nil || (e.bias == nil && e.act == actNone && e.res == nil)

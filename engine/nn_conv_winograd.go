@@ -2,7 +2,6 @@ package engine
 
 import (
 	"fmt"
-	"math"
 	"runtime"
 
 	"heedmap/kernel"
@@ -95,7 +94,6 @@ type winoPlan struct {
 	g             geom2
 	c, m          int
 	th, tw, tiles int  // tile rows and columns, tiles per image
-	pw            int  // padded row width: the vector transform's loads stay inside
 	blocks        int  // blocks per image
 	kBlocks       int  // output-channel blocks per block
 	shared        bool // transform as its own phase into a shared buffer
@@ -180,21 +178,7 @@ func (p *winoPlan) multiply(gemm *kernel.Packed, u, v, prod, y []float32, off in
 	for e := 0; e < 16; e++ {
 		gemm.SgemmUnpacked(kb, ld, p.c, u[(e*p.m+k0)*p.c:], p.c, v[e*winoStride(p.c, ld):], ld, prod[e*winoStride(kb, ld):], ld)
 	}
-	inf := float32(math.Inf(1))
-	lo, hi := -inf, inf
-	var res []float32
-	if ep != nil {
-		lo, hi = ep.bounds()
-		res = ep.res
-	}
-	// As epilogue.apply: −0 adds nothing before a residual, 0 otherwise.
-	var bias []float32
-	var noBias float32
-	if ep != nil && ep.bias != nil {
-		bias = ep.bias[k0:k1]
-	} else if res != nil {
-		noBias = float32(math.Copysign(0, -1))
-	}
+	bias, noBias, res, lo, hi := ep.channels(k0, k1)
 	ohw := g.oh * g.ow
 	p.rowSpan(t0, t1, func(i, j0, j1 int) {
 		at := k0*ohw + 2*i*g.ow + 2*j0

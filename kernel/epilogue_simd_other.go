@@ -36,9 +36,8 @@ func winogradOutputSIMD(y []float32, ldy, yc, rows, cols int, m []float32, mstri
 	return false
 }
 
-// transposeSIMD: no block path off amd64.
-const transposeSIMD = false
-
+// transpose16 and transpose16Ep: never called off amd64 (cpu.X86 reports
+// no AVX-512 there).
 func transpose16(n int, src []float32, lds int, dst []float32, ldd int) {}
 
 func transpose16Ep(n int, src []float32, lds int, dst, res []float32, ldd int, bias []float32, noBias, lo, hi float32) {

@@ -20,7 +20,7 @@ func Transpose(dst []float32, ldd int, src []float32, lds int, rows, cols int) {
 		panic(fmt.Sprintf("kernel: Transpose of %d×%d has %d source values (stride %d) and %d destination values (stride %d)", rows, cols, len(src), lds, len(dst), ldd))
 	}
 	rows16, cols16 := 0, 0
-	if cpu.X86.HasAVX512F && transposeSIMD {
+	if cpu.X86.HasAVX512F {
 		rows16, cols16 = rows&^15, cols&^15
 		for i := 0; i < rows16 && cols16 > 0; i += 16 {
 			transpose16(cols16/16, src[i*lds:], lds, dst[i:], ldd)
@@ -54,7 +54,7 @@ func TransposeEpilogue(dst []float32, ldd int, src []float32, lds int, rows, col
 		panic(fmt.Sprintf("kernel: TransposeEpilogue of %d×%d has %d source values (stride %d), %d destination values (stride %d), %d biases", rows, cols, len(src), lds, len(dst), ldd, len(bias)))
 	}
 	rows16, cols16 := 0, 0
-	if cpu.X86.HasAVX512F && transposeSIMD {
+	if cpu.X86.HasAVX512F {
 		rows16, cols16 = rows&^15, cols&^15
 		for i := 0; i < rows16 && cols16 > 0; i += 16 {
 			var r []float32

@@ -116,12 +116,11 @@ func winogradInputGo(v []float32, vstride int, rows *[4][]float32, x0, j0, n, wi
 }
 
 // winogradChunkMasks returns the load masks of the vector chunk whose
-// first tile reads column x (the four loads at floats 0, 16, 2, 18 from
-// x, 16 lanes each, a lane set when its column lies in [0, width)), and
-// whether all are full.
-func winogradChunkMasks(x, width int) (masks uint64, full bool) {
+// first tile reads column x: the four loads at floats 0, 16, 2, 18 from
+// x, 16 lanes each, a lane set when its column lies in [0, width).
+func winogradChunkMasks(x, width int) (masks uint64) {
 	if x >= 0 && x+34 <= width {
-		return ^uint64(0), true
+		return ^uint64(0)
 	}
 	for k, o := range [4]int{0, 16, 2, 18} {
 		// Lanes [lo, hi) of this load fall inside the row.
@@ -130,7 +129,7 @@ func winogradChunkMasks(x, width int) (masks uint64, full bool) {
 			masks |= (uint64(1)<<hi - uint64(1)<<lo) << (16 * k)
 		}
 	}
-	return masks, false
+	return masks
 }
 
 // WinogradOutput writes the output transforms Y = Aᵀ·M·A of the

@@ -14,7 +14,7 @@ func winogradInputSIMD(v []float32, vstride, vc int, rows *[4][]float32, strides
 		ptrs[r] = &rows[r][0]
 	}
 	for q := 0; q*16 < n; q++ {
-		masks, _ := winogradChunkMasks(x0+32*q, width)
+		masks := winogradChunkMasks(x0+32*q, width)
 		smask := uint64(0xffff)
 		if rest := n - 16*q; rest < 16 {
 			smask = 1<<rest - 1
@@ -50,26 +50,4 @@ func winogradOutputSIMD(y []float32, ldy, yc, rows, cols int, m []float32, mstri
 		}
 	}
 	return true
-}
-
-// transposeSIMD: Transpose has the AVX-512 block path on amd64.
-const transposeSIMD = true
-
-// transpose16 runs n 16×16 blocks of Transpose on the vector path.
-func transpose16(n int, src []float32, lds int, dst []float32, ldd int) {
-	transpose16AVX512(n, &src[0], lds, &dst[0], ldd)
-}
-
-// transpose16Ep runs n 16×16 blocks of TransposeEpilogue on the vector
-// path; bias is nil for noBias on every row, res nil for no residual.
-func transpose16Ep(n int, src []float32, lds int, dst, res []float32, ldd int, bias []float32, noBias, lo, hi float32) {
-	bp, bstep := &noBias, 0
-	if bias != nil {
-		bp, bstep = &bias[0], 1
-	}
-	if res != nil {
-		transpose16EpResAVX512(n, &src[0], lds, &dst[0], &res[0], ldd, bp, bstep, lo, hi)
-		return
-	}
-	transpose16EpAVX512(n, &src[0], lds, &dst[0], ldd, bp, bstep, lo, hi)
 }
