@@ -64,6 +64,7 @@ func (op *convOp) rowForward(plan *kernel.Im2colPlan, xg []float32, cg int, g ge
 	procs := runtime.GOMAXPROCS(0)
 	nq := (mg + nr - 1) / nr
 	blocks := min(nq, 4*procs)
+	parts, cut := rowParts(nq, procs, ohw, mr)
 	var a []float32
 	var padded paddedInput
 	padTasks, fills, npan := 0, 0, full
@@ -81,7 +82,7 @@ func (op *convOp) rowForward(plan *kernel.Im2colPlan, xg []float32, cg int, g ge
 		defer release()
 		fills = min(npan, 2*procs)
 	}
-	return op.team.run([]int{padTasks, fills, blocks}, func(phase, t int) error {
+	return op.team.run([]int{padTasks, fills, blocks * parts}, func(phase, t int) error {
 		switch phase {
 		case 0:
 			return padded.pad(t, padTasks, xg, cg)
@@ -97,33 +98,54 @@ func (op *convOp) rowForward(plan *kernel.Im2colPlan, xg []float32, cg int, g ge
 			}
 			return nil
 		}
-		q0, q1 := nq*t/blocks, nq*(t+1)/blocks
+		b, part := t/parts, t%parts
+		q0, q1 := nq*b/blocks, nq*(b+1)/blocks
 		m0, m1 := q0*nr, min(q1*nr, mg)
+		r0, r1 := 0, ohw
+		if parts == 2 {
+			r0, r1 = part*cut, cut+part*(ohw-cut)
+		}
 		if m0 >= m1 {
 			return nil
 		}
-		w := m1 - m0
-		cb := poolBuf(&op.slabBufs, ohw*w)
+		w, rows := m1-m0, r1-r0
+		cb := poolBuf(&op.slabBufs, rows*w)
 		defer op.slabBufs.Put(cb)
 		c := *cb
 		if !inPlace {
-			op.gemm1.SgemmRowPanels(ohw, w, kk, a, wp[q0*kk*nr:], c, w)
-		} else if !op.gemm1.SgemmKMajor(ohw, w, kk, xg, ohw, wp[q0*kk*nr:], c, w) {
+			op.gemm1.SgemmRowPanels(rows, w, kk, a[r0*kk:], wp[q0*kk*nr:], c, w)
+		} else if !op.gemm1.SgemmKMajor(rows, w, kk, xg[r0:], ohw, wp[q0*kk*nr:], c, w) {
 			return fmt.Errorf("engine: the %v GEMM has no k-major kernel", op.gemm1.ISA())
 		}
+		dst := yg[m0*ohw+r0:]
 		if ep.empty() {
-			kernel.Transpose(yg[m0*ohw:], ohw, c, w, ohw, w)
+			kernel.Transpose(dst, ohw, c, w, rows, w)
 			return nil
 		}
 		// The epilogue as each transposed row is stored, rounded as
 		// epilogue.apply rounds.
 		bias, noBias, res, lo, hi := ep.channels(m0, m1)
 		if res != nil {
-			res = res[m0*ohw:]
+			res = res[m0*ohw+r0:]
 		}
-		kernel.TransposeEpilogue(yg[m0*ohw:], ohw, c, w, ohw, w, bias, noBias, res, lo, hi)
+		kernel.TransposeEpilogue(dst, ohw, c, w, rows, w, bias, noBias, res, lo, hi)
 		return nil
 	})
+}
+
+// rowParts says into how many position ranges rowForward splits each of
+// its nq channel blocks, and where the first range ends. Few blocks that
+// do not divide evenly over the cores (3 for 96 channels, 5 for 160 on two
+// cores) would leave a core idle for a block's time; then each block is
+// split into two position halves, cut on a row-panel boundary, so every
+// core gets the same share. Splitting every layer this way was measured
+// slower (DEVELOPERS.md): each range re-reads the block's weights.
+func rowParts(nq, procs, ohw, mr int) (parts, cut int) {
+	cut = ohw / 2 / mr * mr
+	if nq < 4*procs && nq%procs != 0 && cut > 0 {
+		return 2, cut
+	}
+	return 1, ohw
 }
 
 // packedFlipped is the memo owner of the flipped filters (flipFilters)

@@ -2,6 +2,7 @@ package engine
 
 import (
 	"context"
+	"math/rand"
 	"path/filepath"
 	"testing"
 
@@ -85,5 +86,88 @@ func TestRowPathMatchesPyTorch(t *testing.T) {
 			}
 			t.Logf("%d convolutions may take the row-panel path", rows)
 		})
+	}
+}
+
+// TestConvRowSplitMatchesReference runs small-map convolutions whose few
+// output-channel blocks rowForward splits into position halves on two
+// cores (96 and 160 channels: 3 and 5 blocks of 32), pointwise (the
+// k-major product) and 3×3 (the lowered row panels), with bias, residual
+// and fused activations, against the operator built on kernel.Naive (the
+// float64 product over a plain im2col) followed by the ONNX definitions of
+// Add, Relu and Clip.
+func TestConvRowSplitMatchesReference(t *testing.T) {
+	if !kernel.Supported(kernel.ISAAVX512) {
+		t.Skip("the row-panel path runs on AVX-512 only")
+	}
+	rng := rand.New(rand.NewSource(8))
+	for i, tc := range []struct{ c, h, w, m, k int }{
+		{576, 14, 14, 96, 1},
+		{960, 7, 7, 160, 1},
+		{64, 14, 14, 96, 3},
+		{48, 7, 7, 160, 3},
+		{40, 9, 11, 96, 1}, // 99 positions: a cut of 48, then 51 with an edge panel
+	} {
+		x := nnRand(rng, 1, tc.c, tc.h, tc.w)
+		wt := nnRand(rng, tc.m, tc.c, tc.k, tc.k)
+		bias := nnRand(rng, tc.m)
+		p := int64(tc.k / 2)
+		node := nnNode("c", "Conv", []string{"x", "w", "b"}, []string{"y"}, nnInts("pads", p, p, p, p))
+		fc, rc := convPair(t, node, newArena())
+		fc.constW, fc.noWinograd = true, true
+		s, _ := fc.shape(x, wt)
+		if !fc.useRows(s) || fc.useSlabs(s.cg*tc.k*tc.k, tc.h*tc.w) {
+			t.Fatalf("case %d: row-panel path not taken", i)
+		}
+		mr, _, _ := fc.gemm1.RowPanels(tc.h * tc.w)
+		_, nr := fc.gemm1.Tile()
+		if parts, _ := rowParts((tc.m+nr-1)/nr, 2, tc.h*tc.w, mr); parts != 2 {
+			t.Fatalf("case %d: %d position parts on two cores, want 2", i, parts)
+		}
+		in := []*tensor.Tensor{x, wt, bias}
+		want, err := rc.Forward(in)
+		if err != nil {
+			t.Fatal(err)
+		}
+		res := nnRand(rng, want[0].Shape...)
+		for _, act := range []actKind{actNone, actRelu, actClip} {
+			for _, withRes := range []bool{false, true} {
+				var r []float32
+				ref := want[0].F32
+				if withRes {
+					r = res.F32
+					ref = make([]float32, len(ref))
+					for j, v := range want[0].F32 {
+						ref[j] = v + r[j]
+					}
+				}
+				got, err := fc.forwardEp(in, r, act, -0.5, 0.75)
+				if err != nil {
+					t.Fatal(err)
+				}
+				if j, v, ok := matchActivated(got[0].F32, ref, act); !ok {
+					t.Fatalf("case %d act %d residual %v: y[%d] = %v, reference %v", i, act, withRes, j, got[0].F32[j], v)
+				}
+				fc.arena.put(got[0].F32)
+			}
+		}
+	}
+}
+
+// TestRowParts checks the split rule: only block counts that leave a core
+// idle are split, and the cut falls on a row-panel boundary.
+func TestRowParts(t *testing.T) {
+	for _, tc := range []struct{ nq, procs, ohw, mr, parts, cut int }{
+		{3, 2, 196, 12, 2, 96},
+		{5, 2, 49, 12, 2, 24},
+		{2, 2, 196, 12, 1, 196},
+		{8, 2, 49, 12, 1, 49},
+		{9, 2, 49, 12, 1, 49}, // 9 blocks share out within one block in 9
+		{3, 2, 20, 12, 1, 20}, // no full panel below the middle
+		{3, 1, 196, 12, 1, 196},
+	} {
+		if p, c := rowParts(tc.nq, tc.procs, tc.ohw, tc.mr); p != tc.parts || c != tc.cut {
+			t.Errorf("rowParts(%d, %d, %d, %d) = %d, %d; want %d, %d", tc.nq, tc.procs, tc.ohw, tc.mr, p, c, tc.parts, tc.cut)
+		}
 	}
 }
