@@ -32,6 +32,9 @@ func (p *Pass) Backward(ctx context.Context, seeds map[string]*tensor.Tensor, wr
 	if len(seeds) == 0 {
 		return nil, errors.New("engine: Backward needs at least one seed")
 	}
+	if p.parts != nil {
+		return p.splitBackward(ctx, seeds, wrt)
+	}
 	// upstream[v]: some wrt value is v or an ancestor of v.
 	upstream := make([]bool, len(g.names))
 	isWrt := make([]bool, len(g.names))

@@ -28,7 +28,7 @@ func referenceSweep(t *testing.T, g *Graph, input string, x *tensor.Tensor, outp
 			all = append(all, name)
 		}
 	}
-	p, err := g.Run(context.Background(), map[string]*tensor.Tensor{input: x}, RunOptions{Keep: all})
+	p, err := g.Run(context.Background(), map[string]*tensor.Tensor{input: x}, RunOptions{Keep: all, WholeBatch: true}) // it reads the pass's own values
 	if err != nil {
 		t.Fatal(err)
 	}

@@ -18,7 +18,8 @@ type compactNet struct {
 	dir  string
 	meta struct {
 		Input, Output string
-		Class         int // the logit the reference gradients explain
+		Layer         string // the layer the reference gradients also cover
+		Class         int    // the logit the reference gradients explain
 	}
 	x *tensor.Tensor
 	g *Graph

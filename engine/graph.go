@@ -5,6 +5,7 @@ import (
 	"fmt"
 	"sort"
 	"strings"
+	"sync"
 
 	"heedmap/kernel"
 	"heedmap/onnx"
@@ -53,6 +54,13 @@ type Graph struct {
 	team *team
 	// fusion lists the Conv→activation pairs Run may fuse (fuse.go).
 	fusion *fusionPlan
+	// imageWise: every executed node computes each image of a batch on
+	// its own, so Run may take a batch image by image (split.go).
+	// constBytes totals the constants; splitPlans caches, per per-image
+	// input shape, whether Run does.
+	imageWise  bool
+	constBytes int64
+	splitPlans sync.Map // string → bool
 }
 
 type node struct {
@@ -247,6 +255,7 @@ func Compile(m *onnx.Model, opts ...Option) (*Graph, error) {
 		}
 	}
 	g.fusion = planFusion(g)
+	g.planImageWise(opset)
 	return g, nil
 }
 

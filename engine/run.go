@@ -16,6 +16,9 @@ type RunOptions struct {
 	// differentiable node that depends on a graph input, exactly the inputs
 	// and outputs its Backward declared it reads.
 	Backward bool
+	// WholeBatch runs a batch as one pass even where Run would take it
+	// image by image (split.go).
+	WholeBatch bool
 }
 
 // Pass is the result of one forward run: the graph outputs, the kept values
@@ -38,6 +41,14 @@ type Pass struct {
 	// A view op's output that shares its input's data (Identity, Reshape)
 	// is counted again, so these are upper bounds.
 	liveBytes, peakBytes int64
+	// producedBytes totals the node outputs the pass computed.
+	producedBytes int64
+
+	// parts holds one pass per image when Run took the batch image by
+	// image (split.go); inputs are then the batch's inputs, and vals
+	// caches the values joined from the parts.
+	parts  []*Pass
+	inputs map[string]*tensor.Tensor
 }
 
 func dataBytes(t *tensor.Tensor) int64 {
@@ -52,10 +63,22 @@ func dataBytes(t *tensor.Tensor) int64 {
 // any size, but the same symbol must have one size across inputs) and
 // checks ctx between nodes. Values are dropped after their last use unless
 // they are graph outputs, listed in opt.Keep or needed by Backward.
+//
+// A batch whose images the graph computes independently may be run image
+// by image, where that keeps activations in cache (split.go); the Pass
+// behaves the same either way.
 func (g *Graph) Run(ctx context.Context, inputs map[string]*tensor.Tensor, opt RunOptions) (*Pass, error) {
 	if err := g.checkInputs(inputs); err != nil {
 		return nil, err
 	}
+	if n := g.splitBatch(inputs, opt); n > 1 {
+		return g.runSplit(ctx, inputs, opt, n)
+	}
+	return g.run(ctx, inputs, opt)
+}
+
+// run is Run for one pass over the whole batch, on checked inputs.
+func (g *Graph) run(ctx context.Context, inputs map[string]*tensor.Tensor, opt RunOptions) (*Pass, error) {
 	keep := make([]bool, len(g.names))
 	for _, name := range opt.Keep {
 		v, ok := g.index[name]
@@ -154,6 +177,7 @@ func (g *Graph) Run(ctx context.Context, inputs map[string]*tensor.Tensor, opt R
 			set(v, out[i])
 			live++
 			p.liveBytes += dataBytes(out[i])
+			p.producedBytes += dataBytes(out[i])
 		}
 		// High-water mark while the node's inputs and outputs coexist.
 		if p.liveBytes > p.peakBytes {
@@ -205,6 +229,9 @@ func (p *Pass) Release() {
 		return
 	}
 	p.released = true
+	for _, q := range p.parts {
+		q.Release()
+	}
 	for v, only := range p.bwdOnly {
 		if only && p.vals[v] != nil && p.g.producer[v] >= 0 {
 			p.g.recycle(p, v)
@@ -245,6 +272,9 @@ func (g *Graph) nodeVarying(nd *node) bool {
 // Value returns a graph output, a kept value, an input or a constant.
 func (p *Pass) Value(name string) (*tensor.Tensor, bool) {
 	v, ok := p.g.index[name]
+	if ok && p.parts != nil {
+		return p.joinedValue(v)
+	}
 	if !ok || p.vals[v] == nil {
 		return nil, false
 	}
@@ -254,6 +284,9 @@ func (p *Pass) Value(name string) (*tensor.Tensor, bool) {
 // Shape returns the shape a value had in this pass, even if it was freed.
 func (p *Pass) Shape(name string) ([]int, bool) {
 	v, ok := p.g.index[name]
+	if ok && p.parts != nil {
+		return p.joinedShape(v)
+	}
 	if !ok || p.shapes[v] == nil {
 		return nil, false
 	}

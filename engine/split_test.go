@@ -1,0 +1,90 @@
+package engine
+
+import (
+	"context"
+	"slices"
+	"testing"
+
+	"heedmap/tensor"
+)
+
+// TestSplitBatchMatchesWholeBatch runs each committed compact network
+// (testdata/reference/export_nets.py, batch 2) forward and backward with
+// Run's default, which takes an image-wise graph image by image
+// (split.go), and with RunOptions.WholeBatch, and checks: that the
+// MobileNetV2 graph is split and the ViT graph (Reshape, attention
+// products) is not; that logits, a kept layer and their shapes agree
+// within 1e-5 relative (float32 sums in another order); that the input and
+// layer gradients agree within cosine 0.99999 and relative L2 1e-5; and
+// that each image of a split pass is bit for bit a pass of that image
+// alone. The networks tests compare the default path with PyTorch.
+func TestSplitBatchMatchesWholeBatch(t *testing.T) {
+	splits := map[string]bool{}
+	for _, name := range []string{"resnet18", "mobilenet_v2", "mobilenet_v3", "efficientnet_b0", "densenet121", "inception_v3", "convnext_tiny", "vit_b16"} {
+		t.Run(name, func(t *testing.T) {
+			n := loadCompactNet(t, name)
+			in := map[string]*tensor.Tensor{n.meta.Input: n.x}
+			run := func(opt RunOptions, x map[string]*tensor.Tensor) (*Pass, map[string]*tensor.Tensor) {
+				opt.Backward, opt.Keep = true, []string{n.meta.Layer}
+				p, err := n.g.Run(context.Background(), x, opt)
+				if err != nil {
+					t.Fatal(err)
+				}
+				logits, _ := p.Value(n.meta.Output)
+				seed := tensor.New(logits.Shape...)
+				for i := 0; i < logits.Shape[0]; i++ {
+					seed.F32[i*logits.Shape[1]+n.meta.Class] = 1
+				}
+				g, err := p.Backward(context.Background(), map[string]*tensor.Tensor{n.meta.Output: seed}, []string{n.meta.Input, n.meta.Layer})
+				if err != nil {
+					t.Fatal(err)
+				}
+				return p, g
+			}
+			split, gs := run(RunOptions{}, in)
+			whole, gw := run(RunOptions{WholeBatch: true}, in)
+			splits[name] = split.parts != nil
+			for _, v := range []string{n.meta.Output, n.meta.Layer} {
+				a, ok1 := split.Value(v)
+				b, ok2 := whole.Value(v)
+				if !ok1 || !ok2 {
+					t.Fatalf("%s: value missing (split %v, whole %v)", v, ok1, ok2)
+				}
+				sa, _ := split.Shape(v)
+				if !slices.Equal(a.Shape, b.Shape) || !slices.Equal(sa, b.Shape) {
+					t.Fatalf("%s: shape %v (Shape says %v), whole batch %v", v, a.Shape, sa, b.Shape)
+				}
+				if d := MaxRel(a.F32, b.F32); d > 1e-5 {
+					t.Errorf("%s: split and whole batch differ by %.2e (relative)", v, d)
+				}
+			}
+			for _, v := range []string{n.meta.Input, n.meta.Layer} {
+				if cos, rel := CompareGrad(gs[v].F32, gw[v].F32); cos < 0.99999 || rel > 1e-5 {
+					t.Errorf("gradient of %s: cosine %.7f, relative L2 %.2e between split and whole batch", v, cos, rel)
+				}
+			}
+			if split.parts == nil {
+				return
+			}
+			batch := n.x.Shape[0]
+			per := n.x.Len() / batch
+			for i := 0; i < batch; i++ {
+				x := tensor.FromFloat32(n.x.F32[i*per:(i+1)*per], append([]int{1}, n.x.Shape[1:]...)...)
+				one, g1 := run(RunOptions{}, map[string]*tensor.Tensor{n.meta.Input: x})
+				a, _ := one.Value(n.meta.Output)
+				b, _ := split.Value(n.meta.Output)
+				k := a.Len()
+				if !slices.Equal(a.F32, b.F32[i*k:(i+1)*k]) {
+					t.Errorf("image %d: logits of the split batch are not those of the image alone", i)
+				}
+				if k := g1[n.meta.Input].Len(); !slices.Equal(g1[n.meta.Input].F32, gs[n.meta.Input].F32[i*k:(i+1)*k]) {
+					t.Errorf("image %d: input gradient of the split batch is not that of the image alone", i)
+				}
+			}
+		})
+	}
+	t.Logf("split image by image: %v", splits)
+	if !splits["mobilenet_v2"] || splits["vit_b16"] {
+		t.Errorf("want MobileNetV2 split and ViT-B/16 not, got %v", splits)
+	}
+}
