@@ -455,6 +455,76 @@ maskRangeAVX2_done:
 	VZEROUPPER
 	RET
 
+// func rangeBitsAVX512(n int, bits *uint64, y *float32, lo uint32, span uint32)
+// Requires: AVX, AVX512F
+TEXT ·rangeBitsAVX512(SB), NOSPLIT, $0-32
+	MOVQ         n+0(FP), AX
+	MOVQ         bits+8(FP), CX
+	MOVQ         y+16(FP), DX
+	VBROADCASTSS lo+24(FP), Z0
+	VBROADCASTSS span+28(FP), Z1
+
+rangeBitsAVX512_loop:
+	CMPQ      AX, $0x40
+	JL        rangeBitsAVX512_done
+	VMOVDQU32 (DX), Z2
+	VPSUBD    Z0, Z2, Z2
+	VPCMPUD   $0x01, Z1, Z2, K1
+	KMOVW     K1, (CX)
+	VMOVDQU32 64(DX), Z3
+	VPSUBD    Z0, Z3, Z3
+	VPCMPUD   $0x01, Z1, Z3, K2
+	KMOVW     K2, 2(CX)
+	VMOVDQU32 128(DX), Z4
+	VPSUBD    Z0, Z4, Z4
+	VPCMPUD   $0x01, Z1, Z4, K3
+	KMOVW     K3, 4(CX)
+	VMOVDQU32 192(DX), Z5
+	VPSUBD    Z0, Z5, Z5
+	VPCMPUD   $0x01, Z1, Z5, K4
+	KMOVW     K4, 6(CX)
+	ADDQ      $0x00000100, DX
+	ADDQ      $0x08, CX
+	SUBQ      $0x40, AX
+	JMP       rangeBitsAVX512_loop
+
+rangeBitsAVX512_done:
+	VZEROUPPER
+	RET
+
+// func maskBitsAVX512(n int, dst *float32, grad *float32, bits *uint64)
+// Requires: AVX, AVX512F
+TEXT ·maskBitsAVX512(SB), NOSPLIT, $0-32
+	MOVQ n+0(FP), AX
+	MOVQ dst+8(FP), CX
+	MOVQ grad+16(FP), DX
+	MOVQ bits+24(FP), BX
+
+maskBitsAVX512_loop:
+	CMPQ        AX, $0x40
+	JL          maskBitsAVX512_done
+	KMOVW       (BX), K1
+	VMOVDQU32.Z (DX), K1, Z0
+	VMOVDQU32   Z0, (CX)
+	KMOVW       2(BX), K2
+	VMOVDQU32.Z 64(DX), K2, Z1
+	VMOVDQU32   Z1, 64(CX)
+	KMOVW       4(BX), K3
+	VMOVDQU32.Z 128(DX), K3, Z2
+	VMOVDQU32   Z2, 128(CX)
+	KMOVW       6(BX), K4
+	VMOVDQU32.Z 192(DX), K4, Z3
+	VMOVDQU32   Z3, 192(CX)
+	ADDQ        $0x00000100, DX
+	ADDQ        $0x00000100, CX
+	ADDQ        $0x08, BX
+	SUBQ        $0x40, AX
+	JMP         maskBitsAVX512_loop
+
+maskBitsAVX512_done:
+	VZEROUPPER
+	RET
+
 // func max9AVX512(n int, dst *float32, src *[9]*float32)
 // Requires: AVX, AVX512F
 TEXT ·max9AVX512(SB), NOSPLIT, $0-24

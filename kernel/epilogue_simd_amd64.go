@@ -53,6 +53,28 @@ func maskRangeSIMD(dst, g, y []float32, lo, span uint32) int {
 	return 0
 }
 
+// rangeBitsSIMD runs the vector part of RangeBits and returns how many
+// leading values it did, a multiple of 64 (0 without AVX-512F).
+func rangeBitsSIMD(bits []uint64, y []float32, lo, span uint32) int {
+	n := len(y) &^ 63
+	if n == 0 || !cpu.X86.HasAVX512F {
+		return 0
+	}
+	rangeBitsAVX512(n, &bits[0], &y[0], lo, span)
+	return n
+}
+
+// maskBitsSIMD runs the vector part of MaskBits and returns how many
+// leading values it did, a multiple of 64 (0 without AVX-512F).
+func maskBitsSIMD(dst, g []float32, bits []uint64) int {
+	n := len(dst) &^ 63
+	if n == 0 || !cpu.X86.HasAVX512F {
+		return 0
+	}
+	maskBitsAVX512(n, &dst[0], &g[0], &bits[0])
+	return n
+}
+
 // max9SIMD runs the vector part of Max9 and returns how many leading
 // outputs it did (0 without AVX-512F).
 func max9SIMD(dst []float32, s *[9][]float32) int {

@@ -8,6 +8,12 @@ func biasClampSIMD(x []float32, bias, lo, hi float32) int { return 0 }
 // biasAddClampSIMD: no vector path off amd64.
 func biasAddClampSIMD(x, r []float32, bias, lo, hi float32) int { return 0 }
 
+// rangeBitsSIMD: no vector path off amd64.
+func rangeBitsSIMD(bits []uint64, y []float32, lo, span uint32) int { return 0 }
+
+// maskBitsSIMD: no vector path off amd64.
+func maskBitsSIMD(dst, g []float32, bits []uint64) int { return 0 }
+
 // maskRangeSIMD: no vector path off amd64.
 func maskRangeSIMD(dst, g, y []float32, lo, span uint32) int { return 0 }
 

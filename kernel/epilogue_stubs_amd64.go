@@ -52,6 +52,16 @@ func maskRangeAVX512(n int, dst *float32, grad *float32, y *float32, lo uint32, 
 //go:noescape
 func maskRangeAVX2(n int, dst *float32, grad *float32, y *float32, lo uint32, span uint32)
 
+// rangeBitsAVX512 sets bit j of bits where bits(y[j])-lo < span (unsigned), else clears it, for j < n rounded down to 64.
+//
+//go:noescape
+func rangeBitsAVX512(n int, bits *uint64, y *float32, lo uint32, span uint32)
+
+// maskBitsAVX512 sets dst[j] = grad[j] where bit j of bits is set, else +0, for j < n rounded down to 64.
+//
+//go:noescape
+func maskBitsAVX512(n int, dst *float32, grad *float32, bits *uint64)
+
 // max9AVX512 sets dst[j] to the ordered maximum of src[0][j] … src[8][j] (a value replaces the kept one only when greater) for j < n rounded down to 16.
 //
 //go:noescape

@@ -64,3 +64,71 @@ func TestMaskRange(t *testing.T) {
 		}
 	}
 }
+
+// TestRangeBits checks that RangeBits followed by MaskBits is MaskRange
+// bit for bit (and so maskWant, the mask's definition), for the vector
+// and Go paths, at every length up to 200 (three full words and the
+// tails), in place and not, on the same special values; and that
+// RangeBits clears the bits of a reused word.
+func TestRangeBits(t *testing.T) {
+	r := rand.New(rand.NewPCG(33, 34))
+	inf := float32(math.Inf(1))
+	special := []float32{0, float32(math.Copysign(0, -1)), 6, inf, -inf, float32(math.NaN()), 1e-45, 5.9999995, 6.0000005}
+	for _, b := range []struct{ l, h float32 }{{0, inf}, {0, 6}} {
+		lo := math.Float32bits(b.l) + 1
+		span := math.Float32bits(b.h) - math.Float32bits(b.l) - 1
+		for n := 0; n <= 200; n++ {
+			y, g := make([]float32, n), make([]float32, n)
+			for i := range y {
+				y[i] = float32(r.NormFloat64() * 4)
+				if r.IntN(4) == 0 {
+					y[i] = special[r.IntN(len(special))]
+				}
+				g[i] = float32(r.NormFloat64())
+			}
+			want := make([]float32, n)
+			MaskRange(want, g, y, lo, span)
+			for i := range want {
+				if w := maskWant(g[i], y[i], b.l, b.h); math.Float32bits(want[i]) != math.Float32bits(w) {
+					t.Fatalf("MaskRange n=%d: %v, definition %v", n, want[i], w)
+				}
+			}
+			words := (n + 63) / 64
+			check := func(name string, bits []uint64, inPlace bool) {
+				got := make([]float32, n)
+				src := g
+				if inPlace {
+					copy(got, g)
+					src = got
+				}
+				MaskBits(got, src, bits)
+				for i := range got {
+					if math.Float32bits(got[i]) != math.Float32bits(want[i]) {
+						t.Fatalf("%s [%v, %v] n=%d in place %v: y=%v g=%v gave %v, want %v", name, b.l, b.h, n, inPlace, y[i], g[i], got[i], want[i])
+					}
+				}
+				gl := make([]float32, n)
+				maskBitsGo(gl, g, bits)
+				for i := range gl {
+					if math.Float32bits(gl[i]) != math.Float32bits(want[i]) {
+						t.Fatalf("%s, MaskBits' Go loop, n=%d: %v, want %v", name, n, gl[i], want[i])
+					}
+				}
+			}
+			bits := make([]uint64, words)
+			for i := range bits {
+				bits[i] = ^uint64(0) // stale bits must be cleared
+			}
+			RangeBits(bits, y, lo, span)
+			check("RangeBits", bits, false)
+			check("RangeBits", bits, true)
+			goBits := make([]uint64, words)
+			rangeBitsGo(goBits, y, lo, span)
+			for i := range goBits {
+				if goBits[i] != bits[i] {
+					t.Fatalf("n=%d word %d: Go loop %x, RangeBits %x", n, i, goBits[i], bits[i])
+				}
+			}
+		}
+	}
+}

@@ -22,6 +22,8 @@ func genEpilogue(zmm, ymm []reg.VecPhysical) {
 	genPanelRowsNarrow3()
 	genMaskRange("maskRangeAVX512", 16)
 	genMaskRange("maskRangeAVX2", 8)
+	genRangeBits()
+	genMaskBits()
 	genMax9()
 	genMax9Stride2()
 	genAddStride2()
@@ -534,6 +536,65 @@ func genMaskRange(name string, width int) {
 	Label(name + "_done")
 	VZEROUPPER()
 	RET()
+}
+
+// genRangeBits emits rangeBitsAVX512: bit j of bits is set where
+// bits(y[j]) − lo < span (unsigned), for j < n rounded down to 64, four
+// vectors a step: the test of genMaskRange kept as one bit per value
+// (kernel.RangeBits), the compact form of a ReLU or Clip output that only
+// its gradient mask needs.
+func genRangeBits() {
+	name := "rangeBitsAVX512"
+	TEXT(name, NOSPLIT, "func(n int, bits *uint64, y *float32, lo, span uint32)")
+	Doc(name + " sets bit j of bits where bits(y[j])-lo < span (unsigned), else clears it, for j < n rounded down to 64.")
+	Pragma("noescape")
+	n := Load(Param("n"), GP64())
+	bits := Load(Param("bits"), GP64())
+	y := Load(Param("y"), GP64())
+	loM, err := Param("lo").Resolve()
+	check(err)
+	spanM, err := Param("span").Resolve()
+	check(err)
+	lo, span := reg.Z0, reg.Z1
+	VBROADCASTSS(loM.Addr, lo)
+	VBROADCASTSS(spanM.Addr, span)
+	v := []reg.VecPhysical{reg.Z2, reg.Z3, reg.Z4, reg.Z5}
+	k := []reg.Physical{reg.K1, reg.K2, reg.K3, reg.K4}
+	countedLoop(name, n, 64, func() {
+		for i, r := range v {
+			VMOVDQU32(Mem{Base: y, Disp: 64 * i}, r)
+			VPSUBD(lo, r, r)
+			VPCMPUD(Imm(1), span, r, k[i]) // y − lo < span, unsigned
+			KMOVW(k[i], Mem{Base: bits, Disp: 2 * i})
+		}
+		ADDQ(U32(256), y)
+		ADDQ(U8(8), bits)
+	})
+}
+
+// genMaskBits emits maskBitsAVX512: dst[j] = grad[j] where bit j of bits
+// is set and +0 elsewhere, for j < n rounded down to 64 (kernel.MaskBits).
+func genMaskBits() {
+	name := "maskBitsAVX512"
+	TEXT(name, NOSPLIT, "func(n int, dst, grad *float32, bits *uint64)")
+	Doc(name + " sets dst[j] = grad[j] where bit j of bits is set, else +0, for j < n rounded down to 64.")
+	Pragma("noescape")
+	n := Load(Param("n"), GP64())
+	dst := Load(Param("dst"), GP64())
+	gp := Load(Param("grad"), GP64())
+	bits := Load(Param("bits"), GP64())
+	v := []reg.VecPhysical{reg.Z0, reg.Z1, reg.Z2, reg.Z3}
+	k := []reg.Physical{reg.K1, reg.K2, reg.K3, reg.K4}
+	countedLoop(name, n, 64, func() {
+		for i, r := range v {
+			KMOVW(Mem{Base: bits, Disp: 2 * i}, k[i])
+			VMOVDQU32_Z(Mem{Base: gp, Disp: 64 * i}, k[i], r)
+			VMOVDQU32(r, Mem{Base: dst, Disp: 64 * i})
+		}
+		ADDQ(U32(256), gp)
+		ADDQ(U32(256), dst)
+		ADDQ(U8(8), bits)
+	})
 }
 
 // countedLoop emits the loop of the element-wise kernels: while n ≥ step,
