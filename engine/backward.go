@@ -180,6 +180,9 @@ func (p *Pass) Backward(ctx context.Context, seeds map[string]*tensor.Tensor, wr
 				out = append(out, nil)
 			case nd.needOut[i] && p.vals[v] != nil:
 				out = append(out, p.vals[v])
+			case nd.needOut[i] && p.bits != nil && p.bits[v] != nil:
+				// Kept as mask bits: bitGrad below reads those.
+				out = append(out, &tensor.Tensor{DType: p.dtypes[v], Shape: p.shapes[v]})
 			case nd.needOut[i]:
 				return nil, fmt.Errorf("engine: Backward: %s output %q was freed", nd.label(), g.names[v])
 			default:
@@ -192,9 +195,21 @@ func (p *Pass) Backward(ctx context.Context, seeds map[string]*tensor.Tensor, wr
 		}
 		var gin []*tensor.Tensor
 		var err error
-		if o := nd.out; len(o) == 1 && o[0] >= 0 && !isWrt[o[0]] && owned[o[0]] && !shared(grads[o[0]].F32, o[0], nil) {
-			// The output gradient dies at this node and nothing else holds
-			// it: an elementwise op may overwrite it with its input's.
+		// The output gradient dies at this node and nothing else holds it:
+		// an elementwise op may overwrite it with its input's.
+		o := nd.out
+		dies := len(o) == 1 && o[0] >= 0 && !isWrt[o[0]] && owned[o[0]] && !shared(grads[o[0]].F32, o[0], nil)
+		if len(o) == 1 && o[0] >= 0 && p.bits != nil && p.bits[o[0]] != nil && need[0] {
+			gy := grads[o[0]]
+			gx := gy
+			if !dies || !onlyFirst(need) {
+				gx = g.arena.tensor(gy.Shape...) // every element written
+			}
+			p.bitGrad(gx.F32, gy.F32, o[0])
+			gin = make([]*tensor.Tensor, len(nd.in))
+			gin[0] = gx
+		}
+		if dies && gin == nil {
 			if ip, ok := nd.op.(gradInPlace); ok && onlyFirst(need) {
 				gin, err = safeInPlace(ip, in, out, grads[o[0]])
 				if err != nil {

@@ -58,6 +58,9 @@ type Graph struct {
 	// its own, so Run may take a batch image by image (split.go).
 	// constBytes totals the constants; splitPlans caches, per per-image
 	// input shape, whether Run does.
+	// bitMask[v]: a backward pass may keep v as mask bits (bitmask.go).
+	bitMask []bool
+
 	imageWise  bool
 	constBytes int64
 	splitPlans sync.Map // string → bool
@@ -255,6 +258,7 @@ func Compile(m *onnx.Model, opts ...Option) (*Graph, error) {
 		}
 	}
 	g.fusion = planFusion(g)
+	planBitMasks(g)
 	g.planImageWise(opset)
 	return g, nil
 }

@@ -97,7 +97,7 @@ func TestPlanMemoryResNet(t *testing.T) {
 			}
 		}
 	}
-	var relus, convAdd int
+	var relus, convAdd, maskBits int
 	for _, nd := range g.nodes {
 		out := nd.src.Outputs[0]
 		_, held := bwd.Value(out)
@@ -107,8 +107,12 @@ func TestPlanMemoryResNet(t *testing.T) {
 		switch nd.src.OpType {
 		case "Relu":
 			relus++
-			if _, inHeld := bwd.Value(nd.src.Inputs[0]); !inHeld && !held {
-				t.Errorf("%s: neither input nor output held, ReLU's backward needs one", nd.label())
+			bits := bwd.bits != nil && bwd.bits[nd.out[0]] != nil // bitmask.go
+			if _, inHeld := bwd.Value(nd.src.Inputs[0]); !inHeld && !held && !bits {
+				t.Errorf("%s: neither input nor output held nor its mask bits, ReLU's backward needs one", nd.label())
+			}
+			if bits {
+				maskBits++
 			}
 		case "Conv":
 			if c := consumers[out]; len(c) == 1 && c[0] == "Add" {
@@ -121,6 +125,11 @@ func TestPlanMemoryResNet(t *testing.T) {
 	}
 	if relus == 0 || convAdd == 0 {
 		t.Fatalf("unexpected graph: %d Relu, %d Conv feeding Add", relus, convAdd)
+	}
+	// Every ReLU but the stem's (whose output MaxPool's backward reads)
+	// keeps its mask as bits.
+	if maskBits != relus-1 {
+		t.Errorf("%d of %d ReLUs keep mask bits, want all but the stem's", maskBits, relus)
 	}
 	if heldBytes(bwd) >= total {
 		t.Errorf("Backward run holds every activation (%d bytes)", total)

@@ -49,6 +49,9 @@ type Pass struct {
 	// caches the values joined from the parts.
 	parts  []*Pass
 	inputs map[string]*tensor.Tensor
+	// bits[v] holds value v's gradient mask, one bit per value, in an
+	// arena buffer, where the pass keeps that instead of v (bitmask.go).
+	bits [][]float32
 }
 
 func dataBytes(t *tensor.Tensor) int64 {
@@ -178,6 +181,9 @@ func (g *Graph) run(ctx context.Context, inputs map[string]*tensor.Tensor, opt R
 			live++
 			p.liveBytes += dataBytes(out[i])
 			p.producedBytes += dataBytes(out[i])
+			if bwdOnly != nil && bwdOnly[v] && g.bitMask[v] && p.keepBits(v, nd) {
+				keep[v] = false // Backward reads the bits; v is freed as usual
+			}
 		}
 		// High-water mark while the node's inputs and outputs coexist.
 		if p.liveBytes > p.peakBytes {
@@ -232,6 +238,7 @@ func (p *Pass) Release() {
 	for _, q := range p.parts {
 		q.Release()
 	}
+	p.releaseBits()
 	for v, only := range p.bwdOnly {
 		if only && p.vals[v] != nil && p.g.producer[v] >= 0 {
 			p.g.recycle(p, v)
