@@ -40,6 +40,9 @@ type fusionPlan struct {
 	head  map[int]*fusedConvAct // Conv→activation pairs
 	resid map[int]*fusedConvAct // Conv→Add(→activation) chains
 	tail  map[int]fusedTail
+	// pwdwByPW: pointwise Convs whose product the depthwise Conv that
+	// reads it computes (fuse_pwdw.go), by pointwise node.
+	pwdwByPW map[int]*pwdwPair
 }
 
 // fusedTail is a node folded into the chain headed by node head: it
@@ -173,6 +176,7 @@ func planFusion(g *Graph) *fusionPlan {
 			fp.tail[k+2] = fusedTail{head: k}
 		}
 	}
+	fp.pwdwByPW = planPointwiseDepthwise(g, fp)
 	return fp
 }
 

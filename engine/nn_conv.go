@@ -46,6 +46,9 @@ type convOp struct {
 	// tplans caches the plans of the transposed convolutions that give
 	// the input gradient (nn_conv_slab.go).
 	tplans planCache
+	// blockBufs holds the expansion blocks of a depthwise convolution
+	// that computes its pointwise input itself (fuse_pwdw.go).
+	blockBufs sync.Pool
 }
 
 // colBuf returns a buffer of n floats from the pool; its contents are

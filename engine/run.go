@@ -49,6 +49,11 @@ type Pass struct {
 	// caches the values joined from the parts.
 	parts  []*Pass
 	inputs map[string]*tensor.Tensor
+	// pending is a pointwise product put off until the depthwise
+	// convolution that reads it (fuse_pwdw.go); pairs counts the pairs
+	// computed together.
+	pending *pendingPW
+	pairs   int
 	// bits[v] holds value v's gradient mask, one bit per value, in an
 	// arena buffer, where the pass keeps that instead of v (bitmask.go).
 	bits [][]float32
@@ -166,7 +171,14 @@ func (g *Graph) run(ctx context.Context, inputs map[string]*tensor.Tensor, opt R
 		}
 		op := g.fusedOp(k, keep)
 		in = fusedInputs(op, in, p.vals)
-		out, err := safeForward(op, in)
+		out := p.deferPointwise(k, keep, in)
+		var err error
+		if out == nil {
+			var done bool
+			if out, done, err = p.runPending(k, op, in); !done {
+				out, err = safeForward(op, in)
+			}
+		}
 		if err != nil {
 			return nil, fmt.Errorf("engine: %s: %w", nd.label(), err)
 		}
@@ -198,7 +210,7 @@ func (g *Graph) run(ctx context.Context, inputs map[string]*tensor.Tensor, opt R
 		}
 		// Free what this node was the last reader of, and outputs nobody reads.
 		for _, v := range nd.in {
-			if v >= 0 && g.lastUse[v] == k && g.producer[v] >= 0 && !keep[v] && !g.isOutput[v] && p.vals[v] != nil {
+			if v >= 0 && g.lastUse[v] == k && g.producer[v] >= 0 && !keep[v] && !g.isOutput[v] && p.vals[v] != nil && !p.heldForPending(v) {
 				p.liveBytes -= dataBytes(p.vals[v])
 				g.recycle(p, v)
 				p.vals[v] = nil

@@ -193,6 +193,10 @@ func Portable() *Packed {
 // ISA reports the path this GEMM runs.
 func (g *Packed) ISA() ISA { return g.conf().isa }
 
+// HasUnpacked reports whether SgemmUnpacked runs on this path (it has an
+// unpacked-B micro-kernel) rather than reporting false.
+func (g *Packed) HasUnpacked() bool { return g.conf().strided != nil }
+
 // Tile reports the micro-kernel's register tile (rows × columns of C).
 func (g *Packed) Tile() (mr, nr int) { return g.conf().mr, g.conf().nr }
 

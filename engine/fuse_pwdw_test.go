@@ -1,0 +1,102 @@
+package engine
+
+import (
+	"context"
+	"math"
+	"math/rand"
+	"testing"
+
+	"heedmap/kernel"
+	"heedmap/onnx"
+	"heedmap/tensor"
+)
+
+// TestPointwiseDepthwiseExact runs small pointwise→depthwise graphs (the
+// inverted residual block's expansion and depthwise layer, Sandler et al.
+// 2018) with the pair computed block by block of channels (fuse_pwdw.go)
+// and with the expansion kept (so each layer runs on its own), and
+// requires bit-identical outputs: with and without biases, Clip and Relu
+// activations or none, stride 1 and 2, a channel count that leaves a
+// partial block (13 = 12 + 1) and several blocks per core (40), at batch
+// 1 and 3; and it checks the pair was taken. The committed compact
+// MobileNetV2 is checked the same way, and against PyTorch, by
+// TestFusionMatchesUnfused.
+func TestPointwiseDepthwiseExact(t *testing.T) {
+	if !kernel.Supported(kernel.ISAAVX512) {
+		t.Skip("the pair is taken on the AVX-512 path only")
+	}
+	rng := rand.New(rand.NewSource(11))
+	randT := func(shape ...int) *tensor.Tensor {
+		x := tensor.New(shape...)
+		for i := range x.F32 {
+			x.F32[i] = float32(rng.NormFloat64())
+		}
+		return x
+	}
+	const c = 16
+	for _, tc := range []struct {
+		name        string
+		m           int
+		bias, pwAct bool
+		dwAct       string
+		stride, hw  int
+	}{
+		{"clip-clip-s1", 40, true, true, "Clip", 1, 20},
+		{"clip-clip-s2", 13, true, true, "Clip", 2, 23},
+		{"nobias-noact-relu-s2", 13, false, false, "Relu", 2, 20},
+		{"bias-relu-none-s1", 24, true, true, "", 1, 17},
+	} {
+		pwIn := []string{"x", "wp"}
+		dwIn := []string{"e", "wd"}
+		if tc.bias {
+			pwIn, dwIn = append(pwIn, "bp"), append(dwIn, "bd")
+		}
+		nodes := []*onnx.Node{nnNode("pw", "Conv", pwIn, []string{"z"})}
+		e := "z"
+		if tc.pwAct {
+			nodes = append(nodes, nnNode("a1", "Clip", []string{"z", "lo", "hi"}, []string{"e"}))
+			e = "e"
+		}
+		dwIn[0] = e
+		s := int64(tc.stride)
+		nodes = append(nodes, nnNode("dw", "Conv", dwIn, []string{"d"}, nnInts("pads", 1, 1, 1, 1), nnInts("strides", s, s), nnInt("group", int64(tc.m))))
+		switch tc.dwAct {
+		case "Clip":
+			nodes = append(nodes, nnNode("a2", "Clip", []string{"d", "lo", "hi"}, []string{"y"}))
+		case "Relu":
+			nodes = append(nodes, nnNode("a2", "Relu", []string{"d"}, []string{"y"}))
+		default:
+			nodes = append(nodes, nnNode("a2", "Identity", []string{"d"}, []string{"y"}))
+		}
+		init := map[string]*tensor.Tensor{
+			"wp": randT(tc.m, c, 1, 1), "bp": randT(tc.m), "wd": randT(tc.m, 1, 3, 3), "bd": randT(tc.m),
+			"lo": tensor.FromFloat32([]float32{0}), "hi": tensor.FromFloat32([]float32{1.5}),
+		}
+		g, err := Compile(nnGraphModel([]onnx.ValueInfo{nnIn("x", "n", c, tc.hw, tc.hw)}, []string{"y"}, init, nodes...))
+		if err != nil {
+			t.Fatal(err)
+		}
+		for _, batch := range []int{1, 3} {
+			x := randT(batch, c, tc.hw, tc.hw)
+			in := map[string]*tensor.Tensor{"x": x}
+			var outs [2]*tensor.Tensor
+			for i, keep := range [][]string{nil, {"z", e}} {
+				for rep := 0; rep < 2; rep++ { // the second pass reuses pooled buffers
+					p, err := g.Run(context.Background(), in, RunOptions{Keep: keep, WholeBatch: true})
+					if err != nil {
+						t.Fatalf("%s: %v", tc.name, err)
+					}
+					if want := i == 0; (p.pairs > 0) != want {
+						t.Fatalf("%s batch %d: %d pairs computed together, want them %v", tc.name, batch, p.pairs, want)
+					}
+					outs[i], _ = p.Value("y")
+				}
+			}
+			for i := range outs[0].F32 {
+				if math.Float32bits(outs[0].F32[i]) != math.Float32bits(outs[1].F32[i]) {
+					t.Fatalf("%s batch %d: y[%d] %v by blocks, %v layer by layer", tc.name, batch, i, outs[0].F32[i], outs[1].F32[i])
+				}
+			}
+		}
+	}
+}
