@@ -53,3 +53,29 @@ func TestMaxPlane3x3MatchesGeneral(t *testing.T) {
 		}
 	})
 }
+
+// TestMeanPlanes checks meanPlanes, four planes side by side, against
+// the plain per-plane float64 sum it replaces, bit for bit, for plane
+// counts on both sides of a multiple of four and several plane sizes.
+func TestMeanPlanes(t *testing.T) {
+	rng := rand.New(rand.NewPCG(12, 13))
+	for _, hw := range []int{1, 7, 49, 196} {
+		for planes := 0; planes <= 9; planes++ {
+			src := make([]float32, planes*hw)
+			for i := range src {
+				src[i] = float32(rng.NormFloat64() * 1e3)
+			}
+			got := make([]float32, planes)
+			meanPlanes(got, src, hw)
+			for p := range got {
+				var s float64
+				for _, v := range src[p*hw : (p+1)*hw] {
+					s += float64(v)
+				}
+				if want := float32(s / float64(hw)); math.Float32bits(got[p]) != math.Float32bits(want) {
+					t.Fatalf("hw %d, %d planes: plane %d mean %v, want %v", hw, planes, p, got[p], want)
+				}
+			}
+		}
+	}
+}
