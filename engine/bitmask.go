@@ -103,6 +103,7 @@ func (p *Pass) keepBits(v int, nd *node) bool {
 		p.bits = make([][]float32, len(p.g.names))
 	}
 	p.bits[v] = buf
+	p.liveBytes += 4 * int64(len(buf)) // held until Release, like kept values
 	return true
 }
 
