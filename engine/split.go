@@ -79,7 +79,12 @@ func (g *Graph) imageWiseNode(nd *node, opset int64) bool {
 		}
 		a := nd.src.Int("axis", def)
 		return a >= 1 || a == -1
-	case "Gemm":
+	case "Gemm": // a C with a row per image of the exported batch would not broadcast per image
+		if len(nd.in) > 2 && nd.in[2] >= 0 {
+			if c := g.consts[nd.in[2]]; c != nil && len(c.Shape) == 2 && c.Shape[0] != 1 {
+				return false
+			}
+		}
 		return nd.src.Int("transA", 0) == 0 && varying(0) && !varying(1) && !varying(2)
 	case "MatMul": // a B of rank 3 or more would broadcast over the batch
 		return varying(0) && !varying(1) && len(g.consts[nd.in[1]].Shape) <= 2

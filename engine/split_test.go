@@ -2,9 +2,11 @@ package engine
 
 import (
 	"context"
+	"math/rand"
 	"slices"
 	"testing"
 
+	"heedmap/onnx"
 	"heedmap/tensor"
 )
 
@@ -86,5 +88,64 @@ func TestSplitBatchMatchesWholeBatch(t *testing.T) {
 	t.Logf("split image by image: %v", splits)
 	if !splits["mobilenet_v2"] || splits["vit_b16"] {
 		t.Errorf("want MobileNetV2 split and ViT-B/16 not, got %v", splits)
+	}
+}
+
+// TestSplitRules builds one-layer graphs around a convolution (its few
+// weights are outweighed by the activations, so an image-wise graph is
+// split) and checks which Run takes image by image: a Relu or a Flatten
+// with axis 1 may follow; a Flatten with axis 2 (which folds the batch
+// into its first axis), a Gemm whose C has a row per exported image, and an Add
+// of a constant with a batch axis of 2 may not. Each result is also
+// compared with the whole batch's.
+func TestSplitRules(t *testing.T) {
+	rng := rand.New(rand.NewSource(13))
+	randT := func(shape ...int) *tensor.Tensor {
+		x := tensor.New(shape...)
+		for i := range x.F32 {
+			x.F32[i] = float32(rng.NormFloat64())
+		}
+		return x
+	}
+	conv := nnNode("c", "Conv", []string{"x", "w"}, []string{"a"}, nnInts("pads", 1, 1, 1, 1))
+	for _, tc := range []struct {
+		name  string
+		tail  []*onnx.Node
+		init  map[string]*tensor.Tensor
+		split bool
+	}{
+		{"relu", []*onnx.Node{nnNode("r", "Relu", []string{"a"}, []string{"y"})}, nil, true},
+		{"flatten1", []*onnx.Node{nnNode("f", "Flatten", []string{"a"}, []string{"y"})}, nil, true},
+		{"flatten2", []*onnx.Node{nnNode("f", "Flatten", []string{"a"}, []string{"y"}, nnInt("axis", 2))}, nil, false},
+		{"gemm-c-rows", []*onnx.Node{nnNode("f", "Flatten", []string{"a"}, []string{"fl"}), nnNode("g", "Gemm", []string{"fl", "gb", "gc"}, []string{"y"})},
+			map[string]*tensor.Tensor{"gb": randT(4*16*16, 3), "gc": randT(2, 3)}, false},
+		{"add-batch-const", []*onnx.Node{nnNode("p", "Add", []string{"a", "k"}, []string{"y"})},
+			map[string]*tensor.Tensor{"k": randT(2, 4, 16, 16)}, false},
+	} {
+		init := map[string]*tensor.Tensor{"w": randT(4, 4, 3, 3)}
+		for k, v := range tc.init {
+			init[k] = v
+		}
+		g, err := Compile(nnGraphModel([]onnx.ValueInfo{nnIn("x", "n", 4, 16, 16)}, []string{"y"}, init, append([]*onnx.Node{conv}, tc.tail...)...))
+		if err != nil {
+			t.Fatalf("%s: %v", tc.name, err)
+		}
+		in := map[string]*tensor.Tensor{"x": randT(2, 4, 16, 16)}
+		p, err := g.Run(context.Background(), in, RunOptions{})
+		if err != nil {
+			t.Fatalf("%s: %v", tc.name, err)
+		}
+		if got := p.parts != nil; got != tc.split {
+			t.Errorf("%s: split %v, want %v", tc.name, got, tc.split)
+		}
+		w, err := g.Run(context.Background(), in, RunOptions{WholeBatch: true})
+		if err != nil {
+			t.Fatalf("%s: %v", tc.name, err)
+		}
+		a, _ := p.Value("y")
+		b, _ := w.Value("y")
+		if !slices.Equal(a.Shape, b.Shape) || MaxRel(a.F32, b.F32) > 1e-5 {
+			t.Errorf("%s: %v %v against the whole batch's %v", tc.name, a.Shape, MaxRel(a.F32, b.F32), b.Shape)
+		}
 	}
 }
