@@ -26,13 +26,6 @@ func TestPointwiseDepthwiseExact(t *testing.T) {
 		t.Skip("the pair is taken on the AVX-512 path only")
 	}
 	rng := rand.New(rand.NewSource(11))
-	randT := func(shape ...int) *tensor.Tensor {
-		x := tensor.New(shape...)
-		for i := range x.F32 {
-			x.F32[i] = float32(rng.NormFloat64())
-		}
-		return x
-	}
 	const c = 16
 	for _, tc := range []struct {
 		name        string
@@ -69,7 +62,7 @@ func TestPointwiseDepthwiseExact(t *testing.T) {
 			nodes = append(nodes, nnNode("a2", "Identity", []string{"d"}, []string{"y"}))
 		}
 		init := map[string]*tensor.Tensor{
-			"wp": randT(tc.m, c, 1, 1), "bp": randT(tc.m), "wd": randT(tc.m, 1, 3, 3), "bd": randT(tc.m),
+			"wp": nnRand(rng, tc.m, c, 1, 1), "bp": nnRand(rng, tc.m), "wd": nnRand(rng, tc.m, 1, 3, 3), "bd": nnRand(rng, tc.m),
 			"lo": tensor.FromFloat32([]float32{0}), "hi": tensor.FromFloat32([]float32{1.5}),
 		}
 		g, err := Compile(nnGraphModel([]onnx.ValueInfo{nnIn("x", "n", c, tc.hw, tc.hw)}, []string{"y"}, init, nodes...))
@@ -77,7 +70,7 @@ func TestPointwiseDepthwiseExact(t *testing.T) {
 			t.Fatal(err)
 		}
 		for _, batch := range []int{1, 3} {
-			x := randT(batch, c, tc.hw, tc.hw)
+			x := nnRand(rng, batch, c, tc.hw, tc.hw)
 			in := map[string]*tensor.Tensor{"x": x}
 			var outs [2]*tensor.Tensor
 			for i, keep := range [][]string{nil, {"z", e}} {

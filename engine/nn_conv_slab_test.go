@@ -208,3 +208,37 @@ func matchActivated(got, want []float32, act actKind) (int, float32, bool) {
 	}
 	return 0, 0, true
 }
+
+// checkForwardEpilogues runs fc's forward with every fused activation,
+// with and without a random residual, against the reference operator rc's
+// output followed by the ONNX definitions of Add, Relu and Clip
+// (matchActivated), for case i.
+func checkForwardEpilogues(t *testing.T, i int, rng *rand.Rand, fc, rc *convOp, in []*tensor.Tensor) {
+	t.Helper()
+	want, err := rc.Forward(in)
+	if err != nil {
+		t.Fatal(err)
+	}
+	res := nnRand(rng, want[0].Shape...)
+	for _, act := range []actKind{actNone, actRelu, actClip} {
+		for _, withRes := range []bool{false, true} {
+			var r []float32
+			ref := want[0].F32
+			if withRes {
+				r = res.F32
+				ref = make([]float32, len(ref))
+				for j, v := range want[0].F32 {
+					ref[j] = v + r[j]
+				}
+			}
+			got, err := fc.forwardEp(in, r, act, -0.5, 0.75)
+			if err != nil {
+				t.Fatal(err)
+			}
+			if j, v, ok := matchActivated(got[0].F32, ref, act); !ok {
+				t.Fatalf("case %d act %d residual %v: y[%d] = %v, reference %v", i, act, withRes, j, got[0].F32[j], v)
+			}
+			fc.arena.put(got[0].F32)
+		}
+	}
+}

@@ -39,32 +39,7 @@ func TestConvWinogradMatchesReference(t *testing.T) {
 			t.Fatalf("case %d: Winograd path not taken", i)
 		}
 		in := []*tensor.Tensor{x, wt, bias}
-		want, err := rc.Forward(in)
-		if err != nil {
-			t.Fatal(err)
-		}
-		res := nnRand(rng, want[0].Shape...)
-		for _, act := range []actKind{actNone, actRelu, actClip} {
-			for _, withRes := range []bool{false, true} {
-				var r []float32
-				ref := want[0].F32
-				if withRes {
-					r = res.F32
-					ref = make([]float32, len(ref))
-					for j, v := range want[0].F32 {
-						ref[j] = v + r[j]
-					}
-				}
-				got, err := fc.forwardEp(in, r, act, -0.5, 0.75)
-				if err != nil {
-					t.Fatal(err)
-				}
-				if j, v, ok := matchActivated(got[0].F32, ref, act); !ok {
-					t.Fatalf("case %d act %d residual %v: y[%d] = %v, reference %v", i, act, withRes, j, got[0].F32[j], v)
-				}
-				fc.arena.put(got[0].F32)
-			}
-		}
+		checkForwardEpilogues(t, i, rng, fc, rc, in)
 		// The input gradient: the transposed convolution on the same path.
 		tg, ok := transposedGeom(s.g)
 		if !ok || !fc.useWinograd(tg, s.m, s.c) {

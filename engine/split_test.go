@@ -100,13 +100,6 @@ func TestSplitBatchMatchesWholeBatch(t *testing.T) {
 // compared with the whole batch's.
 func TestSplitRules(t *testing.T) {
 	rng := rand.New(rand.NewSource(13))
-	randT := func(shape ...int) *tensor.Tensor {
-		x := tensor.New(shape...)
-		for i := range x.F32 {
-			x.F32[i] = float32(rng.NormFloat64())
-		}
-		return x
-	}
 	conv := nnNode("c", "Conv", []string{"x", "w"}, []string{"a"}, nnInts("pads", 1, 1, 1, 1))
 	for _, tc := range []struct {
 		name  string
@@ -118,11 +111,11 @@ func TestSplitRules(t *testing.T) {
 		{"flatten1", []*onnx.Node{nnNode("f", "Flatten", []string{"a"}, []string{"y"})}, nil, true},
 		{"flatten2", []*onnx.Node{nnNode("f", "Flatten", []string{"a"}, []string{"y"}, nnInt("axis", 2))}, nil, false},
 		{"gemm-c-rows", []*onnx.Node{nnNode("f", "Flatten", []string{"a"}, []string{"fl"}), nnNode("g", "Gemm", []string{"fl", "gb", "gc"}, []string{"y"})},
-			map[string]*tensor.Tensor{"gb": randT(4*16*16, 3), "gc": randT(2, 3)}, false},
+			map[string]*tensor.Tensor{"gb": nnRand(rng, 4*16*16, 3), "gc": nnRand(rng, 2, 3)}, false},
 		{"add-batch-const", []*onnx.Node{nnNode("p", "Add", []string{"a", "k"}, []string{"y"})},
-			map[string]*tensor.Tensor{"k": randT(2, 4, 16, 16)}, false},
+			map[string]*tensor.Tensor{"k": nnRand(rng, 2, 4, 16, 16)}, false},
 	} {
-		init := map[string]*tensor.Tensor{"w": randT(4, 4, 3, 3)}
+		init := map[string]*tensor.Tensor{"w": nnRand(rng, 4, 4, 3, 3)}
 		for k, v := range tc.init {
 			init[k] = v
 		}
@@ -130,7 +123,7 @@ func TestSplitRules(t *testing.T) {
 		if err != nil {
 			t.Fatalf("%s: %v", tc.name, err)
 		}
-		in := map[string]*tensor.Tensor{"x": randT(2, 4, 16, 16)}
+		in := map[string]*tensor.Tensor{"x": nnRand(rng, 2, 4, 16, 16)}
 		p, err := g.Run(context.Background(), in, RunOptions{})
 		if err != nil {
 			t.Fatalf("%s: %v", tc.name, err)
