@@ -63,6 +63,7 @@ type Graph struct {
 
 	imageWise  bool
 	constBytes int64
+	splitFloor int64    // see splitFloorBytes; tests lower it
 	splitPlans sync.Map // string → bool
 }
 
@@ -260,6 +261,7 @@ func Compile(m *onnx.Model, opts ...Option) (*Graph, error) {
 	g.fusion = planFusion(g)
 	planBitMasks(g)
 	g.planImageWise(opset)
+	g.splitFloor = splitFloorBytes
 	return g, nil
 }
 

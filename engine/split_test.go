@@ -25,6 +25,7 @@ func TestSplitBatchMatchesWholeBatch(t *testing.T) {
 	for _, name := range []string{"resnet18", "mobilenet_v2", "mobilenet_v3", "efficientnet_b0", "densenet121", "inception_v3", "convnext_tiny", "vit_b16"} {
 		t.Run(name, func(t *testing.T) {
 			n := loadCompactNet(t, name)
+			n.g.splitFloor = 0 // the compact nets' 64×64 images are below the floor
 			in := map[string]*tensor.Tensor{n.meta.Input: n.x}
 			run := func(opt RunOptions, x map[string]*tensor.Tensor) (*Pass, map[string]*tensor.Tensor) {
 				opt.Backward, opt.Keep = true, []string{n.meta.Layer}
@@ -123,6 +124,7 @@ func TestSplitRules(t *testing.T) {
 		if err != nil {
 			t.Fatalf("%s: %v", tc.name, err)
 		}
+		g.splitFloor = 0
 		in := map[string]*tensor.Tensor{"x": nnRand(rng, 2, 4, 16, 16)}
 		p, err := g.Run(context.Background(), in, RunOptions{})
 		if err != nil {
@@ -139,6 +141,33 @@ func TestSplitRules(t *testing.T) {
 		b, _ := w.Value("y")
 		if !slices.Equal(a.Shape, b.Shape) || MaxRel(a.F32, b.F32) > 1e-5 {
 			t.Errorf("%s: %v %v against the whole batch's %v", tc.name, a.Shape, MaxRel(a.F32, b.F32), b.Shape)
+		}
+	}
+}
+
+// TestSplitFloor checks that a graph whose images produce less than
+// splitFloorBytes keeps its batches, and takes them image by image once
+// the same graph's images are large enough.
+func TestSplitFloor(t *testing.T) {
+	rng := rand.New(rand.NewSource(14))
+	init := map[string]*tensor.Tensor{"w": nnRand(rng, 4, 4, 3, 3)}
+	g, err := Compile(nnGraphModel([]onnx.ValueInfo{nnIn("x", "n", 4, "h", "w")}, []string{"y"}, init,
+		nnNode("c", "Conv", []string{"x", "w"}, []string{"a"}, nnInts("pads", 1, 1, 1, 1)),
+		nnNode("r", "Relu", []string{"a"}, []string{"y"})))
+	if err != nil {
+		t.Fatal(err)
+	}
+	// Two 4-channel maps a side: 32·side² bytes produced per image.
+	for _, tc := range []struct {
+		side  int
+		split bool
+	}{{16, false}, {400, true}} {
+		p, err := g.Run(context.Background(), map[string]*tensor.Tensor{"x": nnRand(rng, 2, 4, tc.side, tc.side)}, RunOptions{})
+		if err != nil {
+			t.Fatal(err)
+		}
+		if got := p.parts != nil; got != tc.split {
+			t.Errorf("%d×%d images (%d bytes each): split %v, want %v", tc.side, tc.side, 32*tc.side*tc.side, got, tc.split)
 		}
 	}
 }
