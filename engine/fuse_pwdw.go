@@ -69,6 +69,9 @@ func planPointwiseDepthwise(g *Graph, fp *fusionPlan) map[int]*pwdwPair {
 		if _, ok := dw.op.(*convOp); !ok || len(dw.in) < 2 || dw.in[0] != pr.v || !weightsConst(g, nd) || !weightsConst(g, dw) {
 			continue
 		}
+		if _, ok := fp.resid[pr.dw]; ok {
+			continue // the depthwise output feeds an Add: runPending takes no residual
+		}
 		pairs[k] = pr
 	}
 	return pairs

@@ -38,6 +38,7 @@ func TestPointwiseDepthwiseExact(t *testing.T) {
 		{"clip-clip-s2", 13, true, true, "Clip", 2, 23},
 		{"nobias-noact-relu-s2", 13, false, false, "Relu", 2, 20},
 		{"bias-relu-none-s1", 24, true, true, "", 1, 17},
+		{"residual-s1", 24, true, true, "Add", 1, 17},
 	} {
 		pwIn := []string{"x", "wp"}
 		dwIn := []string{"e", "wd"}
@@ -58,12 +59,15 @@ func TestPointwiseDepthwiseExact(t *testing.T) {
 			nodes = append(nodes, nnNode("a2", "Clip", []string{"d", "lo", "hi"}, []string{"y"}))
 		case "Relu":
 			nodes = append(nodes, nnNode("a2", "Relu", []string{"d"}, []string{"y"}))
+		case "Add": // a residual chain on the depthwise layer: the pair is not taken
+			nodes = append(nodes, nnNode("a2", "Add", []string{"d", "r"}, []string{"y"}))
 		default:
 			nodes = append(nodes, nnNode("a2", "Identity", []string{"d"}, []string{"y"}))
 		}
 		init := map[string]*tensor.Tensor{
 			"wp": nnRand(rng, tc.m, c, 1, 1), "bp": nnRand(rng, tc.m), "wd": nnRand(rng, tc.m, 1, 3, 3), "bd": nnRand(rng, tc.m),
 			"lo": tensor.FromFloat32([]float32{0}), "hi": tensor.FromFloat32([]float32{1.5}),
+			"r": nnRand(rng, 1, tc.m, (tc.hw-1)/tc.stride+1, (tc.hw-1)/tc.stride+1),
 		}
 		g, err := Compile(nnGraphModel([]onnx.ValueInfo{nnIn("x", "n", c, tc.hw, tc.hw)}, []string{"y"}, init, nodes...))
 		if err != nil {
@@ -79,7 +83,7 @@ func TestPointwiseDepthwiseExact(t *testing.T) {
 					if err != nil {
 						t.Fatalf("%s: %v", tc.name, err)
 					}
-					if want := i == 0; (p.pairs > 0) != want {
+					if want := i == 0 && tc.dwAct != "Add"; (p.pairs > 0) != want {
 						t.Fatalf("%s batch %d: %d pairs computed together, want them %v", tc.name, batch, p.pairs, want)
 					}
 					outs[i], _ = p.Value("y")
