@@ -77,6 +77,8 @@ func (g *Graph) imageWiseNode(nd *node, opset int64) bool {
 		}
 	}
 	switch op {
+	case "MaxPool": // its optional indices count positions across the whole batch
+		return len(nd.out) < 2 || nd.out[1] < 0
 	case "Concat":
 		a := nd.src.Int("axis", 0)
 		return a >= 1 || a == -1

@@ -94,11 +94,12 @@ func TestSplitBatchMatchesWholeBatch(t *testing.T) {
 
 // TestSplitRules builds one-layer graphs around a convolution (its few
 // weights are outweighed by the activations, so an image-wise graph is
-// split) and checks which Run takes image by image: a Relu or a Flatten
-// with axis 1 may follow; a Flatten with axis 2 (which folds the batch
-// into its first axis), a Gemm whose C has a row per exported image, and an Add
-// of a constant with a batch axis of 2 may not. Each result is also
-// compared with the whole batch's.
+// split) and checks which Run takes image by image: a Relu, a MaxPool or
+// a Flatten with axis 1 may follow; a MaxPool with indices (ONNX counts
+// them across the batch), a Flatten with axis 2 (which folds the batch
+// into its first axis), a Gemm whose C has a row per exported image, and
+// an Add of a constant with a batch axis of 2 may not. Each result is
+// also compared with the whole batch's.
 func TestSplitRules(t *testing.T) {
 	rng := rand.New(rand.NewSource(13))
 	conv := nnNode("c", "Conv", []string{"x", "w"}, []string{"a"}, nnInts("pads", 1, 1, 1, 1))
@@ -111,6 +112,8 @@ func TestSplitRules(t *testing.T) {
 		{"relu", []*onnx.Node{nnNode("r", "Relu", []string{"a"}, []string{"y"})}, nil, true},
 		{"flatten1", []*onnx.Node{nnNode("f", "Flatten", []string{"a"}, []string{"y"})}, nil, true},
 		{"flatten2", []*onnx.Node{nnNode("f", "Flatten", []string{"a"}, []string{"y"}, nnInt("axis", 2))}, nil, false},
+		{"maxpool", []*onnx.Node{nnNode("m", "MaxPool", []string{"a"}, []string{"y"}, nnInts("kernel_shape", 2, 2))}, nil, true},
+		{"maxpool-indices", []*onnx.Node{nnNode("m", "MaxPool", []string{"a"}, []string{"y", "idx"}, nnInts("kernel_shape", 2, 2))}, nil, false},
 		{"gemm-c-rows", []*onnx.Node{nnNode("f", "Flatten", []string{"a"}, []string{"fl"}), nnNode("g", "Gemm", []string{"fl", "gb", "gc"}, []string{"y"})},
 			map[string]*tensor.Tensor{"gb": nnRand(rng, 4*16*16, 3), "gc": nnRand(rng, 2, 3)}, false},
 		{"add-batch-const", []*onnx.Node{nnNode("p", "Add", []string{"a", "k"}, []string{"y"})},
