@@ -1,7 +1,6 @@
 package engine
 
 import (
-	"math"
 	"unsafe"
 
 	"heedmap/kernel"
@@ -61,7 +60,7 @@ func (p *Pass) maskTest(nd *node) (lo, span uint32, ok bool) {
 	}
 	c, isClip := nd.op.(*clipOp)
 	if !isClip {
-		return 1, 0x7f800000, true // y > 0, as reluMask
+		return reluLo, reluSpan, true
 	}
 	in := make([]*tensor.Tensor, len(nd.in))
 	for i, v := range nd.in {
@@ -69,19 +68,11 @@ func (p *Pass) maskTest(nd *node) (lo, span uint32, ok bool) {
 			in[i] = p.vals[v]
 		}
 	}
-	l64, h64, err := c.bounds(in)
+	l, h, err := c.bounds(in)
 	if err != nil {
 		return 0, 0, false
 	}
-	l, h := float32(l64), float32(h64)
-	if l == 0 {
-		l = 0 // −0 as +0, as clipMask
-	}
-	lb, hb := math.Float32bits(l), math.Float32bits(h)
-	if lb>>31 != 0 || hb>>31 != 0 || !(h > l) {
-		return 0, 0, false
-	}
-	return lb + 1, hb - lb - 1, true
+	return clipRange(l, h)
 }
 
 // keepBits replaces value v, the output of node nd, by its mask bits if

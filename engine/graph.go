@@ -54,13 +54,12 @@ type Graph struct {
 	team *team
 	// fusion lists the Conv→activation pairs Run may fuse (fuse.go).
 	fusion *fusionPlan
+	// bitMask[v]: a backward pass may keep v as mask bits (bitmask.go).
+	bitMask []bool
 	// imageWise: every executed node computes each image of a batch on
 	// its own, so Run may take a batch image by image (split.go).
 	// constBytes totals the constants; splitPlans caches, per per-image
 	// input shape, whether Run does.
-	// bitMask[v]: a backward pass may keep v as mask bits (bitmask.go).
-	bitMask []bool
-
 	imageWise  bool
 	constBytes int64
 	splitFloor int64    // see splitFloorBytes; tests lower it

@@ -144,9 +144,28 @@ func (u *unaryOp) grad(dst, g []float32, x, y *tensor.Tensor) {
 // fuse in backward runs too: the pre-activation is then never kept. Long
 // slices are split over the cores.
 func reluMask(tm *team, dst, g, y []float32) {
-	// y > 0 iff its bits, less one, lie below +Inf's (0 and negatives
-	// wrap around, NaNs lie above).
-	maskBits(tm, dst, g, y, 1, 0x7f800000)
+	maskBits(tm, dst, g, y, reluLo, reluSpan)
+}
+
+// reluLo and reluSpan are ReLU's gradient test as maskBits takes it: y > 0
+// iff its bits, less one, lie below +Inf's (0 and negatives wrap around,
+// NaNs lie above).
+const reluLo, reluSpan = 1, 0x7f800000
+
+// clipRange returns Clip's gradient test lo < y < hi as maskBits takes it
+// (bits(y) − lo′ < span′, unsigned), compared in float32 as Forward
+// clamps; ok is false when a bound is negative or the interval empty,
+// where no such test exists.
+func clipRange(lo, hi float64) (lo2, span uint32, ok bool) {
+	l, h := float32(lo), float32(hi)
+	if l == 0 {
+		l = 0 // −0 as +0: y > −0 iff y > +0
+	}
+	lb, hb := math.Float32bits(l), math.Float32bits(h)
+	if lb>>31 != 0 || hb>>31 != 0 || !(h > l) {
+		return 0, 0, false
+	}
+	return lb + 1, hb - lb - 1, true
 }
 
 // maskBits writes dst[i] = g[i] where bits(y[i]) − lo < span (unsigned)
@@ -408,16 +427,13 @@ func (c *clipOp) backwardInPlace(in, out []*tensor.Tensor, g *tensor.Tensor) ([]
 // to, over equal-length slices the compiler keeps free of bounds checks.
 // Long slices are split over the cores.
 func clipMask(tm *team, dst, g, y []float32, lo, hi float64) {
-	l, h := float32(lo), float32(hi)
-	if l == 0 {
-		l = 0 // −0 as +0: y > −0 iff y > +0
-	}
-	if lb, hb := math.Float32bits(l), math.Float32bits(h); lb>>31 == 0 && hb>>31 == 0 && h > l {
+	if r0, span, ok := clipRange(lo, hi); ok {
 		// Non-negative bounds (ReLU6 and most clips): one unsigned range
 		// test on the bits.
-		maskBits(tm, dst, g, y, lb+1, hb-lb-1)
+		maskBits(tm, dst, g, y, r0, span)
 		return
 	}
+	l, h := float32(lo), float32(hi)
 	n := len(y)
 	tm.split(n, n, func(i0, i1 int) {
 		ys, gs, ds := y[i0:i1], g[i0:i1], dst[i0:i1]

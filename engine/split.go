@@ -164,7 +164,7 @@ func (g *Graph) splitBatch(inputs map[string]*tensor.Tensor, opt RunOptions) int
 	return n
 }
 
-// imageKey names the per-image input shapes, the key of Graph.perImage.
+// imageKey names the per-image input shapes, the key of Graph.splitPlans.
 func (g *Graph) imageKey(inputs map[string]*tensor.Tensor) string {
 	var b strings.Builder
 	for _, vi := range g.inputs {
@@ -211,8 +211,8 @@ func (g *Graph) broadcastsPerImage(p *Pass) bool {
 var elementwiseOps = map[string]bool{"Add": true, "Sub": true, "Mul": true, "Div": true, "Max": true, "Min": true, "Pow": true, "PRelu": true}
 
 // runSplit runs a batch of n images image by image when the graph allows
-// it and one image's activations outweigh the graph's constants, else as
-// one pass. Both are decided once per per-image input shape, on a pass of
+// it and one image's activations outweigh the graph's constants and
+// splitFloor, else as one pass. Both are decided once per per-image input shape, on a pass of
 // the batch's first image, which is kept as that image's part when the
 // batch is split and dropped otherwise.
 func (g *Graph) runSplit(ctx context.Context, inputs map[string]*tensor.Tensor, opt RunOptions, n int) (*Pass, error) {
@@ -281,8 +281,8 @@ func (p *Pass) joinedValue(v int) (*tensor.Tensor, bool) {
 			return nil, false
 		}
 	}
-	t, err := joinImages(ts)
-	if err != nil {
+	t := joinImages(ts)
+	if t == nil {
 		return nil, false
 	}
 	p.vals[v] = t
@@ -301,25 +301,26 @@ func (p *Pass) joinedShape(v int) ([]int, bool) {
 	return append([]int{len(p.parts) * s[0]}, s[1:]...), true
 }
 
-// joinImages concatenates single-image tensors along the batch axis.
-func joinImages(ts []*tensor.Tensor) (*tensor.Tensor, error) {
+// joinImages concatenates single-image tensors along the batch axis, or
+// returns nil for scalars, which have none.
+func joinImages(ts []*tensor.Tensor) *tensor.Tensor {
 	s := ts[0].Shape
 	if len(s) == 0 {
-		return nil, fmt.Errorf("a scalar has no batch axis")
+		return nil
 	}
-	shape := append([]int{0}, s[1:]...)
-	for _, t := range ts {
-		if t.DType != ts[0].DType || len(t.Shape) != len(s) {
-			return nil, fmt.Errorf("parts of different types or ranks")
+	out := &tensor.Tensor{DType: ts[0].DType, Shape: append([]int{len(ts) * s[0]}, s[1:]...)}
+	if out.DType == tensor.Float32 {
+		out.F32 = make([]float32, 0, len(ts)*len(ts[0].F32))
+		for _, t := range ts {
+			out.F32 = append(out.F32, t.F32...)
 		}
-		shape[0] += t.Shape[0]
+	} else {
+		out.I64 = make([]int64, 0, len(ts)*len(ts[0].I64))
+		for _, t := range ts {
+			out.I64 = append(out.I64, t.I64...)
+		}
 	}
-	out := &tensor.Tensor{DType: ts[0].DType, Shape: shape}
-	for _, t := range ts {
-		out.F32 = append(out.F32, t.F32...)
-		out.I64 = append(out.I64, t.I64...)
-	}
-	return out, nil
+	return out
 }
 
 // splitBackward is Backward for a pass run image by image: each part's
