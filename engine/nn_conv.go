@@ -77,8 +77,8 @@ func buildConv(n *onnx.Node, env *Env) (Op, error) {
 	if len(n.Inputs) < 2 {
 		return nil, fmt.Errorf("Conv needs X and W, got %d inputs", len(n.Inputs))
 	}
-	op := &convOp{win: w, group: int(g), gemm: env.GEMM, arena: env.arena, team: env.team}
-	if p, ok := env.GEMM.(*kernel.Packed); ok {
+	op := &convOp{win: w, group: int(g), gemm: onTeam(env.GEMM, env.team), arena: env.arena, team: env.team}
+	if p, ok := baseGEMM(env.GEMM).(*kernel.Packed); ok {
 		if p1, err := kernel.New(kernel.Options{ISA: p.ISA(), Threads: 1}); err == nil {
 			op.gemm1 = p1
 		}

@@ -31,7 +31,7 @@ func buildGemm(n *onnx.Node, env *Env) (Op, error) {
 		transB: n.Int("transB", 0) != 0,
 		alpha:  n.Float("alpha", 1),
 		beta:   n.Float("beta", 1),
-		gemm:   env.GEMM,
+		gemm:   onTeam(env.GEMM, env.team),
 	}, nil
 }
 
@@ -198,7 +198,7 @@ func buildMatMul(n *onnx.Node, env *Env) (Op, error) {
 	if len(n.Inputs) != 2 {
 		return nil, fmt.Errorf("MatMul needs 2 inputs, got %d", len(n.Inputs))
 	}
-	return &matMulOp{gemm: env.GEMM}, nil
+	return &matMulOp{gemm: onTeam(env.GEMM, env.team)}, nil
 }
 
 // matMulPlan is the resolved broadcast problem.

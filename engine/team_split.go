@@ -27,3 +27,13 @@ func (tm *team) split(n, work int, f func(i0, i1 int)) {
 		return nil
 	})
 }
+
+// Run runs task(0) … task(tasks−1) on the team (kernel.Runner), so a
+// packed GEMM's slabs use the team's helpers instead of goroutines it
+// would start per call.
+func (tm *team) Run(tasks int, task func(t int)) {
+	tm.run([]int{tasks}, func(_, t int) error {
+		task(t)
+		return nil
+	})
+}

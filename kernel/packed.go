@@ -214,6 +214,22 @@ func (g *Packed) conf() *config {
 // a violation panics with a message naming the argument, like the reference
 // BLAS's XERBLA (the GEMM interface has no error result).
 func (g *Packed) Sgemm(transA, transB bool, m, n, k int, alpha float32, a []float32, lda int, b []float32, ldb int, beta float32, c []float32, ldc int) {
+	g.SgemmOn(nil, transA, transB, m, n, k, alpha, a, lda, b, ldb, beta, c, ldc)
+}
+
+// Runner runs task(0) … task(tasks−1), possibly concurrently, and returns
+// once all of them have returned.
+type Runner interface {
+	Run(tasks int, task func(t int))
+}
+
+// SgemmOn is Sgemm with the slabs of a parallel product run by r, for a
+// caller that keeps helper goroutines of its own (a thread team): Sgemm
+// starts fresh goroutines for every call, which then wait for a core
+// that the caller's idle helpers are still spinning on. A nil r is
+// Sgemm. The result does not depend on r: each slab of C is computed by
+// one task, in the same order of operations.
+func (g *Packed) SgemmOn(r Runner, transA, transB bool, m, n, k int, alpha float32, a []float32, lda int, b []float32, ldb int, beta float32, c []float32, ldc int) {
 	checkArgs(transA, transB, m, n, k, a, lda, b, ldb, c, ldc)
 	if m == 0 || n == 0 {
 		return
@@ -233,7 +249,7 @@ func (g *Packed) Sgemm(transA, transB bool, m, n, k int, alpha float32, a []floa
 		g.pool.Put(ws)
 		return
 	}
-	g.parallel(threads, transA, transB, m, n, k, alpha, a, lda, b, ldb, beta, c, ldc)
+	g.parallel(r, threads, transA, transB, m, n, k, alpha, a, lda, b, ldb, beta, c, ldc)
 }
 
 // PanelWidth is the column count nr of the packed B panels SgemmPanels
@@ -280,7 +296,7 @@ func (g *Packed) SgemmPanels(m, n, k int, a []float32, lda int, panels []float32
 // read in place); that repeated packing is small next to the slab's
 // multiply. No two slabs share any part of C, so only the final wait
 // synchronises.
-func (g *Packed) parallel(threads int, transA, transB bool, m, n, k int, alpha float32, a []float32, lda int, b []float32, ldb int, beta float32, c []float32, ldc int) {
+func (g *Packed) parallel(r Runner, threads int, transA, transB bool, m, n, k int, alpha float32, a []float32, lda int, b []float32, ldb int, beta float32, c []float32, ldc int) {
 	cfg := g.conf()
 	mTiles := (m + cfg.mr - 1) / cfg.mr
 	nTiles := (n + cfg.nr - 1) / cfg.nr
@@ -307,6 +323,16 @@ func (g *Packed) parallel(threads int, transA, transB bool, m, n, k int, alpha f
 	j.alpha, j.a, j.lda, j.b, j.ldb, j.beta, j.c, j.ldc = alpha, a, lda, b, ldb, beta, c, ldc
 	j.splitN, j.tiles, j.unit, j.slabs = splitN, tiles, unit, slabs
 	j.next.Store(0)
+	if r != nil {
+		r.Run(slabs, func(s int) {
+			ws := g.get()
+			j.slab(ws, s)
+			g.pool.Put(ws)
+		})
+		j.a, j.b, j.c = nil, nil, nil
+		g.jobs.Put(j)
+		return
+	}
 	j.wg.Add(threads - 1)
 	for t := 1; t < threads; t++ {
 		go j.helper()
@@ -347,31 +373,36 @@ func (j *parJob) work() {
 		if s >= j.slabs {
 			return
 		}
-		lo := j.tiles * s / j.slabs * j.unit
-		hi := j.tiles * (s + 1) / j.slabs * j.unit
-		sa, sb, sc := j.a, j.b, j.c
-		sm, sn := j.m, j.n
-		if j.splitN {
-			hi = min(hi, j.n)
-			sn = hi - lo
-			if j.transB {
-				sb = j.b[lo*j.ldb:]
-			} else {
-				sb = j.b[lo:]
-			}
-			sc = j.c[lo:]
-		} else {
-			hi = min(hi, j.m)
-			sm = hi - lo
-			if j.transA {
-				sa = j.a[lo:]
-			} else {
-				sa = j.a[lo*j.lda:]
-			}
-			sc = j.c[lo*j.ldc:]
-		}
-		g.run(ws, j.transA, j.transB, sm, sn, j.k, j.alpha, sa, j.lda, sb, j.ldb, j.beta, sc, j.ldc, nil)
+		j.slab(ws, s)
 	}
+}
+
+// slab computes slab s of C.
+func (j *parJob) slab(ws *workspace, s int) {
+	lo := j.tiles * s / j.slabs * j.unit
+	hi := j.tiles * (s + 1) / j.slabs * j.unit
+	sa, sb, sc := j.a, j.b, j.c
+	sm, sn := j.m, j.n
+	if j.splitN {
+		hi = min(hi, j.n)
+		sn = hi - lo
+		if j.transB {
+			sb = j.b[lo*j.ldb:]
+		} else {
+			sb = j.b[lo:]
+		}
+		sc = j.c[lo:]
+	} else {
+		hi = min(hi, j.m)
+		sm = hi - lo
+		if j.transA {
+			sa = j.a[lo:]
+		} else {
+			sa = j.a[lo*j.lda:]
+		}
+		sc = j.c[lo*j.ldc:]
+	}
+	j.g.run(ws, j.transA, j.transB, sm, sn, j.k, j.alpha, sa, j.lda, sb, j.ldb, j.beta, sc, j.ldc, nil)
 }
 
 func (g *Packed) get() *workspace {

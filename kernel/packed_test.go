@@ -6,6 +6,8 @@ import (
 	"math/rand/v2"
 	"os"
 	"strings"
+	"sync"
+	"sync/atomic"
 	"testing"
 )
 
@@ -44,6 +46,9 @@ func paths(t testing.TB) []path {
 				t.Fatal(err)
 			}
 			ps = append(ps, path{fmt.Sprintf("%v/t%d", isa, th), g})
+			if th == 2 {
+				ps = append(ps, path{fmt.Sprintf("%v/t2/runner", isa), onRunner{g, &reverseRunner{}}})
+			}
 		}
 	}
 	ps = append(ps, path{"best", Best()}, path{"zero", new(Packed)})
@@ -264,6 +269,11 @@ func TestSgemmSteadyStateAllocs(t *testing.T) {
 	m, n, k := 96, 160, 300
 	a, b, c := newMat(r, m, k, 0), newMat(r, k, n, 0), newMat(r, m, n, 0)
 	for _, p := range paths(t) {
+		if o, ok := p.g.(onRunner); ok {
+			// The path's runner starts goroutines; SgemmOn's own cost
+			// is measured with one that does not.
+			p.g = onRunner{o.p, inOrder{}}
+		}
 		limit := 0.0
 		if !strings.HasSuffix(p.name, "/t1") {
 			limit = 1
@@ -318,6 +328,90 @@ func TestSgemmConcurrentUse(t *testing.T) {
 		for w := 0; w < workers; w++ {
 			if err := <-errs; err != nil {
 				t.Fatalf("%s: %v", p.name, err)
+			}
+		}
+	}
+}
+
+// onRunner is a GEMM whose products run on a Runner (Packed.SgemmOn).
+type onRunner struct {
+	p *Packed
+	r Runner
+}
+
+func (o onRunner) Sgemm(transA, transB bool, m, n, k int, alpha float32, a []float32, lda int, b []float32, ldb int, beta float32, c []float32, ldc int) {
+	o.p.SgemmOn(o.r, transA, transB, m, n, k, alpha, a, lda, b, ldb, beta, c, ldc)
+}
+
+// reverseRunner runs the tasks of a call concurrently, starting them last
+// to first, and counts the calls and tasks it was given.
+type reverseRunner struct {
+	calls, tasks atomic.Int64
+}
+
+func (r *reverseRunner) Run(tasks int, task func(t int)) {
+	r.calls.Add(1)
+	r.tasks.Add(int64(tasks))
+	var wg sync.WaitGroup
+	for t := tasks - 1; t >= 0; t-- {
+		wg.Add(1)
+		go func() {
+			defer wg.Done()
+			task(t)
+		}()
+	}
+	wg.Wait()
+}
+
+// inOrder runs the tasks one after another on the caller's goroutine.
+type inOrder struct{}
+
+func (inOrder) Run(tasks int, task func(t int)) {
+	for t := range tasks {
+		task(t)
+	}
+}
+
+// TestSgemmOnRunner checks that SgemmOn hands a parallel product's slabs
+// to the runner, and that the result is bit for bit Sgemm's with the same
+// thread count (each slab of C is computed alike whoever runs it).
+func TestSgemmOnRunner(t *testing.T) {
+	r := rand.New(rand.NewPCG(15, 16))
+	for _, isa := range []ISA{ISAPortable, ISAAVX2, ISAAVX512} {
+		if !Supported(isa) {
+			continue
+		}
+		g, err := New(Options{ISA: isa, Threads: 2})
+		if err != nil {
+			t.Fatal(err)
+		}
+		for _, s := range []shape{{33, 1000, 40}, {600, 20, 100}, {257, 257, 257}} {
+			for _, tA := range []bool{false, true} {
+				for _, tB := range []bool{false, true} {
+					ar, ac := s.m, s.k
+					if tA {
+						ar, ac = ac, ar
+					}
+					br, bc := s.k, s.n
+					if tB {
+						br, bc = bc, br
+					}
+					a, b := newMat(r, ar, ac, 1), newMat(r, br, bc, 2)
+					c0 := newMat(r, s.m, s.n, 0)
+					want := append([]float32(nil), c0.v...)
+					got := append([]float32(nil), c0.v...)
+					g.Sgemm(tA, tB, s.m, s.n, s.k, 0.5, a.v, a.ld, b.v, b.ld, 0.25, want, c0.ld)
+					var run reverseRunner
+					g.SgemmOn(&run, tA, tB, s.m, s.n, s.k, 0.5, a.v, a.ld, b.v, b.ld, 0.25, got, c0.ld)
+					if run.calls.Load() != 1 || run.tasks.Load() < 2 {
+						t.Fatalf("%v %v tA=%v tB=%v: runner got %d calls, %d tasks; want 1 call of several tasks", isa, s, tA, tB, run.calls.Load(), run.tasks.Load())
+					}
+					for i := range want {
+						if math.Float32bits(got[i]) != math.Float32bits(want[i]) {
+							t.Fatalf("%v %v tA=%v tB=%v: C[%d] = %v on the runner, %v from Sgemm", isa, s, tA, tB, i, got[i], want[i])
+						}
+					}
+				}
 			}
 		}
 	}
