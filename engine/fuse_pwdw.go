@@ -237,10 +237,10 @@ func (dw *convOp) forwardAfterPointwise(pw *convOp, x, wp *tensor.Tensor, pwEp *
 		xi := x.F32[n*k*hw : (n+1)*k*hw]
 		yi := y.F32[n*m*ohw : (n+1)*m*ohw]
 		dw.team.split(blocks, blocks*pwdwBlock*(hw*k+ohw*taps), func(b0, b1 int) {
-			sb := poolBuf(&dw.blockBufs, pwdwBlock*hw)
-			defer dw.blockBufs.Put(sb)
-			db := poolBuf(&dw.slabBufs, plan.DepthwiseScratch())
-			defer dw.slabBufs.Put(db)
+			sb := dw.scr.get(pwdwBlock * hw)
+			defer dw.scr.put(sb)
+			db := dw.scr.get(plan.DepthwiseScratch())
+			defer dw.scr.put(db)
 			for b := b0; b < b1; b++ {
 				m0, m1 := b*pwdwBlock, min(m, (b+1)*pwdwBlock)
 				mb := m1 - m0

@@ -52,6 +52,9 @@ type Graph struct {
 	// team runs the graph's parallel loops: its operators' (through Env)
 	// and Backward's gradient sums.
 	team *team
+	// scratch lends work buffers to all of the graph's operators
+	// (scratch.go).
+	scratch *scratch
 	// fusion lists the Conv→activation pairs Run may fuse (fuse.go).
 	fusion *fusionPlan
 	// bitMask[v]: a backward pass may keep v as mask bits (bitmask.go).
@@ -146,8 +149,8 @@ func Compile(m *onnx.Model, opts ...Option) (*Graph, error) {
 	// Build every supported node, collecting all problems before failing.
 	var unsupported, rejected []string
 	g.arena = newArena()
-	g.team = newTeam()
-	env := &Env{GEMM: cfg.gemm, Opset: opset, arena: g.arena, team: g.team}
+	g.team, g.scratch = newTeam(), new(scratch)
+	env := &Env{GEMM: cfg.gemm, Opset: opset, arena: g.arena, team: g.team, scratch: g.scratch}
 	built := make([]Op, len(order))
 	for k, n := range order {
 		if n.Domain != "" && n.Domain != "ai.onnx" {

@@ -429,7 +429,7 @@ func (p *incPlan) unpadded(src *onnx.Node, inputs []string, gemm kernel.GEMM) (O
 	if !ok {
 		return nil, fmt.Errorf("no operator %s", src.OpType)
 	}
-	return b(clone, &Env{GEMM: gemm, Opset: p.opset(), team: p.team})
+	return b(clone, &Env{GEMM: gemm, Opset: p.opset(), team: p.team, scratch: p.g.scratch})
 }
 
 func (p *incPlan) opset() int64 {

@@ -2,7 +2,6 @@ package engine
 
 import (
 	"fmt"
-	"sync"
 
 	"heedmap/kernel"
 	"heedmap/onnx"
@@ -22,10 +21,10 @@ type convOp struct {
 	win   windowAttrs
 	group int
 	gemm  kernel.GEMM
-	// cols recycles im2col buffers (*[]float32) between calls: they are the
-	// largest temporaries of a forward pass and zeroing fresh ones cost as
-	// much as the im2col itself.
-	cols sync.Pool
+	// scr lends the work buffers (im2col columns, panels, padded
+	// inputs, product and expansion blocks), shared by the Graph's
+	// operators (scratch.go).
+	scr *scratch
 	// plans caches the im2col/depthwise plan per input size, made once
 	// and reused by every later call of that size.
 	plans planCache
@@ -33,10 +32,8 @@ type convOp struct {
 	// gemm1 is a single-threaded instance of the same packed GEMM, for
 	// the slab-parallel path (nn_conv_slab.go); nil when gemm is not a
 	// *kernel.Packed.
-	gemm1    *kernel.Packed
-	slabBufs sync.Pool
-	padBufs  sync.Pool // zero-padded inputs of the panel paths
-	team     *team     // helper goroutines shared by the Graph's convolutions; may be nil
+	gemm1 *kernel.Packed
+	team  *team // helper goroutines shared by the Graph's convolutions; may be nil
 	// constW is set at compile time when W is a graph constant, so a
 	// packed form of it may be kept (nn_conv_rows.go).
 	constW bool
@@ -46,20 +43,6 @@ type convOp struct {
 	// tplans caches the plans of the transposed convolutions that give
 	// the input gradient (nn_conv_slab.go).
 	tplans planCache
-	// blockBufs holds the expansion blocks of a depthwise convolution
-	// that computes its pointwise input itself (fuse_pwdw.go).
-	blockBufs sync.Pool
-}
-
-// colBuf returns a buffer of n floats from the pool; its contents are
-// arbitrary (im2col overwrites every element).
-func (op *convOp) colBuf(n int) *[]float32 {
-	if b, ok := op.cols.Get().(*[]float32); ok && cap(*b) >= n {
-		*b = (*b)[:n]
-		return b
-	}
-	b := make([]float32, n)
-	return &b
 }
 
 func buildConv(n *onnx.Node, env *Env) (Op, error) {
@@ -77,7 +60,10 @@ func buildConv(n *onnx.Node, env *Env) (Op, error) {
 	if len(n.Inputs) < 2 {
 		return nil, fmt.Errorf("Conv needs X and W, got %d inputs", len(n.Inputs))
 	}
-	op := &convOp{win: w, group: int(g), gemm: onTeam(env.GEMM, env.team), arena: env.arena, team: env.team}
+	op := &convOp{win: w, group: int(g), gemm: onTeam(env.GEMM, env.team), arena: env.arena, team: env.team, scr: env.scratch}
+	if op.scr == nil {
+		op.scr = new(scratch) // built outside a Graph
+	}
 	if p, ok := baseGEMM(env.GEMM).(*kernel.Packed); ok {
 		if p1, err := kernel.New(kernel.Options{ISA: p.ISA(), Threads: 1}); err == nil {
 			op.gemm1 = p1
@@ -211,8 +197,8 @@ func (op *convOp) forwardEp(in []*tensor.Tensor, res []float32, act actKind, lo,
 		slabs := panels && op.useSlabs(kk, ohw)
 		var col []float32
 		if !panels && !s.pointwise() {
-			buf := op.colBuf(kk * ohw)
-			defer op.cols.Put(buf)
+			buf := op.scr.get(kk * ohw)
+			defer op.scr.put(buf)
 			col = *buf
 		}
 		images := s.n

@@ -140,16 +140,16 @@ func (op *convOp) backwardFor(in, out, gradOut []*tensor.Tensor, need []bool, me
 		// gradient's im2col and the strided input gradient's col2im.
 		var col, dcol []float32
 		if !pw && needW {
-			b := op.colBuf(kk * ohw)
-			defer op.cols.Put(b)
+			b := op.scr.get(kk * ohw)
+			defer op.scr.put(b)
 			col = *b
 		}
 		// A large strided input gradient goes band by band
 		// (bandedInputGrad) and needs no whole column matrix.
 		banded := !pw && needX && !transposed && perr == nil && wt != nil && op.gemm1 != nil && kk*ohw >= bandedMin
 		if !pw && needX && !transposed && !banded {
-			b := op.colBuf(kk * ohw)
-			defer op.cols.Put(b)
+			b := op.scr.get(kk * ohw)
+			defer op.scr.put(b)
 			dcol = *b
 		}
 		batchedX := false
@@ -288,8 +288,8 @@ func (op *convOp) bandedInputGrad(plan *kernel.Im2colPlan, wtg, dyg []float32, c
 		b := 2*t + phase - 1
 		oh0, oh1 := b*rows, min((b+1)*rows, g.oh)
 		cols := (oh1 - oh0) * g.ow
-		buf := poolBuf(&op.slabBufs, kk*cols)
-		defer op.slabBufs.Put(buf)
+		buf := op.scr.get(kk * cols)
+		defer op.scr.put(buf)
 		op.gemm1.Sgemm(false, false, kk, cols, mg, 1, wtg, mg, dyg[oh0*g.ow:], ohw, 0, *buf, cols)
 		for ch := 0; ch < cg; ch++ {
 			if err := plan.Col2imOutRows(dxg[ch*ihw:(ch+1)*ihw], (*buf)[ch*khw*cols:(ch+1)*khw*cols], oh0, oh1); err != nil {

@@ -52,8 +52,8 @@ func (op *convOp) planDepthwise(p *kernel.Im2colPlan, x, w, y []float32, s convS
 	var firstErr error
 	var mu sync.Mutex
 	op.team.split(planes, planes*s.mg*ohw*khw, func(p0, p1 int) {
-		buf := poolBuf(&op.slabBufs, p.DepthwiseScratch())
-		defer op.slabBufs.Put(buf)
+		buf := op.scr.get(p.DepthwiseScratch())
+		defer op.scr.put(buf)
 		if err := p.DepthwisePlanes(y, x, w, s.c, s.mg, p0, p1, &kep, *buf); err != nil {
 			mu.Lock()
 			firstErr = err
@@ -76,8 +76,8 @@ func (op *convOp) planDepthwiseBackward(p *kernel.Im2colPlan, x, w, dy, dx, dw [
 	var firstErr error
 	var mu sync.Mutex
 	op.team.split(s.c, s.n*s.m*ohw*khw, func(c0, c1 int) {
-		buf := poolBuf(&op.slabBufs, p.DepthwiseBackwardScratch())
-		defer op.slabBufs.Put(buf)
+		buf := op.scr.get(p.DepthwiseBackwardScratch())
+		defer op.scr.put(buf)
 		scratch := *buf
 		var xs []float32
 		if dw != nil { // x is not retained when only dx is wanted

@@ -74,8 +74,8 @@ func (op *convOp) rowForward(plan *kernel.Im2colPlan, xg []float32, cg int, g ge
 	// useRows holds only on the AVX-512 path, which has the k-major kernels.
 	inPlace := g.pointwise() && op.gemm1.ISA() == kernel.ISAAVX512
 	if !inPlace {
-		abuf := poolBuf(&op.slabBufs, op.gemm1.RowPanelsLen(ohw, kk))
-		defer op.slabBufs.Put(abuf)
+		abuf := op.scr.get(op.gemm1.RowPanelsLen(ohw, kk))
+		defer op.scr.put(abuf)
 		a = *abuf
 		var release func()
 		padded, padTasks, release = op.padPlan(plan, xg, cg, false)
@@ -109,8 +109,8 @@ func (op *convOp) rowForward(plan *kernel.Im2colPlan, xg []float32, cg int, g ge
 			return nil
 		}
 		w, rows := m1-m0, r1-r0
-		cb := poolBuf(&op.slabBufs, rows*w)
-		defer op.slabBufs.Put(cb)
+		cb := op.scr.get(rows * w)
+		defer op.scr.put(cb)
 		c := *cb
 		if !inPlace {
 			op.gemm1.SgemmRowPanels(rows, w, kk, a[r0*kk:], wp[q0*kk*nr:], c, w)

@@ -3,7 +3,6 @@ package engine
 import (
 	"math"
 	"runtime"
-	"sync"
 
 	"heedmap/kernel"
 )
@@ -170,8 +169,8 @@ func (op *convOp) slabForward(plan *kernel.Im2colPlan, xg []float32, cg int, g g
 			ep.apply(yg, ohw, 0, mg, j0, j1)
 			return nil
 		}
-		buf := poolBuf(&op.slabBufs, kk*((w+nr-1)/nr*nr))
-		defer op.slabBufs.Put(buf)
+		buf := op.scr.get(kk * ((w + nr - 1) / nr * nr))
+		defer op.scr.put(buf)
 		if err := padded.lower(*buf, 1, cg, j0, j1, nr); err != nil {
 			return err
 		}
@@ -192,8 +191,8 @@ func (op *convOp) panelForward(plan *kernel.Im2colPlan, xg []float32, cg int, g 
 	nr := op.gemm1.PanelWidth()
 	mr, _ := op.gemm1.Tile()
 	np := (ohw + nr - 1) / nr
-	buf := poolBuf(&op.slabBufs, kk*np*nr)
-	defer op.slabBufs.Put(buf)
+	buf := op.scr.get(kk * np * nr)
+	defer op.scr.put(buf)
 	panels := *buf
 	padded, padTasks, release := op.padPlan(plan, xg, cg, true)
 	defer release()
@@ -246,13 +245,13 @@ func (op *convOp) batchForward(plan *kernel.Im2colPlan, x []float32, nImg, c int
 		j0 := s * nb
 		j1 := min(j0+nb, cols)
 		wd := j1 - j0
-		buf := poolBuf(&op.slabBufs, kk*((wd+nr-1)/nr*nr))
-		defer op.slabBufs.Put(buf)
+		buf := op.scr.get(kk * ((wd + nr - 1) / nr * nr))
+		defer op.scr.put(buf)
 		if err := padded.lower(*buf, nImg, c, j0, j1, nr); err != nil {
 			return err
 		}
-		cb := poolBuf(&op.slabBufs, m*wd)
-		defer op.slabBufs.Put(cb)
+		cb := op.scr.get(m * wd)
+		defer op.scr.put(cb)
 		op.gemm1.SgemmPanels(m, wd, kk, w, kk, *buf, *cb, wd)
 		// Scatter: column j of the block is output position (j0+j) mod
 		// ohw of image (j0+j) / ohw.
@@ -307,13 +306,13 @@ func (op *convOp) padPlan(plan *kernel.Im2colPlan, xg []float32, planes int, byR
 		return paddedInput{plan: plan, data: xg}, 0, func() {}
 	}
 	ph, pw := plan.PaddedShape()
-	buf := poolBuf(&op.padBufs, planes*ph*pw)
+	buf := op.scr.get(planes * ph * pw)
 	in = paddedInput{plan: plan, data: *buf, phased: phased, byRows: byRows}
 	tasks = min(planes, 2*runtime.GOMAXPROCS(0))
 	if in.byRows {
 		tasks = min(ph, 2*runtime.GOMAXPROCS(0))
 	}
-	return in, tasks, func() { op.padBufs.Put(buf) }
+	return in, tasks, func() { op.scr.put(buf) }
 }
 
 // pad runs pad task t of tasks: a share of the padded rows of all planes
@@ -332,14 +331,4 @@ func (in paddedInput) pad(t, tasks int, xg []float32, planes int) error {
 		return in.plan.PadPhased(in.data, xg, c0, c1)
 	}
 	return in.plan.Pad(in.data, xg, c0, c1)
-}
-
-// poolBuf returns a buffer of n floats from p; its contents are arbitrary.
-func poolBuf(p *sync.Pool, n int) *[]float32 {
-	if b, ok := p.Get().(*[]float32); ok && cap(*b) >= n {
-		*b = (*b)[:n]
-		return b
-	}
-	b := make([]float32, n)
-	return &b
 }

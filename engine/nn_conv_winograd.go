@@ -198,8 +198,8 @@ func (p *winoPlan) multiply(gemm *kernel.Packed, u, v, prod, y []float32, off in
 func (op *convOp) winogradForward(x []float32, nImg, c int, g geom2, u []float32, m int, y []float32, ep *epilogue) error {
 	p := newWinoPlan(g, nImg, c, m)
 	ihw, ohw := g.ih*g.iw, g.oh*g.ow
-	zeroBuf := poolBuf(&op.padBufs, g.iw)
-	defer op.padBufs.Put(zeroBuf)
+	zeroBuf := op.scr.get(g.iw)
+	defer op.scr.put(zeroBuf)
 	zero := *zeroBuf
 	clear(zero)
 	prodLen := 16 * winoStride((m+p.kBlocks-1)/p.kBlocks, winoBlockTiles)
@@ -207,16 +207,16 @@ func (op *convOp) winogradForward(x []float32, nImg, c int, g geom2, u []float32
 	if !p.shared {
 		return op.team.run([]int{blocks}, func(_, t int) error {
 			n, b := t/p.blocks, t%p.blocks
-			bufs := poolBuf(&op.slabBufs, p.blockOp+prodLen)
-			defer op.slabBufs.Put(bufs)
+			bufs := op.scr.get(p.blockOp + prodLen)
+			defer op.scr.put(bufs)
 			v, prod := (*bufs)[:p.blockOp], (*bufs)[p.blockOp:]
 			p.transform(v, x[n*c*ihw:(n+1)*c*ihw], zero, b, 0, c)
 			p.multiply(op.gemm1, u, v, prod, y[n*m*ohw:(n+1)*m*ohw], n*m*ohw, ep, b, 0, m)
 			return nil
 		})
 	}
-	vBuf := poolBuf(&op.slabBufs, blocks*p.blockOp)
-	defer op.slabBufs.Put(vBuf)
+	vBuf := op.scr.get(blocks * p.blockOp)
+	defer op.scr.put(vBuf)
 	vs := *vBuf
 	cTasks := max(1, min(4*runtime.GOMAXPROCS(0)/blocks, c/16))
 	return op.team.run([]int{blocks * cTasks, blocks * p.kBlocks}, func(phase, t int) error {
@@ -228,8 +228,8 @@ func (op *convOp) winogradForward(x []float32, nImg, c int, g geom2, u []float32
 		}
 		nb, kt := t/p.kBlocks, t%p.kBlocks
 		n := nb / p.blocks
-		bufs := poolBuf(&op.slabBufs, prodLen)
-		defer op.slabBufs.Put(bufs)
+		bufs := op.scr.get(prodLen)
+		defer op.scr.put(bufs)
 		p.multiply(op.gemm1, u, vs[nb*p.blockOp:(nb+1)*p.blockOp], *bufs, y[n*m*ohw:(n+1)*m*ohw], n*m*ohw, ep, nb%p.blocks, m*kt/p.kBlocks, m*(kt+1)/p.kBlocks)
 		return nil
 	})

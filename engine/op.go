@@ -33,6 +33,9 @@ type Env struct {
 	arena *arena
 	// team, when set, runs convolutions' parallel phases (team.go).
 	team *team
+	// scratch, when set, lends work buffers shared by the Graph's
+	// operators (scratch.go).
+	scratch *scratch
 }
 
 // Builder compiles one node, validating its attributes.
