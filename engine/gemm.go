@@ -15,7 +15,7 @@ func defaultGEMM() kernel.GEMM { return kernel.Best() }
 // Graph's team (kernel.Packed.SgemmOn) rather than on goroutines started
 // per call, which had to wait for a core the team's idle helper was still
 // spinning on: ResNet-18 forward+backward at batch 1, whose strided
-// layers' input gradients are such products, ran 3–4 % faster
+// layers' input gradients are such products, ran about 4 % faster
 // (DEVELOPERS.md).
 type teamGEMM struct {
 	p  *kernel.Packed
