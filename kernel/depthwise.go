@@ -309,6 +309,11 @@ func (p *Im2colPlan) depthwisePlanes(isa ISA, dst, src, w []float32, channels, m
 	scr := scratch[:l.size()]
 	l.clearPad(scr)
 	par := dwParams(ep)
+	var vec dwVec
+	vok := false
+	if isa != ISAPortable {
+		vec, vok = dwPrepare(isa, &a)
+	}
 	for pl := p0; pl < p1; pl++ {
 		l.fill(isa, scr, src[pl*hw:(pl+1)*hw])
 		for j := 0; j < multiplier; j++ {
@@ -317,7 +322,10 @@ func (p *Im2colPlan) depthwisePlanes(isa ISA, dst, src, w []float32, channels, m
 			if ep != nil && ep.Bias != nil {
 				par[0] = ep.Bias[mo]
 			}
-			dwPlane(isa, &a, out, scr, w[mo*taps:(mo+1)*taps], &par, false)
+			filt := w[mo*taps : (mo+1)*taps]
+			if !vok || !vec.plane(&a, out, scr, filt, &par, false) {
+				dwPlaneGo(&a, out, scr, filt, &par, false)
+			}
 		}
 	}
 	return nil
