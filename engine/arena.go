@@ -120,11 +120,13 @@ func (a *arena) floatsFresh(n int) ([]float32, bool) {
 	c := sizeClass(n)
 	a.mu.Lock()
 	a.asked[c] = true
-	// The smallest free buffer of at least c and at most twice c.
+	// The smallest free buffer of at least c and at most twice c: at
+	// most five classes to look at, smallest first.
 	best := 0
-	for k, l := range a.free {
-		if len(l) > 0 && k >= c && k <= 2*c && (best == 0 || k < best) {
+	for k := c; k <= 2*c; k = sizeClass(k + 1) {
+		if len(a.free[k]) > 0 {
 			best = k
+			break
 		}
 	}
 	if best > 0 {

@@ -242,6 +242,7 @@ func (p *Im2colPlan) depthwiseFused(isa ISA, dst, src, w []float32, multiplier, 
 	l.clearPad(scr)
 	hw, ohw, taps := p.g.H*p.g.W, p.oh*p.ow, p.g.KH*p.g.KW
 	par := dwParams(ep)
+	planes := newDwPlanes(isa, &a)
 	last := -1
 	for mo := m0; mo < m1; mo++ {
 		if ch := mo / multiplier; ch != last {
@@ -251,7 +252,7 @@ func (p *Im2colPlan) depthwiseFused(isa ISA, dst, src, w []float32, multiplier, 
 		if ep != nil && ep.Bias != nil {
 			par[0] = ep.Bias[mo]
 		}
-		dwPlane(isa, &a, dst[mo*ohw:(mo+1)*ohw], scr, w[mo*taps:(mo+1)*taps], &par, false)
+		planes.plane(dst[mo*ohw:(mo+1)*ohw], scr, w[mo*taps:(mo+1)*taps], &par, false)
 	}
 	return nil
 }
@@ -309,11 +310,7 @@ func (p *Im2colPlan) depthwisePlanes(isa ISA, dst, src, w []float32, channels, m
 	scr := scratch[:l.size()]
 	l.clearPad(scr)
 	par := dwParams(ep)
-	var vec dwVec
-	vok := false
-	if isa != ISAPortable {
-		vec, vok = dwPrepare(isa, &a)
-	}
+	planes := newDwPlanes(isa, &a)
 	for pl := p0; pl < p1; pl++ {
 		l.fill(isa, scr, src[pl*hw:(pl+1)*hw])
 		for j := 0; j < multiplier; j++ {
@@ -322,24 +319,36 @@ func (p *Im2colPlan) depthwisePlanes(isa ISA, dst, src, w []float32, channels, m
 			if ep != nil && ep.Bias != nil {
 				par[0] = ep.Bias[mo]
 			}
-			filt := w[mo*taps : (mo+1)*taps]
-			if !vok || !vec.plane(&a, out, scr, filt, &par, false) {
-				dwPlaneGo(&a, out, scr, filt, &par, false)
-			}
+			planes.plane(out, scr, w[mo*taps:(mo+1)*taps], &par, false)
 		}
 	}
 	return nil
 }
 
-// dwPlane computes one output plane from a padded plane with the vector
-// kernel for isa when there is one for the shape, else in Go. par is
-// {bias, lo, hi}; with accum the output is added to instead of starting
-// from the bias.
-func dwPlane(isa ISA, a *dwArgs, out, scr, filt []float32, par *[3]float32, accum bool) {
-	if isa != ISAPortable && dwPlaneSIMD(isa, a, out, scr, filt, par, accum) {
+// dwPlanes computes output planes of one shape a from padded planes: with
+// the vector kernel for isa when there is one for the shape (its setup,
+// dwVec, worked out once when the dwPlanes is made), else in Go.
+type dwPlanes struct {
+	a   *dwArgs
+	vec dwVec
+	ok  bool
+}
+
+func newDwPlanes(isa ISA, a *dwArgs) dwPlanes {
+	d := dwPlanes{a: a}
+	if isa != ISAPortable {
+		d.vec, d.ok = dwPrepare(isa, a)
+	}
+	return d
+}
+
+// plane computes one output plane. par is {bias, lo, hi}; with accum the
+// output is added to instead of starting from the bias.
+func (d *dwPlanes) plane(out, scr, filt []float32, par *[3]float32, accum bool) {
+	if d.ok && d.vec.plane(d.a, out, scr, filt, par, accum) {
 		return
 	}
-	dwPlaneGo(a, out, scr, filt, par, accum)
+	dwPlaneGo(d.a, out, scr, filt, par, accum)
 }
 
 // dwPlaneGo is the pure-Go plane loop: tap by tap, each output row gets a
@@ -577,6 +586,7 @@ func (p *Im2colPlan) dwBackwardPlanes(isa ISA, dsrc, dw, dy, src, w []float32, i
 		lf.clearPad(xs)
 	}
 	par := [3]float32{0, float32(math.Inf(-1)), float32(math.Inf(1))}
+	planes := newDwPlanes(isa, &ab)
 	m := channels * multiplier
 	for ch := c0; ch < c1; ch++ {
 		for n := 0; n < images; n++ {
@@ -598,7 +608,7 @@ func (p *Im2colPlan) dwBackwardPlanes(isa ISA, dsrc, dw, dy, src, w []float32, i
 					}
 					// The plane's first output channel sets it under setDX.
 					accum := !setDX || mo > ch*multiplier
-					dwPlane(isa, &ab, dsrc[pl*hw:(pl+1)*hw], u, flip, &par, accum)
+					planes.plane(dsrc[pl*hw:(pl+1)*hw], u, flip, &par, accum)
 				}
 				if dw != nil {
 					dwFilterGrad(&af, dw[mo*taps:(mo+1)*taps], gy, xs)
