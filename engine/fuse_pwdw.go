@@ -2,7 +2,7 @@ package engine
 
 import (
 	"fmt"
-	"sync"
+	"runtime"
 
 	"heedmap/tensor"
 )
@@ -192,9 +192,16 @@ func (p *Pass) heldForPending(v int) bool {
 	return p.pending != nil && p.pending.x == v
 }
 
-// pwdwBlock is the number of channels a task of forwardAfterPointwise
-// takes: the GEMM's row tile (Packed.Tile), so every block is whole tiles.
-const pwdwBlock = 12
+// pwdwBlock is the most channels forwardAfterPointwise computes at once:
+// the GEMM's row tile (Packed.Tile), so whole blocks are whole tiles.
+// Tasks are cut in units of pwdwUnit channels (the GEMM's smallest edge
+// tile), tapering toward the middle (taper): at 112×112 a block took
+// about 45 µs, and with one block per task the core that finished first
+// waited up to that long for the other.
+const (
+	pwdwBlock = 12
+	pwdwUnit  = 4
+)
 
 // forwardAfterPointwise computes this depthwise convolution (bias from
 // in[2], activation act) of the pointwise convolution pw of x (weights
@@ -223,31 +230,22 @@ func (dw *convOp) forwardAfterPointwise(pw *convOp, x, wp *tensor.Tensor, pwEp *
 	m := s1.m
 	y := dw.arena.tensor(g2.outShape(s2.n, s2.m, s2.spatial)...)
 	kep := kernelEpilogue(&epilogue{bias: bd, act: act, lo: lo, hi: hi})
-	blocks := (m + pwdwBlock - 1) / pwdwBlock
-	var firstErr error
-	var mu sync.Mutex
-	fail := func(err error) {
-		mu.Lock()
-		if firstErr == nil {
-			firstErr = err
-		}
-		mu.Unlock()
-	}
+	tp := newTaper((m+pwdwUnit-1)/pwdwUnit, runtime.GOMAXPROCS(0))
 	for n := 0; n < s1.n; n++ {
 		xi := x.F32[n*k*hw : (n+1)*k*hw]
 		yi := y.F32[n*m*ohw : (n+1)*m*ohw]
-		dw.team.split(blocks, blocks*pwdwBlock*(hw*k+ohw*taps), func(b0, b1 int) {
+		err := dw.team.run([]int{tp.tasks}, func(_, t int) error {
+			u0, u1 := tp.bounds(t)
 			sb := dw.scr.get(pwdwBlock * hw)
 			defer dw.scr.put(sb)
 			db := dw.scr.get(plan.DepthwiseScratch())
 			defer dw.scr.put(db)
-			for b := b0; b < b1; b++ {
-				m0, m1 := b*pwdwBlock, min(m, (b+1)*pwdwBlock)
+			for m0 := u0 * pwdwUnit; m0 < min(m, u1*pwdwUnit); m0 += pwdwBlock {
+				m1 := min(m, u1*pwdwUnit, m0+pwdwBlock)
 				mb := m1 - m0
 				sc := (*sb)[:mb*hw]
 				if !pw.gemm1.SgemmUnpacked(mb, hw, k, wp.F32[m0*k:], k, xi, hw, sc, hw) {
-					fail(fmt.Errorf("engine: the %v GEMM has no unpacked-B kernel", pw.gemm1.ISA()))
-					return
+					return fmt.Errorf("engine: the %v GEMM has no unpacked-B kernel", pw.gemm1.ISA())
 				}
 				pwEp.forGroup(m0).apply(sc, hw, 0, mb, 0, hw)
 				bk := kep
@@ -255,14 +253,14 @@ func (dw *convOp) forwardAfterPointwise(pw *convOp, x, wp *tensor.Tensor, pwEp *
 					bk.Bias = bk.Bias[m0:m1]
 				}
 				if err := plan.DepthwisePlanes(yi[m0*ohw:m1*ohw], sc, wd.F32[m0*taps:m1*taps], mb, 1, 0, mb, &bk, *db); err != nil {
-					fail(err)
-					return
+					return err
 				}
 			}
+			return nil
 		})
-	}
-	if firstErr != nil {
-		return nil, firstErr
+		if err != nil {
+			return nil, err
+		}
 	}
 	return []*tensor.Tensor{y}, nil
 }

@@ -63,7 +63,7 @@ func (op *convOp) rowForward(plan *kernel.Im2colPlan, xg []float32, cg int, g ge
 	_, nr := op.gemm1.Tile()
 	procs := runtime.GOMAXPROCS(0)
 	nq := (mg + nr - 1) / nr
-	blocks := min(nq, 4*procs)
+	blocks := newTaper(nq, procs)
 	parts, cut := rowParts(nq, procs, ohw, mr)
 	var a []float32
 	var padded paddedInput
@@ -82,7 +82,7 @@ func (op *convOp) rowForward(plan *kernel.Im2colPlan, xg []float32, cg int, g ge
 		defer release()
 		fills = min(npan, 2*procs)
 	}
-	return op.team.run([]int{padTasks, fills, blocks * parts}, func(phase, t int) error {
+	return op.team.run([]int{padTasks, fills, blocks.tasks * parts}, func(phase, t int) error {
 		switch phase {
 		case 0:
 			return padded.pad(t, padTasks, xg, cg)
@@ -99,7 +99,7 @@ func (op *convOp) rowForward(plan *kernel.Im2colPlan, xg []float32, cg int, g ge
 			return nil
 		}
 		b, part := t/parts, t%parts
-		q0, q1 := nq*b/blocks, nq*(b+1)/blocks
+		q0, q1 := blocks.bounds(b)
 		m0, m1 := q0*nr, min(q1*nr, mg)
 		r0, r1 := 0, ohw
 		if parts == 2 {

@@ -148,19 +148,20 @@ func (op *convOp) slabForward(plan *kernel.Im2colPlan, xg []float32, cg int, g g
 	ohw := g.oh * g.ow
 	nr := op.gemm1.PanelWidth()
 	nb := max(nr, min(512, slabFloats/kk/nr*nr))
-	// At least four slabs per core, so the last one claimed leaves the
-	// other core little to wait for.
-	nb = max(nr, min(nb, (ohw+4*runtime.GOMAXPROCS(0)*nr-1)/(4*runtime.GOMAXPROCS(0)*nr)*nr))
+	// Slabs of whole panels, at most nb columns, tapering toward the
+	// middle (taper), so the last one claimed leaves the other core
+	// little to wait for.
+	slabs := newCappedTaper((ohw+nr-1)/nr, runtime.GOMAXPROCS(0), nb/nr)
 	ep = ep.forGroup(mOff)
 	padded, padTasks, release := op.padPlan(plan, xg, cg, true)
 	defer release()
 	pointwise := g.pointwise()
-	return op.team.run([]int{padTasks, (ohw + nb - 1) / nb}, func(phase, s int) error {
+	return op.team.run([]int{padTasks, slabs.tasks}, func(phase, s int) error {
 		if phase == 0 {
 			return padded.pad(s, padTasks, xg, cg)
 		}
-		j0 := s * nb
-		j1 := min(j0+nb, ohw)
+		p0, p1 := slabs.bounds(s)
+		j0, j1 := p0*nr, min(p1*nr, ohw)
 		w := j1 - j0
 		// A pointwise layer's columns are its input: multiplied where
 		// they lie, without packing (about a tenth of a MobileNetV2

@@ -8,9 +8,10 @@ import "runtime"
 const splitMinWork = 1 << 15
 
 // split runs f over [0, n) in contiguous chunks on the team: about four
-// chunks per core, each claimed by whichever goroutine is free, so a core
-// that loses its time slice to another process does fewer chunks instead
-// of holding up the call (a fixed half each, as splitWork gives, waits for
+// chunks per core, shrinking toward the middle of the range (taper), each
+// claimed by whichever goroutine is free, so a core that loses its time
+// slice to another process does fewer chunks instead of holding up the
+// call (a fixed half each, as splitWork gives, waits for
 // the slower core). Small jobs (work below splitMinWork) run on the caller
 // alone. A nil team starts fresh goroutines, as splitWork does.
 func (tm *team) split(n, work int, f func(i0, i1 int)) {
@@ -21,9 +22,9 @@ func (tm *team) split(n, work int, f func(i0, i1 int)) {
 		}
 		return
 	}
-	tasks := min(n, 4*workers)
-	tm.run([]int{tasks}, func(_, t int) error {
-		f(n*t/tasks, n*(t+1)/tasks)
+	tp := newTaper(n, workers)
+	tm.run([]int{tp.tasks}, func(_, t int) error {
+		f(tp.bounds(t))
 		return nil
 	})
 }
