@@ -219,6 +219,8 @@ func (op *convOp) forwardEp(in []*tensor.Tensor, res []float32, act actKind, lo,
 				switch {
 				case slabs:
 					err = op.slabForward(plan, xg, s.cg, g, wg, s.mg, kk, yg, epg, gi*s.mg)
+				case panels && op.useRows(s) && op.useKSplit(s, kk):
+					err = op.rowForwardKSplit(xg, g, op.rowWeightHalves(w, s.m, kk), s.mg, kk, yg, epg.forGroup(gi*s.mg))
 				case panels && op.useRows(s):
 					wp := op.rowWeights(w, s.m, kk)
 					err = op.rowForward(plan, xg, s.cg, g, wp, s.mg, kk, yg, epg.forGroup(gi*s.mg))

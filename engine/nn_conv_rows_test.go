@@ -102,8 +102,8 @@ func TestConvRowSplitMatchesReference(t *testing.T) {
 	}
 	rng := rand.New(rand.NewSource(8))
 	for i, tc := range []struct{ c, h, w, m, k int }{
-		{576, 14, 14, 96, 1},
-		{960, 7, 7, 160, 1},
+		{64, 14, 14, 96, 1}, // pointwise with mg ≥ kk: not split by input channels
+		{96, 7, 7, 160, 1},
 		{64, 14, 14, 96, 3},
 		{48, 7, 7, 160, 3},
 		{40, 9, 11, 96, 1}, // 99 positions: a cut of 48, then 51 with an edge panel
@@ -116,7 +116,7 @@ func TestConvRowSplitMatchesReference(t *testing.T) {
 		fc, rc := convPair(t, node, newArena())
 		fc.constW, fc.noWinograd = true, true
 		s, _ := fc.shape(x, wt)
-		if !fc.useRows(s) || fc.useSlabs(s.cg*tc.k*tc.k, tc.h*tc.w) {
+		if !fc.useRows(s) || fc.useSlabs(s.cg*tc.k*tc.k, tc.h*tc.w) || fc.useKSplit(s, s.cg*tc.k*tc.k) {
 			t.Fatalf("case %d: row-panel path not taken", i)
 		}
 		mr, _, _ := fc.gemm1.RowPanels(tc.h * tc.w)

@@ -110,13 +110,19 @@ func (e *epilogue) bounds() (lo, hi float32) {
 const slabFloats = 128 << 10
 
 // useSlabs reports whether a convolution of this shape is lowered slab by
-// slab: only when there are enough output positions for every core to
-// take several 32-column slabs. With fewer (late layers, N = 49 … 196)
-// panelForward lowers the whole (small) column matrix once and splits the
-// much larger M instead.
+// slab: only when there are enough output positions for two cores to
+// take four 32-column slabs each (slabMinPositions). With fewer (late
+// layers, N = 49 … 196) panelForward or the row-panel path lowers the
+// whole (small) column matrix once and splits the much larger M instead.
+// The rule reads only the shape, not the number of cores: the paths do
+// not all round alike (rowForwardKSplit), and a layer's result should not
+// depend on the machine it ran on.
 func (op *convOp) useSlabs(kk, ohw int) bool {
-	return op.gemm1 != nil && ohw >= 8*32*runtime.GOMAXPROCS(0)/2 && kk >= 8
+	return op.gemm1 != nil && ohw >= slabMinPositions && kk >= 8
 }
+
+// slabMinPositions is the fewest output positions the slab path takes.
+const slabMinPositions = 8 * 32
 
 // forGroup returns the epilogue of the output channels starting at mOff
 // (a group's slice of the bias).
