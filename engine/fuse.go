@@ -43,6 +43,9 @@ type fusionPlan struct {
 	// pwdwByPW: pointwise Convs whose product the depthwise Conv that
 	// reads it computes (fuse_pwdw.go), by pointwise node.
 	pwdwByPW map[int]*pwdwPair
+	// dwpwByDW: depthwise Convs computed with the pointwise Conv that
+	// reads them (fuse_dwpw.go), by depthwise node.
+	dwpwByDW map[int]*dwpwPair
 }
 
 // fusedTail is a node folded into the chain headed by node head: it
@@ -177,6 +180,7 @@ func planFusion(g *Graph) *fusionPlan {
 		}
 	}
 	fp.pwdwByPW = planPointwiseDepthwise(g, fp)
+	fp.dwpwByDW = planDepthwisePointwise(g, fp)
 	return fp
 }
 

@@ -102,7 +102,7 @@ type pendingPW struct {
 func (p *Pass) deferPointwise(k int, keep []bool, in []*tensor.Tensor) []*tensor.Tensor {
 	g := p.g
 	pr := g.pwdwAt(k)
-	if pr == nil || p.pending != nil {
+	if pr == nil || p.pending != nil || p.pendingDW != nil {
 		return nil
 	}
 	for _, v := range pr.inner {
@@ -187,9 +187,10 @@ func (p *Pass) runPending(k int, op Op, in []*tensor.Tensor) ([]*tensor.Tensor, 
 }
 
 // heldForPending reports whether value v is the input of the pending
-// pointwise product, which Run must not free yet.
+// pointwise product or depthwise convolution, which Run must not free
+// yet.
 func (p *Pass) heldForPending(v int) bool {
-	return p.pending != nil && p.pending.x == v
+	return (p.pending != nil && p.pending.x == v) || (p.pendingDW != nil && p.pendingDW.x == v)
 }
 
 // pwdwBlock is the most channels forwardAfterPointwise computes at once:

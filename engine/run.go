@@ -50,10 +50,12 @@ type Pass struct {
 	parts  []*Pass
 	inputs map[string]*tensor.Tensor
 	// pending is a pointwise product put off until the depthwise
-	// convolution that reads it (fuse_pwdw.go); pairs counts the pairs
-	// computed together.
-	pending *pendingPW
-	pairs   int
+	// convolution that reads it (fuse_pwdw.go), pendingDW a depthwise
+	// convolution put off until the pointwise one that reads it
+	// (fuse_dwpw.go); pairs counts the pairs computed together.
+	pending   *pendingPW
+	pendingDW *pendingDW
+	pairs     int
 	// bits[v] holds value v's gradient mask, one bit per value, in an
 	// arena buffer, where the pass keeps that instead of v (bitmask.go).
 	bits [][]float32
@@ -172,11 +174,16 @@ func (g *Graph) run(ctx context.Context, inputs map[string]*tensor.Tensor, opt R
 		op := g.fusedOp(k, keep)
 		in = fusedInputs(op, in, p.vals)
 		out := p.deferPointwise(k, keep, in)
+		if out == nil {
+			out = p.deferDepthwise(k, op, keep, in)
+		}
 		var err error
 		if out == nil {
 			var done bool
 			if out, done, err = p.runPending(k, op, in); !done {
-				out, err = safeForward(op, in)
+				if out, done, err = p.runPendingDW(k, op, in); !done {
+					out, err = safeForward(op, in)
+				}
 			}
 		}
 		if err != nil {

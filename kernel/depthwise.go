@@ -106,7 +106,13 @@ func (l dwLayout) clearPad(scr []float32) {
 // fill copies an h×w image plane into its place in the padded plane (see
 // clearPad), with the vector copy loops unless isa is ISAPortable.
 func (l dwLayout) fill(isa ISA, scr, plane []float32) {
-	nr := min(l.h, l.rows-l.top)
+	l.fillRows(isa, scr, plane, 0, l.h)
+}
+
+// fillRows is fill for image rows [r0, r1) only.
+func (l dwLayout) fillRows(isa ISA, scr, plane []float32, r0, r1 int) {
+	r1 = min(r1, l.h, l.rows-l.top)
+	nr := r1 - r0
 	width := l.pitch
 	if l.phased {
 		width = 2 * l.half
@@ -115,6 +121,8 @@ func (l dwLayout) fill(isa ISA, scr, plane []float32) {
 	if nc <= 0 || nr <= 0 {
 		return
 	}
+	scr = scr[r0*l.pitch:]
+	plane = plane[r0*l.w:]
 	if !l.phased {
 		dst := scr[l.top*l.pitch+l.left:]
 		if isa != ISAPortable && dwFillSIMD(isa, dst, plane, nr, nc, l.pitch, l.w) {
@@ -280,14 +288,31 @@ func (p *Im2colPlan) DepthwisePlanes(dst, src, w []float32, channels, multiplier
 	if p.portable {
 		isa = ISAPortable
 	}
-	return p.depthwisePlanes(isa, dst, src, w, channels, multiplier, p0, p1, ep, scratch)
+	return p.depthwisePlanes(isa, dst, src, w, channels, multiplier, p0, p1, 0, p.oh, ep, scratch)
 }
 
-func (p *Im2colPlan) depthwisePlanes(isa ISA, dst, src, w []float32, channels, multiplier, p0, p1 int, ep *DepthwiseEpilogue, scratch []float32) error {
+// DepthwiseRows is DepthwisePlanes for output rows [oy0, oy1) of every
+// plane: only the input rows those outputs read are copied into the
+// scratch plane, and the other output rows are not touched. A caller that
+// splits a layer by rows over goroutines has each read and write its own
+// band of every plane (and the few rows the filter reaches beyond it),
+// where a split by planes has each goroutine read the whole map of its
+// planes. Every output value is computed as DepthwisePlanes computes it.
+func (p *Im2colPlan) DepthwiseRows(dst, src, w []float32, channels, multiplier, p0, p1, oy0, oy1 int, ep *DepthwiseEpilogue, scratch []float32) error {
+	isa := ISAAuto
+	if p.portable {
+		isa = ISAPortable
+	}
+	return p.depthwisePlanes(isa, dst, src, w, channels, multiplier, p0, p1, oy0, oy1, ep, scratch)
+}
+
+func (p *Im2colPlan) depthwisePlanes(isa ISA, dst, src, w []float32, channels, multiplier, p0, p1, oy0, oy1 int, ep *DepthwiseEpilogue, scratch []float32) error {
 	g := p.g
 	hw, ohw, taps := g.H*g.W, p.oh*p.ow, g.KH*g.KW
 	m := channels * multiplier
 	switch {
+	case oy0 < 0 || oy0 > oy1 || oy1 > p.oh:
+		return fmt.Errorf("kernel: depthwise output rows [%d, %d) outside [0, %d)", oy0, oy1, p.oh)
 	case g.C != 1:
 		return fmt.Errorf("kernel: depthwise planes need a one-channel plan, got C=%d", g.C)
 	case channels <= 0 || multiplier <= 0:
@@ -310,16 +335,24 @@ func (p *Im2colPlan) depthwisePlanes(isa ISA, dst, src, w []float32, channels, m
 	scr := scratch[:l.size()]
 	l.clearPad(scr)
 	par := dwParams(ep)
+	// Padded rows [pr0, pr1) hold what output rows [oy0, oy1) read.
+	pr0 := oy0 * g.StrideH
+	pr1 := (oy1-1)*g.StrideH + (g.KH-1)*g.DilationH + 1
+	band := scr[pr0*l.pitch:]
+	a.oh = oy1 - oy0
 	planes := newDwPlanes(isa, &a)
 	for pl := p0; pl < p1; pl++ {
-		l.fill(isa, scr, src[pl*hw:(pl+1)*hw])
+		if a.oh == 0 {
+			break
+		}
+		l.fillRows(isa, scr, src[pl*hw:(pl+1)*hw], max(0, pr0-l.top), pr1-l.top)
 		for j := 0; j < multiplier; j++ {
 			mo := (pl%channels)*multiplier + j
-			out := dst[(pl*multiplier+j)*ohw : (pl*multiplier+j+1)*ohw]
+			out := dst[(pl*multiplier+j)*ohw+oy0*p.ow : (pl*multiplier+j)*ohw+oy1*p.ow]
 			if ep != nil && ep.Bias != nil {
 				par[0] = ep.Bias[mo]
 			}
-			planes.plane(out, scr, w[mo*taps:(mo+1)*taps], &par, false)
+			planes.plane(out, band, w[mo*taps:(mo+1)*taps], &par, false)
 		}
 	}
 	return nil

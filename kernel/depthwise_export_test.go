@@ -28,10 +28,15 @@ func (p *Im2colPlan) DepthwiseVectorized(isa ISA) (fwd, bwd bool) {
 
 // DepthwisePlanesISA is DepthwisePlanes on the path isa.
 func (p *Im2colPlan) DepthwisePlanesISA(isa ISA, dst, src, w []float32, channels, multiplier, p0, p1 int, ep *DepthwiseEpilogue, scratch []float32) error {
-	return p.depthwisePlanes(isa, dst, src, w, channels, multiplier, p0, p1, ep, scratch)
+	return p.depthwisePlanes(isa, dst, src, w, channels, multiplier, p0, p1, 0, p.oh, ep, scratch)
 }
 
 // DepthwiseBackwardPlanesISA is DepthwiseBackwardPlanes on the path isa.
 func (p *Im2colPlan) DepthwiseBackwardPlanesISA(isa ISA, dsrc, dw, dy, src, w []float32, images, channels, multiplier, c0, c1 int, setDX bool) error {
 	return p.dwBackwardPlanes(isa, dsrc, dw, dy, src, w, images, channels, multiplier, c0, c1, make([]float32, p.DepthwiseBackwardScratch()), setDX)
+}
+
+// DepthwiseRowsISA is DepthwiseRows on the path isa.
+func (p *Im2colPlan) DepthwiseRowsISA(isa ISA, dst, src, w []float32, channels, multiplier, p0, p1, oy0, oy1 int, ep *DepthwiseEpilogue, scratch []float32) error {
+	return p.depthwisePlanes(isa, dst, src, w, channels, multiplier, p0, p1, oy0, oy1, ep, scratch)
 }

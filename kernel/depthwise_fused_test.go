@@ -304,6 +304,70 @@ func TestDepthwisePlanesMatchesDefinition(t *testing.T) {
 	}
 }
 
+// TestDepthwiseRowsMatchesPlanes computes layers band by band of output
+// rows (DepthwiseRows, as planDepthwise splits large maps) and requires
+// every value bit for bit equal to DepthwisePlanes over whole planes, on
+// every path: stride 1 and 2 (the phased plane), 3×3 and 5×5, dilation,
+// a multiplier of 2, bands of one row and uneven bands; and a band leaves
+// the rows outside it untouched.
+func TestDepthwiseRowsMatchesPlanes(t *testing.T) {
+	r := rand.New(rand.NewPCG(53, 54))
+	const n, c = 2, 3
+	for _, mult := range []int{1, 2} {
+		for _, g := range []kernel.Conv2D{
+			{C: 1, H: 20, W: 20, KH: 3, KW: 3, PadTop: 1, PadLeft: 1, PadBottom: 1, PadRight: 1},
+			{C: 1, H: 23, W: 21, KH: 3, KW: 3, StrideH: 2, StrideW: 2, PadTop: 1, PadLeft: 1, PadBottom: 1, PadRight: 1},
+			{C: 1, H: 17, W: 19, KH: 5, KW: 5, StrideH: 2, StrideW: 2, PadTop: 2, PadLeft: 2, PadBottom: 2, PadRight: 2},
+			{C: 1, H: 12, W: 40, KH: 3, KW: 3, DilationH: 2, DilationW: 2, PadTop: 2, PadLeft: 2, PadBottom: 2, PadRight: 2},
+		} {
+			p, err := kernel.NewIm2col(g)
+			if err != nil {
+				t.Fatal(err)
+			}
+			oh, ow := p.Out()
+			m := c * mult
+			x := randSlice(r, n*c*g.H*g.W)
+			w := randSlice(r, m*g.KH*g.KW)
+			ep := kernel.DepthwiseEpilogue{Bias: randSlice(r, m), Lo: -0.25, Hi: 1.5}
+			for _, isa := range dwISAs() {
+				scratch := make([]float32, p.DepthwiseScratch())
+				want := make([]float32, n*m*oh*ow)
+				if err := p.DepthwisePlanesISA(isa, want, x, w, c, mult, 0, n*c, &ep, scratch); err != nil {
+					t.Fatal(err)
+				}
+				for _, cuts := range [][]int{{0, 1, 2, oh}, {0, oh / 3, oh/3 + 1, oh}, {0, oh - 1, oh}} {
+					got := make([]float32, len(want))
+					for i := range got {
+						got[i] = float32(math.NaN())
+					}
+					for b := 0; b+1 < len(cuts); b++ {
+						if err := p.DepthwiseRowsISA(isa, got, x, w, c, mult, 0, n*c, cuts[b], cuts[b+1], &ep, scratch); err != nil {
+							t.Fatal(err)
+						}
+						// Rows past this band are still unwritten.
+						for pl := 0; pl < n*m; pl++ {
+							for j := cuts[b+1] * ow; j < oh*ow; j++ {
+								if v := got[pl*oh*ow+j]; !math.IsNaN(float64(v)) {
+									t.Fatalf("%+v mult %d %v: band [%d, %d) wrote plane %d value %d", g, mult, isa, cuts[b], cuts[b+1], pl, j)
+								}
+							}
+						}
+					}
+					for i := range want {
+						if math.Float32bits(got[i]) != math.Float32bits(want[i]) {
+							t.Fatalf("%+v mult %d %v bands %v: value %d is %v by bands, %v by planes", g, mult, isa, cuts, i, got[i], want[i])
+						}
+					}
+				}
+			}
+		}
+	}
+	p, _ := kernel.NewIm2col(kernel.Conv2D{C: 1, H: 4, W: 4, KH: 3, KW: 3})
+	if err := p.DepthwiseRows(make([]float32, 8), make([]float32, 32), make([]float32, 18), 2, 1, 0, 2, 1, 3, nil, make([]float32, p.DepthwiseScratch())); err == nil {
+		t.Error("rows [1, 3) of a 2-row output accepted")
+	}
+}
+
 // TestDepthwiseBackwardPlanesMatchesDefinition runs the batched backward
 // entry point (one-channel plan, two images, channel runs as goroutines
 // take them) against dwBackwardDirect applied image by image, with the
