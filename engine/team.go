@@ -68,16 +68,30 @@ type phaseJob struct {
 	taken atomic.Bool
 }
 
-// phaseState counts one phase's claimed and finished tasks; released is
-// closed by the goroutine that finishes its last task, for waiters that
-// stopped spinning.
+// phaseState counts one phase's claimed and finished tasks. A waiter that
+// stops spinning parks on a channel it puts in released; the goroutine
+// that finishes the phase's last task swaps in closedPhase and closes
+// the channel it found, if any. Waiters rarely park, so no channel is
+// made for a phase nobody waits on (making one per phase up front was
+// part of the time a helper took to join a job).
 type phaseState struct {
 	// claimed counts the tasks taken from the front (low 32 bits, by the
 	// caller) and from the back (high 32 bits, by the helpers).
 	claimed  atomic.Uint64
 	done     atomic.Int64
-	released chan struct{}
+	released atomic.Pointer[chan struct{}]
 	_        [40]byte // keep the counters of adjacent phases on separate cache lines
+}
+
+// closedPhase marks a phaseState whose tasks have all finished.
+var closedPhase = new(chan struct{})
+
+// finish is called once a phase's last task has finished: it wakes a
+// parked waiter.
+func (ps *phaseState) finish() {
+	if ch := ps.released.Swap(closedPhase); ch != nil {
+		close(*ch)
+	}
 }
 
 // claim returns the next unclaimed task of a phase of c tasks, or −1 when
@@ -121,9 +135,6 @@ func (tm *team) run(counts []int, f func(phase, t int) error) error {
 		return nil
 	}
 	j := &phaseJob{counts: counts, f: f, phases: make([]phaseState, len(counts))}
-	for p := range j.phases {
-		j.phases[p].released = make(chan struct{})
-	}
 	helpers := min(runtime.GOMAXPROCS(0), most) - 1
 	for h := 0; h < helpers; h++ {
 		switch {
@@ -214,7 +225,7 @@ func (j *phaseJob) work(caller bool) {
 				}
 			}
 			if ps.done.Add(1) == int64(c) {
-				close(ps.released)
+				ps.finish()
 			}
 		}
 		if p == len(j.counts)-1 && !caller {
@@ -228,7 +239,7 @@ func (j *phaseJob) work(caller bool) {
 
 // wait returns once all c tasks of the phase have finished: it polls the
 // counter for barrierSpin, then parks until the last task's goroutine
-// closes released.
+// closes the channel it leaves in released.
 func (ps *phaseState) wait(c int64) {
 	if ps.done.Load() >= c {
 		return
@@ -242,5 +253,19 @@ func (ps *phaseState) wait(c int64) {
 			break
 		}
 	}
-	<-ps.released
+	ch := make(chan struct{})
+	for {
+		switch cur := ps.released.Load(); {
+		case cur == closedPhase:
+			return
+		case cur != nil: // another waiter's channel (several helpers)
+			<-*cur
+			return
+		case ps.released.CompareAndSwap(nil, &ch):
+			if ps.done.Load() < c {
+				<-ch // finish, still to come, closes it
+			}
+			return
+		}
+	}
 }
