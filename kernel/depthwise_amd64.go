@@ -2,10 +2,6 @@ package kernel
 
 import "golang.org/x/sys/cpu"
 
-// dwTailMasks gives the AVX2 kernels their partial-vector store masks:
-// &dwTailMasks[8-t] is 8 lane masks with the first t lanes set.
-var dwTailMasks = [16]int32{-1, -1, -1, -1, -1, -1, -1, -1}
-
 // dwVectorShape reports whether isa (ISAAuto: the best the CPU has) has
 // a plane kernel for the filter of a: K×K with K = 3 or 5, unit dilation
 // and equal strides of 1 or 2.
@@ -133,23 +129,6 @@ func dwResolve(isa ISA) (ISA, int) {
 		return isa, 8
 	}
 	return isa, 0
-}
-
-// dwFillSIMD copies rows rows of n floats from src (row pitch spitch) to
-// dst (row pitch dpitch) with the vector copy loop, reporting false (and
-// doing nothing) when isa has none or the slices are too short.
-func dwFillSIMD(isa ISA, dst, src []float32, rows, n, dpitch, spitch int) bool {
-	isa, width := dwResolve(isa)
-	if width == 0 || rows <= 0 || n <= 0 || len(dst) < (rows-1)*dpitch+n || len(src) < (rows-1)*spitch+n {
-		return false
-	}
-	tail := n % width
-	if isa == ISAAVX512 {
-		dwFillAVX512(&dst[0], &src[0], rows, n, 4*dpitch, 4*spitch, 1<<tail-1)
-	} else {
-		dwFillAVX2(&dst[0], &src[0], rows, n, 4*dpitch, 4*spitch, &dwTailMasks[8-tail])
-	}
-	return true
 }
 
 // dwFillPhasedSIMD de-interleaves rows rows of n floats of src (row pitch
