@@ -202,9 +202,13 @@ func (op *convOp) forwardEp(in []*tensor.Tensor, res []float32, act actKind, lo,
 			col = *buf
 		}
 		images := s.n
-		if panels && !slabs && s.n > 1 && op.group == 1 {
+		if panels && !slabs && s.n > 1 && op.group == 1 && !(op.useRows(s) && op.useKSplit(s, kk)) {
 			// Several images with small output maps: one product over
-			// the images' columns side by side (nn_conv_slab.go).
+			// the images' columns side by side (nn_conv_slab.go). A
+			// projection split by input channels goes image by image
+			// instead, so each image's sums are those of a batch of
+			// one (incremental occlusion's maps must not depend on the
+			// batch size).
 			if err := op.batchForward(plan, x.F32, s.n, s.cg, g, w.F32, s.m, kk, y.F32, ep); err != nil {
 				return nil, err
 			}

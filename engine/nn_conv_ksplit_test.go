@@ -17,7 +17,8 @@ import (
 // no whole block of 16). Each is checked with no activation, Relu and
 // Clip, with and without a residual, against the direct convolution of
 // the ONNX definition (kernel.Naive), and must give the same bits with
-// one core as with all of them: the halves depend on the shape only.
+// one core as with all of them, and as the middle image of a batch of
+// three: the halves depend on the layer's shape only.
 func TestConvKSplitMatchesReference(t *testing.T) {
 	if !kernel.Supported(kernel.ISAAVX512) {
 		t.Skip("the row-panel path runs on AVX-512 only")
@@ -55,6 +56,20 @@ func TestConvKSplitMatchesReference(t *testing.T) {
 		for j := range all[0].F32 {
 			if math.Float32bits(all[0].F32[j]) != math.Float32bits(one[0].F32[j]) {
 				t.Fatalf("case %d: y[%d] = %v on %d cores, %v on one", i, j, all[0].F32[j], prev, one[0].F32[j])
+			}
+		}
+
+		// In a batch of three, the image is computed as alone.
+		x3 := nnRand(rng, 3, tc.c, tc.h, tc.w)
+		copy(x3.F32[tc.c*tc.h*tc.w:], x.F32)
+		three, err := fc.Forward([]*tensor.Tensor{x3, wt, bias})
+		if err != nil {
+			t.Fatal(err)
+		}
+		per := tc.m * tc.h * tc.w
+		for j, v := range three[0].F32[per : 2*per] {
+			if math.Float32bits(v) != math.Float32bits(all[0].F32[j]) {
+				t.Fatalf("case %d: y[%d] = %v as image 1 of 3, %v alone", i, j, v, all[0].F32[j])
 			}
 		}
 	}
