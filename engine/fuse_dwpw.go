@@ -46,14 +46,7 @@ type dwpwPair struct {
 
 // planDepthwisePointwise finds the pairs, keyed by the depthwise node.
 func planDepthwisePointwise(g *Graph, fp *fusionPlan) map[int]*dwpwPair {
-	readers := make([]int, len(g.names))
-	for _, nd := range g.nodes {
-		for _, v := range nd.in {
-			if v >= 0 {
-				readers[v]++
-			}
-		}
-	}
+	readers := valueReaders(g)
 	taken := map[int]bool{} // depthwise halves of expansion pairs
 	for _, pr := range fp.pwdwByPW {
 		if w := g.consts[g.nodes[pr.pw].in[1]]; len(w.Shape) == 4 && w.Shape[2] == 1 && w.Shape[3] == 1 {
@@ -196,12 +189,7 @@ func (p *Pass) runPendingDW(k int, op Op, in []*tensor.Tensor) ([]*tensor.Tensor
 	if err != nil {
 		return nil, true, err
 	}
-	// The depthwise input was held past its last reader for this node.
-	if g.lastUse[pd.x] < k && g.producer[pd.x] >= 0 && p.vals[pd.x] != nil && !g.isOutput[pd.x] {
-		p.liveBytes -= dataBytes(p.vals[pd.x])
-		g.recycle(p, pd.x)
-		p.vals[pd.x] = nil
-	}
+	p.releaseHeld(pd.x, k)
 	return y, true, nil
 }
 

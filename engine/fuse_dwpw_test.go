@@ -1,8 +1,7 @@
 package engine
 
 import (
-	"context"
-	"math"
+	"fmt"
 	"math/rand"
 	"testing"
 
@@ -82,26 +81,7 @@ func TestDepthwisePointwiseExact(t *testing.T) {
 			keepD = append(keepD, d)
 		}
 		for _, batch := range []int{1, 3} {
-			x := nnRand(rng, batch, tc.c, tc.hw, tc.hw)
-			in := map[string]*tensor.Tensor{"x": x}
-			var outs [2]*tensor.Tensor
-			for i, keep := range [][]string{nil, keepD} {
-				for rep := 0; rep < 2; rep++ { // the second pass reuses pooled buffers
-					p, err := g.Run(context.Background(), in, RunOptions{Keep: keep, WholeBatch: true})
-					if err != nil {
-						t.Fatalf("%s: %v", tc.name, err)
-					}
-					if want := i == 0 && tc.pwAct != "Add"; (p.pairs > 0) != want {
-						t.Fatalf("%s batch %d: %d pairs computed together, want them %v", tc.name, batch, p.pairs, want)
-					}
-					outs[i], _ = p.Value("y")
-				}
-			}
-			for i := range outs[0].F32 {
-				if math.Float32bits(outs[0].F32[i]) != math.Float32bits(outs[1].F32[i]) {
-					t.Fatalf("%s batch %d: y[%d] %v by bands, %v layer by layer", tc.name, batch, i, outs[0].F32[i], outs[1].F32[i])
-				}
-			}
+			checkPairExact(t, fmt.Sprintf("%s batch %d", tc.name, batch), g, nnRand(rng, batch, tc.c, tc.hw, tc.hw), keepD, tc.pwAct != "Add")
 		}
 	}
 }

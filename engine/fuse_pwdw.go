@@ -43,14 +43,7 @@ type pwdwPair struct {
 
 // planPointwiseDepthwise finds the pairs, keyed by the pointwise node.
 func planPointwiseDepthwise(g *Graph, fp *fusionPlan) map[int]*pwdwPair {
-	readers := make([]int, len(g.names))
-	for _, nd := range g.nodes {
-		for _, v := range nd.in {
-			if v >= 0 {
-				readers[v]++
-			}
-		}
-	}
+	readers := valueReaders(g)
 	pairs := map[int]*pwdwPair{}
 	for k, nd := range g.nodes {
 		if _, ok := nd.op.(*convOp); !ok || len(nd.out) != 1 || nd.out[0] < 0 {
@@ -161,29 +154,40 @@ func (p *Pass) runPending(k int, op Op, in []*tensor.Tensor) ([]*tensor.Tensor, 
 	var dw *convOp
 	var act actKind
 	var lo, hi float32
-	switch o := op.(type) {
-	case *convOp:
-		dw = o
-	case *fusedConvAct:
-		if o.res >= 0 {
-			return nil, true, fmt.Errorf("engine: a residual depthwise chain cannot take a deferred pointwise input")
-		}
-		dw, act, lo, hi = o.conv, o.act, o.lo, o.hi
-	default:
+	dw, act, lo, hi, ok := chainParts(op)
+	if !ok {
 		return nil, true, fmt.Errorf("engine: node %d: unexpected operator %T after a deferred pointwise product", k, op)
 	}
-	x := p.vals[pd.x]
-	y, err := dw.forwardAfterPointwise(pw, x, p.vals[pwNode.in[1]], pwEp, in, act, lo, hi)
+	y, err := dw.forwardAfterPointwise(pw, p.vals[pd.x], p.vals[pwNode.in[1]], pwEp, in, act, lo, hi)
 	if err != nil {
 		return nil, true, err
 	}
-	// The pointwise input was held past its last reader for this node.
-	if g.lastUse[pd.x] < k && g.producer[pd.x] >= 0 && p.vals[pd.x] != nil && !g.isOutput[pd.x] {
-		p.liveBytes -= dataBytes(p.vals[pd.x])
-		g.recycle(p, pd.x)
-		p.vals[pd.x] = nil
-	}
+	p.releaseHeld(pd.x, k)
 	return y, true, nil
+}
+
+// valueReaders counts, for every value of g, the node inputs that read it.
+func valueReaders(g *Graph) []int {
+	readers := make([]int, len(g.names))
+	for _, nd := range g.nodes {
+		for _, v := range nd.in {
+			if v >= 0 {
+				readers[v]++
+			}
+		}
+	}
+	return readers
+}
+
+// releaseHeld frees value x, the input of a pair's first node that Run
+// held for the pair's second node k, when its last reader has run.
+func (p *Pass) releaseHeld(x, k int) {
+	g := p.g
+	if g.lastUse[x] < k && g.producer[x] >= 0 && p.vals[x] != nil && !g.isOutput[x] {
+		p.liveBytes -= dataBytes(p.vals[x])
+		g.recycle(p, x)
+		p.vals[x] = nil
+	}
 }
 
 // heldForPending reports whether value v is the input of the pending

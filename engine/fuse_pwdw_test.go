@@ -2,6 +2,7 @@ package engine
 
 import (
 	"context"
+	"fmt"
 	"math"
 	"math/rand"
 	"testing"
@@ -74,26 +75,35 @@ func TestPointwiseDepthwiseExact(t *testing.T) {
 			t.Fatal(err)
 		}
 		for _, batch := range []int{1, 3} {
-			x := nnRand(rng, batch, c, tc.hw, tc.hw)
-			in := map[string]*tensor.Tensor{"x": x}
-			var outs [2]*tensor.Tensor
-			for i, keep := range [][]string{nil, {"z", e}} {
-				for rep := 0; rep < 2; rep++ { // the second pass reuses pooled buffers
-					p, err := g.Run(context.Background(), in, RunOptions{Keep: keep, WholeBatch: true})
-					if err != nil {
-						t.Fatalf("%s: %v", tc.name, err)
-					}
-					if want := i == 0 && tc.dwAct != "Add"; (p.pairs > 0) != want {
-						t.Fatalf("%s batch %d: %d pairs computed together, want them %v", tc.name, batch, p.pairs, want)
-					}
-					outs[i], _ = p.Value("y")
-				}
+			checkPairExact(t, fmt.Sprintf("%s batch %d", tc.name, batch), g, nnRand(rng, batch, c, tc.hw, tc.hw), []string{"z", e}, tc.dwAct != "Add")
+		}
+	}
+}
+
+// checkPairExact runs g on x ("x" → "y") with nothing kept, where a pair
+// of layers may be computed together, and keeping the values in keep, so
+// that each layer runs on its own, twice each way (the second pass reuses
+// pooled buffers). It requires the pair taken (p.pairs > 0) exactly when
+// pair says and only in the first way, and y bit for bit the same.
+func checkPairExact(t *testing.T, what string, g *Graph, x *tensor.Tensor, keep []string, pair bool) {
+	t.Helper()
+	in := map[string]*tensor.Tensor{"x": x}
+	var outs [2]*tensor.Tensor
+	for i, kept := range [][]string{nil, keep} {
+		for rep := 0; rep < 2; rep++ {
+			p, err := g.Run(context.Background(), in, RunOptions{Keep: kept, WholeBatch: true})
+			if err != nil {
+				t.Fatalf("%s: %v", what, err)
 			}
-			for i := range outs[0].F32 {
-				if math.Float32bits(outs[0].F32[i]) != math.Float32bits(outs[1].F32[i]) {
-					t.Fatalf("%s batch %d: y[%d] %v by blocks, %v layer by layer", tc.name, batch, i, outs[0].F32[i], outs[1].F32[i])
-				}
+			if want := i == 0 && pair; (p.pairs > 0) != want {
+				t.Fatalf("%s: %d pairs computed together, want them %v", what, p.pairs, want)
 			}
+			outs[i], _ = p.Value("y")
+		}
+	}
+	for i := range outs[0].F32 {
+		if math.Float32bits(outs[0].F32[i]) != math.Float32bits(outs[1].F32[i]) {
+			t.Fatalf("%s: y[%d] %v as a pair, %v layer by layer", what, i, outs[0].F32[i], outs[1].F32[i])
 		}
 	}
 }

@@ -263,41 +263,30 @@ func TestDepthwiseFusedRejectsBadInput(t *testing.T) {
 func TestDepthwisePlanesMatchesDefinition(t *testing.T) {
 	r := rand.New(rand.NewPCG(51, 52))
 	const n, c = 2, 5
-	for _, mult := range []int{1, 2} {
-		for _, g := range []kernel.Conv2D{
-			{C: 1, H: 14, W: 14, KH: 3, KW: 3, PadTop: 1, PadLeft: 1, PadBottom: 1, PadRight: 1},
-			{C: 1, H: 15, W: 13, KH: 5, KW: 5, StrideH: 2, StrideW: 2, PadTop: 2, PadLeft: 2, PadBottom: 2, PadRight: 2},
-			{C: 1, H: 9, W: 10, KH: 3, KW: 3, DilationH: 2, DilationW: 2, PadTop: 2, PadLeft: 2, PadBottom: 2, PadRight: 2},
-		} {
-			p, err := kernel.NewIm2col(g)
-			if err != nil {
-				t.Fatal(err)
-			}
-			oh, ow := p.Out()
-			m := c * mult
-			x := randSlice(r, n*c*g.H*g.W)
-			w := randSlice(r, m*g.KH*g.KW)
-			bias := randSlice(r, m)
-			gc := p.Geometry()
-			want := directConv(x, n, c, g.H, g.W, w, m, c, gc, oh, ow)
-			for j := range want {
-				want[j] = min(1.5, max(-0.25, want[j]+bias[j/(oh*ow)%m]))
-			}
-			ep := kernel.DepthwiseEpilogue{Bias: bias, Lo: -0.25, Hi: 1.5}
-			for _, isa := range dwISAs() {
-				got := make([]float32, len(want))
-				scratch := make([]float32, p.DepthwiseScratch())
-				for _, rg := range [][2]int{{0, 3}, {3, 4}, {4, n * c}} {
-					if err := p.DepthwisePlanesISA(isa, got, x, w, c, mult, rg[0], rg[1], &ep, scratch); err != nil {
-						t.Fatal(err)
-					}
+	eachDepthwiseCase(t, r, n, c, []kernel.Conv2D{
+		{C: 1, H: 14, W: 14, KH: 3, KW: 3, PadTop: 1, PadLeft: 1, PadBottom: 1, PadRight: 1},
+		{C: 1, H: 15, W: 13, KH: 5, KW: 5, StrideH: 2, StrideW: 2, PadTop: 2, PadLeft: 2, PadBottom: 2, PadRight: 2},
+		{C: 1, H: 9, W: 10, KH: 3, KW: 3, DilationH: 2, DilationW: 2, PadTop: 2, PadLeft: 2, PadBottom: 2, PadRight: 2},
+	}, func(g kernel.Conv2D, p *kernel.Im2colPlan, mult, m, oh, ow int, x, w []float32) {
+		bias := randSlice(r, m)
+		want := directConv(x, n, c, g.H, g.W, w, m, c, p.Geometry(), oh, ow)
+		for j := range want {
+			want[j] = min(1.5, max(-0.25, want[j]+bias[j/(oh*ow)%m]))
+		}
+		ep := kernel.DepthwiseEpilogue{Bias: bias, Lo: -0.25, Hi: 1.5}
+		for _, isa := range dwISAs() {
+			got := make([]float32, len(want))
+			scratch := make([]float32, p.DepthwiseScratch())
+			for _, rg := range [][2]int{{0, 3}, {3, 4}, {4, n * c}} {
+				if err := p.DepthwisePlanesISA(isa, got, x, w, c, mult, rg[0], rg[1], &ep, scratch); err != nil {
+					t.Fatal(err)
 				}
-				if err := closeTo(got, want, 1e-5, 1e-5); err != nil {
-					t.Fatalf("%+v mult %d %v: %v", g, mult, isa, err)
-				}
+			}
+			if err := closeTo(got, want, 1e-5, 1e-5); err != nil {
+				t.Fatalf("%+v mult %d %v: %v", g, mult, isa, err)
 			}
 		}
-	}
+	})
 	p, _ := kernel.NewIm2col(kernel.Conv2D{C: 2, H: 4, W: 4, KH: 3, KW: 3})
 	if err := p.DepthwisePlanes(make([]float32, 8), make([]float32, 32), make([]float32, 18), 2, 1, 0, 2, nil, make([]float32, p.DepthwiseScratch())); err == nil {
 		t.Error("two-channel plan accepted")
@@ -313,55 +302,45 @@ func TestDepthwisePlanesMatchesDefinition(t *testing.T) {
 func TestDepthwiseRowsMatchesPlanes(t *testing.T) {
 	r := rand.New(rand.NewPCG(53, 54))
 	const n, c = 2, 3
-	for _, mult := range []int{1, 2} {
-		for _, g := range []kernel.Conv2D{
-			{C: 1, H: 20, W: 20, KH: 3, KW: 3, PadTop: 1, PadLeft: 1, PadBottom: 1, PadRight: 1},
-			{C: 1, H: 23, W: 21, KH: 3, KW: 3, StrideH: 2, StrideW: 2, PadTop: 1, PadLeft: 1, PadBottom: 1, PadRight: 1},
-			{C: 1, H: 17, W: 19, KH: 5, KW: 5, StrideH: 2, StrideW: 2, PadTop: 2, PadLeft: 2, PadBottom: 2, PadRight: 2},
-			{C: 1, H: 12, W: 40, KH: 3, KW: 3, DilationH: 2, DilationW: 2, PadTop: 2, PadLeft: 2, PadBottom: 2, PadRight: 2},
-		} {
-			p, err := kernel.NewIm2col(g)
-			if err != nil {
+	eachDepthwiseCase(t, r, n, c, []kernel.Conv2D{
+		{C: 1, H: 20, W: 20, KH: 3, KW: 3, PadTop: 1, PadLeft: 1, PadBottom: 1, PadRight: 1},
+		{C: 1, H: 23, W: 21, KH: 3, KW: 3, StrideH: 2, StrideW: 2, PadTop: 1, PadLeft: 1, PadBottom: 1, PadRight: 1},
+		{C: 1, H: 17, W: 19, KH: 5, KW: 5, StrideH: 2, StrideW: 2, PadTop: 2, PadLeft: 2, PadBottom: 2, PadRight: 2},
+		{C: 1, H: 12, W: 40, KH: 3, KW: 3, DilationH: 2, DilationW: 2, PadTop: 2, PadLeft: 2, PadBottom: 2, PadRight: 2},
+	}, func(g kernel.Conv2D, p *kernel.Im2colPlan, mult, m, oh, ow int, x, w []float32) {
+		ep := kernel.DepthwiseEpilogue{Bias: randSlice(r, m), Lo: -0.25, Hi: 1.5}
+		for _, isa := range dwISAs() {
+			scratch := make([]float32, p.DepthwiseScratch())
+			want := make([]float32, n*m*oh*ow)
+			if err := p.DepthwisePlanesISA(isa, want, x, w, c, mult, 0, n*c, &ep, scratch); err != nil {
 				t.Fatal(err)
 			}
-			oh, ow := p.Out()
-			m := c * mult
-			x := randSlice(r, n*c*g.H*g.W)
-			w := randSlice(r, m*g.KH*g.KW)
-			ep := kernel.DepthwiseEpilogue{Bias: randSlice(r, m), Lo: -0.25, Hi: 1.5}
-			for _, isa := range dwISAs() {
-				scratch := make([]float32, p.DepthwiseScratch())
-				want := make([]float32, n*m*oh*ow)
-				if err := p.DepthwisePlanesISA(isa, want, x, w, c, mult, 0, n*c, &ep, scratch); err != nil {
-					t.Fatal(err)
+			for _, cuts := range [][]int{{0, 1, 2, oh}, {0, oh / 3, oh/3 + 1, oh}, {0, oh - 1, oh}} {
+				got := make([]float32, len(want))
+				for i := range got {
+					got[i] = float32(math.NaN())
 				}
-				for _, cuts := range [][]int{{0, 1, 2, oh}, {0, oh / 3, oh/3 + 1, oh}, {0, oh - 1, oh}} {
-					got := make([]float32, len(want))
-					for i := range got {
-						got[i] = float32(math.NaN())
+				for b := 0; b+1 < len(cuts); b++ {
+					if err := p.DepthwiseRowsISA(isa, got, x, w, c, mult, 0, n*c, cuts[b], cuts[b+1], &ep, scratch); err != nil {
+						t.Fatal(err)
 					}
-					for b := 0; b+1 < len(cuts); b++ {
-						if err := p.DepthwiseRowsISA(isa, got, x, w, c, mult, 0, n*c, cuts[b], cuts[b+1], &ep, scratch); err != nil {
-							t.Fatal(err)
-						}
-						// Rows past this band are still unwritten.
-						for pl := 0; pl < n*m; pl++ {
-							for j := cuts[b+1] * ow; j < oh*ow; j++ {
-								if v := got[pl*oh*ow+j]; !math.IsNaN(float64(v)) {
-									t.Fatalf("%+v mult %d %v: band [%d, %d) wrote plane %d value %d", g, mult, isa, cuts[b], cuts[b+1], pl, j)
-								}
+					// Rows past this band are still unwritten.
+					for pl := 0; pl < n*m; pl++ {
+						for j := cuts[b+1] * ow; j < oh*ow; j++ {
+							if v := got[pl*oh*ow+j]; !math.IsNaN(float64(v)) {
+								t.Fatalf("%+v mult %d %v: band [%d, %d) wrote plane %d value %d", g, mult, isa, cuts[b], cuts[b+1], pl, j)
 							}
 						}
 					}
-					for i := range want {
-						if math.Float32bits(got[i]) != math.Float32bits(want[i]) {
-							t.Fatalf("%+v mult %d %v bands %v: value %d is %v by bands, %v by planes", g, mult, isa, cuts, i, got[i], want[i])
-						}
+				}
+				for i := range want {
+					if math.Float32bits(got[i]) != math.Float32bits(want[i]) {
+						t.Fatalf("%+v mult %d %v bands %v: value %d is %v by bands, %v by planes", g, mult, isa, cuts, i, got[i], want[i])
 					}
 				}
 			}
 		}
-	}
+	})
 	p, _ := kernel.NewIm2col(kernel.Conv2D{C: 1, H: 4, W: 4, KH: 3, KW: 3})
 	if err := p.DepthwiseRows(make([]float32, 8), make([]float32, 32), make([]float32, 18), 2, 1, 0, 2, 1, 3, nil, make([]float32, p.DepthwiseScratch())); err == nil {
 		t.Error("rows [1, 3) of a 2-row output accepted")
@@ -432,5 +411,24 @@ func TestDepthwiseBackwardPlanesMatchesDefinition(t *testing.T) {
 	}
 	if err := p.DepthwiseBackwardPlanes(make([]float32, 32), nil, make([]float32, 7), nil, make([]float32, 18), 1, 2, 1, 0, 2, make([]float32, p.DepthwiseBackwardScratch()), false); err == nil {
 		t.Error("short dy accepted")
+	}
+}
+
+// eachDepthwiseCase calls f for each one-channel geometry of geoms at
+// channel multipliers 1 and 2, with the plan, its output size and random
+// inputs for n images of c channels (x) and the m = c·multiplier filters
+// (w).
+func eachDepthwiseCase(t *testing.T, r *rand.Rand, n, c int, geoms []kernel.Conv2D, f func(g kernel.Conv2D, p *kernel.Im2colPlan, mult, m, oh, ow int, x, w []float32)) {
+	t.Helper()
+	for _, mult := range []int{1, 2} {
+		for _, g := range geoms {
+			p, err := kernel.NewIm2col(g)
+			if err != nil {
+				t.Fatal(err)
+			}
+			oh, ow := p.Out()
+			m := c * mult
+			f(g, p, mult, m, oh, ow, randSlice(r, n*c*g.H*g.W), randSlice(r, m*g.KH*g.KW))
+		}
 	}
 }
