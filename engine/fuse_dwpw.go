@@ -49,9 +49,7 @@ func planDepthwisePointwise(g *Graph, fp *fusionPlan) map[int]*dwpwPair {
 	readers := valueReaders(g)
 	taken := map[int]bool{} // depthwise halves of expansion pairs
 	for _, pr := range fp.pwdwByPW {
-		if w := g.consts[g.nodes[pr.pw].in[1]]; len(w.Shape) == 4 && w.Shape[2] == 1 && w.Shape[3] == 1 {
-			taken[pr.dw] = true // a 1×1 expansion (the planner takes any Conv; Run checks)
-		}
+		taken[pr.dw] = true
 	}
 	pairs := map[int]*dwpwPair{}
 	for k, nd := range g.nodes {
@@ -132,11 +130,11 @@ func (p *Pass) deferDepthwise(k int, op Op, keep []bool, in []*tensor.Tensor) []
 	if wp == nil || pw.group != 1 || len(wp.Shape) != 4 || wp.Shape[1] != s.m || wp.Shape[2] != 1 || wp.Shape[3] != 1 {
 		return nil
 	}
-	sp, err := pw.shape(&tensor.Tensor{DType: tensor.Float32, Shape: s.g.outShape(s.n, s.m, s.spatial)}, wp)
+	out := &tensor.Tensor{DType: tensor.Float32, Shape: s.g.outShape(s.n, s.m, s.spatial)}
+	sp, err := pw.shape(out, wp)
 	if err != nil || !sp.pointwise() || !pw.useSlabs(s.m, s.g.oh*s.g.ow) {
 		return nil
 	}
-	out := &tensor.Tensor{DType: tensor.Float32, Shape: s.g.outShape(s.n, s.m, s.spatial)}
 	p.producedBytes += 4 * int64(tensor.Numel(out.Shape)) // as if computed (split.go)
 	p.pendingDW = &pendingDW{pair: pr, out: out, op: op, x: g.nodes[k].in[0]}
 	return []*tensor.Tensor{out}

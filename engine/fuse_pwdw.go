@@ -59,7 +59,7 @@ func planPointwiseDepthwise(g *Graph, fp *fusionPlan) map[int]*pwdwPair {
 			continue
 		}
 		dw := g.nodes[pr.dw]
-		if _, ok := dw.op.(*convOp); !ok || len(dw.in) < 2 || dw.in[0] != pr.v || !weightsConst(g, nd) || !weightsConst(g, dw) {
+		if _, ok := dw.op.(*convOp); !ok || len(dw.in) < 2 || dw.in[0] != pr.v || !weightsConst(g, nd) || !weightsConst(g, dw) || !oneByOne(g, nd) {
 			continue
 		}
 		if _, ok := fp.resid[pr.dw]; ok {
@@ -68,6 +68,13 @@ func planPointwiseDepthwise(g *Graph, fp *fusionPlan) map[int]*pwdwPair {
 		pairs[k] = pr
 	}
 	return pairs
+}
+
+// oneByOne reports whether a Conv node's constant weights W are 1×1
+// filters (Run checks the rest of what makes it pointwise).
+func oneByOne(g *Graph, nd *node) bool {
+	w := g.consts[nd.in[1]]
+	return len(w.Shape) == 4 && w.Shape[2] == 1 && w.Shape[3] == 1
 }
 
 // weightsConst reports whether a Conv node's W and B are graph constants.
@@ -151,9 +158,6 @@ func (p *Pass) runPending(k int, op Op, in []*tensor.Tensor) ([]*tensor.Tensor, 
 	if len(pwNode.in) > 2 && pwNode.in[2] >= 0 {
 		pwEp.bias = p.vals[pwNode.in[2]].F32
 	}
-	var dw *convOp
-	var act actKind
-	var lo, hi float32
 	dw, act, lo, hi, ok := chainParts(op)
 	if !ok {
 		return nil, true, fmt.Errorf("engine: node %d: unexpected operator %T after a deferred pointwise product", k, op)

@@ -202,7 +202,7 @@ func (op *convOp) forwardEp(in []*tensor.Tensor, res []float32, act actKind, lo,
 			col = *buf
 		}
 		images := s.n
-		if panels && !slabs && s.n > 1 && op.group == 1 && !(op.useRows(s) && op.useKSplit(s, kk)) {
+		if panels && !slabs && s.n > 1 && op.group == 1 && !op.useKSplit(s, kk) {
 			// Several images with small output maps: one product over
 			// the images' columns side by side (nn_conv_slab.go). A
 			// projection split by input channels goes image by image
@@ -223,7 +223,7 @@ func (op *convOp) forwardEp(in []*tensor.Tensor, res []float32, act actKind, lo,
 				switch {
 				case slabs:
 					err = op.slabForward(plan, xg, s.cg, g, wg, s.mg, kk, yg, epg, gi*s.mg)
-				case panels && op.useRows(s) && op.useKSplit(s, kk):
+				case panels && op.useKSplit(s, kk):
 					err = op.rowForwardKSplit(xg, g, op.rowWeightHalves(w, s.m, kk), s.mg, kk, yg, epg.forGroup(gi*s.mg))
 				case panels && op.useRows(s):
 					wp := op.rowWeights(w, s.m, kk)

@@ -19,13 +19,13 @@ func (packedWeightHalf) Forward([]*tensor.Tensor) ([]*tensor.Tensor, error) {
 	return nil, fmt.Errorf("packedWeightHalf is a memo key, not an operator")
 }
 
-// useKSplit reports whether a pointwise layer on the row-panel path is
-// split by input channels (rowForwardKSplit): a projection, with fewer
-// output channels than input ones. The rule reads only the shape, never
-// the number of cores, so a layer's sums do not depend on the machine.
+// useKSplit reports whether a layer that takes the row-panel path
+// (useRows) is split by input channels (rowForwardKSplit): a pointwise
+// projection, with fewer output channels than input ones. The rule reads
+// only the shape, never the number of cores, so a layer's sums do not
+// depend on the machine.
 func (op *convOp) useKSplit(s convShape, kk int) bool {
-	return s.pointwise() && op.group == 1 && s.mg < kk && kk >= 2*kSplitMinHalf &&
-		op.gemm1.ISA() == kernel.ISAAVX512
+	return op.useRows(s) && s.pointwise() && s.mg < kk && kk >= 2*kSplitMinHalf
 }
 
 // kSplitMinHalf is the fewest input channels a half may have.

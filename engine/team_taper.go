@@ -35,7 +35,7 @@ func newCappedTaper(n, workers, most int) taper {
 	tp := taper{n: n, workers: max(workers, 1), most: max(most, 1)}
 	tp.unit = max(1, min((n+2*taperPerCore*tp.workers-1)/(2*taperPerCore*tp.workers), tp.most/4))
 	if n <= 2*taperPerCore*tp.workers {
-		tp.unit = n + 1 // every task one unit (see walk)
+		tp.unit, tp.most = 1, 1 // every task one unit
 	}
 	tp.tasks = tp.walk(-1, nil)
 	return tp
@@ -50,12 +50,6 @@ func (tp taper) walk(t int, bounds *[2]int) int {
 		if i == t && bounds != nil {
 			bounds[0], bounds[1] = i0, i1
 		}
-	}
-	if tp.unit > tp.n { // single units
-		if t >= 0 && t < tp.n {
-			set(t, t, t+1)
-		}
-		return tp.n
 	}
 	front, back := 0, tp.n
 	for k := 0; ; k++ {

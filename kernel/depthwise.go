@@ -153,22 +153,26 @@ func (l dwLayout) filler(isa ISA, r0, r1 int) dwFiller {
 		return f
 	}
 	f.isa = vis
-	r := f.nc % width
-	if !l.phased {
-		if vis == ISAAVX512 {
-			f.mask = 1<<r - 1
-		} else {
-			f.m1 = &dwTailMasks[8-r]
-		}
-		return f
-	}
-	re, ro := (r+1)/2, r/2
-	if vis == ISAAVX512 {
-		f.mask = (1<<r - 1) | (1<<re-1)<<16 | (1<<ro-1)<<32
-	} else {
-		f.m1, f.m2, f.m3 = &dwTailMasks[8-r], &dwTailMasks[8-re], &dwTailMasks[8-ro]
-	}
+	f.mask, f.m1, f.m2, f.m3 = dwCopyMasks(vis, f.nc%width, l.phased)
 	return f
+}
+
+// dwCopyMasks returns the tail masks of the vector copy of rows whose
+// last vector holds r floats, on path vis: for AVX-512 a k-register
+// value (phased: the load's mask, the even half's <<16 and the odd
+// half's <<32), for AVX2 the lane masks in dwTailMasks (load; phased:
+// also even, odd).
+func dwCopyMasks(vis ISA, r int, phased bool) (mask int, m1, m2, m3 *int32) {
+	re, ro := (r+1)/2, r/2
+	switch {
+	case vis == ISAAVX512 && !phased:
+		return 1<<r - 1, nil, nil, nil
+	case vis == ISAAVX512:
+		return (1<<r - 1) | (1<<re-1)<<16 | (1<<ro-1)<<32, nil, nil, nil
+	case !phased:
+		return 0, &dwTailMasks[8-r], nil, nil
+	}
+	return 0, &dwTailMasks[8-r], &dwTailMasks[8-re], &dwTailMasks[8-ro]
 }
 
 // fill copies the rows of one image plane (all h·w values of it; only

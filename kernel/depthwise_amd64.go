@@ -141,13 +141,11 @@ func dwFillPhasedSIMD(isa ISA, ev, od, src []float32, rows, n, dpitch, spitch in
 	if width == 0 || rows <= 0 || n <= 0 || len(ev) < (rows-1)*dpitch+ne || len(od) < (rows-1)*dpitch+max(no, 1) || len(src) < (rows-1)*spitch+n {
 		return false
 	}
-	r := n % width
-	re, ro := (r+1)/2, r/2
+	mask, m1, m2, m3 := dwCopyMasks(isa, n%width, true)
 	if isa == ISAAVX512 {
-		mask := (1<<r - 1) | (1<<re-1)<<16 | (1<<ro-1)<<32
 		dwFillPhasedAVX512(&ev[0], &od[0], &src[0], rows, n, 4*dpitch, 4*spitch, mask)
 	} else {
-		dwFillPhasedAVX2(&ev[0], &od[0], &src[0], rows, n, 4*dpitch, 4*spitch, &dwTailMasks[8-r], &dwTailMasks[8-re], &dwTailMasks[8-ro])
+		dwFillPhasedAVX2(&ev[0], &od[0], &src[0], rows, n, 4*dpitch, 4*spitch, m1, m2, m3)
 	}
 	return true
 }

@@ -294,9 +294,9 @@ func TestDepthwisePlanesMatchesDefinition(t *testing.T) {
 }
 
 // TestDepthwiseRowsMatchesPlanes computes layers band by band of output
-// rows (DepthwiseRows, as planDepthwise splits large maps) and requires
-// every value bit for bit equal to DepthwisePlanes over whole planes, on
-// every path: stride 1 and 2 (the phased plane), 3×3 and 5×5, dilation,
+// rows (DepthwiseRows, as the engine's depthwise→pointwise pair takes
+// them) and requires every value bit for bit equal to DepthwisePlanes over
+// whole planes, on every path: stride 1 and 2 (the phased plane), 3×3 and 5×5, dilation,
 // a multiplier of 2, bands of one row and uneven bands; and a band leaves
 // the rows outside it untouched.
 func TestDepthwiseRowsMatchesPlanes(t *testing.T) {
