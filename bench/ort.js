@@ -1,17 +1,20 @@
 // ONNX Runtime reference run for heedmap's side-by-side benchmark.
 //
-// Usage: node ort.js SPEC.json   (written by bench/cmd/heedbench)
-// Prints one JSON object on stdout: per-model forward timings and, when the
-// spec asks for it, the timing of an occlusion map computed with ordinary
-// batched forward passes (the map itself is written as raw little-endian
-// float32 so the Go driver can compare it with heedmap's).
+// Usage: node ort.js   (started by bench/cmd/heedbench, which writes
+// requests on its stdin). It first prints {"ort_version": ...}; then each
+// request line gets one reply line: {"op": "time", ...} the forward timing
+// of one model and batch size, {"op": "occlusion", ...} the timing of an
+// occlusion map computed with ordinary batched forward passes (the map
+// itself is written as raw little-endian float32 so the Go driver can
+// compare it with heedmap's).
 //
-// Every session uses intraOpNumThreads = spec.threads (2) and sequential
+// Every session uses intraOpNumThreads = the request's threads (2) and sequential
 // execution, all graph optimisations on: ONNX Runtime's usual CPU setting.
 'use strict';
 
 const fs = require('fs');
 const path = require('path');
+const readline = require('readline');
 const ort = require(path.join(__dirname, 'node', 'node_modules', 'onnxruntime-node'));
 
 function readF32(file) {
@@ -48,10 +51,9 @@ function origins(n, p, s) {
   return o;
 }
 
-async function occlusion(spec, img, shape) {
+async function occlusion(occ, img, shape) {
   const [c, h, w] = shape;
-  const occ = spec.occlusion;
-  const sess = await session(occ.model, spec.threads);
+  const sess = await session(occ.model, occ.threads);
   const input = sess.inputNames[0], output = sess.outputNames[0];
   const wins = [];
   for (const y of origins(h, occ.patch, occ.stride)) {
@@ -102,25 +104,40 @@ async function occlusion(spec, img, shape) {
   return { model: occ.model, windows: wins.length, batch: occ.batch, seconds: secs, base };
 }
 
+// Worker mode: one JSON request per line on stdin, one JSON reply per line
+// on stdout, so the driver can give each engine its turn of a configuration
+// right after heedmap's (both see the machine in the same state). Sessions
+// are created once per model and kept for the worker's life.
 async function main() {
-  const spec = JSON.parse(fs.readFileSync(process.argv[2], 'utf8'));
-  const img = readF32(spec.image);
-  const shape = spec.shape; // [C, H, W]
-  const result = { ort_version: require(path.join(__dirname, 'node', 'node_modules', 'onnxruntime-node', 'package.json')).version, runs: [] };
-  for (const job of spec.jobs) {
-    const sess = await session(job.model, spec.threads);
-    const input = sess.inputNames[0], output = sess.outputNames[0];
-    const feed = { [input]: batchOf(img, job.batch, shape) };
-    let logits;
-    for (let i = 0; i < job.warmup; i++) logits = (await sess.run(feed))[output];
-    const t0 = process.hrtime.bigint();
-    for (let i = 0; i < job.iters; i++) await sess.run(feed);
-    const secs = seconds(t0);
-    result.runs.push({ name: job.name, batch: job.batch, iters: job.iters, seconds: secs, logits: Array.from(logits.data.slice(0, logits.dims[1])) });
-    if (sess.release) await sess.release();
+  const version = require(path.join(__dirname, 'node', 'node_modules', 'onnxruntime-node', 'package.json')).version;
+  const sessions = new Map();
+  const sessionOf = async (model, threads) => {
+    if (!sessions.has(model)) sessions.set(model, await session(model, threads));
+    return sessions.get(model);
+  };
+  const reply = (obj) => process.stdout.write(JSON.stringify(obj) + '\n');
+  reply({ ort_version: version });
+  const rl = readline.createInterface({ input: process.stdin, terminal: false });
+  for await (const line of rl) {
+    if (!line.trim()) continue;
+    const req = JSON.parse(line);
+    const img = readF32(req.image);
+    if (req.op === 'time') {
+      const sess = await sessionOf(req.model, req.threads);
+      const input = sess.inputNames[0], output = sess.outputNames[0];
+      const feed = { [input]: batchOf(img, req.batch, req.shape) };
+      let logits;
+      for (let i = 0; i < req.warmup; i++) logits = (await sess.run(feed))[output];
+      const t0 = process.hrtime.bigint();
+      for (let i = 0; i < req.iters; i++) await sess.run(feed);
+      const secs = seconds(t0);
+      reply({ name: req.name, batch: req.batch, iters: req.iters, seconds: secs, logits: Array.from(logits.data.slice(0, logits.dims[1])) });
+    } else if (req.op === 'occlusion') {
+      reply(await occlusion(req, img, req.shape));
+    } else {
+      throw new Error(`unknown request ${JSON.stringify(req.op)}`);
+    }
   }
-  if (spec.occlusion) result.occlusion = await occlusion(spec, img, shape);
-  process.stdout.write(JSON.stringify(result) + '\n');
 }
 
 main().catch((e) => {

@@ -1,8 +1,10 @@
 #!/usr/bin/python3
 """PyTorch reference run for heedmap's side-by-side benchmark.
 
-Usage: /usr/bin/python3 bench/torch_bench.py SPEC.json   (written by
-bench/cmd/heedbench). Prints one JSON object on stdout.
+Usage: /usr/bin/python3 bench/torch_bench.py   (started by bench/cmd/heedbench,
+which writes requests on its stdin). It first prints {"torch_version": ...};
+then each request line {"op": "time", ...} gets one reply line with the
+timing of one model, batch size and pass.
 
 The networks are rebuilt with the committed reference script's builders and
 randomisation (testdata/reference/export_nets.py, full-size variants, the
@@ -19,7 +21,10 @@ import os
 import sys
 import time
 
+import numpy
 import torch
+
+torch.set_num_interop_threads(1)  # before any parallel work, as PyTorch requires
 
 HERE = os.path.dirname(os.path.abspath(__file__))
 sys.path.insert(0, os.path.join(HERE, "..", "testdata", "reference"))
@@ -48,21 +53,32 @@ def build(name, cache):
 
 
 def main():
-    spec = json.load(open(sys.argv[1]))
-    torch.set_num_threads(spec["threads"])
-    torch.set_num_interop_threads(1)
-    c, h, w = spec["shape"]
-    img = torch.from_numpy(__import__("numpy").fromfile(spec["image"], dtype="<f4").reshape(1, c, h, w).copy())
-    cls = spec["class"]
-    out = {"torch_version": torch.__version__, "runs": []}
+    # Worker mode: one JSON request per line on stdin, one JSON reply per
+    # line on stdout, so the driver can give PyTorch its turn of a
+    # configuration right after the other engines' (all see the machine in
+    # the same state). Models are built once and kept.
+    reply = lambda obj: (json.dump(obj, sys.stdout), sys.stdout.write("\n"), sys.stdout.flush())
+    reply({"torch_version": torch.__version__})
     models = {}
-    for job in spec["jobs"]:
-        name = job["name"]
+    threads = None
+    for line in sys.stdin:
+        if not line.strip():
+            continue
+        req = json.loads(line)
+        if req.get("op") != "time":
+            raise SystemExit("torch_bench.py: unknown request %r" % req.get("op"))
+        if threads != req["threads"]:
+            threads = req["threads"]
+            torch.set_num_threads(threads)
+        c, h, w = req["shape"]
+        img = torch.from_numpy(numpy.fromfile(req["image"], dtype="<f4").reshape(1, c, h, w).copy())
+        cls = req["class"]
+        name = req["name"]
         if name not in models:
-            models[name] = build(name, spec.get("cache", ""))
+            models[name] = build(name, req.get("cache", ""))
         model = models[name]
-        x = img.repeat(job["batch"], 1, 1, 1)
-        if job["backward"]:
+        x = img.repeat(req["batch"], 1, 1, 1)
+        if req["backward"]:
             def step():
                 xx = x.clone().requires_grad_(True)
                 logits = model(xx)
@@ -72,16 +88,14 @@ def main():
             def step():
                 with torch.no_grad():
                     return model(x)
-        for _ in range(job["warmup"]):
+        for _ in range(req["warmup"]):
             logits = step()
         t0 = time.perf_counter()
-        for _ in range(job["iters"]):
+        for _ in range(req["iters"]):
             step()
         secs = time.perf_counter() - t0
-        out["runs"].append({"name": name, "batch": job["batch"], "backward": job["backward"], "iters": job["iters"],
-                            "seconds": secs, "logits": logits[0].detach().tolist()})
-    json.dump(out, sys.stdout)
-    sys.stdout.write("\n")
+        reply({"name": name, "batch": req["batch"], "backward": req["backward"], "iters": req["iters"],
+               "seconds": secs, "logits": logits[0].detach().tolist()})
 
 
 if __name__ == "__main__":

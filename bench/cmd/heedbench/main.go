@@ -25,11 +25,13 @@ import (
 	"errors"
 	"flag"
 	"fmt"
+	"io"
 	"math"
 	"os"
 	"os/exec"
 	"path/filepath"
 	"runtime"
+	"slices"
 	"strings"
 	"time"
 
@@ -163,69 +165,125 @@ func run(ctx context.Context, c config) error {
 		return err
 	}
 
-	// Rounds: every engine takes a turn per round and the best round is
-	// kept per configuration, so a burst of load from other users during
-	// one engine's turn does not decide a ratio (best-of-N, common practice
-	// for timing on shared machines). The occlusion comparison runs once:
-	// ONNX Runtime's in the last round, heedmap's right after it.
+	// Reference engines run as workers for the whole benchmark.
+	var ort, torch *worker
+	var ortVersion, torchVersion string
+	if !c.skipORT {
+		var hello struct {
+			Version string `json:"ort_version"`
+		}
+		logf("ONNX Runtime (node %s)", filepath.Join(c.bench, "ort.js"))
+		if ort, err = startWorker("ort", &hello, c.node, filepath.Join(c.bench, "ort.js")); err != nil {
+			return err
+		}
+		ortVersion = hello.Version
+	}
+	if !c.skipTorch {
+		var hello struct {
+			Version string `json:"torch_version"`
+		}
+		logf("PyTorch (%s %s)", c.python, filepath.Join(c.bench, "torch_bench.py"))
+		if torch, err = startWorker("torch", &hello, c.python, filepath.Join(c.bench, "torch_bench.py")); err != nil {
+			return err
+		}
+		torchVersion = hello.Version
+	}
+	ortLogits, torchLogits := map[string][]float32{}, map[string][]float32{}
+
+	// Rounds: in each round every configuration (model, pass, batch) gets
+	// one turn per engine, the turns back to back, so the engines compared
+	// in a ratio run within seconds of each other and see the machine in
+	// the same state; the order of the turns is reversed every other round.
+	// The best round is kept per engine and configuration, so a burst of
+	// load from other users during one turn does not decide a ratio
+	// (best-of-N, common practice for timing on shared machines).
 	var rows []timing
-	var ortOut *ortResult
-	var torchOut *torchResult
-	ortMap := filepath.Join(c.work, "occlusion_ort.f32")
+	var pairs []pairRatio
 	for r := 0; r < c.rounds; r++ {
 		logf("round %d of %d", r+1, c.rounds)
 		for _, m := range ms {
 			for _, bwd := range []bool{false, true} {
 				for _, b := range []int{1, 16} {
-					t, err := timeHeedmap(ctx, c, m, b, bwd)
-					if err != nil {
-						return err
+					turns := []turn{{"heedmap", func() (timing, error) { return timeHeedmap(ctx, c, m, b, bwd) }}}
+					if ort != nil && !bwd {
+						turns = append(turns, turn{"onnxruntime", func() (timing, error) {
+							t, lg, err := timeExternal(c, ort, "onnxruntime", m, imgPath, b, bwd)
+							if b == 1 {
+								ortLogits[m.name] = lg
+							}
+							return t, err
+						}})
 					}
-					logf("heedmap %s %s b%d: %.2f img/s", m.name, t.pass, b, t.imgPerSec())
-					rows = best(rows, t)
+					if torch != nil {
+						turns = append(turns, turn{"pytorch", func() (timing, error) {
+							t, lg, err := timeExternal(c, torch, "pytorch", m, imgPath, b, bwd)
+							if b == 1 && !bwd {
+								torchLogits[m.name] = lg
+							}
+							return t, err
+						}})
+					}
+					if r%2 == 1 {
+						slices.Reverse(turns)
+					}
+					got := map[string]timing{}
+					for i, tn := range turns {
+						if i > 0 {
+							// Let the previous engine's idle threads stop
+							// spinning before the next one starts.
+							time.Sleep(settle)
+						}
+						t, err := tn.run()
+						if err != nil {
+							return err
+						}
+						logf("%s %s %s b%d: %.2f img/s", tn.engine, m.name, t.pass, b, t.imgPerSec())
+						rows = best(rows, t)
+						got[tn.engine] = t
+					}
+					other := "onnxruntime"
+					if bwd {
+						other = "pytorch"
+					}
+					if h, ok := got["heedmap"]; ok {
+						if o, ok := got[other]; ok {
+							pairs = append(pairs, pairRatio{model: m.name, pass: h.pass, batch: b, ratio: h.imgPerSec() / o.imgPerSec()})
+						}
+					}
 				}
-			}
-		}
-		if !c.skipORT {
-			o, err := runORT(c, ms, imgPath, ortMap, c.occlusion && r == c.rounds-1)
-			if err != nil {
-				return err
-			}
-			if ortOut == nil || o.occ != nil {
-				ortOut = o // keep the turn that ran the occlusion windows
-			}
-			for _, t := range o.rows {
-				rows = best(rows, t)
-			}
-		}
-		if !c.skipTorch {
-			p, err := runTorch(c, ms, imgPath)
-			if err != nil {
-				return err
-			}
-			if torchOut == nil {
-				torchOut = p
-			}
-			for _, t := range p.rows {
-				rows = best(rows, t)
 			}
 		}
 	}
 
+	// The occlusion comparison runs once: ONNX Runtime's, then heedmap's.
 	var occs []*occlusionResult
 	if c.occlusion {
+		var ortOcc *ortOcclusion
+		ortMap := filepath.Join(c.work, "occlusion_ort.f32")
+		if ort != nil {
+			if ortOcc, err = ortOcclusionMap(c, ort, ms[0], imgPath, ortMap); err != nil {
+				return err
+			}
+		}
 		for _, ev := range strings.Split(c.evaluators, ",") {
 			occ, err := timeOcclusion(ctx, c, ms[0], ev)
 			if err != nil {
 				return err
 			}
-			if ortOut != nil && ortOut.occ != nil {
-				occ.ort = ortOut.occ
+			if ortOcc != nil {
+				occ.ort = ortOcc
 				if err := occ.compare(ortMap); err != nil {
 					return err
 				}
 			}
 			occs = append(occs, occ)
+		}
+	}
+	for _, w := range []*worker{ort, torch} {
+		if w != nil {
+			if err := w.close(); err != nil {
+				return err
+			}
 		}
 	}
 
@@ -240,11 +298,11 @@ func run(ctx context.Context, c config) error {
 	fmt.Printf("## Side-by-side run, %s\n\n", start.UTC().Format("2006-01-02 15:04 MST"))
 	fmt.Printf("- CPU: %s, %d logical CPUs; every engine on %d threads\n", cpuModel(), runtime.NumCPU(), c.threads)
 	fmt.Printf("- Go %s %s/%s; heedmap GEMM path %v", runtime.Version(), runtime.GOOS, runtime.GOARCH, gemm.ISA())
-	if ortOut != nil {
-		fmt.Printf("; ONNX Runtime %s (onnxruntime-node)", ortOut.version)
+	if ort != nil {
+		fmt.Printf("; ONNX Runtime %s (onnxruntime-node)", ortVersion)
 	}
-	if torchOut != nil {
-		fmt.Printf("; PyTorch %s", torchOut.version)
+	if torch != nil {
+		fmt.Printf("; PyTorch %s", torchVersion)
 	}
 	fmt.Println()
 	fmt.Printf("- load average (1, 5, 15 min) before: %s; after: %s\n", loadBefore, loadAfter)
@@ -255,7 +313,7 @@ func run(ctx context.Context, c config) error {
 		fmt.Printf(" %s %.3f GFLOP/image;", m.name, m.gflop)
 	}
 	fmt.Printf(" forward+backward (gradient to the input) counted as 2× forward\n")
-	fmt.Printf("- iterations: %d warm-up, then %d timed at batch 1 and %d at batch 16, per engine and configuration; best of %d rounds (heedmap, ONNX Runtime, PyTorch in turn each round)\n", c.warmup, c.iters1, c.iters16, c.rounds)
+	fmt.Printf("- iterations: %d warm-up, then %d timed at batch 1 and %d at batch 16, per engine and configuration; best of %d rounds; in each round a configuration's turns of all engines run back to back, %v apart (heedmap, ONNX Runtime, PyTorch; the reverse order in even rounds)\n", c.warmup, c.iters1, c.iters16, c.rounds, settle)
 	fmt.Printf("- wall time of the whole run: %s\n\n", time.Since(start).Round(time.Second))
 
 	gflop := map[string]float64{}
@@ -283,14 +341,14 @@ func run(ctx context.Context, c config) error {
 	}
 
 	fmt.Print("\n### Ratios against the targets\n\n")
-	fmt.Println("| ratio | model | batch | measured | target |")
-	fmt.Println("|---|---|---:|---:|---:|")
+	fmt.Println("| ratio | model | batch | measured (best turns) | target | round by round |")
+	fmt.Println("|---|---|---:|---:|---:|---|")
 	for _, m := range ms {
 		for _, b := range []int{1, 16} {
 			h, ok1 := find(rows, m.name, "forward", "heedmap", b)
 			o, ok2 := find(rows, m.name, "forward", "onnxruntime", b)
 			if ok1 && ok2 {
-				fmt.Printf("| heedmap / ONNX Runtime, forward img/s | %s | %d | %.3f | ≥ 0.7 |\n", m.name, b, h.imgPerSec()/o.imgPerSec())
+				fmt.Printf("| heedmap / ONNX Runtime, forward img/s | %s | %d | %.3f | ≥ 0.7 | %s |\n", m.name, b, h.imgPerSec()/o.imgPerSec(), perRound(pairs, m.name, "forward", b))
 			}
 		}
 	}
@@ -303,13 +361,13 @@ func run(ctx context.Context, c config) error {
 			h, ok1 := find(rows, m.name, "fwd+bwd", "heedmap", b)
 			p, ok2 := find(rows, m.name, "fwd+bwd", "pytorch", b)
 			if ok1 && ok2 {
-				fmt.Printf("| heedmap / PyTorch, forward+backward img/s | %s | %d | %.3f | %s |\n", m.name, b, h.imgPerSec()/p.imgPerSec(), want)
+				fmt.Printf("| heedmap / PyTorch, forward+backward img/s | %s | %d | %.3f | %s | %s |\n", m.name, b, h.imgPerSec()/p.imgPerSec(), want, perRound(pairs, m.name, "fwd+bwd", b))
 			}
 		}
 	}
 	for _, occ := range occs {
 		if occ.ort != nil {
-			fmt.Printf("| ONNX Runtime time / heedmap time, occlusion map (%s evaluator) | %s | %d | %.3f | ≥ 1.2 |\n", occ.evaluator, occ.model, occ.batch, occ.ort.Seconds/occ.seconds)
+			fmt.Printf("| ONNX Runtime time / heedmap time, occlusion map (%s evaluator) | %s | %d | %.3f | ≥ 1.2 | |\n", occ.evaluator, occ.model, occ.batch, occ.ort.Seconds/occ.seconds)
 		}
 	}
 	for i, occ := range occs {
@@ -331,16 +389,50 @@ func run(ctx context.Context, c config) error {
 		fmt.Print("\n### Logit agreement (batch 1, same image, max |Δ| against heedmap)\n\n")
 		for _, m := range ms {
 			fmt.Printf("- %s:", m.name)
-			if ortOut != nil {
-				fmt.Printf(" ONNX Runtime %.3g;", maxAbsDiff(m.logits, ortOut.logits[m.name]))
+			if ort != nil {
+				fmt.Printf(" ONNX Runtime %.3g;", maxAbsDiff(m.logits, ortLogits[m.name]))
 			}
-			if torchOut != nil {
-				fmt.Printf(" PyTorch %.3g;", maxAbsDiff(m.logits, torchOut.logits[m.name]))
+			if torch != nil {
+				fmt.Printf(" PyTorch %.3g;", maxAbsDiff(m.logits, torchLogits[m.name]))
 			}
 			fmt.Printf(" (max |logit| %.3g)\n", maxAbs(m.logits))
 		}
 	}
 	return nil
+}
+
+// settle is the pause between two engines' turns.
+const settle = 100 * time.Millisecond
+
+// turn is one engine's timing of one configuration.
+type turn struct {
+	engine string
+	run    func() (timing, error)
+}
+
+// pairRatio is heedmap's rate over the compared engine's in one round.
+type pairRatio struct {
+	model, pass string
+	batch       int
+	ratio       float64
+}
+
+// perRound lists the round-by-round ratios of one configuration.
+func perRound(pairs []pairRatio, model, pass string, batch int) string {
+	var s []string
+	for _, p := range pairs {
+		if p.model == model && p.pass == pass && p.batch == batch {
+			s = append(s, fmt.Sprintf("%.2f", p.ratio))
+		}
+	}
+	return strings.Join(s, ", ")
+}
+
+func (c config) iters(batch int) int {
+	if batch > 1 {
+		return c.iters16
+	}
+	return c.iters1
 }
 
 // best adds t to rows, or replaces the same configuration's entry when t
@@ -492,10 +584,7 @@ func timeHeedmap(ctx context.Context, c config, m *model, b int, bwd bool) (timi
 	if bwd {
 		pass = "fwd+bwd"
 	}
-	iters := c.iters1
-	if b > 1 {
-		iters = c.iters16
-	}
+	iters := c.iters(b)
 	for range c.warmup {
 		if err := step(); err != nil {
 			return timing{}, fmt.Errorf("heedmap %s %s: %w", m.name, pass, err)
@@ -607,16 +696,76 @@ func (r *occlusionResult) compare(path string) error {
 
 // ---------------------------------------------------------------- others
 
-type ortResult struct {
-	version string
-	rows    []timing
-	logits  map[string][]float32
-	occ     *ortOcclusion
+// worker is a reference engine's process (bench/ort.js or
+// bench/torch_bench.py) kept running for the whole benchmark: the driver
+// writes one JSON request per line on its stdin and reads one JSON reply
+// per line from its stdout. Keeping it running lets each configuration's
+// turns of all engines follow each other within seconds.
+type worker struct {
+	tag string
+	cmd *exec.Cmd
+	in  io.WriteCloser
+	out *json.Decoder
 }
 
-type job struct {
+// startWorker runs prog args... and decodes its greeting (the version
+// line) into hello.
+func startWorker(tag string, hello any, prog string, args ...string) (*worker, error) {
+	cmd := exec.Command(prog, args...)
+	cmd.Stderr = os.Stderr
+	in, err := cmd.StdinPipe()
+	if err != nil {
+		return nil, err
+	}
+	out, err := cmd.StdoutPipe()
+	if err != nil {
+		return nil, err
+	}
+	if err := cmd.Start(); err != nil {
+		return nil, fmt.Errorf("%s %s: %w", prog, strings.Join(args, " "), err)
+	}
+	w := &worker{tag: tag, cmd: cmd, in: in, out: json.NewDecoder(out)}
+	if err := w.out.Decode(hello); err != nil {
+		w.close()
+		return nil, fmt.Errorf("%s: no greeting: %w", tag, err)
+	}
+	return w, nil
+}
+
+// call sends req and decodes the reply into resp.
+func (w *worker) call(req, resp any) error {
+	b, err := json.Marshal(req)
+	if err != nil {
+		return err
+	}
+	if _, err := w.in.Write(append(b, '\n')); err != nil {
+		return fmt.Errorf("%s: %w", w.tag, err)
+	}
+	if err := w.out.Decode(resp); err != nil {
+		return fmt.Errorf("%s: bad or missing reply: %w", w.tag, err)
+	}
+	return nil
+}
+
+// close ends the worker's input and waits for it to exit.
+func (w *worker) close() error {
+	w.in.Close()
+	if err := w.cmd.Wait(); err != nil {
+		return fmt.Errorf("%s: %w", w.tag, err)
+	}
+	return nil
+}
+
+// request is one timing request to a worker.
+type request struct {
+	Op       string `json:"op"`
 	Name     string `json:"name"`
 	Model    string `json:"model"`
+	Image    string `json:"image"`
+	Shape    []int  `json:"shape"`
+	Class    int    `json:"class"`
+	Cache    string `json:"cache,omitempty"`
+	Threads  int    `json:"threads"`
 	Batch    int    `json:"batch"`
 	Backward bool   `json:"backward"`
 	Warmup   int    `json:"warmup"`
@@ -632,112 +781,37 @@ type extRun struct {
 	Logits   []float32 `json:"logits"`
 }
 
-func jobs(c config, ms []*model, backward bool) []job {
-	var js []job
-	for _, m := range ms {
-		for _, bwd := range []bool{false, true} {
-			if bwd && !backward {
-				continue
-			}
-			for _, b := range []int{1, 16} {
-				it := c.iters1
-				if b > 1 {
-					it = c.iters16
-				}
-				js = append(js, job{Name: m.name, Model: m.path, Batch: b, Backward: bwd, Warmup: c.warmup, Iters: it})
-			}
-		}
+// timeExternal times one configuration on a worker.
+func timeExternal(c config, w *worker, engineName string, m *model, imgPath string, b int, bwd bool) (timing, []float32, error) {
+	pass := "forward"
+	if bwd {
+		pass = "fwd+bwd"
 	}
-	return js
+	req := request{Op: "time", Name: m.name, Model: m.path, Image: imgPath, Shape: m.shape, Class: classIndex, Cache: c.work,
+		Threads: c.threads, Batch: b, Backward: bwd, Warmup: c.warmup, Iters: c.iters(b)}
+	var x extRun
+	if err := w.call(req, &x); err != nil {
+		return timing{}, nil, err
+	}
+	if x.Name != m.name || x.Batch != b || x.Iters != req.Iters || x.Seconds <= 0 {
+		return timing{}, nil, fmt.Errorf("%s: reply %+v does not answer %s b%d", w.tag, x, m.name, b)
+	}
+	return timing{model: m.name, pass: pass, engine: engineName, batch: b, images: b * x.Iters, seconds: x.Seconds}, x.Logits, nil
 }
 
-func runORT(c config, ms []*model, imgPath, mapPath string, occlusion bool) (*ortResult, error) {
-	spec := map[string]any{
-		"threads": c.threads,
-		"image":   imgPath,
-		"shape":   ms[0].shape,
-		"jobs":    jobs(c, ms, false),
+// ortOcclusionMap asks the ONNX Runtime worker for the occlusion map of
+// m's image, written to mapPath.
+func ortOcclusionMap(c config, w *worker, m *model, imgPath, mapPath string) (*ortOcclusion, error) {
+	req := map[string]any{
+		"op": "occlusion", "model": m.path, "image": imgPath, "shape": m.shape, "threads": c.threads,
+		"patch": c.patch, "stride": c.stride, "class": classIndex, "batch": c.occB, "out": mapPath,
 	}
-	if occlusion {
-		spec["occlusion"] = map[string]any{
-			"model": ms[0].path, "patch": c.patch, "stride": c.stride, "class": classIndex, "batch": c.occB, "out": mapPath,
-		}
-	}
-	var out struct {
-		Version   string        `json:"ort_version"`
-		Runs      []extRun      `json:"runs"`
-		Occlusion *ortOcclusion `json:"occlusion"`
-	}
-	logf("ONNX Runtime (node %s)", filepath.Join(c.bench, "ort.js"))
-	if err := external(c, spec, "ort", &out, c.node, filepath.Join(c.bench, "ort.js")); err != nil {
+	logf("ONNX Runtime occlusion %s", m.name)
+	var o ortOcclusion
+	if err := w.call(req, &o); err != nil {
 		return nil, err
 	}
-	r := &ortResult{version: out.Version, logits: map[string][]float32{}, occ: out.Occlusion}
-	for _, x := range out.Runs {
-		r.rows = append(r.rows, timing{model: x.Name, pass: "forward", engine: "onnxruntime", batch: x.Batch, images: x.Batch * x.Iters, seconds: x.Seconds})
-		r.logits[x.Name] = x.Logits
-	}
-	return r, nil
-}
-
-type torchResult struct {
-	version string
-	rows    []timing
-	logits  map[string][]float32
-}
-
-func runTorch(c config, ms []*model, imgPath string) (*torchResult, error) {
-	spec := map[string]any{
-		"threads": c.threads,
-		"image":   imgPath,
-		"shape":   ms[0].shape,
-		"class":   classIndex,
-		"cache":   c.work,
-		"jobs":    jobs(c, ms, true),
-	}
-	var out struct {
-		Version string   `json:"torch_version"`
-		Runs    []extRun `json:"runs"`
-	}
-	logf("PyTorch (%s %s)", c.python, filepath.Join(c.bench, "torch_bench.py"))
-	if err := external(c, spec, "torch", &out, c.python, filepath.Join(c.bench, "torch_bench.py")); err != nil {
-		return nil, err
-	}
-	r := &torchResult{version: out.Version, logits: map[string][]float32{}}
-	for _, x := range out.Runs {
-		pass := "forward"
-		if x.Backward {
-			pass = "fwd+bwd"
-		}
-		r.rows = append(r.rows, timing{model: x.Name, pass: pass, engine: "pytorch", batch: x.Batch, images: x.Batch * x.Iters, seconds: x.Seconds})
-		if !x.Backward && x.Batch == 1 {
-			r.logits[x.Name] = x.Logits
-		}
-	}
-	return r, nil
-}
-
-// external writes spec to a file, runs prog args... spec-file and decodes
-// the JSON the program prints.
-func external(c config, spec any, tag string, out any, prog string, args ...string) error {
-	specPath := filepath.Join(c.work, tag+"_spec.json")
-	b, err := json.MarshalIndent(spec, "", " ")
-	if err != nil {
-		return err
-	}
-	if err := os.WriteFile(specPath, b, 0o644); err != nil {
-		return err
-	}
-	cmd := exec.Command(prog, append(args, specPath)...)
-	cmd.Stderr = os.Stderr
-	stdout, err := cmd.Output()
-	if err != nil {
-		return fmt.Errorf("%s %s: %w", prog, strings.Join(args, " "), err)
-	}
-	if err := json.Unmarshal(stdout, out); err != nil {
-		return fmt.Errorf("%s: bad JSON output: %w", tag, err)
-	}
-	return nil
+	return &o, nil
 }
 
 // ---------------------------------------------------------------- helpers
