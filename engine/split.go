@@ -3,7 +3,10 @@ package engine
 import (
 	"context"
 	"fmt"
+	"runtime"
 	"strings"
+	"sync"
+	"sync/atomic"
 
 	"heedmap/tensor"
 )
@@ -234,19 +237,23 @@ func (g *Graph) runSplit(ctx context.Context, inputs map[string]*tensor.Tensor, 
 		}
 		return g.run(ctx, inputs, opt)
 	}
-	parts := make([]*Pass, 0, n)
+	parts := make([]*Pass, n)
+	from := 0
 	if first != nil {
-		parts = append(parts, first)
+		parts[0], from = first, 1
 	}
-	for i := len(parts); i < n; i++ {
+	err := g.eachImage(from, n, false, func(i int) error {
 		p, err := g.run(ctx, g.imageInputs(inputs, i, i+1), opt)
-		if err != nil {
-			for _, q := range parts {
+		parts[i] = p
+		return err
+	})
+	if err != nil {
+		for _, q := range parts {
+			if q != nil {
 				q.Release()
 			}
-			return nil, fmt.Errorf("image %d of the batch: %w", i, err)
 		}
-		parts = append(parts, p)
+		return nil, err
 	}
 	j := &Pass{g: g, parts: parts, inputs: inputs, vals: make([]*tensor.Tensor, len(g.names)), backward: opt.Backward}
 	// The sum of the parts' peaks: with Backward every part keeps what it
@@ -258,6 +265,69 @@ func (g *Graph) runSplit(ctx context.Context, inputs map[string]*tensor.Tensor, 
 		j.peakBytes += q.peakBytes
 	}
 	return j, nil
+}
+
+// eachImage runs f(i) for every image i in [from, n) of a batch taken
+// image by image, from the last when backward is set. With more than one
+// core it runs lanes: one goroutine per core, each claiming the next image
+// and running its pass with the team's tasks on that goroutine alone
+// (team.solo), so the cores work on different images and never wait for
+// each other at a phase barrier. Which goroutine runs an image, and which
+// runs a task, changes no result: the tasks and their arithmetic depend on
+// the shapes and GOMAXPROCS only, so each image is bit for bit its pass
+// alone. Measured on the 2-vCPU AMD EPYC with full-size MobileNetV2
+// forward at batch 16: two single-core processes side by side ran 5.2–7.1
+// ms per image each (about 3 ms per image together), against 4.4–4.9 ms
+// for one pass at a time on both cores (most of the difference is the
+// barrier waits of a shared machine, 0.16–0.65 ms a pass) and 3.8–4.3 ms
+// for the whole batch as one pass. It returns the error of the lowest
+// failing image, after which no image starts.
+func (g *Graph) eachImage(from, n int, backward bool, f func(i int) error) error {
+	index := func(k int) int {
+		if backward {
+			return from + n - 1 - k
+		}
+		return k
+	}
+	lanes := min(runtime.GOMAXPROCS(0), n-from)
+	errs := make([]error, n)
+	if lanes <= 1 || g.team == nil {
+		for k := from; k < n; k++ {
+			if err := f(index(k)); err != nil {
+				return fmt.Errorf("image %d of the batch: %w", index(k), err)
+			}
+		}
+		return nil
+	}
+	g.team.solo.Add(1)
+	defer g.team.solo.Add(-1)
+	var next atomic.Int64
+	next.Store(int64(from))
+	var failed atomic.Bool
+	lane := func() {
+		for !failed.Load() {
+			k := int(next.Add(1) - 1)
+			if k >= n {
+				return
+			}
+			i := index(k)
+			if errs[i] = f(i); errs[i] != nil {
+				failed.Store(true)
+			}
+		}
+	}
+	var wg sync.WaitGroup
+	for range lanes - 1 {
+		wg.Go(lane)
+	}
+	lane()
+	wg.Wait()
+	for i, err := range errs {
+		if err != nil {
+			return fmt.Errorf("image %d of the batch: %w", i, err)
+		}
+	}
+	return nil
 }
 
 // joinedValue is Value for a pass run image by image: a graph input as
@@ -334,9 +404,9 @@ func (p *Pass) splitBackward(ctx context.Context, seeds map[string]*tensor.Tenso
 		}
 	}
 	grads := make([]map[string]*tensor.Tensor, n)
-	// The last image first: its forward values are the likeliest to be
+	// The last images first: their forward values are the likeliest to be
 	// in cache still.
-	for i := n - 1; i >= 0; i-- {
+	err := p.g.eachImage(0, n, true, func(i int) error {
 		q := p.parts[i]
 		sub := make(map[string]*tensor.Tensor, len(seeds))
 		for name, s := range seeds {
@@ -344,10 +414,11 @@ func (p *Pass) splitBackward(ctx context.Context, seeds map[string]*tensor.Tenso
 			sub[name] = tensor.FromFloat32(s.F32[i*per:(i+1)*per], append([]int{1}, s.Shape[1:]...)...)
 		}
 		g, err := q.Backward(ctx, sub, wrt)
-		if err != nil {
-			return nil, fmt.Errorf("image %d of the batch: %w", i, err)
-		}
 		grads[i] = g
+		return err
+	})
+	if err != nil {
+		return nil, err
 	}
 	out := make(map[string]*tensor.Tensor, len(wrt))
 	for _, name := range wrt {

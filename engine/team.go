@@ -32,6 +32,10 @@ type team struct {
 	offer    atomic.Pointer[phaseJob] // a job waiting for a spinning helper
 	spinning atomic.Int32             // helpers polling offer
 	parked   chan *phaseJob           // hands a job to a parked helper
+	// solo counts the callers that keep every core busy with passes of
+	// their own (Graph.eachImage): while it is non-zero, run does all of a
+	// job's tasks on its caller and recruits no helper.
+	solo atomic.Int32
 }
 
 // spinFor is how long a helper polls for the next job before parking:
@@ -136,6 +140,9 @@ func (tm *team) run(counts []int, f func(phase, t int) error) error {
 	}
 	j := &phaseJob{counts: counts, f: f, phases: make([]phaseState, len(counts))}
 	helpers := min(runtime.GOMAXPROCS(0), most) - 1
+	if tm != nil && tm.solo.Load() > 0 {
+		helpers = 0
+	}
 	for h := 0; h < helpers; h++ {
 		switch {
 		case tm == nil:
