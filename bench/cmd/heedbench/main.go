@@ -96,7 +96,7 @@ func main() {
 	flag.IntVar(&c.warmup, "warmup", 1, "untimed warm-up iterations per configuration")
 	flag.IntVar(&c.iters1, "iters1", 32, "timed iterations at batch 1")
 	flag.IntVar(&c.iters16, "iters16", 4, "timed iterations at batch 16")
-	flag.IntVar(&c.rounds, "rounds", 2, "rounds of all engines; the best round per configuration is reported")
+	flag.IntVar(&c.rounds, "rounds", 3, "rounds of all engines; the best round per configuration is reported")
 	flag.BoolVar(&c.occlusion, "occlusion", true, "also time a full occlusion map (first model)")
 	flag.StringVar(&c.evaluators, "evaluators", "full,incremental", "heedmap occlusion evaluators to time (full, incremental)")
 	flag.IntVar(&c.patch, "patch", 16, "occlusion patch")
