@@ -36,7 +36,7 @@ import (
 // With more than one core the images run in lanes, one per core at a time
 // (eachImage): on the 2-vCPU AMD EPYC the whole batch as one pass had
 // become faster than one image at a time on both cores (MobileNetV2
-// forward at batch 16: 3.8–4.4 against 4.4–5.1 ms per image), and lanes
+// forward at batch 16: 3.8–4.4 against 4.3–5.1 ms per image), and lanes
 // are faster than both (3.6–3.8 ms).
 
 // splitFloorBytes is the fewest bytes one image's pass must produce for
