@@ -1,6 +1,7 @@
 package engine
 
 import (
+	"context"
 	"encoding/json"
 	"os"
 	"path/filepath"
@@ -53,4 +54,25 @@ func (n compactNet) tensor(t *testing.T, file string) *tensor.Tensor {
 		t.Fatal(err)
 	}
 	return x
+}
+
+// runBackward runs the network on x with opt (Backward set) and takes the
+// gradient of Σ_batch logit[class] with respect to wrt.
+func (n compactNet) runBackward(t *testing.T, x *tensor.Tensor, opt RunOptions, wrt ...string) (*Pass, map[string]*tensor.Tensor) {
+	t.Helper()
+	opt.Backward = true
+	p, err := n.g.Run(context.Background(), map[string]*tensor.Tensor{n.meta.Input: x}, opt)
+	if err != nil {
+		t.Fatal(err)
+	}
+	logits, _ := p.Value(n.meta.Output)
+	seed := tensor.New(logits.Shape...)
+	for i := 0; i < logits.Shape[0]; i++ {
+		seed.F32[i*logits.Shape[1]+n.meta.Class] = 1
+	}
+	g, err := p.Backward(context.Background(), map[string]*tensor.Tensor{n.meta.Output: seed}, wrt)
+	if err != nil {
+		t.Fatal(err)
+	}
+	return p, g
 }

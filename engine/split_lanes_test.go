@@ -1,7 +1,6 @@
 package engine
 
 import (
-	"context"
 	"errors"
 	"runtime"
 	"slices"
@@ -105,19 +104,8 @@ func TestSplitLanesMatchAlone(t *testing.T) {
 				}
 			}
 			run := func(x *tensor.Tensor) (*Pass, []float32, []float32) {
-				p, err := n.g.Run(context.Background(), map[string]*tensor.Tensor{n.meta.Input: x}, RunOptions{Backward: true})
-				if err != nil {
-					t.Fatal(err)
-				}
+				p, g := n.runBackward(t, x, RunOptions{}, n.meta.Input)
 				logits, _ := p.Value(n.meta.Output)
-				seed := tensor.New(logits.Shape...)
-				for i := 0; i < logits.Shape[0]; i++ {
-					seed.F32[i*logits.Shape[1]+n.meta.Class] = 1
-				}
-				g, err := p.Backward(context.Background(), map[string]*tensor.Tensor{n.meta.Output: seed}, []string{n.meta.Input})
-				if err != nil {
-					t.Fatal(err)
-				}
 				return p, logits.F32, g[n.meta.Input].F32
 			}
 			p, logits, grad := run(x)

@@ -26,26 +26,12 @@ func TestSplitBatchMatchesWholeBatch(t *testing.T) {
 		t.Run(name, func(t *testing.T) {
 			n := loadCompactNet(t, name)
 			n.g.splitFloor = 0 // the compact nets' 64×64 images are below the floor
-			in := map[string]*tensor.Tensor{n.meta.Input: n.x}
-			run := func(opt RunOptions, x map[string]*tensor.Tensor) (*Pass, map[string]*tensor.Tensor) {
-				opt.Backward, opt.Keep = true, []string{n.meta.Layer}
-				p, err := n.g.Run(context.Background(), x, opt)
-				if err != nil {
-					t.Fatal(err)
-				}
-				logits, _ := p.Value(n.meta.Output)
-				seed := tensor.New(logits.Shape...)
-				for i := 0; i < logits.Shape[0]; i++ {
-					seed.F32[i*logits.Shape[1]+n.meta.Class] = 1
-				}
-				g, err := p.Backward(context.Background(), map[string]*tensor.Tensor{n.meta.Output: seed}, []string{n.meta.Input, n.meta.Layer})
-				if err != nil {
-					t.Fatal(err)
-				}
-				return p, g
+			run := func(opt RunOptions, x *tensor.Tensor) (*Pass, map[string]*tensor.Tensor) {
+				opt.Keep = []string{n.meta.Layer}
+				return n.runBackward(t, x, opt, n.meta.Input, n.meta.Layer)
 			}
-			split, gs := run(RunOptions{}, in)
-			whole, gw := run(RunOptions{WholeBatch: true}, in)
+			split, gs := run(RunOptions{}, n.x)
+			whole, gw := run(RunOptions{WholeBatch: true}, n.x)
 			splits[name] = split.parts != nil
 			for _, v := range []string{n.meta.Output, n.meta.Layer} {
 				a, ok1 := split.Value(v)
@@ -73,7 +59,7 @@ func TestSplitBatchMatchesWholeBatch(t *testing.T) {
 			per := n.x.Len() / batch
 			for i := 0; i < batch; i++ {
 				x := tensor.FromFloat32(n.x.F32[i*per:(i+1)*per], append([]int{1}, n.x.Shape[1:]...)...)
-				one, g1 := run(RunOptions{}, map[string]*tensor.Tensor{n.meta.Input: x})
+				one, g1 := run(RunOptions{}, x)
 				a, _ := one.Value(n.meta.Output)
 				b, _ := split.Value(n.meta.Output)
 				k := a.Len()
