@@ -15,8 +15,9 @@ import (
 // TestEachImageLanes checks Graph.eachImage on two cores: every image is
 // run once, two images run at the same time (each call below waits for a
 // second one to start, which cannot happen on one goroutine), the team
-// recruits no helper meanwhile, backward claims from the last image, and
-// the error of the lowest failing image is returned.
+// recruits no helper meanwhile, backward claims from the last image, no
+// lanes run for fewer images than cores, and the error of the lowest
+// failing image is returned.
 func TestEachImageLanes(t *testing.T) {
 	defer runtime.GOMAXPROCS(runtime.GOMAXPROCS(2))
 	g := &Graph{team: newTeam()}
@@ -72,6 +73,17 @@ func TestEachImageLanes(t *testing.T) {
 			t.Errorf("backward %v: first images run %v, want %v", backward, got, head)
 		}
 	}
+	// Fewer images than cores: one at a time, the team helping.
+	runtime.GOMAXPROCS(4)
+	if err := g.eachImage(0, 3, false, func(i int) error {
+		if g.team.solo.Load() != 0 {
+			t.Errorf("3 images on 4 cores: image %d ran in a lane", i)
+		}
+		return nil
+	}); err != nil {
+		t.Fatal(err)
+	}
+	runtime.GOMAXPROCS(2)
 	boom := errors.New("boom")
 	err := g.eachImage(0, 6, false, func(i int) error {
 		if i == 3 || i == 4 {
