@@ -128,10 +128,12 @@ async function main() {
       const feed = { [input]: batchOf(img, req.batch, req.shape) };
       let logits;
       for (let i = 0; i < req.warmup; i++) logits = (await sess.run(feed))[output];
+      // At least req.iters iterations and at least req.min_seconds.
       const t0 = process.hrtime.bigint();
-      for (let i = 0; i < req.iters; i++) await sess.run(feed);
+      let n = 0;
+      for (; n < req.iters || seconds(t0) < (req.min_seconds || 0); n++) await sess.run(feed);
       const secs = seconds(t0);
-      reply({ name: req.name, batch: req.batch, iters: req.iters, seconds: secs, logits: Array.from(logits.data.slice(0, logits.dims[1])) });
+      reply({ name: req.name, batch: req.batch, iters: n, seconds: secs, logits: Array.from(logits.data.slice(0, logits.dims[1])) });
     } else if (req.op === 'occlusion') {
       reply(await occlusion(req, img, req.shape));
     } else {

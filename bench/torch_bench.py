@@ -90,11 +90,14 @@ def main():
                     return model(x)
         for _ in range(req["warmup"]):
             logits = step()
+        # At least req["iters"] iterations and at least req["min_seconds"].
         t0 = time.perf_counter()
-        for _ in range(req["iters"]):
+        n = 0
+        while n < req["iters"] or time.perf_counter() - t0 < req.get("min_seconds", 0):
             step()
+            n += 1
         secs = time.perf_counter() - t0
-        reply({"name": name, "batch": req["batch"], "backward": req["backward"], "iters": req["iters"],
+        reply({"name": name, "batch": req["batch"], "backward": req["backward"], "iters": n,
                "seconds": secs, "logits": logits[0].detach().tolist()})
 
 

@@ -59,6 +59,7 @@ type config struct {
 	evaluators          string
 	skipORT, skipTorch  bool
 	peakDur             time.Duration
+	minTime             time.Duration
 	patch, stride, occB int
 }
 
@@ -105,6 +106,7 @@ func main() {
 	flag.BoolVar(&c.skipORT, "skip-ort", false, "do not run ONNX Runtime")
 	flag.BoolVar(&c.skipTorch, "skip-torch", false, "do not run PyTorch")
 	flag.DurationVar(&c.peakDur, "peak", 2*time.Second, "duration of each FMA peak measurement")
+	flag.DurationVar(&c.minTime, "min-time", time.Second, "least timed duration of each engine's turn: more iterations than -iters1/-iters16 run until it has passed")
 	flag.Parse()
 	c.models = strings.Split(models, ",")
 	if c.nets == "" {
@@ -313,7 +315,7 @@ func run(ctx context.Context, c config) error {
 		fmt.Printf(" %s %.3f GFLOP/image;", m.name, m.gflop)
 	}
 	fmt.Printf(" forward+backward (gradient to the input) counted as 2× forward\n")
-	fmt.Printf("- iterations: %d warm-up, then %d timed at batch 1 and %d at batch 16, per engine and configuration; best of %d rounds; in each round a configuration's turns of all engines run back to back, %v apart (heedmap, ONNX Runtime, PyTorch; the reverse order in even rounds)\n", c.warmup, c.iters1, c.iters16, c.rounds, settle)
+	fmt.Printf("- iterations: %d warm-up, then at least %d timed at batch 1 and %d at batch 16 and for at least %v, per engine and configuration; best of %d rounds; in each round a configuration's turns of all engines run back to back, %v apart (heedmap, ONNX Runtime, PyTorch; the reverse order in even rounds)\n", c.warmup, c.iters1, c.iters16, c.minTime, c.rounds, settle)
 	fmt.Printf("- wall time of the whole run: %s\n\n", time.Since(start).Round(time.Second))
 
 	gflop := map[string]float64{}
@@ -591,12 +593,13 @@ func timeHeedmap(ctx context.Context, c config, m *model, b int, bwd bool) (timi
 		}
 	}
 	t0 := time.Now()
-	for range iters {
+	done := 0
+	for ; done < iters || time.Since(t0) < c.minTime; done++ {
 		if err := step(); err != nil {
 			return timing{}, fmt.Errorf("heedmap %s %s: %w", m.name, pass, err)
 		}
 	}
-	return timing{model: m.name, pass: pass, engine: "heedmap", batch: b, images: b * iters, seconds: time.Since(t0).Seconds()}, nil
+	return timing{model: m.name, pass: pass, engine: "heedmap", batch: b, images: b * done, seconds: time.Since(t0).Seconds()}, nil
 }
 
 // ---------------------------------------------------------------- occlusion
@@ -770,6 +773,9 @@ type request struct {
 	Backward bool   `json:"backward"`
 	Warmup   int    `json:"warmup"`
 	Iters    int    `json:"iters"`
+	// MinSeconds: the worker goes on past Iters until this long has
+	// passed, and replies with the iterations it ran.
+	MinSeconds float64 `json:"min_seconds"`
 }
 
 type extRun struct {
@@ -788,12 +794,12 @@ func timeExternal(c config, w *worker, engineName string, m *model, imgPath stri
 		pass = "fwd+bwd"
 	}
 	req := request{Op: "time", Name: m.name, Model: m.path, Image: imgPath, Shape: m.shape, Class: classIndex, Cache: c.work,
-		Threads: c.threads, Batch: b, Backward: bwd, Warmup: c.warmup, Iters: c.iters(b)}
+		Threads: c.threads, Batch: b, Backward: bwd, Warmup: c.warmup, Iters: c.iters(b), MinSeconds: c.minTime.Seconds()}
 	var x extRun
 	if err := w.call(req, &x); err != nil {
 		return timing{}, nil, err
 	}
-	if x.Name != m.name || x.Batch != b || x.Iters != req.Iters || x.Seconds <= 0 {
+	if x.Name != m.name || x.Batch != b || x.Iters < req.Iters || x.Seconds < req.MinSeconds {
 		return timing{}, nil, fmt.Errorf("%s: reply %+v does not answer %s b%d", w.tag, x, m.name, b)
 	}
 	return timing{model: m.name, pass: pass, engine: engineName, batch: b, images: b * x.Iters, seconds: x.Seconds}, x.Logits, nil
