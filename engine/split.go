@@ -262,7 +262,7 @@ func (g *Graph) runSplit(ctx context.Context, inputs map[string]*tensor.Tensor, 
 	}
 	j := &Pass{g: g, parts: parts, inputs: inputs, vals: make([]*tensor.Tensor, len(g.names)), backward: opt.Backward}
 	// The sum of the parts' peaks: with Backward every part keeps what it
-	// reads until then; without, only one part's values live at a time,
+	// reads until then; without, only one part's values per lane live at a time,
 	// but callers size their batches by PeakBytes per image (and the
 	// batch's inputs and outputs do scale with it), so it reads as the
 	// whole batch would.
