@@ -298,7 +298,6 @@ func (g *Graph) eachImage(from, n int, backward bool, f func(i int) error) error
 	// With fewer images than cores, lanes would leave cores idle that the
 	// team can use on one image at a time.
 	lanes := runtime.GOMAXPROCS(0)
-	errs := make([]error, n)
 	if lanes <= 1 || n-from < lanes || g.team == nil {
 		for k := from; k < n; k++ {
 			if err := f(index(k)); err != nil {
@@ -309,6 +308,7 @@ func (g *Graph) eachImage(from, n int, backward bool, f func(i int) error) error
 	}
 	g.team.solo.Add(1)
 	defer g.team.solo.Add(-1)
+	errs := make([]error, n)
 	var next atomic.Int64
 	next.Store(int64(from))
 	var failed atomic.Bool

@@ -191,6 +191,13 @@ func run(ctx context.Context, c config) error {
 		torchVersion = hello.Version
 	}
 	ortLogits, torchLogits := map[string][]float32{}, map[string][]float32{}
+	// The reference engines' turns; ONNX Runtime times forward passes only.
+	externals := []struct {
+		engine   string
+		w        *worker
+		backward bool
+		logits   map[string][]float32
+	}{{"onnxruntime", ort, false, ortLogits}, {"pytorch", torch, true, torchLogits}}
 
 	// Rounds: in each round every configuration (model, pass, batch) gets
 	// one turn per engine, the turns back to back, so the engines compared
@@ -207,20 +214,14 @@ func run(ctx context.Context, c config) error {
 			for _, bwd := range []bool{false, true} {
 				for _, b := range []int{1, 16} {
 					turns := []turn{{"heedmap", func() (timing, error) { return timeHeedmap(ctx, c, m, b, bwd) }}}
-					if ort != nil && !bwd {
-						turns = append(turns, turn{"onnxruntime", func() (timing, error) {
-							t, lg, err := timeExternal(c, ort, "onnxruntime", m, imgPath, b, bwd)
-							if b == 1 {
-								ortLogits[m.name] = lg
-							}
-							return t, err
-						}})
-					}
-					if torch != nil {
-						turns = append(turns, turn{"pytorch", func() (timing, error) {
-							t, lg, err := timeExternal(c, torch, "pytorch", m, imgPath, b, bwd)
+					for _, x := range externals {
+						if x.w == nil || bwd && !x.backward {
+							continue
+						}
+						turns = append(turns, turn{x.engine, func() (timing, error) {
+							t, lg, err := timeExternal(c, x.w, x.engine, m, imgPath, b, bwd)
 							if b == 1 && !bwd {
-								torchLogits[m.name] = lg
+								x.logits[m.name] = lg
 							}
 							return t, err
 						}})
